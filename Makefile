@@ -1,0 +1,44 @@
+# calib: two commands on a fresh machine.
+#   make demo   set up .venv and run the morning job on an invented scenario (embedded SQLite)
+#   make test   set up .venv and run ruff, mypy and the test suite
+#   make bench  run the benchmarks under bench/ (ratios against the named peers)
+
+PYTHON ?= python3
+VENV   ?= .venv
+PY     := $(VENV)/bin/python
+DEV    := $(VENV)/.stamp-dev
+APP    := $(VENV)/.stamp-app
+
+.PHONY: demo test lint typecheck unit bench clean
+
+$(PY):
+	$(PYTHON) -m venv $(VENV)
+	$(PY) -m pip install --quiet --upgrade pip
+
+$(APP): pyproject.toml | $(PY)
+	$(PY) -m pip install --quiet -e '.[postgres,serve,report]'
+	touch $@
+
+$(DEV): pyproject.toml | $(PY)
+	$(PY) -m pip install --quiet -e '.[dev]'
+	touch $@ $(APP)
+
+demo: $(APP)
+	$(VENV)/bin/calib demo
+
+lint: $(DEV)
+	$(PY) -m ruff check calib tests bench migrations
+
+typecheck: $(DEV)
+	$(PY) -m mypy
+
+unit: $(DEV)
+	$(PY) -m pytest -q
+
+test: lint typecheck unit
+
+bench: $(DEV)
+	$(PY) -m bench
+
+clean:
+	rm -rf $(VENV) .mypy_cache .ruff_cache .pytest_cache .hypothesis

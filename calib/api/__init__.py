@@ -1,0 +1,1 @@
+"""HTTP read API for pricers."""

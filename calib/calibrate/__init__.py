@@ -1,0 +1,1 @@
+"""Constrained calibration of the volatilities to option quotes (cvxpy)."""

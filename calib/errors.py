@@ -1,0 +1,46 @@
+"""Every error and warning calib raises, with their message templates.
+
+User mistakes (bad files, bad settings, unknown names) are :class:`InputError` subclasses and
+are printed by the CLI as one clear line, never as a traceback. Numerical failures name the
+cause. Tests match on the messages with ``pytest.raises(..., match=...)``.
+"""
+
+from __future__ import annotations
+
+
+class CalibError(Exception):
+    """Base of every calib error."""
+
+
+class CalibWarning(UserWarning):
+    """Base of every calib warning."""
+
+
+# --- user input -------------------------------------------------------------------------------
+
+
+class InputError(CalibError):
+    """A user mistake: bad file, bad option, bad value. Printed without a traceback."""
+
+
+class ParameterError(InputError, ValueError):
+    """A parameter value outside its domain (e.g. ``kappa <= 0``)."""
+
+    TEMPLATE = "{name} = {value!r} is invalid: {reason}"
+
+    def __init__(self, name: str, value: object, reason: str) -> None:
+        self.name = name
+        self.value = value
+        self.reason = reason
+        super().__init__(self.TEMPLATE.format(name=name, value=value, reason=reason))
+
+
+class ImpliedVolError(InputError, ValueError):
+    """A premium from which no implied volatility exists (outside the no-arbitrage bounds)."""
+
+    TEMPLATE = "no implied volatility for premium {premium!r}: {reason}"
+
+    def __init__(self, premium: float, reason: str) -> None:
+        self.premium = premium
+        self.reason = reason
+        super().__init__(self.TEMPLATE.format(premium=premium, reason=reason))

@@ -1,0 +1,1 @@
+"""Historical estimation: Kalman-filter maximum likelihood of the two-factor model."""

@@ -1,0 +1,1 @@
+"""Storage: SQLAlchemy models, sessions and queries (SQLite default, PostgreSQL)."""

@@ -1,0 +1,1 @@
+"""Workflows: the units of work the CLI and HTTP layers call; they own the transactions."""
