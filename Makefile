@@ -28,6 +28,7 @@ demo: $(APP)
 
 lint: $(DEV)
 	$(PY) -m ruff check calib tests bench migrations
+	$(PY) -m ruff format --check calib tests bench migrations
 
 typecheck: $(DEV)
 	$(PY) -m mypy

@@ -30,9 +30,7 @@ class Settings:
 
     db_url: str = field(default_factory=_default_db_url)
     user: str = field(
-        default_factory=lambda: os.environ.get("CALIB_USER")
-        or os.environ.get("USER")
-        or "unknown"
+        default_factory=lambda: os.environ.get("CALIB_USER") or os.environ.get("USER") or "unknown"
     )
 
 

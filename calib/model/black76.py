@@ -57,9 +57,7 @@ def _d1_d2(F: FloatArray, K: FloatArray, s: FloatArray) -> tuple[FloatArray, Flo
     return d1, d1 - s
 
 
-def undiscounted_price(
-    F: ArrayLike, K: ArrayLike, std: ArrayLike, call: ArrayLike
-) -> FloatArray:
+def undiscounted_price(F: ArrayLike, K: ArrayLike, std: ArrayLike, call: ArrayLike) -> FloatArray:
     """Undiscounted Black price from the total standard deviation ``std = vol * sqrt(T)``.
 
     The building block for callers that already hold the total variance (the calibration and

@@ -192,7 +192,10 @@ def A(tau: ArrayLike, params: TwoFactorParams, r: ArrayLike) -> FloatArray:
 
 
 def log_futures(
-    log_spot: ArrayLike, conv_yield: ArrayLike, tau: ArrayLike, r: ArrayLike,
+    log_spot: ArrayLike,
+    conv_yield: ArrayLike,
+    tau: ArrayLike,
+    r: ArrayLike,
     params: TwoFactorParams,
 ) -> FloatArray:
     """``ln F(tau) = X - d B(tau) + A(tau)``."""
@@ -203,7 +206,10 @@ def log_futures(
 
 
 def futures_price(
-    spot: ArrayLike, conv_yield: ArrayLike, tau: ArrayLike, r: ArrayLike,
+    spot: ArrayLike,
+    conv_yield: ArrayLike,
+    tau: ArrayLike,
+    r: ArrayLike,
     params: TwoFactorParams,
 ) -> FloatArray:
     """Futures price maturing ``tau`` years ahead, given spot, convenience yield and rate."""
@@ -302,9 +308,7 @@ def _combine(
     return np.asarray(a * s1 * s1 + b * s2 * s2 - 2.0 * c * params.rho * s1 * s2)
 
 
-def total_variance(
-    expiry: ArrayLike, maturity: ArrayLike, params: TwoFactorParams
-) -> FloatArray:
+def total_variance(expiry: ArrayLike, maturity: ArrayLike, params: TwoFactorParams) -> FloatArray:
     """Total log-variance of a future over ``[0, expiry]`` (Black-76 ``vol^2 * expiry``)."""
     return _combine(variance_coefficients(expiry, maturity, params.kappa), params)
 
