@@ -364,3 +364,71 @@ def bucket_coefficients(
     length = np.maximum(hi - lo, 0.0)
     tau_end = np.maximum(T[:, None] - np.maximum(hi, lo), 0.0)
     return interval_coefficients(tau_end, tau_end, length, kappa)
+
+
+# --- exact transition of the state (log spot, yield) ---------------------------------------
+
+
+@dataclass(frozen=True, slots=True)
+class Transition:
+    """Exact Gaussian transition of ``z = (X, d)`` over steps ``dt``: ``z' = c + Phi z + eps``.
+
+    Arrays carry the steps on the leading axis: ``Phi`` is ``(n, 2, 2)``, ``c`` is ``(n, 2)``,
+    ``cov`` (the covariance of ``eps``) is ``(n, 2, 2)``.
+    """
+
+    Phi: FloatArray
+    c: FloatArray
+    cov: FloatArray
+
+
+def transition(
+    params: TwoFactorParams,
+    dt: ArrayLike,
+    measure: str = "real",
+    r: float = 0.0,
+) -> Transition:
+    """Exact transition of (log spot, convenience yield) over each step in ``dt`` (years).
+
+    ``measure="real"`` uses the drifts ``mu`` and ``alpha``; ``measure="risk_neutral"`` uses
+    ``r`` and ``alpha_hat``.
+
+    Notes
+    -----
+    With ``h`` the step, ``Bh = B(h)``, ``eh = e^{-kappa h}`` and ``m``, ``a`` the spot drift and
+    long-run yield of the chosen measure:
+
+    * ``d' = eh d + a (1 - eh) + s2 int e^{-kappa w} dW2``,
+    * ``X' = X - Bh d + (m - s1^2/2 - a) h + a Bh + s1 dW1 - s2 int B(w) dW2``,
+
+    so ``Var X' = s1^2 h + s2^2 int_0^h B^2 - 2 rho s1 s2 int_0^h B``,
+    ``Var d' = s2^2 (1 - e^{-2 kappa h}) / (2 kappa)`` and
+    ``Cov = rho s1 s2 Bh - s2^2 Bh^2 / 2`` (since ``int_0^h B e^{-kappa w} dw = Bh^2 / 2``).
+    """
+    if measure == "real":
+        m, a = params.mu, params.alpha
+    elif measure == "risk_neutral":
+        m, a = float(r), params.alpha_hat
+    else:
+        raise ParameterError("measure", measure, 'must be "real" or "risk_neutral"')
+    h = np.atleast_1d(_f(dt))
+    if np.any(h < 0.0) or not np.all(np.isfinite(h)):
+        raise ParameterError("dt", h.tolist(), "time steps must be finite and >= 0")
+    k, s1, s2, rho = params.kappa, params.sigma_spot, params.sigma_yield, params.rho
+    Bh = B(h, k)
+    eh = np.exp(-k * h)
+    n = h.shape[0]
+    Phi = np.zeros((n, 2, 2))
+    Phi[:, 0, 0] = 1.0
+    Phi[:, 0, 1] = -Bh
+    Phi[:, 1, 1] = eh
+    c = np.empty((n, 2))
+    c[:, 0] = (m - 0.5 * s1 * s1 - a) * h + a * Bh
+    c[:, 1] = a * (h * k) * _phi1(k * h)  # a (1 - e^{-kappa h})
+    cov = np.empty((n, 2, 2))
+    cov[:, 0, 0] = (
+        s1 * s1 * h + s2 * s2 * integral_B2(h, k) - 2.0 * rho * s1 * s2 * integral_B(h, k)
+    )
+    cov[:, 1, 1] = s2 * s2 * h * _phi1(2.0 * k * h)
+    cov[:, 0, 1] = cov[:, 1, 0] = rho * s1 * s2 * Bh - 0.5 * s2 * s2 * Bh * Bh
+    return Transition(Phi=Phi, c=c, cov=cov)
