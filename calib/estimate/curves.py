@@ -209,7 +209,7 @@ def curves_from_quotes(
     if bad.any():
         i = int(np.argmax(bad))
         raise QuoteTableError(
-            f"settle {px[i]!r} on row {i} (trade date {td[i]}, delivery {dl[i]}) "
+            f"settle {float(px[i])!r} on row {i} (trade date {td[i]}, delivery {dl[i]}) "
             "must be a positive finite number"
         )
     days, day_ix = np.unique(td, return_inverse=True)

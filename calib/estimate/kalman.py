@@ -93,7 +93,7 @@ def _basis(kappa: float, tau: float) -> tuple[float, float, float]:
 def _transitions(
     theta: FloatArray, gaps: FloatArray
 ) -> tuple[FloatArray, FloatArray, FloatArray, FloatArray, FloatArray, FloatArray, FloatArray]:
-    """Exact real-world transition for each distinct gap: ``Phi01, Phi11, c0, c1, Q00, Q01, Q11``."""
+    """Exact real-world transition per distinct gap: ``Phi01, Phi11, c0, c1, Q00, Q01, Q11``."""
     mu, kappa, alpha = theta[0], theta[1], theta[2]
     s1, s2, rho = theta[4], theta[5], theta[6]
     g = gaps.shape[0]
@@ -160,10 +160,10 @@ def _run(
     """Log-likelihood ``log p(y_1..y_{n-1} | y_0)``; with ``store`` also the moments.
 
     ``tau`` holds the distinct maturities, ``tau_index`` (``(n, m)``) each price's position
-    in it, ``bases`` is :func:`basis` of ``tau`` at ``theta``'s ``kappa``. ``a_filt, p_filt`` (``(n, 2)``,
-    ``(n, 3)`` as ``P00, P01, P11``) receive the filtered moments, ``a_pred, p_pred`` the
-    one-step predictions (row 0: the day-0 posterior). Returns ``-inf`` where the parameters
-    make a variance non-positive.
+    in it, ``bases`` is :func:`basis` of ``tau`` at ``theta``'s ``kappa``. ``a_filt, p_filt``
+    (``(n, 2)``, ``(n, 3)`` as ``P00, P01, P11``) receive the filtered moments, ``a_pred,
+    p_pred`` the one-step predictions (row 0: the day-0 posterior). Returns ``-inf`` where
+    the parameters make a variance non-positive.
     """
     n, m = y.shape
     kappa, alpha, lam = theta[1], theta[2], theta[3]
@@ -482,7 +482,8 @@ def smooth_moments(
     """Rauch-Tung-Striebel smoother from the stored filter moments.
 
     ``a_{t|n} = a_{t|t} + J_t (a_{t+1|n} - a_{t+1|t})``,
-    ``P_{t|n} = P_{t|t} + J_t (P_{t+1|n} - P_{t+1|t}) J_t'``, ``J_t = P_{t|t} Phi_t' P_{t+1|t}^{-1}``.
+    ``P_{t|n} = P_{t|t} + J_t (P_{t+1|n} - P_{t+1|t}) J_t'``,
+    ``J_t = P_{t|t} Phi_t' P_{t+1|t}^{-1}``.
     """
     n = a_f.shape[0]
     f01, f11, _, _, _, _, _ = _transitions(theta, gaps)

@@ -363,7 +363,7 @@ def fit(
     # to the Newton basin; the polish below converges quadratically from there
     res = run(reached[best][1], max_iterations, LOCAL_FTOL)
     iterations += int(res.nit)
-    u, ll, grad, hess, decrement, newton_steps = _newton_polish(problem, res.x, bounds)
+    u, ll, _, hess, decrement, newton_steps = _newton_polish(problem, res.x, bounds)
     iterations += newton_steps
     info = -hess
     pd = bool(np.all(np.isfinite(info))) and bool(np.all(np.linalg.eigvalsh(info) > 0.0))
@@ -377,13 +377,13 @@ def fit(
         message = f"not converged: Newton decrement {decrement:.2e} >= {loglik_tol:g} ({opt_msg})"
     theta = kalman.to_natural(u)
     jac = kalman.jacobian_diag(u)
-    if pd:
-        cov = jac[:, None] * np.linalg.inv(info) * jac[None, :]
-    else:
-        cov = np.full(info.shape, np.nan)
+    cov = jac[:, None] * np.linalg.inv(info) * jac[None, :] if pd else np.full(info.shape, np.nan)
     names = PARAM_NAMES + noise_names(curves.n_slots)
     se = MappingProxyType(
-        {n: float(math.sqrt(v)) if v >= 0 else math.nan for n, v in zip(names, np.diag(cov))}
+        {
+            n: float(math.sqrt(v)) if v >= 0 else math.nan
+            for n, v in zip(names, np.diag(cov), strict=True)
+        }
     )
     if not converged:
         warnings.warn(EstimationWarning(f"maximum likelihood {message}"), stacklevel=2)
