@@ -32,6 +32,7 @@ from typing import Any
 
 import numpy as np
 from scipy.optimize import minimize
+from threadpoolctl import threadpool_limits
 
 from calib.errors import EstimationError, EstimationWarning
 from calib.estimate import kalman
@@ -338,14 +339,16 @@ def fit(
         return -f * scale, -g * scale
 
     def run(u0: FloatArray, maxiter: int, ftol: float) -> Any:
-        return minimize(
-            objective,
-            u0,
-            jac=True,
-            method="L-BFGS-B",
-            bounds=bounds,
-            options={"maxiter": maxiter, "ftol": ftol, "gtol": 1e-9, "maxls": 40},
-        )
+        # L-BFGS-B's 12-dimensional BLAS calls only lose to thread start-up: one thread
+        with threadpool_limits(limits=1, user_api="blas"):
+            return minimize(
+                objective,
+                u0,
+                jac=True,
+                method="L-BFGS-B",
+                bounds=bounds,
+                options={"maxiter": maxiter, "ftol": ftol, "gtol": 1e-9, "maxls": 40},
+            )
 
     iterations = 0
     reached: list[tuple[float, FloatArray]] = []

@@ -13,7 +13,8 @@ from statsmodels.tsa.statespace.kalman_smoother import KalmanSmoother
 
 from calib.estimate import Curves, filter_states, kalman, log_likelihood
 from calib.estimate.mle import GRAD_STEP, _Problem, _theta
-from calib.model.twofactor import A, B, TwoFactorParams, transition
+from calib.estimate.statespace import system_matrices
+from calib.model.twofactor import B, TwoFactorParams
 from tests.estimate.conftest import NOISE_SD, RATE, TRUTH, business_days, simulate_panel
 
 LOGLIK_RTOL = 1e-8  # the issue's bar: same likelihood to 1e-8 relative
@@ -26,40 +27,16 @@ def statsmodels_run(
     """Log-likelihood, filtered and smoothed states from statsmodels.
 
     The same initialisation as calib: the day-0 state is the generalised least-squares fit of
-    the first curve (a flat prior updated by day 0), given to statsmodels as a known initial
-    state with day 0's prices marked missing.
+    the first curve, given to statsmodels as a known initial state with day 0 missing.
     """
-    y = np.array(curves.log_price)
-    n, m = y.shape
-    tau = np.where(np.isnan(curves.tau), 1.0, curves.tau)  # unused where the price is missing
-    design = np.zeros((m, 2, n))
-    design[:, 0, :] = 1.0
-    design[:, 1, :] = -B(tau, params.kappa).T
-    obs_intercept = A(tau, params, rate).T
-    step = transition(params, curves.gaps)
-    trans = np.repeat(np.eye(2)[:, :, None], n, axis=2)
-    trans[:, :, :-1] = step.Phi.transpose(1, 2, 0)
-    state_intercept = np.zeros((2, n))
-    state_intercept[:, :-1] = step.c.T
-    state_cov = np.zeros((2, 2, n))
-    state_cov[:, :, :-1] = step.cov.transpose(1, 2, 0)
-    present = ~np.isnan(y[0])
-    Z0 = design[present, :, 0]
-    W = np.diag(1.0 / xi[present] ** 2)
-    P0 = np.linalg.inv(Z0.T @ W @ Z0)
-    a0 = P0 @ Z0.T @ W @ (y[0, present] - obs_intercept[present, 0])
-    endog = y.copy()
-    endog[0] = np.nan
-    ks = KalmanSmoother(k_endog=m, k_states=2)
-    ks.bind(endog)  # time-varying matrices need the sample length first
-    ks["design"] = design
-    ks["obs_intercept"] = obs_intercept
-    ks["obs_cov"] = np.diag(xi**2)
-    ks["transition"] = trans
-    ks["state_intercept"] = state_intercept
+    sm = system_matrices(params, xi, curves, rate)
+    ks = KalmanSmoother(k_endog=curves.n_slots, k_states=2)
+    ks.bind(sm.endog)  # time-varying matrices need the sample length first
+    for name in ("design", "obs_intercept", "obs_cov", "transition", "state_intercept"):
+        ks[name] = getattr(sm, name)
     ks["selection"] = np.eye(2)
-    ks["state_cov"] = state_cov
-    ks.initialize_known(a0, P0)
+    ks["state_cov"] = sm.state_cov
+    ks.initialize_known(sm.initial_state, sm.initial_state_cov)
     res = ks.smooth()
     return float(np.sum(res.llf_obs)), res.filtered_state.T, res.smoothed_state.T
 
