@@ -74,7 +74,9 @@ def test_futures_curves_from_paths_with_rolling_contracts() -> None:
     np.testing.assert_allclose(curves[:, i, 2], direct, rtol=1e-14)
     # a contract at delivery (tau = 0) trades at spot
     expired = taus[-1] == 0.0
-    np.testing.assert_allclose(curves[:, -1, expired], np.exp(paths.log_spot[:, -1:]), rtol=1e-14)
+    spot = np.exp(paths.log_spot[:, -1:])
+    at_spot = np.broadcast_to(spot, (spot.shape[0], int(expired.sum())))
+    np.testing.assert_allclose(curves[:, -1, expired], at_spot, rtol=1e-14)
     same = futures_curves(paths, [0.5, 1.0], PARAMS, R)
     assert same.shape == (7, TIMES.size, 2)
 
