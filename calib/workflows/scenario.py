@@ -128,6 +128,36 @@ _ROUND_STEPS = np.array([1.0, 2.0, 2.5, 5.0, 10.0])
 
 
 @dataclass(frozen=True, slots=True)
+class RateFactor:
+    """An Ornstein-Uhlenbeck factor of the zero curve: ``dx = reversion (mean - x) dt + vol dW``.
+
+    ``start`` is its value on the first trade date.
+    """
+
+    start: float
+    mean: float
+    reversion: float
+    vol: float
+
+    def __post_init__(self) -> None:
+        if not self.reversion > 0.0:
+            raise ParameterError("reversion", self.reversion, "must be > 0")
+        if not self.vol >= 0.0:
+            raise ParameterError("vol", self.vol, "must be >= 0")
+
+    def path(self, h: FloatArray, shocks: FloatArray) -> FloatArray:
+        """Exact path over the steps ``h`` (years) driven by standard normal ``shocks``."""
+        k = self.reversion
+        decay = np.exp(-k * h)
+        sd = self.vol * np.sqrt(-np.expm1(-2.0 * k * h) / (2.0 * k))
+        out = np.empty(h.size + 1)
+        out[0] = self.start
+        for n in range(h.size):  # a linear recursion over ~800 dates; nothing to vectorise
+            out[n + 1] = self.mean + (out[n] - self.mean) * decay[n] + sd[n] * shocks[n]
+        return out
+
+
+@dataclass(frozen=True, slots=True)
 class ScenarioSpec:
     """Everything that determines the scenario; the same spec gives the same data.
 
@@ -151,9 +181,7 @@ class ScenarioSpec:
         normal clipped to ``+-noise_clip``.
     half_spread_vol : half bid/ask spread in volatility (converted to price by vega).
     rate_tenor_days : tenors of the published zero curve (calendar days).
-    rate_level0, rate_level_mean, rate_level_reversion, rate_level_vol : the curve's level.
-    rate_slope0, rate_slope_mean, rate_slope_reversion, rate_slope_vol : its slope (short end
-        minus long end).
+    rate_level, rate_slope : the curve's level and its slope (short end minus long end).
     rate_shape_years : decay length ``h`` of the slope loading.
     """
 
@@ -177,14 +205,8 @@ class ScenarioSpec:
     noise_clip: float = 3.0
     half_spread_vol: float = 0.005
     rate_tenor_days: tuple[int, ...] = (30, 91, 182, 365, 730, 1095)
-    rate_level0: float = 0.032
-    rate_level_mean: float = 0.035
-    rate_level_reversion: float = 0.5
-    rate_level_vol: float = 0.004
-    rate_slope0: float = -0.005
-    rate_slope_mean: float = -0.004
-    rate_slope_reversion: float = 1.0
-    rate_slope_vol: float = 0.003
+    rate_level: RateFactor = field(default=RateFactor(0.032, 0.035, 0.5, 0.004))
+    rate_slope: RateFactor = field(default=RateFactor(-0.005, -0.004, 1.0, 0.003))
     rate_shape_years: float = 1.5
 
     def __post_init__(self) -> None:
@@ -209,9 +231,6 @@ class ScenarioSpec:
         for name in ("min_premium", "noise_vol", "noise_clip", "half_spread_vol"):
             if not getattr(self, name) >= 0.0:
                 raise ParameterError(name, getattr(self, name), "must be >= 0")
-        for name in ("rate_level_reversion", "rate_slope_reversion"):
-            if not getattr(self, name) > 0.0:
-                raise ParameterError(name, getattr(self, name), "must be > 0")
         tenors = np.asarray(self.rate_tenor_days)
         if tenors.size < 2 or np.any(np.diff(tenors) <= 0) or tenors[0] <= 0:
             raise ParameterError(
@@ -286,38 +305,11 @@ def zero_rate_at(node_years: FloatArray, node_rates: FloatArray, years: FloatArr
     return np.asarray(node_rates[rows, idx - 1] * (1.0 - w) + node_rates[rows, idx] * w)
 
 
-def _ou_path(
-    x0: float, mean: float, reversion: float, vol: float, h: FloatArray, shocks: FloatArray
-) -> FloatArray:
-    """Exact Ornstein-Uhlenbeck path started at ``x0`` over the steps ``h``."""
-    decay = np.exp(-reversion * h)
-    sd = vol * np.sqrt(-np.expm1(-2.0 * reversion * h) / (2.0 * reversion))
-    out = np.empty(h.size + 1)
-    out[0] = x0
-    for n in range(h.size):  # a linear recursion over ~800 dates; nothing to vectorise
-        out[n + 1] = mean + (out[n] - mean) * decay[n] + sd[n] * shocks[n]
-    return out
-
-
 def _zero_curves(spec: ScenarioSpec, h: FloatArray, rng: np.random.Generator) -> FloatArray:
     """Published zero curves, ``(n_days, n_tenors)``, rounded to 1e-6."""
     shocks = rng.standard_normal((2, h.size))
-    level = _ou_path(
-        spec.rate_level0,
-        spec.rate_level_mean,
-        spec.rate_level_reversion,
-        spec.rate_level_vol,
-        h,
-        shocks[0],
-    )
-    slope = _ou_path(
-        spec.rate_slope0,
-        spec.rate_slope_mean,
-        spec.rate_slope_reversion,
-        spec.rate_slope_vol,
-        h,
-        shocks[1],
-    )
+    level = spec.rate_level.path(h, shocks[0])
+    slope = spec.rate_slope.path(h, shocks[1])
     x = np.asarray(spec.rate_tenor_days, dtype=np.float64) / DAYS_PER_YEAR / spec.rate_shape_years
     loading = -np.expm1(-x) / x
     return np.asarray(np.round(level[:, None] + slope[:, None] * loading[None, :], 6))

@@ -109,6 +109,8 @@ def test_spec_rejects_values_outside_their_domain() -> None:
         sc.ScenarioSpec(option_lag=16)
     with pytest.raises(ParameterError, match=r"strike_span = 1\.0 is invalid"):
         sc.ScenarioSpec(strike_span=1.0)
+    with pytest.raises(ParameterError, match=r"reversion = 0\.0 is invalid: must be > 0"):
+        sc.RateFactor(0.03, 0.03, 0.0, 0.01)
     with pytest.raises(ParameterError, match="rate_tenor_days"):
         sc.ScenarioSpec(rate_tenor_days=(30, 30))
 
