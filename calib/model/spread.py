@@ -61,6 +61,7 @@ from functools import cache
 from typing import Any
 
 import numpy as np
+from scipy import integrate
 from scipy.special import ndtr, roots_hermitenorm
 
 from calib.errors import ParameterError
@@ -389,6 +390,16 @@ class SpreadGreeks:
     d_cov: FloatArray | None = None
 
 
+def _conditional(
+    v_o: FloatArray, v_i: FloatArray, c: FloatArray
+) -> tuple[FloatArray, FloatArray, FloatArray]:
+    """``(s_o, beta, sc)``: outer deviation, loading of the inner leg on ``z``, its residual."""
+    s_o = np.sqrt(v_o)
+    with np.errstate(divide="ignore", invalid="ignore"):
+        beta = np.where(s_o > 0.0, c / s_o, 0.0)
+    return s_o, beta, np.sqrt(np.maximum(v_i - beta * beta, 0.0))
+
+
 def _legs(
     law: SpreadLaw, strike: ArrayLike, kind: Kind | ArrayLike, discount: ArrayLike
 ) -> tuple[Any, ...]:
@@ -402,10 +413,7 @@ def _legs(
     v_i = np.where(near_out, v2, v1)
     F_o = np.exp(np.where(near_out, m1, m2) + 0.5 * v_o)
     F_i = np.exp(np.where(near_out, m2, m1) + 0.5 * v_i)
-    s_o = np.sqrt(v_o)
-    with np.errstate(divide="ignore", invalid="ignore"):
-        beta = np.where(s_o > 0.0, c / s_o, 0.0)
-    sc = np.sqrt(np.maximum(v_i - beta * beta, 0.0))
+    s_o, beta, sc = _conditional(v_o, v_i, c)
     sg = np.where(call == near_out, 1.0, -1.0)  # inner call iff (spread call) == (K >= 0)
     return near_out, F_o, F_i, s_o, beta, sc, np.abs(K), sg, D
 
@@ -609,10 +617,7 @@ def price_mc(
         is_call(kind),
         _f(discount),
     )
-    s1 = np.sqrt(v1)
-    with np.errstate(divide="ignore", invalid="ignore"):
-        beta = np.where(s1 > 0.0, c / s1, 0.0)
-    sc = np.sqrt(np.maximum(v2 - beta * beta, 0.0))
+    s1, beta, sc = _conditional(v1, v2, c)
     sg = np.where(call, 1.0, -1.0)
     mean_s = np.exp(m2 + 0.5 * v2) - np.exp(m1 + 0.5 * v1)
     rng = np.random.default_rng(seed)
@@ -643,3 +648,44 @@ def price_mc(
     resid_var = np.maximum(eyy - ey * ey - 2.0 * b * cov_xy + b * b * var_x, 0.0)
     stderr = np.sqrt(resid_var / (n_pairs - 1))
     return np.asarray(D * est), np.asarray(D * stderr)
+
+
+# --- reference price by adaptive quadrature ----------------------------------------------------
+
+
+def price_quad(
+    law: SpreadLaw, strike: ArrayLike, kind: Kind | ArrayLike, discount: ArrayLike = 1.0
+) -> FloatArray:
+    """Reference premium by scipy's adaptive quadrature, one option at a time (slow).
+
+    A cross-check of :func:`price_exact` by another route: always conditioned on the near leg,
+    with the intrinsic conditional value ``max(sg (Fc - k), 0)`` where ``k = F1(z) + K <= 0``,
+    integrated over ``z`` in ``[-12, 12]`` to ``1e-13`` relative.
+    """
+    F1, F2 = law.near_price, law.far_price
+    v1, v2, c, F1, F2, K, call, D = np.broadcast_arrays(
+        law.var_near, law.var_far, law.cov, F1, F2, _f(strike), is_call(kind), _f(discount)
+    )
+    s1, beta, sc = _conditional(v1, v2, c)
+    out = np.empty(K.shape)
+    for i in range(K.shape[0]):  # a reference, not a hot path
+        sg = 1.0 if call[i] else -1.0
+        args = (F1[i], F2[i], K[i], s1[i], beta[i], sc[i], sg)
+        value, _ = integrate.quad(
+            _integrand, -12.0, 12.0, args=args, epsabs=0.0, epsrel=1e-13, limit=400
+        )
+        out[i] = D[i] * value
+    return out
+
+
+def _integrand(
+    z: float, F1: float, F2: float, K: float, s1: float, beta: float, sc: float, sg: float
+) -> float:
+    k = F1 * math.exp(s1 * z - 0.5 * s1 * s1) + K
+    Fc = F2 * math.exp(beta * z - 0.5 * beta * beta)
+    if k <= 0.0 or sc == 0.0:
+        inner = max(sg * (Fc - k), 0.0)
+    else:
+        d1 = math.log(Fc / k) / sc + 0.5 * sc
+        inner = sg * (Fc * float(ndtr(sg * d1)) - k * float(ndtr(sg * (d1 - sc))))
+    return inner * _INV_SQRT_2PI * math.exp(-0.5 * z * z)
