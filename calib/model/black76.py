@@ -157,6 +157,14 @@ class ImpliedVolCode(IntEnum):
     NON_FINITE_INPUT = 5
 
 
+# plain ints for the compiled loop (numba freezes module globals at compile time)
+_OK = int(ImpliedVolCode.OK)
+_BELOW_INTRINSIC = int(ImpliedVolCode.BELOW_INTRINSIC)
+_ABOVE_UPPER_BOUND = int(ImpliedVolCode.ABOVE_UPPER_BOUND)
+_NON_POSITIVE_INPUT = int(ImpliedVolCode.NON_POSITIVE_INPUT)
+_NO_TIME_VALUE = int(ImpliedVolCode.NO_TIME_VALUE)
+_NON_FINITE_INPUT = int(ImpliedVolCode.NON_FINITE_INPUT)
+
 _SQRT_HALF = math.sqrt(0.5)
 _SQRT_2PI = math.sqrt(2.0 * math.pi)
 _MAX_ITER = 40
@@ -296,24 +304,24 @@ def _implied_vol_loop(
             and math.isfinite(t)
             and math.isfinite(rr)
         ):
-            code[i] = 5
+            code[i] = _NON_FINITE_INPUT
             continue
         if f <= 0.0 or k <= 0.0 or t <= 0.0:
-            code[i] = 3
+            code[i] = _NON_POSITIVE_INPUT
             continue
         undiscounted = p * math.exp(rr * t)
         intrinsic = max(f - k, 0.0) if call[i] else max(k - f, 0.0)
         time_value = undiscounted - intrinsic  # the out-of-the-money price, by parity
         if time_value < 0.0:
-            code[i] = 1
+            code[i] = _BELOW_INTRINSIC
             continue
         if time_value == 0.0:
-            code[i] = 4
+            code[i] = _NO_TIME_VALUE
             continue
         if time_value >= min(f, k):
-            code[i] = 2
+            code[i] = _ABOVE_UPPER_BOUND
             continue
-        code[i] = 0
+        code[i] = _OK
         x = -abs(math.log(f / k))
         s = _solve_normalised(time_value / math.sqrt(f * k), x)
         vol[i] = s / math.sqrt(t)
