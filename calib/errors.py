@@ -147,9 +147,7 @@ class CurveGapError(EstimationDataError):
     def __init__(self, days: float, start: object, end: object, maximum: float) -> None:
         self.days = days
         self.maximum = maximum
-        super().__init__(
-            self.TEMPLATE.format(days=days, start=start, end=end, maximum=maximum)
-        )
+        super().__init__(self.TEMPLATE.format(days=days, start=start, end=end, maximum=maximum))
 
 
 class QuoteTableError(EstimationDataError):
