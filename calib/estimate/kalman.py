@@ -365,6 +365,33 @@ def _kappa_bases(u: FloatArray, h: FloatArray, tau: FloatArray) -> FloatArray:
 
 
 @njit(cache=True, error_model="numpy")
+def _axis_steps(
+    u: FloatArray,
+    h: FloatArray,
+    bases: FloatArray,
+    r: float,
+    gap_index: IntArray,
+    gaps: FloatArray,
+    tau: FloatArray,
+    tau_index: IntArray,
+    y: FloatArray,
+) -> tuple[float, FloatArray, FloatArray]:
+    """``f(u)`` and ``f(u +- h_i e_i)`` for every axis ``i``."""
+    p = u.shape[0]
+    f0 = _loglik_u(u, 0, bases, r, gap_index, gaps, tau, tau_index, y)
+    fp = np.empty(p)
+    fm = np.empty(p)
+    w = u.copy()
+    for i in range(p):
+        w[i] = u[i] + h[i]
+        fp[i] = _loglik_u(w, 1 if i == 1 else 0, bases, r, gap_index, gaps, tau, tau_index, y)
+        w[i] = u[i] - h[i]
+        fm[i] = _loglik_u(w, 2 if i == 1 else 0, bases, r, gap_index, gaps, tau, tau_index, y)
+        w[i] = u[i]
+    return f0, fp, fm
+
+
+@njit(cache=True, error_model="numpy")
 def loglik_grad_u(
     u: FloatArray,
     r: float,
@@ -381,20 +408,10 @@ def loglik_grad_u(
     truncation ``O(h^2)`` against rounding ``O(eps / h)``), all in one compiled pass; the
     ``kappa``-dependent measurement basis is computed for the three ``kappa`` values only.
     """
-    p = u.shape[0]
     h = _steps(u, step)
     bases = _kappa_bases(u, h, tau)
-    f0 = _loglik_u(u, 0, bases, r, gap_index, gaps, tau, tau_index, y)
-    grad = np.empty(p)
-    w = u.copy()
-    for i in range(p):
-        w[i] = u[i] + h[i]
-        fp = _loglik_u(w, 1 if i == 1 else 0, bases, r, gap_index, gaps, tau, tau_index, y)
-        w[i] = u[i] - h[i]
-        fm = _loglik_u(w, 2 if i == 1 else 0, bases, r, gap_index, gaps, tau, tau_index, y)
-        w[i] = u[i]
-        grad[i] = (fp - fm) / (2.0 * h[i])
-    return f0, grad
+    f0, fp, fm = _axis_steps(u, h, bases, r, gap_index, gaps, tau, tau_index, y)
+    return f0, (fp - fm) / (2.0 * h)
 
 
 @njit(cache=True, error_model="numpy")
@@ -416,16 +433,8 @@ def loglik_hess_u(
     p = u.shape[0]
     h = _steps(u, step)
     bases = _kappa_bases(u, h, tau)
-    f0 = _loglik_u(u, 0, bases, r, gap_index, gaps, tau, tau_index, y)
-    fp = np.empty(p)
-    fm = np.empty(p)
+    f0, fp, fm = _axis_steps(u, h, bases, r, gap_index, gaps, tau, tau_index, y)
     w = u.copy()
-    for i in range(p):
-        w[i] = u[i] + h[i]
-        fp[i] = _loglik_u(w, 1 if i == 1 else 0, bases, r, gap_index, gaps, tau, tau_index, y)
-        w[i] = u[i] - h[i]
-        fm[i] = _loglik_u(w, 2 if i == 1 else 0, bases, r, gap_index, gaps, tau, tau_index, y)
-        w[i] = u[i]
     grad = (fp - fm) / (2.0 * h)
     hess = np.empty((p, p))
     for i in range(p):
