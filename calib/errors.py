@@ -46,6 +46,21 @@ class ImpliedVolError(InputError, ValueError):
         super().__init__(self.TEMPLATE.format(premium=premium, reason=reason))
 
 
+# --- Black-76 implied volatility (numeric core) ---------------------------------------------
+
+IMPLIED_VOL_REASONS: dict[str, str] = {
+    "BELOW_INTRINSIC": "the premium is below the discounted intrinsic value",
+    "ABOVE_UPPER_BOUND": (
+        "the premium is at or above its upper bound (discounted futures price for a call, "
+        "discounted strike for a put)"
+    ),
+    "NON_POSITIVE_INPUT": "futures price, strike and time to expiry must all be > 0",
+    "NO_TIME_VALUE": "the premium equals the intrinsic value, so it carries no volatility",
+    "NON_FINITE_INPUT": "an input is NaN or infinite",
+}
+"""Reason phrases of :class:`ImpliedVolError`, keyed by the implied-vol reason-code name."""
+
+
 # --- calibration ------------------------------------------------------------------------------
 
 
