@@ -39,6 +39,9 @@ from calib.types import FloatArray
 
 BIND_TOL = 1e-7  # slack (vol units) below which a constraint counts as binding
 _BACKTRACKS = 30
+_MIN_OBJECTIVE = 1e-12  # sub-problem scale limit: rows at most 1e6 times the data
+_REL_DECREASE = 1e-13  # a relative decrease of J below this is at the sub-problem's precision
+_EXACT = 1e-28  # an objective this small is an exact fit to rounding: Gauss-Newton stops
 _MIN_QUOTES = {"constant": 3, "held_rho": 2, "forward": 3}
 
 FORMS = {
@@ -48,7 +51,11 @@ FORMS = {
     "spot_cap": "sigma_spot <= sigma_spot_cap",
     "rho_held": "rho = rho_hist",
 }
-_SWITCH = {"decay_bound": "decay_bound", "yield_floor": "yield_floor", "spot_cap": "sigma_spot_cap"}
+
+
+def _scale(J: float) -> float:
+    """Objective scale of a sub-problem, ``1 / J`` bounded to keep the data representable."""
+    return 1.0 / min(max(J, _MIN_OBJECTIVE), 1.0)
 
 
 def bucket_edges(expiry: FloatArray) -> FloatArray:
@@ -171,16 +178,20 @@ class Calibrator:
             a, b, c = bucket_coefficients(data.expiry, data.maturity, edges, hist.kappa)
         else:
             edges = np.array([0.0, float(data.expiry.max())])
-            a, b, c = (z[:, None] for z in variance_coefficients(data.expiry, data.maturity, hist.kappa))
+            a, b, c = (
+                z[:, None] for z in variance_coefficients(data.expiry, data.maturity, hist.kappa)
+            )
         A = np.hstack([a, b, -2.0 * c])
         step = self.step
         s2h = hist.sigma_yield
-        step.kappa.value = hist.kappa
-        step.floor.value = (s.yield_floor * s2h) ** 2
-        step.cap.value = (s.sigma_spot_cap or 0.0) ** 2
-        step.anchor_lin.value = s.anchor_weight / K
-        step.anchor_root.value = 2.0 * s.anchor_weight * s2h / K
-        step.smooth.value = s.smoothness if K > 1 else 0.0
+        step.set_day(
+            kappa=hist.kappa,
+            floor=(s.yield_floor * s2h) ** 2,
+            cap=(s.sigma_spot_cap or 0.0) ** 2,
+            anchor_weight=s.anchor_weight,
+            s2_hist=s2h,
+            smoothness=s.smoothness,
+        )
         root_w = np.sqrt(data.weight)
 
         def total(x: FloatArray) -> float:
@@ -195,16 +206,27 @@ class Calibrator:
 
         V_mkt = data.vol**2 * data.expiry
         _, g = errors(data, V_mkt, s.error_measure)
-        solved, inaccurate = step.solve(root_w[:, None] * g[:, None] * A, root_w * g * V_mkt, 0)
+        x_hist = np.concatenate(
+            [
+                np.full(K, hist.sigma_spot**2),
+                np.full(K, s2h**2),
+                np.full(K, hist.rho * hist.sigma_spot * s2h),
+            ]
+        )
+        rows = root_w[:, None] * g[:, None] * A
+        solved, inaccurate = step.solve(rows, root_w * g * V_mkt, 0, _scale(total(x_hist)))
         x = solved.x
         J = total(x)
         flags: set[str] = {"inaccurate"} if inaccurate else set()
         converged, it, move = False, 0, math.inf
-        for it in range(1, s.max_iterations + 1):  # noqa: B007 - count is reported
+        for it in range(1, s.max_iterations + 1):
+            if J <= _EXACT:
+                converged = True
+                break
             V = A @ x
             e, g = errors(data, V, s.error_measure)
             rows = root_w[:, None] * g[:, None] * A
-            solved, inaccurate = step.solve(rows, root_w * (g * V - e), it)
+            solved, inaccurate = step.solve(rows, root_w * (g * V - e), it, _scale(J))
             if inaccurate:
                 flags.add("inaccurate")
             d = solved.x - x
@@ -214,11 +236,12 @@ class Calibrator:
                     break
                 tau *= 0.5
                 J_new = total(x + tau * d)
+            decrease, move = 0.0, 0.0
             if J_new <= J:
+                decrease, move = J - J_new, tau * float(np.max(np.abs(d)))
                 x, J = x + tau * d, J_new
-            move = float(np.max(np.abs(d)))
-            if move <= s.step_tol:
-                converged = True
+            if move <= s.step_tol or decrease <= _REL_DECREASE * J:
+                converged = True  # no step, or no decrease the solver can resolve, is left
                 break
         if not converged:
             flags.add("not_converged")
@@ -243,8 +266,19 @@ class Calibrator:
         )
         reports = _constraint_reports(buckets, hist, s, solved.duals, s.mode == "forward")
         return _result(
-            data, quotes, hist, s, buckets, A @ x, J, reports, SOLVER, solved.status, it,
-            converged, flags,
+            data,
+            quotes,
+            hist,
+            s,
+            buckets,
+            A @ x,
+            J,
+            reports,
+            SOLVER,
+            solved.status,
+            it,
+            converged,
+            flags,
         )
 
     # --- correlation held: the ratio scan ------------------------------------------------------
@@ -293,8 +327,19 @@ class Calibrator:
         reports = _constraint_reports(buckets, hist, s, None, False)
         V = best.P * (a + b * best.ratio**2 - 2.0 * c * hist.rho * best.ratio)
         return _result(
-            data, quotes, hist, s, buckets, V, best.objective, reports, "scan", "optimal",
-            best.iterations, best.converged, flags,
+            data,
+            quotes,
+            hist,
+            s,
+            buckets,
+            V,
+            best.objective,
+            reports,
+            "scan",
+            "optimal",
+            best.iterations,
+            best.converged,
+            flags,
         )
 
 
@@ -322,7 +367,12 @@ def _constraint_reports(
             dual = None if duals is None else float(duals[name][k])
             out.append(
                 ConstraintReport(
-                    name, FORMS[name], k if per_bucket else None, slack, slack <= BIND_TOL, dual,
+                    name,
+                    FORMS[name],
+                    k if per_bucket else None,
+                    slack,
+                    slack <= BIND_TOL,
+                    dual,
                     None,
                 )
             )
@@ -397,11 +447,15 @@ def _with_refit_costs(
     s = result.settings
     costs: dict[str, float] = {}
     for name in sorted({c.name for c in result.constraints if c.binds and c.name != "psd"}):
+        off = replace(s, refit_costs=False)
         if name == "rho_held":
-            off = replace(s, mode="constant", refit_costs=False)
+            off = replace(off, mode="constant")
+        elif name == "decay_bound":
+            off = replace(off, decay_bound=False)
+        elif name == "yield_floor":
+            off = replace(off, yield_floor=0.0)
         else:
-            value: object = None if name == "spot_cap" else (False if name == "decay_bound" else 0.0)
-            off = replace(s, refit_costs=False, **{_SWITCH[name]: value})
+            off = replace(off, sigma_spot_cap=None)
         other = fit(quotes, hist, off)
         costs[name] = result.objective - other.objective
     reports = tuple(replace(c, refit_cost=costs.get(c.name)) for c in result.constraints)

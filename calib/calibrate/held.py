@@ -84,9 +84,9 @@ class HeldProblem:
         _, g_mkt = errors(self.data, V_mkt, self.measure)
         P = np.clip(self._step(u * g_mkt, V_mkt * g_mkt, r), lo, self.P_max)
         J = self.objective(P, r)
-        converged = False
-        it = 0
-        for it in range(1, self.max_iterations + 1):  # noqa: B007 - count is reported
+        converged, it = False, 0
+        while it < self.max_iterations:
+            it += 1
             e, g = errors(self.data, P[..., None] * u, self.measure)
             h = g * u
             target = np.clip(self._step(h, h * P[..., None] - e, r), lo, self.P_max)
@@ -142,7 +142,7 @@ def scan(problem: HeldProblem, n_grid: int) -> HeldScan:
     """
     r_max = problem.ratio_max
     grid = np.linspace(0.0, r_max, n_grid) if r_max > 0.0 else np.zeros(1)
-    P, J, _, _ = problem.inner(grid)
+    _, J, _, _ = problem.inner(grid)
     if not np.isfinite(J).any():
         return HeldScan(float("nan"), float("nan"), float("inf"), 0, False)
     interior = np.ones(grid.size, dtype=bool)
@@ -156,7 +156,7 @@ def scan(problem: HeldProblem, n_grid: int) -> HeldScan:
     def profile(r: float) -> float:
         return float(problem.inner(np.array([r]))[1][0])
 
-    for j in candidates:
+    for j in candidates.tolist():
         if grid.size == 1:
             break
         lo, hi = grid[max(j - 1, 0)], grid[min(j + 1, grid.size - 1)]

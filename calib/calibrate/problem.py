@@ -10,8 +10,9 @@ from __future__ import annotations
 
 import warnings
 from dataclasses import dataclass
+from typing import Any
 
-import cvxpy as cp
+import cvxpy
 import numpy as np
 
 from calib.errors import (
@@ -19,6 +20,8 @@ from calib.errors import (
     CalibrationSolverError,
 )
 from calib.types import FloatArray
+
+cp: Any = cvxpy  # cvxpy's partial annotations miss its atoms (sum_squares, sqrt, ...)
 
 SOLVER = "CLARABEL"  # interior point: accurate on the cone, unlike the first-order default
 
@@ -86,15 +89,15 @@ class ConvexStep:
             objective = objective + self.smooth * (
                 cp.sum_squares(cp.diff(P)) + cp.sum_squares(cp.diff(Q)) + cp.sum_squares(cp.diff(C))
             )
-        self.constraints: dict[str, cp.Constraint] = {
+        self.constraints: dict[str, Any] = {
             "psd": cp.SOC(P + Q, cp.vstack([2.0 * C, P - Q]), axis=0)
         }
         if decay_bound:
-            self.constraints["decay_bound"] = Q <= self.kappa * C
+            self.constraints["decay_bound"] = self.kappa * C - Q >= 0.0
         if floor:
-            self.constraints["yield_floor"] = Q >= self.floor
+            self.constraints["yield_floor"] = Q - self.floor >= 0.0
         if cap:
-            self.constraints["spot_cap"] = P <= self.cap
+            self.constraints["spot_cap"] = self.cap - P >= 0.0
         self.problem = cp.Problem(cp.Minimize(objective), list(self.constraints.values()))
         if not self.problem.is_dcp(dpp=True):  # pragma: no cover - a construction bug
             raise AssertionError("calibration sub-problem is not DPP")
@@ -106,21 +109,51 @@ class ConvexStep:
         }
         for p in (self.anchor_lin, self.anchor_root, self.kappa, self.floor, self.cap, self.smooth):
             p.value = 0.0
+        self._weights = (0.0, 0.0, 0.0)
 
-    def solve(self, M: FloatArray, y: FloatArray, iteration: int) -> tuple[Solved, bool]:
-        """Solve with new rows and targets; returns the solution and whether it is inaccurate.
+    def set_day(
+        self,
+        *,
+        kappa: float,
+        floor: float,
+        cap: float,
+        anchor_weight: float,
+        s2_hist: float,
+        smoothness: float,
+    ) -> None:
+        """The day's constraint data (variance units) and penalty weights."""
+        self.kappa.value = kappa
+        self.floor.value = floor
+        self.cap.value = cap
+        K = self.n_buckets
+        self._weights = (anchor_weight / K, 2.0 * anchor_weight * s2_hist / K, smoothness)
 
-        Raises :class:`CalibrationSolverError` for every status without a usable solution and
-        warns :class:`CalibrationInaccurateWarning` for ``optimal_inaccurate``.
+    def solve(
+        self, M: FloatArray, y: FloatArray, iteration: int, scale: float
+    ) -> tuple[Solved, bool]:
+        """Solve ``scale * (|M x - y|^2 + penalties)``; returns the solution and its inaccuracy.
+
+        ``scale`` (about ``1 / J`` at the current point) brings the objective to order one, so
+        the solver's gap tolerance is relative to the current error rather than absolute;
+        duals are returned for the unscaled objective. Raises :class:`CalibrationSolverError`
+        for every status without a usable solution and warns
+        :class:`CalibrationInaccurateWarning` for ``optimal_inaccurate``.
         """
+        root = np.sqrt(scale)
         rows = np.zeros((self.n_rows, 3 * self.n_buckets))
-        rows[: M.shape[0]] = M
+        rows[: M.shape[0]] = root * M
         target = np.zeros(self.n_rows)
-        target[: y.shape[0]] = y
+        target[: y.shape[0]] = root * y
         self.M.value = rows
         self.y.value = target
+        lin, sq, smooth = self._weights
+        self.anchor_lin.value = scale * lin
+        self.anchor_root.value = scale * sq
+        self.smooth.value = scale * smooth if self.n_buckets > 1 else 0.0
         try:
-            self.problem.solve(solver=SOLVER, ignore_dpp=False, **self.solver_options)
+            with warnings.catch_warnings():  # cvxpy's own caution; ours follows below
+                warnings.filterwarnings("ignore", "Solution may be inaccurate", UserWarning)
+                self.problem.solve(solver=SOLVER, ignore_dpp=False, **self.solver_options)
         except cp.error.SolverError as exc:
             raise CalibrationSolverError(SOLVER, "solver_error", str(exc)) from exc
         status = str(self.problem.status)
@@ -146,6 +179,7 @@ class ConvexStep:
         duals = {
             name: np.atleast_1d(
                 np.asarray(c.dual_value[0] if name == "psd" else c.dual_value, dtype=np.float64)
+                / scale
             )
             for name, c in self.constraints.items()
         }

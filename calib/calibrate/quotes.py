@@ -3,18 +3,20 @@
 from __future__ import annotations
 
 from dataclasses import dataclass
+from typing import Any
 
 import numpy as np
+import numpy.typing as npt
 
 from calib.calibrate.settings import CalibrationSettings
-from calib.errors import QuoteError
+from calib.errors import IMPLIED_VOL_REASONS, QuoteError
 from calib.model import black76
 from calib.types import ArrayLike, BoolArray, FloatArray, IntArray
 
 DAYS_PER_YEAR = 365.0  # ACT/365, as the inputs (DESIGN §7)
 
 
-def _readonly(x: np.ndarray) -> np.ndarray:  # type: ignore[type-arg]
+def _readonly(x: npt.NDArray[Any]) -> npt.NDArray[Any]:
     x = np.array(x, copy=True)
     x.setflags(write=False)
     return x
@@ -57,8 +59,8 @@ class OptionQuotes:
         if t.ndim != 1 or n == 0:
             raise QuoteError("expiry", "must be a non-empty 1-D array")
 
-        def arr(name: str, value: ArrayLike, dtype: type = np.float64) -> np.ndarray:  # type: ignore[type-arg]
-            a = np.atleast_1d(np.asarray(value, dtype=dtype))
+        def arr(name: str, value: ArrayLike, dtype: type = np.float64) -> npt.NDArray[Any]:
+            a: npt.NDArray[Any] = np.atleast_1d(np.asarray(value, dtype=dtype))
             if a.shape != (n,):
                 raise QuoteError(name, f"has shape {a.shape}, expected ({n},)")
             if dtype is np.float64 and not np.all(np.isfinite(a)):
@@ -129,9 +131,7 @@ class OptionQuotes:
         if (discount is None) == (rate is None):
             raise QuoteError("discount", "give exactly one of discount and rate")
         t = np.asarray(expiry, dtype=np.float64)
-        disc = (
-            np.exp(-np.asarray(rate, dtype=np.float64) * t) if discount is None else discount
-        )
+        disc = np.exp(-np.asarray(rate, dtype=np.float64) * t) if discount is None else discount
 
         def opt(x: ArrayLike | None) -> FloatArray | None:
             return None if x is None else np.asarray(x, dtype=np.float64)
@@ -222,18 +222,27 @@ def prepare(quotes: OptionQuotes, settings: CalibrationSettings) -> FitData:
         vol, codes = black76.implied_vol_detail(
             premium, q.forward, q.strike, q.expiry, r, q.is_call
         )
-        vol = np.asarray(vol, dtype=np.float64)
-        ok_vol = np.isfinite(vol) & (vol > 0.0)
-        reasons = np.where(ok_vol, "", "no implied volatility").astype(object)
-        del codes  # the reason text of the numeric core is coarser than needed here
-        vol = np.where(ok_vol, vol, np.nan)
+        ok_vol = codes == black76.ImpliedVolCode.OK
+        reasons = np.array(
+            [
+                ""
+                if ok
+                else "no implied volatility: "
+                + IMPLIED_VOL_REASONS[black76.ImpliedVolCode(int(c)).name]
+                for ok, c in zip(ok_vol, codes, strict=True)
+            ],
+            dtype=object,
+        )
     g = black76.greeks(q.forward, q.strike, q.expiry, r, np.nan_to_num(vol), q.is_call)
     vega_f = g["vega"] / q.forward
     days = q.expiry * DAYS_PER_YEAR
     m = q.strike / q.forward
     lo, hi = settings.moneyness_band
     checks: list[tuple[BoolArray, str]] = [
-        (days < settings.min_days_to_expiry, f"under {settings.min_days_to_expiry:g} days to expiry"),
+        (
+            days < settings.min_days_to_expiry,
+            f"under {settings.min_days_to_expiry:g} days to expiry",
+        ),
         ((m < lo) | (m > hi), f"strike/forward outside [{lo:g}, {hi:g}]"),
         (vega_f < settings.min_vega, f"vega/forward below {settings.min_vega:g}"),
     ]

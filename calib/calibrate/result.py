@@ -122,8 +122,7 @@ class CalibrationResult:
         return {
             "params": self.params.to_dict(),
             "buckets": [
-                {"start": b.start, "end": b.end, "params": b.params.to_dict()}
-                for b in self.buckets
+                {"start": b.start, "end": b.end, "params": b.params.to_dict()} for b in self.buckets
             ],
             "quotes": {
                 "index": self.quote_index.tolist(),
@@ -148,7 +147,9 @@ class CalibrationResult:
             "flags": list(self.flags),
             "settings": self.settings.to_dict(),
             "historical": self.historical.to_dict(),
-            "dropped": [{"index": d.index, "label": d.label, "reason": d.reason} for d in self.dropped],
+            "dropped": [
+                {"index": d.index, "label": d.label, "reason": d.reason} for d in self.dropped
+            ],
         }
 
 
