@@ -40,8 +40,7 @@ from calib.types import FloatArray
 BIND_TOL = 1e-7  # slack (vol units) below which a constraint counts as binding
 _BACKTRACKS = 30
 _MIN_OBJECTIVE = 1e-12  # sub-problem scale limit: rows at most 1e6 times the data
-_REL_DECREASE = 1e-13  # a relative decrease of J below this is at the sub-problem's precision
-_EXACT = 1e-28  # an objective this small is an exact fit to rounding: Gauss-Newton stops
+_EXACT = 1e-20  # RMS error 1e-10 (per unit forward, or vol): below any quote precision; stop
 _MIN_QUOTES = {"constant": 3, "held_rho": 2, "forward": 3}
 
 FORMS = {
@@ -240,8 +239,8 @@ class Calibrator:
             if J_new <= J:
                 decrease, move = J - J_new, tau * float(np.max(np.abs(d)))
                 x, J = x + tau * d, J_new
-            if move <= s.step_tol or decrease <= _REL_DECREASE * J:
-                converged = True  # no step, or no decrease the solver can resolve, is left
+            if move <= s.step_tol or decrease == 0.0:
+                converged = True  # the step vanished, or none decreases J at solver precision
                 break
         if not converged:
             flags.add("not_converged")

@@ -75,7 +75,7 @@ class HeldProblem:
         Each step is backtracked until the true objective does not increase.
         """
         u = self._u(r)
-        with np.errstate(divide="ignore"):
+        with np.errstate(divide="ignore", invalid="ignore"):  # r = 0 is handled by the where
             P_lo = np.where(r > 0.0, self.floor / (r * r), np.where(self.floor > 0.0, np.inf, 0.0))
         feasible = P_lo <= self.P_max
         lo = np.where(feasible, P_lo, 0.0)
