@@ -105,24 +105,22 @@ class Calibrator:
     Parameters
     ----------
     settings : the calibration settings (their constraint switches fix the structure).
-    n_quotes : capacity in usable quotes (days with fewer are padded with zero rows).
-    n_buckets : forward mode: the number of expiry buckets of every day it will see.
+    n_buckets : forward mode: the number of expiry buckets of every day it will see (any
+        number of quotes: they enter the conic problem through a ``3K x 3K`` QR factor).
 
     Examples
     --------
-    >>> cal = Calibrator(CalibrationSettings(), n_quotes=180)        # doctest: +SKIP
+    >>> cal = Calibrator(CalibrationSettings())                       # doctest: +SKIP
     >>> for quotes, hist in days:                                     # doctest: +SKIP
     ...     result = cal.fit(quotes, hist)
     """
 
-    def __init__(self, settings: CalibrationSettings, n_quotes: int, n_buckets: int = 1) -> None:
+    def __init__(self, settings: CalibrationSettings, n_buckets: int = 1) -> None:
         self.settings = settings
-        self.n_quotes = int(n_quotes)
         self.n_buckets = int(n_buckets) if settings.mode == "forward" else 1
         self.step: ConvexStep | None = None
         if settings.mode != "held_rho":
             self.step = ConvexStep(
-                self.n_quotes,
                 self.n_buckets,
                 decay_bound=settings.decay_bound,
                 floor=settings.yield_floor > 0.0,
@@ -149,8 +147,6 @@ class Calibrator:
             for d in data.dropped:
                 counts[d.reason] = counts.get(d.reason, 0) + 1
             raise TooFewQuotesError(data.n, len(quotes), s.mode, needed, counts)
-        if data.n > self.n_quotes:
-            raise CalibrationShapeError(f"{self.n_quotes} quotes", f"{data.n}")
         if s.mode == "held_rho":
             result = self._fit_held(data, historical, s, quotes)
         else:
@@ -485,7 +481,7 @@ def fit(
     n_buckets = 1
     if s.mode == "forward":
         n_buckets = bucket_edges(prepare(quotes, s).expiry).size - 1
-    return Calibrator(s, len(quotes), max(n_buckets, 1)).fit(quotes, historical)
+    return Calibrator(s, max(n_buckets, 1)).fit(quotes, historical)
 
 
 def frontier(
@@ -504,7 +500,7 @@ def frontier(
     n_buckets = 1
     if s.mode == "forward":
         n_buckets = bucket_edges(prepare(quotes, s).expiry).size - 1
-    cal = Calibrator(s, len(quotes), max(n_buckets, 1))
+    cal = Calibrator(s, max(n_buckets, 1))
     points = []
     for w in anchor_weights:
         res = cal.fit(quotes, historical, anchor_weight=float(w))

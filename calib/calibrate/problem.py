@@ -45,13 +45,15 @@ class ConvexStep:
 
     Parameters
     ----------
-    n_rows : row capacity (quotes); unused rows are zero.
     n_buckets : number of calendar buckets ``K``.
     decay_bound, floor, cap : which constraints exist (structure, fixed at build time).
     solver_tol : Clarabel's gap and feasibility tolerances.
 
     Notes
     -----
+    The quotes enter through the QR factor of ``M``: with ``M = U R`` (``R`` is ``3K x 3K``)
+    ``|M x - y|^2 = |R x - U^T y|^2 + |y|^2 - |U^T y|^2``, so the conic problem has ``3K``
+    rows whatever the number of quotes (same minimiser and duals; the constant is dropped).
     ``[[P, C], [C, Q]] >= 0`` is the second-order cone ``|(2C, P - Q)| <= P + Q``. The anchor
     ``w mean_k (s2_k - s2_hist)^2 = w mean_k (Q_k - 2 s2_hist sqrt(Q_k)) + const`` is convex
     because ``-sqrt`` is; it enters as ``lin * sum(Q) - root * sum(sqrt(Q))`` with the two
@@ -60,7 +62,6 @@ class ConvexStep:
 
     def __init__(
         self,
-        n_rows: int,
         n_buckets: int,
         *,
         decay_bound: bool,
@@ -69,11 +70,11 @@ class ConvexStep:
         solver_tol: float,
     ) -> None:
         K = n_buckets
-        self.n_rows, self.n_buckets = n_rows, K
+        self.n_buckets = K
         self.x = cp.Variable(3 * K)
         P, Q, C = self.x[:K], self.x[K : 2 * K], self.x[2 * K :]
-        self.M = cp.Parameter((n_rows, 3 * K))
-        self.y = cp.Parameter(n_rows)
+        self.M = cp.Parameter((3 * K, 3 * K))
+        self.y = cp.Parameter(3 * K)
         self.anchor_lin = cp.Parameter(nonneg=True)
         self.anchor_root = cp.Parameter(nonneg=True)
         self.kappa = cp.Parameter(nonneg=True)
@@ -140,10 +141,11 @@ class ConvexStep:
         :class:`CalibrationInaccurateWarning` for ``optimal_inaccurate``.
         """
         root = np.sqrt(scale)
-        rows = np.zeros((self.n_rows, 3 * self.n_buckets))
-        rows[: M.shape[0]] = root * M
-        target = np.zeros(self.n_rows)
-        target[: y.shape[0]] = root * y
+        U, R = np.linalg.qr(M, mode="reduced")
+        rows = np.zeros((3 * self.n_buckets, 3 * self.n_buckets))
+        rows[: R.shape[0]] = root * R
+        target = np.zeros(3 * self.n_buckets)
+        target[: R.shape[0]] = root * (U.T @ y)
         self.M.value = rows
         self.y.value = target
         lin, sq, smooth = self._weights

@@ -11,7 +11,7 @@ import math
 from collections.abc import Sequence
 
 import numpy as np
-import QuantLib as ql
+import QuantLib as ql  # noqa: N813 - QuantLib's own documented alias
 from scipy.integrate import quad
 
 from calib.calibrate import OptionQuotes
@@ -30,7 +30,7 @@ def quad_variance(
     vols: Sequence[tuple[float, float, float]],
     edges: Sequence[float],
 ) -> float:
-    """``int_0^expiry v(u) du`` with vols ``(s1, s2, rho)`` constant on ``[edges[k], edges[k+1])``."""
+    """``int_0^expiry v(u) du``, vols ``(s1, s2, rho)`` constant on ``[edges[k], edges[k+1])``."""
 
     def B(tau: float) -> float:
         return (1.0 - math.exp(-kappa * tau)) / kappa

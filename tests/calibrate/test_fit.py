@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import itertools
 import math
 import warnings
 from dataclasses import replace
@@ -49,9 +50,7 @@ def _vols(p: TwoFactorParams) -> np.ndarray:
 
 
 @pytest.mark.parametrize("mode", ["constant", "held_rho"])
-def test_every_constant_mode_recovers_the_generating_vols(
-    quotes: OptionQuotes, mode: str
-) -> None:
+def test_every_constant_mode_recovers_the_generating_vols(quotes: OptionQuotes, mode: str) -> None:
     hist = TRUE.with_vols(0.3, 0.3, TRUE.rho)
     res = fit(quotes, hist, replace(EXACT, mode=mode))
     np.testing.assert_allclose(_vols(res.params), _vols(TRUE), atol=VOL_TOL)
@@ -140,7 +139,11 @@ def test_binding_decay_bound_is_optimal_against_slsqp_and_a_grid(quotes: OptionQ
     best = math.inf
     for start in rng.uniform([0.1, 0.1, 0.2], [0.8, 0.8, 1.0], size=(12, 3)):
         out = minimize(
-            J, start, method="SLSQP", bounds=[(1e-4, 2), (0, 2), (-1, 1)], constraints=cons,
+            J,
+            start,
+            method="SLSQP",
+            bounds=[(1e-4, 2), (0, 2), (-1, 1)],
+            constraints=cons,
             options={"ftol": 1e-16, "maxiter": 500},
         )
         if _feasible(out.x, hist, 0.5):
@@ -177,8 +180,11 @@ def test_held_rho_with_binding_floor_beats_a_brute_force_grid(quotes: OptionQuot
     rng = np.random.default_rng(11)
     best = min(
         minimize(
-            lambda t: J(np.array([t[0], t[1], hist.rho])), x0, method="SLSQP",
-            bounds=[(1e-3, 2.0), (0.45, 2.0)], options={"ftol": 1e-16, "maxiter": 500},
+            lambda t: J(np.array([t[0], t[1], hist.rho])),
+            x0,
+            method="SLSQP",
+            bounds=[(1e-3, 2.0), (0.45, 2.0)],
+            options={"ftol": 1e-16, "maxiter": 500},
         ).fun
         for x0 in rng.uniform([0.1, 0.45], [1.0, 1.0], size=(10, 2))
     )
@@ -201,9 +207,12 @@ INVARIANCE_TOL = 1e-6
 def test_permuting_quotes_changes_nothing(quotes: OptionQuotes) -> None:
     perm = np.random.default_rng(3).permutation(len(quotes))
     permuted = OptionQuotes(
-        expiry=quotes.expiry[perm], maturity=quotes.maturity[perm],
-        is_call=quotes.is_call[perm], strike=quotes.strike[perm],
-        forward=quotes.forward[perm], discount=quotes.discount[perm],
+        expiry=quotes.expiry[perm],
+        maturity=quotes.maturity[perm],
+        is_call=quotes.is_call[perm],
+        strike=quotes.strike[perm],
+        forward=quotes.forward[perm],
+        discount=quotes.discount[perm],
         premium=None if quotes.premium is None else quotes.premium[perm],
     )
     np.testing.assert_allclose(_fit_vols(permuted), _fit_vols(quotes), atol=INVARIANCE_TOL)
@@ -239,7 +248,7 @@ def test_put_and_call_at_the_same_strike_give_the_same_fit(quotes: OptionQuotes)
 
 
 def test_a_calibrator_re_solves_days_like_fresh_fits(quotes: OptionQuotes) -> None:
-    cal = Calibrator(EXACT, n_quotes=len(quotes) + 5)
+    cal = Calibrator(EXACT)
     hists = [TRUE.with_vols(0.3, 0.6, 0.7), TRUE.with_vols(0.3, 0.6, 0.7)]
     other = replace(TRUE, sigma_spot=0.4)
     with warnings.catch_warnings():
@@ -249,8 +258,10 @@ def test_a_calibrator_re_solves_days_like_fresh_fits(quotes: OptionQuotes) -> No
         np.testing.assert_allclose(
             _vols(cal.fit(q, h).params), _vols(fit(q, h, EXACT).params), atol=INVARIANCE_TOL
         )
-    with pytest.raises(CalibrationShapeError, match="built for 3 quotes, these quotes need 42"):
-        Calibrator(EXACT, n_quotes=3).fit(quotes, TRUE)
+    with pytest.raises(
+        CalibrationShapeError, match="built for 2 expiry buckets, these quotes need 6"
+    ):
+        Calibrator(replace(EXACT, mode="forward"), n_buckets=2).fit(quotes, TRUE)
 
 
 def test_frontier_trades_fit_for_distance(quotes: OptionQuotes) -> None:
@@ -259,8 +270,8 @@ def test_frontier_trades_fit_for_distance(quotes: OptionQuotes) -> None:
     dist = [p.distance for p in points]
     fits = [p.fit for p in points]
     assert dist[0] == pytest.approx(0.07, abs=1e-6)  # w = 0: the market's 0.25 vs 0.32
-    assert all(a >= b for a, b in zip(dist, dist[1:], strict=False))
-    assert all(a <= b for a, b in zip(fits, fits[1:], strict=False))
+    assert all(a >= b for a, b in itertools.pairwise(dist))
+    assert all(a <= b for a, b in itertools.pairwise(fits))
     assert dist[-1] < 0.01
 
 
