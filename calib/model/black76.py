@@ -157,10 +157,19 @@ class ImpliedVolCode(IntEnum):
     NON_FINITE_INPUT = 5
 
 
+# plain ints for the compiled loop (numba freezes module globals at compile time)
+_OK = int(ImpliedVolCode.OK)
+_BELOW_INTRINSIC = int(ImpliedVolCode.BELOW_INTRINSIC)
+_ABOVE_UPPER_BOUND = int(ImpliedVolCode.ABOVE_UPPER_BOUND)
+_NON_POSITIVE_INPUT = int(ImpliedVolCode.NON_POSITIVE_INPUT)
+_NO_TIME_VALUE = int(ImpliedVolCode.NO_TIME_VALUE)
+_NON_FINITE_INPUT = int(ImpliedVolCode.NON_FINITE_INPUT)
+
 _SQRT_HALF = math.sqrt(0.5)
 _SQRT_2PI = math.sqrt(2.0 * math.pi)
 _MAX_ITER = 40
-_STEP_TOL = 1e-11  # relative step after which a cubic step leaves an error far below 1e-16
+_STEP_TOL = 1e-7  # relative step after which the cubic step leaves an error ~1e-21 (accept)
+_CUBIC_REACH = 0.5  # |w| up to which the cubic about s_c starts better than the asymptotics
 _A_S_C = (2.515517, 0.802853, 0.010328)  # Abramowitz & Stegun 26.2.23
 _A_S_D = (1.432788, 0.189269, 0.001308)
 
@@ -175,6 +184,18 @@ def _lower_tail_quantile(p: float) -> float:
     c0, c1, c2 = _A_S_C
     d1, d2, d3 = _A_S_D
     return -(t - (c0 + t * (c1 + t * c2)) / (1.0 + t * (d1 + t * (d2 + t * d3))))
+
+
+def _cubic_offset(w: float) -> float:
+    """Root ``u`` of ``u - u^3/6 = w`` near 0 (``|w| <= 1/2``): Newton from ``u = w``.
+
+    Near the inflection point ``b(s_c + u) ~ b(s_c) + b_s(s_c) (u - u^3/6)``, since there
+    ``b_ss = 0``, ``b_sss = -b_s`` and ``b_s(s_c) = e^{x/2} / sqrt(2 pi)``.
+    """
+    u = w
+    for _ in range(3):
+        u -= (u - u * u * u / 6.0 - w) / (1.0 - 0.5 * u * u)
+    return u
 
 
 def _solve_normalised(beta: float, x: float) -> float:
@@ -205,6 +226,9 @@ def _solve_normalised(beta: float, x: float) -> float:
             if g <= 0.0:
                 break
             s = -x / math.sqrt(2.0 * g)
+        w = (beta - bc) * _SQRT_2PI * ehm
+        if w > -_CUBIC_REACH:
+            s = sc + _cubic_offset(w)
         if not 0.0 < s < sc:
             s = 0.5 * sc
     else:
@@ -213,6 +237,9 @@ def _solve_normalised(beta: float, x: float) -> float:
         q = (ehp - beta) / (ehp + ehm)
         s = -2.0 * _lower_tail_quantile(q) if q < 0.5 else 0.0
         s = max(s, sc, min(beta * _SQRT_2PI, 1.0))
+        w = (beta - bc) * _SQRT_2PI * ehm
+        if sc > 0.0 and w < _CUBIC_REACH:
+            s = sc + _cubic_offset(w)
     for _ in range(_MAX_ITER):
         d1 = x / s + 0.5 * s
         d2 = d1 - s
@@ -277,24 +304,24 @@ def _implied_vol_loop(
             and math.isfinite(t)
             and math.isfinite(rr)
         ):
-            code[i] = 5
+            code[i] = _NON_FINITE_INPUT
             continue
         if f <= 0.0 or k <= 0.0 or t <= 0.0:
-            code[i] = 3
+            code[i] = _NON_POSITIVE_INPUT
             continue
         undiscounted = p * math.exp(rr * t)
         intrinsic = max(f - k, 0.0) if call[i] else max(k - f, 0.0)
         time_value = undiscounted - intrinsic  # the out-of-the-money price, by parity
         if time_value < 0.0:
-            code[i] = 1
+            code[i] = _BELOW_INTRINSIC
             continue
         if time_value == 0.0:
-            code[i] = 4
+            code[i] = _NO_TIME_VALUE
             continue
         if time_value >= min(f, k):
-            code[i] = 2
+            code[i] = _ABOVE_UPPER_BOUND
             continue
-        code[i] = 0
+        code[i] = _OK
         x = -abs(math.log(f / k))
         s = _solve_normalised(time_value / math.sqrt(f * k), x)
         vol[i] = s / math.sqrt(t)
@@ -302,6 +329,7 @@ def _implied_vol_loop(
 
 _ncdf = numba.njit(cache=True)(_ncdf)
 _lower_tail_quantile = numba.njit(cache=True)(_lower_tail_quantile)
+_cubic_offset = numba.njit(cache=True)(_cubic_offset)
 _solve_normalised = numba.njit(cache=True)(_solve_normalised)
 _KERNEL: Callable[..., None] = numba.njit(cache=True, nogil=True)(_implied_vol_loop)
 
