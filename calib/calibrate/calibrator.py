@@ -478,10 +478,14 @@ def fit(
     CalibrationInaccurateWarning, CalibrationNotConvergedWarning : flagged on the result too.
     """
     s = settings if settings is not None else CalibrationSettings()
+    return _calibrator_for(quotes, s).fit(quotes, historical)
+
+
+def _calibrator_for(quotes: OptionQuotes, s: CalibrationSettings) -> Calibrator:
     n_buckets = 1
     if s.mode == "forward":
         n_buckets = bucket_edges(prepare(quotes, s).expiry).size - 1
-    return Calibrator(s, max(n_buckets, 1)).fit(quotes, historical)
+    return Calibrator(s, max(n_buckets, 1))
 
 
 def frontier(
@@ -497,10 +501,7 @@ def frontier(
     ``fit`` is the weighted mean square error, ``rmse`` as in the result.
     """
     s = replace(settings if settings is not None else CalibrationSettings(), refit_costs=False)
-    n_buckets = 1
-    if s.mode == "forward":
-        n_buckets = bucket_edges(prepare(quotes, s).expiry).size - 1
-    cal = Calibrator(s, max(n_buckets, 1))
+    cal = _calibrator_for(quotes, s)
     points = []
     for w in anchor_weights:
         res = cal.fit(quotes, historical, anchor_weight=float(w))
