@@ -168,3 +168,102 @@ class StoreUnavailableError(CalibError):
         self.url = url
         self.detail = detail
         super().__init__(self.TEMPLATE.format(url=url, detail=detail))
+
+
+# --- Black-76 implied volatility (numeric core) ---------------------------------------------
+
+IMPLIED_VOL_REASONS: dict[str, str] = {
+    "BELOW_INTRINSIC": "the premium is below the discounted intrinsic value",
+    "ABOVE_UPPER_BOUND": (
+        "the premium is at or above its upper bound (discounted futures price for a call, "
+        "discounted strike for a put)"
+    ),
+    "NON_POSITIVE_INPUT": "futures price, strike and time to expiry must all be > 0",
+    "NO_TIME_VALUE": "the premium equals the intrinsic value, so it carries no volatility",
+    "NON_FINITE_INPUT": "an input is NaN or infinite",
+}
+"""Reason phrases of :class:`ImpliedVolError`, keyed by the implied-vol reason-code name."""
+
+
+# --- calibration ------------------------------------------------------------------------------
+
+
+class SettingError(ParameterError):
+    """A calibration setting outside its domain (e.g. ``yield_floor = 1.5``)."""
+
+
+class QuoteError(InputError, ValueError):
+    """Option quotes that cannot be used as given (shapes, signs, missing fields)."""
+
+    TEMPLATE = "option quotes: {field} {reason}"
+
+    def __init__(self, field: str, reason: str) -> None:
+        self.field = field
+        self.reason = reason
+        super().__init__(self.TEMPLATE.format(field=field, reason=reason))
+
+
+class TooFewQuotesError(InputError):
+    """Fewer usable quotes than the calibration mode has free parameters."""
+
+    TEMPLATE = (
+        "only {usable} usable option quote(s) of {total}, {mode} mode needs at least {needed}"
+        "{dropped}"
+    )
+
+    def __init__(
+        self, usable: int, total: int, mode: str, needed: int, dropped: dict[str, int]
+    ) -> None:
+        self.usable = usable
+        self.needed = needed
+        self.dropped = dict(dropped)
+        why = "; dropped: " + ", ".join(f"{r} ({k})" for r, k in sorted(dropped.items()))
+        super().__init__(
+            self.TEMPLATE.format(
+                usable=usable, total=total, mode=mode, needed=needed, dropped=why if dropped else ""
+            )
+        )
+
+
+class InfeasibleSettingsError(InputError):
+    """Constraints that no parameter set can meet together; says which and by how much."""
+
+    TEMPLATE = "calibration constraints conflict: {conflict}"
+
+    def __init__(self, conflict: str, shortfall: float) -> None:
+        self.conflict = conflict
+        self.shortfall = shortfall
+        super().__init__(self.TEMPLATE.format(conflict=conflict))
+
+
+class CalibrationShapeError(InputError, ValueError):
+    """Quotes that do not fit the shape a re-usable calibrator was built for."""
+
+    TEMPLATE = "calibrator built for {built}, these quotes need {needed}"
+
+    def __init__(self, built: str, needed: str) -> None:
+        super().__init__(self.TEMPLATE.format(built=built, needed=needed))
+
+
+class CalibrationSolverError(CalibError):
+    """The conic solver failed or returned no usable solution; names the solver and status."""
+
+    TEMPLATE = "solver {solver} returned {status}: {cause}"
+
+    def __init__(self, solver: str, status: str, cause: str) -> None:
+        self.solver = solver
+        self.status = status
+        self.cause = cause
+        super().__init__(self.TEMPLATE.format(solver=solver, status=status, cause=cause))
+
+
+class CalibrationInaccurateWarning(CalibWarning):
+    """The solver stopped short of its tolerances; the result carries the flag too."""
+
+    TEMPLATE = "solver {solver} returned {status} at Gauss-Newton iteration {iteration}"
+
+
+class CalibrationNotConvergedWarning(CalibWarning):
+    """Gauss-Newton steps stopped at the iteration limit; the result carries the flag too."""
+
+    TEMPLATE = "Gauss-Newton did not converge in {iterations} iterations (last step {step:.3g})"
