@@ -59,3 +59,17 @@ IMPLIED_VOL_REASONS: dict[str, str] = {
     "NON_FINITE_INPUT": "an input is NaN or infinite",
 }
 """Reason phrases of :class:`ImpliedVolError`, keyed by the implied-vol reason-code name."""
+
+
+# --- fit reports and compare over time (workflows) --------------------------------------------
+
+
+class ReportInputError(InputError, ValueError):
+    """Report or compare inputs that do not hang together (lengths, empty series)."""
+
+    TEMPLATE = "cannot build the {what}: {reason}"
+
+    def __init__(self, what: str, reason: str) -> None:
+        self.what = what
+        self.reason = reason
+        super().__init__(self.TEMPLATE.format(what=what, reason=reason))
