@@ -1,1 +1,27 @@
-"""Constrained calibration of the volatilities to option quotes (cvxpy)."""
+"""Constrained calibration of the volatilities to option quotes (cvxpy, Clarabel).
+
+Hold kappa and the drifts at their historical estimate; fit ``sigma_spot``, ``sigma_yield``
+and ``rho`` (constant, correlation held, or per expiry bucket) so that the model reprices the
+day's options, under the cone, decay-bound, yield-floor and cap constraints. See
+:mod:`calib.calibrate.calibrator` for the method.
+"""
+
+from calib.calibrate.calibrator import Calibrator, bucket_edges, check_feasible, fit, frontier
+from calib.calibrate.quotes import DroppedQuote, OptionQuotes
+from calib.calibrate.result import BucketVols, CalibrationResult, ConstraintReport, FrontierPoint
+from calib.calibrate.settings import CalibrationSettings
+
+__all__ = [
+    "BucketVols",
+    "CalibrationResult",
+    "CalibrationSettings",
+    "Calibrator",
+    "ConstraintReport",
+    "DroppedQuote",
+    "FrontierPoint",
+    "OptionQuotes",
+    "bucket_edges",
+    "check_feasible",
+    "fit",
+    "frontier",
+]
