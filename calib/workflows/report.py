@@ -33,6 +33,7 @@ from typing import TYPE_CHECKING, Any
 
 import numpy as np
 
+from calib.calibrate.result import BucketVols, ConstraintReport
 from calib.errors import ReportInputError
 from calib.model.twofactor import PARAM_NAMES, TwoFactorParams, decay_bound_slack, futures_vol
 from calib.types import FloatArray
@@ -51,15 +52,6 @@ class Commodity:
     name: str
     unit: str
     currency: str
-
-
-@dataclass(frozen=True, slots=True)
-class VolBucket:
-    """Volatilities in force over calendar years ``[start, end)`` from the trade date."""
-
-    start: float
-    end: float
-    params: TwoFactorParams
 
 
 def _array(name: str, values: object) -> FloatArray:
@@ -156,19 +148,6 @@ class FuturesCurve:
 
 
 @dataclass(frozen=True, slots=True)
-class ConstraintRow:
-    """One constraint at the solution (see the calibration result for the meaning of each)."""
-
-    name: str
-    form: str
-    bucket: int | None
-    slack: float | None
-    binds: bool
-    dual: float | None
-    refit_cost: float | None
-
-
-@dataclass(frozen=True, slots=True)
 class GateRow:
     """One approval gate: its measured value, the limit it is held to, and the verdict.
 
@@ -246,11 +225,13 @@ class ReportInputs:
     run : id, status, creation, code version, inputs.
     params : the calibrated set (in forward mode the front bucket's).
     historical : the historical estimate the fit was held to.
-    buckets : forward-mode volatilities per calendar bucket; empty for a constant fit.
+    buckets : volatilities per calendar bucket (``CalibrationResult.buckets``); with more than
+        one, the term-structure figure draws each bucket's curve.
     quotes : the fitted quotes with market and model values.
     curve : the futures curve of the trade date.
     solve : solver outcome and the fit's own error figures.
-    constraints, gates, dropped, frontier : tables; ``frontier`` may be empty.
+    constraints : ``CalibrationResult.constraints`` as they are.
+    gates, dropped, frontier : tables; ``frontier`` may be empty.
     settings : the calibration settings as plain values (shown as given; ``anchor_weight``,
         when present, marks the chosen point of the frontier).
     """
@@ -263,8 +244,8 @@ class ReportInputs:
     quotes: QuoteFits
     curve: FuturesCurve
     solve: SolveInfo
-    buckets: tuple[VolBucket, ...] = ()
-    constraints: tuple[ConstraintRow, ...] = ()
+    buckets: tuple[BucketVols, ...] = ()
+    constraints: tuple[ConstraintReport, ...] = ()
     gates: tuple[GateRow, ...] = ()
     dropped: tuple[DroppedRow, ...] = ()
     frontier: tuple[FrontierRow, ...] = ()

@@ -16,6 +16,7 @@ import numpy as np
 import pytest
 from PIL import Image
 
+from calib.calibrate.result import BucketVols, ConstraintReport
 from calib.errors import ReportInputError
 from calib.model import black76, twofactor
 from calib.model.twofactor import TwoFactorParams
@@ -79,8 +80,8 @@ def _inputs(rng: np.random.Generator, **over: object) -> rp.ReportInputs:
         curve=rp.FuturesCurve(deliveries, tau_f, settle),
         solve=rp.SolveInfo("CLARABEL", "optimal", 4, True, 0.8, 2.1, "price"),
         constraints=(
-            rp.ConstraintRow("psd", "|rho| <= 1", None, 0.26, False, 0.0, None),
-            rp.ConstraintRow("decay_bound", "s2 <= rho kappa s1", None, 0.0, True, 3.2e-3, 1.1e-4),
+            ConstraintReport("psd", "|rho| <= 1", None, 0.26, False, 0.0, None),
+            ConstraintReport("decay_bound", "s2 <= rho kappa s1", None, 0.0, True, 3.2e-3, 1.1e-4),
         ),
         gates=(
             rp.GateRow("rmse_vol_points", 0.35, "<= 1.0", True),
@@ -195,7 +196,7 @@ def test_hostile_text_is_escaped(tmp_path: Path, rng: np.random.Generator) -> No
 def test_forward_buckets_get_a_table_and_their_own_curves(
     tmp_path: Path, rng: np.random.Generator
 ) -> None:
-    buckets = (rp.VolBucket(0.0, 0.3, CAL), rp.VolBucket(0.3, 0.6, CAL.with_vols(0.24, 0.18, 0.7)))
+    buckets = (BucketVols(0.0, 0.3, CAL), BucketVols(0.3, 0.6, CAL.with_vols(0.24, 0.18, 0.7)))
     files = rp.render_report(_inputs(rng, buckets=buckets, frontier=()), tmp_path)
     text = " ".join(_parse(files.index).text)
     assert "Forward volatilities by calendar bucket" in text
