@@ -143,3 +143,125 @@ class CalibrationNotConvergedWarning(CalibWarning):
     """Gauss-Newton steps stopped at the iteration limit; the result carries the flag too."""
 
     TEMPLATE = "Gauss-Newton did not converge in {iterations} iterations (last step {step:.3g})"
+# --- quote store and ingestion ----------------------------------------------------------------
+
+
+class StoreURLError(InputError):
+    """A database URL calib cannot use."""
+
+    TEMPLATE = "database URL {url!r} is not usable: {reason}"
+
+    def __init__(self, url: str, reason: str) -> None:
+        self.url = url
+        self.reason = reason
+        super().__init__(self.TEMPLATE.format(url=url, reason=reason))
+
+
+class StoreNotInitialisedError(InputError):
+    """The database holds no calib schema yet."""
+
+    TEMPLATE = "database {url} has no calib schema: run `calib init` first"
+
+    def __init__(self, url: str) -> None:
+        self.url = url
+        super().__init__(self.TEMPLATE.format(url=url))
+
+
+class StoreOutdatedError(InputError):
+    """The database is at an older schema revision than this program."""
+
+    TEMPLATE = "database schema is at revision {found}, this program needs {head}: run `calib init`"
+
+    def __init__(self, found: str, head: str) -> None:
+        self.found = found
+        self.head = head
+        super().__init__(self.TEMPLATE.format(found=found, head=head))
+
+
+class SchemaTooNewError(InputError):
+    """The database was migrated by a newer calib; this program refuses to touch it."""
+
+    TEMPLATE = (
+        "database schema is at revision {found}, unknown to this program (newest known: {head});"
+        " it was written by a newer calib: upgrade calib, the database was not changed"
+    )
+
+    def __init__(self, found: str, head: str) -> None:
+        self.found = found
+        self.head = head
+        super().__init__(self.TEMPLATE.format(found=found, head=head))
+
+
+class IngestFileError(InputError):
+    """A file refused as a whole (unreadable, wrong columns, unknown commodity); nothing stored."""
+
+    TEMPLATE = "{file}: {reason}"
+
+    def __init__(self, file: str, reason: str) -> None:
+        self.file = file
+        self.reason = reason
+        super().__init__(self.TEMPLATE.format(file=file, reason=reason))
+
+
+class UnknownCommodityError(InputError):
+    """A commodity code that is not registered."""
+
+    TEMPLATE = "unknown commodity {codes}{hint}"
+
+    def __init__(self, codes: list[str], hint: str = "") -> None:
+        self.codes = codes
+        super().__init__(self.TEMPLATE.format(codes=", ".join(map(repr, codes)), hint=hint))
+
+
+# File-level refusals (IngestFileError reasons).
+FILE_NOT_FOUND = "no such file"
+FILE_FORMAT = "unknown format {suffix!r}: give a .csv or .parquet file"
+FILE_NOT_TEXT = "not UTF-8 text ({detail})"
+FILE_UNREADABLE = "cannot be read: {detail}"
+FILE_NO_HEADER = "empty file: no header line"
+FILE_MISSING_COLUMNS = "missing required column(s) {columns}; a {kind} file needs {required}"
+FILE_DUPLICATE_COLUMNS = "column(s) {columns} appear more than once"
+FILE_NO_PRICE_COLUMN = "an options file needs a premium or an implied_vol column (or both)"
+HINT_CREATE = " (pass --create to register it)"
+
+# Row-level reasons, stored in quarantine with the row's line, field and raw text.
+ROW_FIELD_COUNT = "expected {expected} fields, found {found}"
+ROW_EMPTY = "empty"
+ROW_NOT_NUMBER = "not a number: {value!r}"
+ROW_NOT_FINITE = "not a finite number: {value!r}"
+ROW_NOT_DATE = "not an ISO date (YYYY-MM-DD): {value!r}"
+ROW_DATE_RANGE = "date {value!r} outside {low}..{high}"
+ROW_NOT_KIND = "kind must be call or put: {value!r}"
+ROW_BAD_CODE = "commodity code must be 1-32 letters, digits, '.', '_' or '-': {value!r}"
+ROW_NOT_POSITIVE = "must be > 0: {value!r}"
+ROW_NEGATIVE = "must be >= 0: {value!r}"
+ROW_VOL_RANGE = "implied volatility must be in (0, {high}]: {value!r}"
+ROW_RATE_RANGE = "zero rate must be within +-{limit} (a decimal, not percent): {value!r}"
+ROW_NO_PRICE = "needs a premium or an implied_vol"
+ROW_BEFORE_TRADE = "{value} is before the trade date {trade_date}"
+ROW_NOT_AFTER_TRADE = "{value} is not after the trade date {trade_date}"
+ROW_AFTER_DELIVERY = "expiry {value} is after the delivery {delivery}"
+ROW_BID_ASK = "bid {bid} is above ask {ask}"
+ROW_NO_FUTURE = "no futures settlement for delivery {delivery} on {trade_date}"
+ROW_BELOW_INTRINSIC = (
+    "premium {premium:.10g} is below the discounted intrinsic value {bound:.10g}"
+    " (F={forward:.10g}, D={discount:.10g}{curve})"
+)
+ROW_ABOVE_BOUND = (
+    "premium {premium:.10g} is above the no-arbitrage bound {bound:.10g}"
+    " (D x {what}, D={discount:.10g}{curve})"
+)
+ROW_NO_CURVE = "; no zero curve stored for the day, r = 0"
+ROW_CONFLICT = "same key as line(s) {lines} with different values"
+ROW_REPEAT = "repeats line {line}"
+
+
+class StoreUnavailableError(CalibError):
+    """The database cannot be reached or used (server down, file locked, disk full)."""
+
+    TEMPLATE = "database {url}: {detail}"
+
+    def __init__(self, url: str, detail: str) -> None:
+        self.url = url
+        self.detail = detail
+        super().__init__(self.TEMPLATE.format(url=url, detail=detail))

@@ -19,3 +19,87 @@ settings.load_profile(os.environ.get("HYPOTHESIS_PROFILE", "dev"))
 def rng() -> np.random.Generator:
     """A seeded generator; every random test is reproducible."""
     return np.random.default_rng(20261201)
+
+
+# --- databases: every store test runs on SQLite and on PostgreSQL ------------------------------
+# PostgreSQL comes from CALIB_TEST_PG_URL; each run works in its own schema, dropped afterwards.
+
+import uuid  # noqa: E402
+from collections.abc import Iterator  # noqa: E402
+from contextlib import contextmanager  # noqa: E402
+from pathlib import Path  # noqa: E402
+
+import calib.store.models  # noqa: E402, F401  (registers the tables on Base.metadata)
+from calib.store.base import Base  # noqa: E402
+from calib.store.engine import Store, create_store_engine, make_store  # noqa: E402
+from calib.store.migrate import upgrade  # noqa: E402
+
+PG_URL_VAR = "CALIB_TEST_PG_URL"
+ENGINES = [
+    pytest.param("sqlite", id="sqlite"),
+    pytest.param("postgresql", id="postgresql", marks=pytest.mark.postgres),
+]
+
+
+def with_schema(url: str, schema: str) -> str:
+    """``url`` with PostgreSQL's search path set to ``schema`` (psycopg connection option)."""
+    sep = "&" if "?" in url else "?"
+    return f"{url}{sep}options=-csearch_path%3D{schema}"
+
+
+@contextmanager
+def fresh_database(engine: str, folder: Path) -> Iterator[str]:
+    """The URL of a new, empty database of ``engine`` ("sqlite" or "postgresql")."""
+    if engine == "sqlite":
+        yield f"sqlite:///{folder / f'calib-{uuid.uuid4().hex[:8]}.sqlite'}"
+        return
+    base = os.environ.get(PG_URL_VAR)
+    if not base:
+        pytest.skip(f"PostgreSQL tests skipped: {PG_URL_VAR} is not set")
+    schema = f"calib_test_{uuid.uuid4().hex[:12]}"
+    admin = create_store_engine(base)
+    with admin.begin() as conn:
+        conn.exec_driver_sql(f"CREATE SCHEMA {schema}")
+    try:
+        yield with_schema(base, schema)
+    finally:
+        with admin.begin() as conn:
+            conn.exec_driver_sql(f"DROP SCHEMA {schema} CASCADE")
+        admin.dispose()
+
+
+@pytest.fixture(params=ENGINES)
+def empty_db_url(request: pytest.FixtureRequest, tmp_path: Path) -> Iterator[str]:
+    """A new empty database (no schema), on each engine."""
+    with fresh_database(request.param, tmp_path) as url:
+        yield url
+
+
+@pytest.fixture(scope="session", params=ENGINES)
+def _migrated_db_url(
+    request: pytest.FixtureRequest, tmp_path_factory: pytest.TempPathFactory
+) -> Iterator[str]:
+    with fresh_database(request.param, tmp_path_factory.mktemp("db")) as url:
+        engine = create_store_engine(url)
+        upgrade(engine)
+        engine.dispose()
+        yield url
+
+
+@pytest.fixture
+def db_url(_migrated_db_url: str) -> Iterator[str]:
+    """A database migrated to head, on each engine; emptied after each test."""
+    yield _migrated_db_url
+    engine = create_store_engine(_migrated_db_url)
+    with engine.begin() as conn:
+        for table in reversed(Base.metadata.sorted_tables):
+            conn.execute(table.delete())
+    engine.dispose()
+
+
+@pytest.fixture
+def store(db_url: str) -> Iterator[Store]:
+    """A :class:`~calib.store.engine.Store` on ``db_url``."""
+    made = make_store(db_url)
+    yield made
+    made.engine.dispose()

@@ -39,6 +39,7 @@ def _register_all() -> None:
 # Command modules, each with register(app); one line per group keeps merges simple.
 _COMMAND_MODULES: list[str] = [
     # one module name per line
+    "store_cmds",
 ]
 
 

@@ -1,0 +1,168 @@
+"""Ingest throughput: one year of a daily option chain, validated and stored.
+
+The chain (invented commodity ``QRX``): 24 monthly futures, 24 option expiries x 20 strikes x
+call/put on each of ~240 trading days, about 230,000 option rows, Black-76 premiums. Figures:
+calib's ``ingest_file`` (read CSV, validate every rule, store in one transaction) into a fresh
+SQLite file, and the peer: the sqlite3 module's ``executemany`` of the same rows, already as
+tuples, into a table of the same shape, with no reading and no validation (the ceiling). If
+``CALIB_TEST_PG_URL`` is set, calib's figure on PostgreSQL too (in a throw-away schema).
+"""
+
+from __future__ import annotations
+
+import csv
+import os
+import sqlite3
+import tempfile
+import time
+import uuid
+from datetime import date, timedelta
+from pathlib import Path
+
+import numpy as np
+
+from calib.model.black76 import price
+from calib.store.engine import Store, create_store_engine, make_store
+from calib.store.migrate import upgrade
+from calib.workflows.ingest import NewCommodity, ingest_file
+
+COMMODITY = "QRX"
+N_DAYS = 240
+N_FUTURES = 24
+N_STRIKES = 20
+MATURITIES_MONTHS = (1, 3, 6, 12, 24)
+
+
+def _weekdays(start: date, count: int) -> list[date]:
+    days: list[date] = []
+    day = start
+    while len(days) < count:
+        if day.weekday() < 5:
+            days.append(day)
+        day += timedelta(days=1)
+    return days
+
+
+def _month(d: date, ahead: int) -> date:
+    m = d.month - 1 + ahead
+    return date(d.year + m // 12, m % 12 + 1, 1)
+
+
+def write_year(folder: Path, seed: int = 7) -> tuple[Path, Path, Path, list[tuple[object, ...]]]:
+    """Write futures, rates and options CSV files for one invented year; also the option rows."""
+    rng = np.random.default_rng(seed)
+    days = _weekdays(date(2031, 1, 6), N_DAYS)
+    fut_rows: list[tuple[object, ...]] = []
+    rate_rows: list[tuple[object, ...]] = []
+    opt_rows: list[tuple[object, ...]] = []
+    level = 60.0
+    rate = 0.03
+    for day in days:
+        level *= float(np.exp(0.02 * rng.standard_normal()))
+        deliveries = [_month(day, k) for k in range(2, N_FUTURES + 2)]
+        settles = level * np.exp(0.01 * np.arange(N_FUTURES))
+        fut_rows += [
+            (day, COMMODITY, d, round(float(s), 4))
+            for d, s in zip(deliveries, settles, strict=True)
+        ]
+        rate_rows += [(day, _month(day, m), rate) for m in MATURITIES_MONTHS]
+        for d, f in zip(deliveries, settles, strict=True):
+            f = round(float(f), 4)
+            expiry = d - timedelta(days=5)
+            t = (expiry - day).days / 365.0
+            strikes = np.round(f * np.linspace(0.6, 1.4, N_STRIKES), 2)
+            for is_call in (True, False):
+                prem = price(f, strikes, t, rate, 0.35, "call" if is_call else "put")
+                kind = "call" if is_call else "put"
+                opt_rows += [
+                    (day, COMMODITY, d, expiry, kind, float(k), round(float(p), 6))
+                    for k, p in zip(strikes, prem, strict=True)
+                    if p > 1e-6
+                ]
+    paths = (folder / "futures.csv", folder / "rates.csv", folder / "options.csv")
+    headers = (
+        ("trade_date", "commodity", "delivery", "settle"),
+        ("trade_date", "maturity", "zero_rate"),
+        ("trade_date", "commodity", "delivery", "expiry", "kind", "strike", "premium"),
+    )
+    for path, header, rows in zip(paths, headers, (fut_rows, rate_rows, opt_rows), strict=True):
+        with path.open("w", newline="") as handle:
+            writer = csv.writer(handle)
+            writer.writerow(header)
+            writer.writerows(rows)
+    return paths[0], paths[1], paths[2], opt_rows
+
+
+def _calib(store: Store, futures: Path, rates: Path, options: Path) -> tuple[float, int]:
+    upgrade(store.engine)
+    new = NewCommodity()
+    ingest_file(store.sessions, futures, "futures", user="bench", create=new)
+    ingest_file(store.sessions, rates, "rates", user="bench")
+    start = time.perf_counter()
+    report = ingest_file(store.sessions, options, "options", user="bench")
+    elapsed = time.perf_counter() - start
+    assert report.rows_rejected == 0, report.problems[:3]
+    return elapsed, report.rows_accepted
+
+
+def _peer(path: Path, rows: list[tuple[object, ...]]) -> float:
+    con = sqlite3.connect(path, isolation_level=None)
+    con.execute("PRAGMA journal_mode=WAL")
+    con.execute("PRAGMA synchronous=NORMAL")
+    con.execute(
+        "CREATE TABLE option_quotes (id INTEGER PRIMARY KEY, batch_id INTEGER, commodity_id "
+        "INTEGER, trade_date DATE, delivery DATE, expiry DATE, is_call BOOLEAN, strike FLOAT, "
+        "premium FLOAT, implied_vol FLOAT, bid FLOAT, ask FLOAT, line INTEGER, UNIQUE "
+        "(commodity_id, trade_date, delivery, expiry, is_call, strike, batch_id))"
+    )
+    tuples = [
+        (1, 1, str(r[0]), str(r[2]), str(r[3]), r[4] == "call", r[5], r[6], None, None, None, j)
+        for j, r in enumerate(rows, start=2)
+    ]
+    start = time.perf_counter()
+    con.execute("BEGIN")
+    con.executemany(
+        "INSERT INTO option_quotes (batch_id, commodity_id, trade_date, delivery, expiry, "
+        "is_call, strike, premium, implied_vol, bid, ask, line) "
+        "VALUES (?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?)",
+        tuples,
+    )
+    con.execute("COMMIT")
+    elapsed = time.perf_counter() - start
+    con.close()
+    return elapsed
+
+
+def main() -> None:
+    """Print calib's and the peer's option rows per second on SQLite, the ratio, and PostgreSQL."""
+    with tempfile.TemporaryDirectory() as tmp:
+        folder = Path(tmp)
+        futures, rates, options, rows = write_year(folder)
+        store = make_store(f"sqlite:///{folder / 'bench.sqlite'}")
+        try:
+            own, count = _calib(store, futures, rates, options)
+        finally:
+            store.engine.dispose()
+        peer = _peer(folder / "peer.sqlite", rows)
+        print(f"option rows: {count} over {N_DAYS} trading days")
+        print(f"calib ingest (read CSV + validate + store), SQLite: {count / own:,.0f} rows/s")
+        print(f"peer: sqlite3 executemany, no read, no validation: {count / peer:,.0f} rows/s")
+        print(f"ratio calib / peer: {peer / own:.2f}")
+        pg = os.environ.get("CALIB_TEST_PG_URL")
+        if pg:
+            schema = f"calib_bench_{uuid.uuid4().hex[:8]}"
+            admin = create_store_engine(pg)
+            with admin.begin() as conn:
+                conn.exec_driver_sql(f"CREATE SCHEMA {schema}")
+            sep = "&" if "?" in pg else "?"
+            store = make_store(f"{pg}{sep}options=-csearch_path%3D{schema}")
+            try:
+                own_pg, count = _calib(store, futures, rates, options)
+                print(f"calib ingest, PostgreSQL: {count / own_pg:,.0f} rows/s")
+            finally:
+                store.engine.dispose()
+                with admin.begin() as conn:
+                    conn.exec_driver_sql(f"DROP SCHEMA {schema} CASCADE")
+                admin.dispose()
+        else:
+            print("PostgreSQL: skipped (CALIB_TEST_PG_URL not set)")

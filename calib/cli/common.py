@@ -1,0 +1,65 @@
+"""Pieces every command shares: the ``--db`` and ``--json`` options and opening the store.
+
+A command that touches the database takes ``db: DbOption = None`` and opens the store with
+``with open_store(db) as store:``; the URL is ``--db``, else ``CALIB_DB``, else
+``sqlite:///db/calib.sqlite`` (see :mod:`calib.settings`).
+"""
+
+from __future__ import annotations
+
+import json
+from collections.abc import Iterator
+from contextlib import contextmanager
+from datetime import date, datetime
+from typing import Annotated, Any
+
+import typer
+from sqlalchemy.exc import OperationalError
+
+from calib.errors import StoreUnavailableError
+from calib.settings import Settings, get_settings
+from calib.store.engine import Store, store_for
+from calib.store.migrate import check_current
+
+DbOption = Annotated[
+    str | None,
+    typer.Option(
+        "--db",
+        metavar="URL",
+        help="Database URL (default: $CALIB_DB, else sqlite:///db/calib.sqlite).",
+        show_default=False,
+    ),
+]
+JsonOption = Annotated[bool, typer.Option("--json", help="Print the result as JSON.")]
+
+
+@contextmanager
+def open_store(db: str | None, *, check: bool = True) -> Iterator[tuple[Store, Settings]]:
+    """The store named by ``--db`` (or the settings) and the settings, for a ``with`` block.
+
+    With ``check`` (the default) the database must be at this program's schema revision
+    (:func:`calib.store.migrate.check_current`). A database that cannot be reached raises
+    :class:`~calib.errors.StoreUnavailableError` (one line, no traceback).
+    """
+    settings = get_settings(db)
+    with store_for(settings.db_url) as store:
+        try:
+            if check:
+                check_current(store.engine)
+            yield store, settings
+        except OperationalError as exc:
+            detail = str(exc.orig).strip().splitlines()[0] if exc.orig else str(exc)
+            raise StoreUnavailableError(store.url, detail) from None
+
+
+def _default(value: object) -> Any:
+    if isinstance(value, date | datetime):
+        return value.isoformat()
+    if hasattr(value, "tolist"):
+        return value.tolist()
+    raise TypeError(f"not JSON serialisable: {type(value).__name__}")
+
+
+def echo_json(payload: object) -> None:
+    """Print ``payload`` as indented JSON (dates in ISO form, numpy values as numbers)."""
+    typer.echo(json.dumps(payload, indent=2, default=_default, allow_nan=False))

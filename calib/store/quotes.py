@@ -1,0 +1,579 @@
+"""Reading and writing quotes: the store functions workflows call.
+
+Every function takes the session as the keyword ``session`` and does one thing; the caller
+owns the transaction (STYLE 13).
+
+Versions
+--------
+Rows are never updated. A later batch carrying the same key (commodity, trade date, delivery
+and, for options, expiry, kind and strike) supersedes the earlier value. Readers take an
+``as_of`` time (default: now) and see, per key, the row of the latest batch received at or
+before it (ties broken by batch id), i.e. what was known at that time.
+"""
+
+from __future__ import annotations
+
+from collections.abc import Mapping, Sequence
+from dataclasses import dataclass
+from datetime import date, datetime
+from typing import Any, cast
+
+import numpy as np
+import numpy.typing as npt
+import pandas as pd
+from sqlalchemy import ColumnElement, Select, Table, func, insert, select
+from sqlalchemy.orm import Session
+
+from calib.errors import UnknownCommodityError
+from calib.store.base import utc_now
+from calib.store.models import (
+    Commodity,
+    FuturesSettlement,
+    IngestBatch,
+    OptionQuote,
+    QuarantinedRow,
+    RateQuote,
+)
+from calib.types import BoolArray, FloatArray, IntArray
+
+DateArray = npt.NDArray[np.datetime64]
+"""``datetime64[D]`` array of calendar dates."""
+
+DAYS_PER_YEAR = 365.0
+"""ACT/365: the year fraction between two dates is their distance in days over 365."""
+
+FUTURES_KEY = ("commodity_id", "trade_date", "delivery")
+OPTIONS_KEY = ("commodity_id", "trade_date", "delivery", "expiry", "is_call", "strike")
+RATES_KEY = ("trade_date", "maturity")
+
+_futures = cast(Table, FuturesSettlement.__table__)
+_options = cast(Table, OptionQuote.__table__)
+_rates = cast(Table, RateQuote.__table__)
+_batches = cast(Table, IngestBatch.__table__)
+_quarantine = cast(Table, QuarantinedRow.__table__)
+
+
+def _frozen(values: Any, dtype: npt.DTypeLike) -> Any:
+    arr = np.array(values, dtype=dtype)
+    arr.flags.writeable = False
+    return arr
+
+
+def _dates(values: Sequence[date]) -> DateArray:
+    return np.asarray(_frozen(list(values), "datetime64[D]"))
+
+
+def year_fractions(start: date, end: DateArray) -> FloatArray:
+    """ACT/365 year fractions from ``start`` to each date of ``end``."""
+    origin = np.datetime64(start, "D")
+    days = (np.asarray(end, dtype="datetime64[D]") - origin) / np.timedelta64(1, "D")
+    return np.asarray(days / DAYS_PER_YEAR, dtype=np.float64)
+
+
+# --- records handed to workflows ---------------------------------------------------------------
+
+
+@dataclass(frozen=True)
+class FuturesCurve:
+    """One day's futures settlements, sorted by delivery. Arrays are read-only."""
+
+    delivery: DateArray
+    settle: FloatArray
+    row_id: IntArray
+
+    def __len__(self) -> int:
+        return len(self.settle)
+
+    def settle_for(self, delivery: DateArray) -> FloatArray:
+        """The settlement of each delivery in ``delivery`` (NaN where none is stored)."""
+        wanted = np.asarray(delivery, dtype="datetime64[D]")
+        pos = np.searchsorted(self.delivery, wanted).clip(0, max(len(self) - 1, 0))
+        if len(self) == 0:
+            return np.full(wanted.shape, np.nan)
+        found = self.delivery[pos] == wanted
+        return np.where(found, self.settle[pos], np.nan)
+
+
+@dataclass(frozen=True)
+class OptionChain:
+    """One day's option quotes, sorted by (delivery, expiry, put before call, strike).
+
+    ``premium``, ``implied_vol``, ``bid`` and ``ask`` are NaN where the file gave none (every
+    row has a premium or an implied volatility or both). Arrays are read-only.
+    """
+
+    delivery: DateArray
+    expiry: DateArray
+    is_call: BoolArray
+    strike: FloatArray
+    premium: FloatArray
+    implied_vol: FloatArray
+    bid: FloatArray
+    ask: FloatArray
+    row_id: IntArray
+
+    def __len__(self) -> int:
+        return len(self.strike)
+
+
+@dataclass(frozen=True)
+class ZeroCurve:
+    """One day's zero curve: continuously compounded rates, ACT/365, sorted by maturity."""
+
+    trade_date: date
+    maturity: DateArray
+    zero_rate: FloatArray
+    row_id: IntArray
+
+    def __len__(self) -> int:
+        return len(self.zero_rate)
+
+    def discount(self, dates: DateArray) -> FloatArray:
+        """Discount factors ``exp(-r(t) t)`` to ``dates``; 1 where the curve is empty.
+
+        Notes
+        -----
+        ``t`` is the ACT/365 year fraction from the trade date; ``r(t)`` is interpolated
+        linearly in ``t`` between the curve's points and held flat beyond its ends.
+        """
+        t = year_fractions(self.trade_date, dates)
+        if len(self) == 0:
+            return np.ones_like(t)
+        nodes = year_fractions(self.trade_date, self.maturity)
+        return np.asarray(np.exp(-np.interp(t, nodes, self.zero_rate) * t), dtype=np.float64)
+
+
+@dataclass(frozen=True)
+class DayQuotes:
+    """Everything stored for one commodity on one trading day, as known at ``as_of``."""
+
+    commodity: str
+    commodity_id: int
+    trade_date: date
+    as_of: datetime
+    futures: FuturesCurve
+    options: OptionChain
+    rates: ZeroCurve
+    batch_ids: tuple[int, ...]
+    """The batches the rows above came from (sorted)."""
+
+
+@dataclass(frozen=True)
+class CommodityRecord:
+    """A registered commodity."""
+
+    id: int
+    code: str
+    name: str
+    unit: str
+    currency: str
+    calendar_rule: str
+
+
+# --- commodities and batches -------------------------------------------------------------------
+
+
+def _record(row: Commodity) -> CommodityRecord:
+    return CommodityRecord(
+        id=row.id,
+        code=row.code,
+        name=row.name,
+        unit=row.unit,
+        currency=row.currency,
+        calendar_rule=row.calendar_rule,
+    )
+
+
+def get_commodity(*, session: Session, code: str) -> CommodityRecord | None:
+    """The commodity with ``code``, or ``None``."""
+    row = session.scalars(select(Commodity).where(Commodity.code == code)).one_or_none()
+    return None if row is None else _record(row)
+
+
+def require_commodity(*, session: Session, code: str) -> CommodityRecord:
+    """The commodity with ``code``; :class:`UnknownCommodityError` if there is none."""
+    found = get_commodity(session=session, code=code)
+    if found is None:
+        raise UnknownCommodityError([code])
+    return found
+
+
+def commodity_ids(*, session: Session, codes: Sequence[str]) -> dict[str, int]:
+    """Ids of those of ``codes`` that are registered."""
+    rows = session.execute(select(Commodity.code, Commodity.id).where(Commodity.code.in_(codes)))
+    return {code: id_ for code, id_ in rows}
+
+
+def add_commodity(
+    *, session: Session, code: str, name: str, unit: str, currency: str, calendar_rule: str
+) -> CommodityRecord:
+    """Register a commodity; returns it with its new id."""
+    row = Commodity(code=code, name=name, unit=unit, currency=currency, calendar_rule=calendar_rule)
+    session.add(row)
+    session.flush()
+    return _record(row)
+
+
+def find_loaded_batch(*, session: Session, kind: str, sha256: str) -> IngestBatch | None:
+    """The earliest ``loaded`` batch of ``kind`` with this content hash, if any."""
+    stmt = (
+        select(IngestBatch)
+        .where(
+            IngestBatch.sha256 == sha256, IngestBatch.kind == kind, IngestBatch.status == "loaded"
+        )
+        .order_by(IngestBatch.id)
+        .limit(1)
+    )
+    return session.scalars(stmt).one_or_none()
+
+
+def add_batch(
+    *,
+    session: Session,
+    kind: str,
+    status: str,
+    file_name: str,
+    sha256: str,
+    rows_read: int,
+    rows_accepted: int,
+    rows_rejected: int,
+    received_at: datetime,
+    received_by: str,
+) -> int:
+    """Record a received file; returns the batch id."""
+    batch = IngestBatch(
+        kind=kind,
+        status=status,
+        file_name=file_name,
+        sha256=sha256,
+        rows_read=rows_read,
+        rows_accepted=rows_accepted,
+        rows_rejected=rows_rejected,
+        received_at=received_at,
+        received_by=received_by,
+    )
+    session.add(batch)
+    session.flush()
+    return batch.id
+
+
+QUOTE_TABLES: Mapping[str, Table] = {"futures": _futures, "options": _options, "rates": _rates}
+"""The quote table of each batch kind."""
+
+
+def _db_dates(values: DateArray, dialect: str) -> list[Any]:
+    days = np.asarray(values, dtype="datetime64[D]")
+    codes, uniques = pd.factorize(days.astype(np.int64))
+    as_days = uniques.astype("datetime64[D]")
+    if dialect == "sqlite":  # SQLAlchemy's SQLite Date stores YYYY-MM-DD text
+        stored = np.array(np.datetime_as_string(as_days, unit="D").tolist(), dtype=object)
+    else:
+        stored = np.array(as_days.tolist(), dtype=object)
+    return list(stored[codes]) if len(uniques) else []
+
+
+def _db_values(values: Any, count: int, dialect: str) -> list[Any]:
+    if np.isscalar(values):
+        return [values] * count
+    arr = np.asarray(values)
+    if arr.dtype.kind == "M":
+        return _db_dates(arr, dialect)
+    if arr.dtype.kind == "f" and np.isnan(arr).any():
+        out = arr.astype(object)
+        out[np.isnan(arr)] = None
+        return list(out.tolist())
+    return list(arr.tolist())
+
+
+def insert_columns(
+    *, session: Session, table: Table, columns: Mapping[str, Any], count: int
+) -> None:
+    """Insert ``count`` rows given column by column, in bulk.
+
+    Parameters
+    ----------
+    session : the open session; the rows join its transaction.
+    table : the target table.
+    columns : column name -> numpy array of ``count`` values, or one scalar for every row.
+        ``datetime64`` arrays are dates; NaN in a float array is NULL.
+    count : number of rows.
+
+    Notes
+    -----
+    SQLAlchemy's per-row parameter processing would cost more than the database itself, so
+    the values are converted column-wise here and handed to the driver in one go: SQLite's
+    ``executemany``, PostgreSQL's ``COPY``. Only calib's own validated values come here.
+    """
+    if count == 0:
+        return
+    connection = session.connection()
+    dialect = connection.dialect
+    names = list(columns)
+    quote = dialect.identifier_preparer.quote
+    target = dialect.identifier_preparer.format_table(table)
+    column_list = ", ".join(quote(name) for name in names)
+    if dialect.name == "postgresql":
+        import psycopg  # the postgres extra; only reached with a PostgreSQL engine
+
+        # COPY in CSV form: ISO dates, shortest round-trip floats, empty = NULL
+        text = pd.DataFrame(
+            {name: _db_values(columns[name], count, "sqlite") for name in names}
+        ).to_csv(header=False, index=False, na_rep="")
+        raw = cast(psycopg.Connection[Any], connection.connection.dbapi_connection)
+        with (
+            raw.cursor() as cursor,
+            cursor.copy(f"COPY {target} ({column_list}) FROM STDIN WITH (FORMAT csv)") as copy,
+        ):
+            copy.write(text)
+        return
+    prepared = [_db_values(columns[name], count, dialect.name) for name in names]
+    rows = list(zip(*prepared, strict=True))
+    marks = ", ".join("?" for _ in names)
+    connection.exec_driver_sql(f"INSERT INTO {target} ({column_list}) VALUES ({marks})", rows)
+
+
+def insert_rows(*, session: Session, table: Table, rows: Sequence[Mapping[str, Any]]) -> None:
+    """Insert a few ``rows`` (one mapping per row) through SQLAlchemy's executemany."""
+    if rows:
+        session.execute(insert(table), list(rows))
+
+
+def quarantine(*, session: Session, rows: Sequence[Mapping[str, Any]]) -> None:
+    """Store refused rows (``batch_id, line, field, reason, raw``)."""
+    insert_rows(session=session, table=_quarantine, rows=rows)
+
+
+# --- versioned reads ---------------------------------------------------------------------------
+
+
+def _latest(
+    table: Table, key: Sequence[str], where: Sequence[ColumnElement[bool]], as_of: datetime
+) -> Select[Any]:
+    """Per ``key``, the row of the latest batch received at or before ``as_of``."""
+    version = (
+        func.row_number()
+        .over(
+            partition_by=[table.c[name] for name in key],
+            order_by=(_batches.c.received_at.desc(), _batches.c.id.desc()),
+        )
+        .label("version")
+    )
+    ranked = (
+        select(table, version)
+        .join(_batches, _batches.c.id == table.c.batch_id)
+        .where(*where, _batches.c.received_at <= as_of)
+        .subquery()
+    )
+    return select(*[ranked.c[c.name] for c in table.columns]).where(ranked.c.version == 1)
+
+
+def _frame(session: Session, stmt: Select[Any], columns: Sequence[str]) -> pd.DataFrame:
+    return pd.DataFrame(session.execute(stmt).all(), columns=list(columns))
+
+
+def _to_days(series: pd.Series) -> DateArray:
+    return np.asarray(pd.to_datetime(series).to_numpy().astype("datetime64[D]"))
+
+
+def futures_settlements(
+    *,
+    session: Session,
+    commodity_ids: Sequence[int],
+    start: date,
+    end: date,
+    as_of: datetime | None = None,
+) -> pd.DataFrame:
+    """Current futures settlements of several commodities over ``start..end`` (inclusive).
+
+    Columns ``id, batch_id, commodity_id, trade_date, delivery, settle, line`` (dates as
+    ``datetime.date``); one row per key, as known at ``as_of``.
+    """
+    where = [
+        _futures.c.commodity_id.in_(list(commodity_ids)),
+        _futures.c.trade_date.between(start, end),
+    ]
+    stmt = _latest(_futures, FUTURES_KEY, where, as_of or utc_now())
+    return _frame(session, stmt, [c.name for c in _futures.columns])
+
+
+def zero_curves(
+    *, session: Session, start: date, end: date, as_of: datetime | None = None
+) -> dict[date, ZeroCurve]:
+    """The stored zero curve of each trade date in ``start..end`` that has one."""
+    where = [_rates.c.trade_date.between(start, end)]
+    stmt = _latest(_rates, RATES_KEY, where, as_of or utc_now())
+    rows = sorted(session.execute(stmt).all(), key=lambda r: (r.trade_date, r.maturity))
+    by_day: dict[date, list[Any]] = {}
+    for row in rows:
+        by_day.setdefault(row.trade_date, []).append(row)
+    return {
+        day: ZeroCurve(
+            trade_date=day,
+            maturity=_dates([r.maturity for r in day_rows]),
+            zero_rate=_frozen([r.zero_rate for r in day_rows], np.float64),
+            row_id=_frozen([r.id for r in day_rows], np.int64),
+        )
+        for day, day_rows in by_day.items()
+    }
+
+
+def _nan(values: Sequence[float | None]) -> FloatArray:
+    return np.asarray(_frozen([np.nan if v is None else v for v in values], np.float64))
+
+
+def load_day(
+    *, session: Session, commodity: str, trade_date: date, as_of: datetime | None = None
+) -> DayQuotes:
+    """Futures, options and the zero curve of one commodity on one trading day.
+
+    Parameters
+    ----------
+    session : an open session (the caller owns the transaction).
+    commodity : commodity code.
+    trade_date : the trading day.
+    as_of : what was known at this time (aware datetime); default now.
+
+    Raises
+    ------
+    UnknownCommodityError
+        If ``commodity`` is not registered.
+    """
+    as_of = as_of or utc_now()
+    cid = require_commodity(session=session, code=commodity).id
+    fut = list(
+        session.execute(
+            _latest(
+                _futures,
+                FUTURES_KEY,
+                [_futures.c.commodity_id == cid, _futures.c.trade_date == trade_date],
+                as_of,
+            )
+        )
+    )
+    fut.sort(key=lambda r: r.delivery)
+    opt = list(
+        session.execute(
+            _latest(
+                _options,
+                OPTIONS_KEY,
+                [_options.c.commodity_id == cid, _options.c.trade_date == trade_date],
+                as_of,
+            )
+        )
+    )
+    opt.sort(key=lambda r: (r.delivery, r.expiry, r.is_call, r.strike))
+    curve = zero_curves(session=session, start=trade_date, end=trade_date, as_of=as_of).get(
+        trade_date,
+        ZeroCurve(
+            trade_date=trade_date,
+            maturity=_dates([]),
+            zero_rate=_frozen([], np.float64),
+            row_id=_frozen([], np.int64),
+        ),
+    )
+    batch_ids = {r.batch_id for r in fut} | {r.batch_id for r in opt}
+    if len(curve):
+        batch_ids |= set(
+            session.scalars(select(_rates.c.batch_id).where(_rates.c.id.in_(curve.row_id.tolist())))
+        )
+    return DayQuotes(
+        commodity=commodity,
+        commodity_id=cid,
+        trade_date=trade_date,
+        as_of=as_of,
+        futures=FuturesCurve(
+            delivery=_dates([r.delivery for r in fut]),
+            settle=_frozen([r.settle for r in fut], np.float64),
+            row_id=_frozen([r.id for r in fut], np.int64),
+        ),
+        options=OptionChain(
+            delivery=_dates([r.delivery for r in opt]),
+            expiry=_dates([r.expiry for r in opt]),
+            is_call=_frozen([r.is_call for r in opt], np.bool_),
+            strike=_frozen([r.strike for r in opt], np.float64),
+            premium=_nan([r.premium for r in opt]),
+            implied_vol=_nan([r.implied_vol for r in opt]),
+            bid=_nan([r.bid for r in opt]),
+            ask=_nan([r.ask for r in opt]),
+            row_id=_frozen([r.id for r in opt], np.int64),
+        ),
+        rates=curve,
+        batch_ids=tuple(sorted(batch_ids)),
+    )
+
+
+def trade_dates(
+    *,
+    session: Session,
+    commodity: str,
+    start: date | None = None,
+    end: date | None = None,
+    as_of: datetime | None = None,
+) -> list[date]:
+    """Trading days (ascending) with at least one futures settlement known at ``as_of``.
+
+    ``start`` and ``end`` bound the days (inclusive) when given.
+    """
+    cid = require_commodity(session=session, code=commodity).id
+    stmt = (
+        select(_futures.c.trade_date)
+        .join(_batches, _batches.c.id == _futures.c.batch_id)
+        .where(_futures.c.commodity_id == cid, _batches.c.received_at <= (as_of or utc_now()))
+        .distinct()
+        .order_by(_futures.c.trade_date)
+    )
+    if start is not None:
+        stmt = stmt.where(_futures.c.trade_date >= start)
+    if end is not None:
+        stmt = stmt.where(_futures.c.trade_date <= end)
+    return list(session.scalars(stmt))
+
+
+def load_futures_history(
+    *,
+    session: Session,
+    commodity: str,
+    start: date | None = None,
+    end: date | None = None,
+    as_of: datetime | None = None,
+) -> pd.DataFrame:
+    """Every futures settlement of ``commodity`` over ``start..end``, as known at ``as_of``.
+
+    Returns
+    -------
+    pandas.DataFrame
+        Columns ``trade_date`` and ``delivery`` (``datetime64``), ``settle`` (float64),
+        ``row_id`` and ``batch_id`` (int64); sorted by trade date, then delivery; one row per
+        (trade date, delivery).
+    """
+    cid = require_commodity(session=session, code=commodity).id
+    where: list[ColumnElement[bool]] = [_futures.c.commodity_id == cid]
+    if start is not None:
+        where.append(_futures.c.trade_date >= start)
+    if end is not None:
+        where.append(_futures.c.trade_date <= end)
+    frame = _frame(
+        session,
+        _latest(_futures, FUTURES_KEY, where, as_of or utc_now()),
+        [c.name for c in _futures.columns],
+    )
+    out = pd.DataFrame(
+        {
+            "trade_date": _to_days(frame["trade_date"]),
+            "delivery": _to_days(frame["delivery"]),
+            "settle": frame["settle"].to_numpy(dtype=np.float64),
+            "row_id": frame["id"].to_numpy(dtype=np.int64),
+            "batch_id": frame["batch_id"].to_numpy(dtype=np.int64),
+        }
+    )
+    return out.sort_values(["trade_date", "delivery"], ignore_index=True)
+
+
+def quarantined_rows(*, session: Session, batch_id: int) -> list[QuarantinedRow]:
+    """The rows refused in a batch, in file order."""
+    stmt = (
+        select(QuarantinedRow)
+        .where(QuarantinedRow.batch_id == batch_id)
+        .order_by(QuarantinedRow.line, QuarantinedRow.id)
+    )
+    return list(session.scalars(stmt))

@@ -1,0 +1,125 @@
+"""Store queries: one day, trading days, futures history, versions, and the day index seek."""
+
+from __future__ import annotations
+
+from datetime import UTC, date, datetime
+from pathlib import Path
+
+import numpy as np
+import pytest
+from sqlalchemy import text
+
+from calib.errors import UnknownCommodityError
+from calib.store.engine import Store
+from calib.store.quotes import load_day, load_futures_history, trade_dates
+from calib.workflows.ingest import NewCommodity, ingest_file
+
+FUT_HEADER = "trade_date,commodity,delivery,settle\n"
+T1 = datetime(2025, 1, 1, tzinfo=UTC)  # receipt times in the past of the test run
+T2 = datetime(2025, 1, 2, tzinfo=UTC)
+
+
+def _put(store: Store, path: Path, body: str, kind: str, when: datetime) -> int:
+    path.write_text(body)
+    report = ingest_file(
+        store.sessions,
+        path,
+        kind,
+        user="t",
+        create=NewCommodity(),
+        received_at=when,  # type: ignore[arg-type]
+    )
+    assert report.rows_rejected == 0, report.problems
+    return report.batch_id
+
+
+@pytest.fixture
+def history(store: Store, tmp_path: Path) -> tuple[Store, int, int]:
+    first = _put(
+        store,
+        tmp_path / "a.csv",
+        FUT_HEADER
+        + "2031-03-03,QRX,2031-05-01,50\n2031-03-03,QRX,2031-06-01,52\n"
+        + "2031-03-04,QRX,2031-05-01,51\n2031-03-05,QRX,2031-05-01,49\n"
+        + "2031-03-03,OTH,2031-05-01,7\n",
+        "futures",
+        T1,
+    )
+    second = _put(
+        store, tmp_path / "b.csv", FUT_HEADER + "2031-03-04,QRX,2031-05-01,51.5\n", "futures", T2
+    )
+    _put(
+        store,
+        tmp_path / "r.csv",
+        "trade_date,maturity,zero_rate\n2031-03-03,2032-03-03,0.05\n2031-03-03,2031-06-03,0.04\n",
+        "rates",
+        T1,
+    )
+    return store, first, second
+
+
+def test_load_day_returns_sorted_read_only_arrays(history: tuple[Store, int, int]) -> None:
+    store, first, _ = history
+    with store.sessions() as s:
+        day = load_day(session=s, commodity="QRX", trade_date=date(2031, 3, 3))
+    np.testing.assert_array_equal(
+        day.futures.delivery, np.array(["2031-05-01", "2031-06-01"], dtype="datetime64[D]")
+    )
+    np.testing.assert_array_equal(day.futures.settle, [50.0, 52.0])
+    np.testing.assert_array_equal(day.rates.zero_rate, [0.04, 0.05])  # sorted by maturity
+    assert first in day.batch_ids and len(day.options) == 0
+    assert not day.futures.settle.flags.writeable
+    np.testing.assert_array_equal(
+        day.futures.settle_for(np.array(["2031-06-01", "2031-07-01"], dtype="datetime64[D]")),
+        [52.0, np.nan],
+    )
+    # ACT/365, flat beyond the last point: exp(-0.05 * 730/365) (common practice)
+    far = day.rates.discount(np.array(["2033-03-02"], dtype="datetime64[D]"))
+    np.testing.assert_allclose(far, np.exp(-0.05 * 730 / 365), rtol=1e-15)
+
+
+def test_trade_dates_and_history_follow_as_of(history: tuple[Store, int, int]) -> None:
+    store, first, second = history
+    with store.sessions() as s:
+        days = trade_dates(session=s, commodity="QRX")
+        bounded = trade_dates(
+            session=s, commodity="QRX", start=date(2031, 3, 4), end=date(2031, 3, 4)
+        )
+        now = load_futures_history(session=s, commodity="QRX")
+        then = load_futures_history(
+            session=s, commodity="QRX", as_of=datetime(2025, 1, 1, 12, tzinfo=UTC)
+        )
+        before = trade_dates(session=s, commodity="QRX", as_of=datetime(2024, 1, 1, tzinfo=UTC))
+    assert days == [date(2031, 3, 3), date(2031, 3, 4), date(2031, 3, 5)]
+    assert bounded == [date(2031, 3, 4)] and before == []
+    assert list(now.columns) == ["trade_date", "delivery", "settle", "row_id", "batch_id"]
+    assert now["settle"].tolist() == [50.0, 52.0, 51.5, 49.0]
+    assert now["batch_id"].tolist() == [first, first, second, first]
+    assert then["settle"].tolist() == [50.0, 52.0, 51.0, 49.0]
+
+
+def test_unknown_commodity_in_queries(store: Store) -> None:
+    with store.sessions() as s, pytest.raises(UnknownCommodityError, match="'NOPE'"):
+        load_day(session=s, commodity="NOPE", trade_date=date(2031, 3, 3))
+
+
+def test_one_day_is_one_index_seek(store: Store) -> None:
+    dialect = store.engine.dialect.name
+    with store.engine.connect() as conn:
+        if dialect == "sqlite":
+            plan = conn.exec_driver_sql(
+                "EXPLAIN QUERY PLAN SELECT * FROM option_quotes "
+                "WHERE commodity_id = 1 AND trade_date = '2031-03-03'"
+            ).all()
+            detail = " ".join(str(row[-1]) for row in plan)
+            assert "USING INDEX" in detail and "(commodity_id=? AND trade_date=?)" in detail
+        else:
+            conn.execute(text("SET enable_seqscan = off"))  # tiny tables would be scanned
+            plan = conn.execute(
+                text(
+                    "EXPLAIN SELECT * FROM option_quotes "
+                    "WHERE commodity_id = 1 AND trade_date = '2031-03-03'"
+                )
+            ).all()
+            detail = " ".join(str(row[0]) for row in plan)
+            assert "uq_option_quotes_commodity_id" in detail
