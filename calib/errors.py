@@ -265,3 +265,116 @@ class StoreUnavailableError(CalibError):
         self.url = url
         self.detail = detail
         super().__init__(self.TEMPLATE.format(url=url, detail=detail))
+
+
+# --- estimation (Kalman-filter maximum likelihood) ---------------------------------------------
+
+
+class EstimationDataError(InputError, ValueError):
+    """Curves the estimator cannot use; the message names the offending day, slot or size."""
+
+
+class CurveShapeError(EstimationDataError):
+    """Inputs of inconsistent shapes, or dates that do not increase."""
+
+    TEMPLATE = "curves: {reason}"
+
+    def __init__(self, reason: str) -> None:
+        self.reason = reason
+        super().__init__(self.TEMPLATE.format(reason=reason))
+
+
+class TooFewDaysError(EstimationDataError):
+    """Fewer observation days than the estimate needs."""
+
+    TEMPLATE = "need at least {minimum} observation days, got {count}"
+
+    def __init__(self, count: int, minimum: int) -> None:
+        self.count = count
+        self.minimum = minimum
+        super().__init__(self.TEMPLATE.format(count=count, minimum=minimum))
+
+
+class TooFewContractsError(EstimationDataError):
+    """Fewer contract slots than the estimate needs."""
+
+    TEMPLATE = "need at least {minimum} contracts per day, got {count}"
+
+    def __init__(self, count: int, minimum: int) -> None:
+        self.count = count
+        self.minimum = minimum
+        super().__init__(self.TEMPLATE.format(count=count, minimum=minimum))
+
+
+class EmptySlotError(EstimationDataError):
+    """A contract slot without a single price: its noise cannot be estimated."""
+
+    TEMPLATE = "contract slot {slot} has no price on any day"
+
+    def __init__(self, slot: int) -> None:
+        self.slot = slot
+        super().__init__(self.TEMPLATE.format(slot=slot))
+
+
+class BadPriceError(EstimationDataError):
+    """A price that is not a positive finite number, or a maturity that is not ahead."""
+
+    TEMPLATE = "{what} {value!r} on day {day} ({date}), slot {slot}: {reason}"
+
+    def __init__(
+        self, what: str, value: float, day: int, date: object, slot: int, reason: str
+    ) -> None:
+        self.day = day
+        self.slot = slot
+        super().__init__(
+            self.TEMPLATE.format(
+                what=what, value=value, day=day, date=date, slot=slot, reason=reason
+            )
+        )
+
+
+class FirstCurveError(EstimationDataError):
+    """The first day cannot start the filter (it needs two prices of distinct maturity)."""
+
+    TEMPLATE = "the first day ({date}) needs at least two prices of distinct maturity, got {count}"
+
+    def __init__(self, date: object, count: int) -> None:
+        self.count = count
+        super().__init__(self.TEMPLATE.format(date=date, count=count))
+
+
+class CurveGapError(EstimationDataError):
+    """Consecutive observation days further apart than the filter is allowed to bridge."""
+
+    TEMPLATE = (
+        "gap of {days:g} days between {start} and {end} exceeds the maximum of {maximum:g} days"
+    )
+
+    def __init__(self, days: float, start: object, end: object, maximum: float) -> None:
+        self.days = days
+        self.maximum = maximum
+        super().__init__(self.TEMPLATE.format(days=days, start=start, end=end, maximum=maximum))
+
+
+class QuoteTableError(EstimationDataError):
+    """A long futures table that cannot be turned into curves (duplicates, bad columns)."""
+
+    TEMPLATE = "futures table: {reason}"
+
+    def __init__(self, reason: str) -> None:
+        self.reason = reason
+        super().__init__(self.TEMPLATE.format(reason=reason))
+
+
+class EstimationError(CalibError):
+    """Maximum likelihood failed outright (no start gave a finite likelihood)."""
+
+    TEMPLATE = "maximum likelihood failed: {reason}"
+
+    def __init__(self, reason: str) -> None:
+        self.reason = reason
+        super().__init__(self.TEMPLATE.format(reason=reason))
+
+
+class EstimationWarning(CalibWarning):
+    """The estimate did not converge, or its Hessian gives no standard errors; see the result."""
