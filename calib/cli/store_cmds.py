@@ -120,7 +120,9 @@ def ingest_cmd(
                 _print_report(report)
     if as_json:
         echo_json({"files": results, "exit_code": code})
-    raise typer.Exit(code)
+    # SystemExit, not typer.Exit: calib.cli.main runs click with standalone_mode=False, which
+    # turns typer.Exit into a return value that main() does not pass on.
+    raise SystemExit(code)
 
 
 def _number(value: float) -> str:

@@ -96,8 +96,8 @@ def only_problem(store: Store, path: Path, kind: str = "options") -> tuple[str, 
 
 
 def test_missing_required_column_refuses_file(day: Store, tmp_path: Path) -> None:
-    path = write_csv(tmp_path / "o.csv", OPTION_HEADER[:-2] + ["premium"], [])
-    with pytest.raises(IngestFileError, match="missing required column.*strike"):
+    path = write_csv(tmp_path / "o.csv", [*OPTION_HEADER[:-2], "premium"], [])
+    with pytest.raises(IngestFileError, match=r"missing required column.*strike"):
         ingest(day, path, "options")
 
 
@@ -132,7 +132,7 @@ def test_unknown_commodity_refused_then_created(store: Store, tmp_path: Path) ->
         ["trade_date", "commodity", "delivery", "settle"],
         [[TD, "ZZV", "2031-05-01", 10.0]],
     )
-    with pytest.raises(IngestFileError, match="unknown commodity 'ZZV'.*--create"):
+    with pytest.raises(IngestFileError, match=r"unknown commodity 'ZZV'.*--create"):
         ingest(store, path, "futures")
     with store.sessions() as s:
         assert s.scalar(select(func.count()).select_from(IngestBatch)) == 0
@@ -228,10 +228,10 @@ def test_bid_ask_rules(day: Store, tmp_path: Path) -> None:
     header = [*OPTION_HEADER, "bid", "ask"]
     p = fair(50.0)
     rows = [
-        option(50.0, p) + [p - 0.1, p + 0.1],
-        option(51.0, fair(51.0)) + [2.0, 1.0],
-        option(52.0, fair(52.0)) + [-1.0, 1.0],
-        option(53.0, fair(53.0)) + ["", ""],
+        [*option(50.0, p), p - 0.1, p + 0.1],
+        [*option(51.0, fair(51.0)), 2.0, 1.0],
+        [*option(52.0, fair(52.0)), -1.0, 1.0],
+        [*option(53.0, fair(53.0)), "", ""],
     ]
     report = ingest(day, write_csv(tmp_path / "o.csv", header, rows), "options")
     assert report.rows_accepted == 2
