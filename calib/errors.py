@@ -143,6 +143,8 @@ class CalibrationNotConvergedWarning(CalibWarning):
     """Gauss-Newton steps stopped at the iteration limit; the result carries the flag too."""
 
     TEMPLATE = "Gauss-Newton did not converge in {iterations} iterations (last step {step:.3g})"
+
+
 # --- quote store and ingestion ----------------------------------------------------------------
 
 
@@ -378,3 +380,120 @@ class EstimationError(CalibError):
 
 class EstimationWarning(CalibWarning):
     """The estimate did not converge, or its Hessian gives no standard errors; see the result."""
+
+
+# --- estimates, calibration runs and approvals (storage and workflows) -------------------------
+
+
+class UnknownRunError(InputError):
+    """A calibration run id that is not stored."""
+
+    TEMPLATE = "no calibration run {run_id}"
+
+    def __init__(self, run_id: int) -> None:
+        self.run_id = run_id
+        super().__init__(self.TEMPLATE.format(run_id=run_id))
+
+
+class UnknownEstimateError(InputError):
+    """A historical estimate id that is not stored, or belongs to another commodity."""
+
+    TEMPLATE = "no historical estimate {estimate_id}{detail}"
+
+    def __init__(self, estimate_id: int, detail: str = "") -> None:
+        self.estimate_id = estimate_id
+        super().__init__(self.TEMPLATE.format(estimate_id=estimate_id, detail=detail))
+
+
+class NoEstimateError(InputError):
+    """No converged historical estimate to hold the slow parameters at."""
+
+    TEMPLATE = (
+        "no converged historical estimate for {commodity}{unconverged}: run `calib estimate` or "
+        "`calib estimates import`, or name one with --estimate"
+    )
+
+    def __init__(self, commodity: str, unconverged: list[int]) -> None:
+        self.commodity = commodity
+        self.unconverged = list(unconverged)
+        extra = f" (not converged: {', '.join(map(str, unconverged))})" if unconverged else ""
+        super().__init__(self.TEMPLATE.format(commodity=commodity, unconverged=extra))
+
+
+class NotConvergedEstimateError(InputError):
+    """An estimate named explicitly that did not converge (never used silently)."""
+
+    TEMPLATE = "historical estimate {estimate_id} did not converge ({message}); it is not used"
+
+    def __init__(self, estimate_id: int, message: str) -> None:
+        self.estimate_id = estimate_id
+        super().__init__(self.TEMPLATE.format(estimate_id=estimate_id, message=message))
+
+
+class IllegalTransitionError(InputError):
+    """A status change the run's state machine does not allow."""
+
+    TEMPLATE = "run {run_id} is {current}: it cannot become {wanted} (allowed: {allowed})"
+
+    def __init__(self, run_id: int, current: str, wanted: str, allowed: list[str]) -> None:
+        self.run_id = run_id
+        self.current = current
+        self.wanted = wanted
+        super().__init__(
+            self.TEMPLATE.format(
+                run_id=run_id,
+                current=current,
+                wanted=wanted,
+                allowed=", ".join(allowed) if allowed else "none, it is final",
+            )
+        )
+
+
+class EstimateFileError(InputError):
+    """An estimate file that cannot be imported; nothing is stored."""
+
+    TEMPLATE = "{file}: {reason}"
+
+    def __init__(self, file: str, reason: str) -> None:
+        self.file = file
+        self.reason = reason
+        super().__init__(self.TEMPLATE.format(file=file, reason=reason))
+
+
+class SettingsFileError(InputError):
+    """A settings file (TOML) that cannot be read or holds a bad value."""
+
+    TEMPLATE = "{file}: {reason}"
+
+    def __init__(self, file: str, reason: str) -> None:
+        self.file = file
+        self.reason = reason
+        super().__init__(self.TEMPLATE.format(file=file, reason=reason))
+
+
+class NoQuotesError(InputError):
+    """Nothing stored to fit or estimate from (no run is stored)."""
+
+    TEMPLATE = "{commodity}: {what}"
+
+    def __init__(self, commodity: str, what: str) -> None:
+        self.commodity = commodity
+        self.what = what
+        super().__init__(self.TEMPLATE.format(commodity=commodity, what=what))
+
+
+class InputsChangedError(CalibError):
+    """Rows a stored run was made from are no longer in the store as recorded."""
+
+    TEMPLATE = "run {run_id}: its stored inputs cannot be rebuilt: {reason}"
+
+    def __init__(self, run_id: int, reason: str) -> None:
+        self.run_id = run_id
+        super().__init__(self.TEMPLATE.format(run_id=run_id, reason=reason))
+
+
+ESTIMATE_FILE_NOT_JSON = "not a JSON object ({detail})"
+ESTIMATE_FILE_MISSING = "missing key(s) {keys}; an estimate file needs {required}"
+ESTIMATE_FILE_UNKNOWN = "unknown key(s) {keys}; known: {known}"
+ESTIMATE_FILE_DATE = "{key} must be an ISO date (YYYY-MM-DD): {value!r}"
+ESTIMATE_FILE_WINDOW = "window_start {start} is after window_end {end}"
