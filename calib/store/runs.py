@@ -20,6 +20,7 @@ from datetime import date, datetime
 from types import MappingProxyType
 from typing import Any, cast
 
+import numpy as np
 import pandas as pd
 from sqlalchemy import Select, Table, select
 from sqlalchemy.orm import Session
@@ -27,8 +28,15 @@ from sqlalchemy.orm import Session
 from calib.errors import IllegalTransitionError, UnknownRunError
 from calib.model.twofactor import PARAM_NAMES, TwoFactorParams
 from calib.store.base import utc_now
-from calib.store.models import Commodity
-from calib.store.quotes import insert_columns, require_commodity
+from calib.store.models import Commodity, FuturesSettlement, OptionQuote, RateQuote
+from calib.store.quotes import (
+    DayQuotes,
+    FuturesCurve,
+    OptionChain,
+    ZeroCurve,
+    insert_columns,
+    require_commodity,
+)
 from calib.store.run_models import CalibrationRun, RunEvent, RunResidual
 
 TRANSITIONS: Mapping[str, frozenset[str]] = MappingProxyType(
@@ -478,3 +486,74 @@ def run_residuals(*, session: Session, run_id: int) -> pd.DataFrame:
         .order_by(_residuals.c.quote_id)
     )
     return pd.DataFrame(session.execute(stmt).all(), columns=["quote_id", *RESIDUAL_COLUMNS])
+
+
+def _array(values: Sequence[Any], dtype: Any) -> Any:
+    out = np.array(values, dtype=dtype)
+    out.flags.writeable = False
+    return out
+
+
+def _floats(values: Sequence[float | None]) -> Any:
+    return _array([np.nan if v is None else v for v in values], np.float64)
+
+
+def load_rows(
+    *,
+    session: Session,
+    commodity: str,
+    trade_date: date,
+    futures_rows: Sequence[int],
+    option_rows: Sequence[int],
+    rate_rows: Sequence[int],
+) -> DayQuotes:
+    """The quote rows with these ids, as :func:`calib.store.quotes.load_day` would hand them.
+
+    Same sort orders as ``load_day`` (futures by delivery; options by delivery, expiry, put
+    before call, strike; rates by maturity), so a run rebuilt from its stored ids sees the very
+    arrays the original fit saw. Ids that are not stored are simply absent: the caller compares
+    the counts.
+    """
+    cid = require_commodity(session=session, code=commodity).id
+    fut = sorted(
+        session.scalars(select(FuturesSettlement).where(FuturesSettlement.id.in_(futures_rows))),
+        key=lambda r: r.delivery,
+    )
+    opt = sorted(
+        session.scalars(select(OptionQuote).where(OptionQuote.id.in_(option_rows))),
+        key=lambda r: (r.delivery, r.expiry, r.is_call, r.strike),
+    )
+    rates = sorted(
+        session.scalars(select(RateQuote).where(RateQuote.id.in_(rate_rows))),
+        key=lambda r: r.maturity,
+    )
+    batches = {r.batch_id for r in fut} | {r.batch_id for r in opt} | {r.batch_id for r in rates}
+    return DayQuotes(
+        commodity=commodity,
+        commodity_id=cid,
+        trade_date=trade_date,
+        as_of=utc_now(),
+        futures=FuturesCurve(
+            delivery=_array([r.delivery for r in fut], "datetime64[D]"),
+            settle=_array([r.settle for r in fut], np.float64),
+            row_id=_array([r.id for r in fut], np.int64),
+        ),
+        options=OptionChain(
+            delivery=_array([r.delivery for r in opt], "datetime64[D]"),
+            expiry=_array([r.expiry for r in opt], "datetime64[D]"),
+            is_call=_array([r.is_call for r in opt], np.bool_),
+            strike=_array([r.strike for r in opt], np.float64),
+            premium=_floats([r.premium for r in opt]),
+            implied_vol=_floats([r.implied_vol for r in opt]),
+            bid=_floats([r.bid for r in opt]),
+            ask=_floats([r.ask for r in opt]),
+            row_id=_array([r.id for r in opt], np.int64),
+        ),
+        rates=ZeroCurve(
+            trade_date=trade_date,
+            maturity=_array([r.maturity for r in rates], "datetime64[D]"),
+            zero_rate=_array([r.zero_rate for r in rates], np.float64),
+            row_id=_array([r.id for r in rates], np.int64),
+        ),
+        batch_ids=tuple(sorted(batches)),
+    )
