@@ -394,6 +394,8 @@ class ReportInputError(InputError, ValueError):
         self.what = what
         self.reason = reason
         super().__init__(self.TEMPLATE.format(what=what, reason=reason))
+
+
 # --- estimates, calibration runs and approvals (storage and workflows) -------------------------
 
 
@@ -509,3 +511,38 @@ ESTIMATE_FILE_MISSING = "missing key(s) {keys}; an estimate file needs {required
 ESTIMATE_FILE_UNKNOWN = "unknown key(s) {keys}; known: {known}"
 ESTIMATE_FILE_DATE = "{key} must be an ISO date (YYYY-MM-DD): {value!r}"
 ESTIMATE_FILE_WINDOW = "window_start {start} is after window_end {end}"
+
+
+# --- fit report, compare over stored runs, the demo (workflows) ------------------------------
+
+
+class RunNotFittedError(InputError):
+    """A run that failed has no fit to report or compare."""
+
+    TEMPLATE = "run {run_id} failed ({reason}): it has no fit to report"
+
+    def __init__(self, run_id: int, reason: str) -> None:
+        self.run_id = run_id
+        self.reason = reason
+        super().__init__(self.TEMPLATE.format(run_id=run_id, reason=reason))
+
+
+class BandOptionError(InputError):
+    """A ``--band-*`` option that is not ``LO,HI`` with two finite numbers, ``LO <= HI``."""
+
+    TEMPLATE = "{option} {value!r}: {reason} (give LO,HI, e.g. 0.8,1.25)"
+
+    def __init__(self, option: str, value: str, reason: str) -> None:
+        self.option = option
+        self.value = value
+        super().__init__(self.TEMPLATE.format(option=option, value=value, reason=reason))
+
+
+class DemoDirectoryError(InputError):
+    """The demo's directory already holds a store; nothing is overwritten without ``--fresh``."""
+
+    TEMPLATE = "{path} already exists: pass --fresh to replace the demo's files, or choose --dir"
+
+    def __init__(self, path: str) -> None:
+        self.path = path
+        super().__init__(self.TEMPLATE.format(path=path))
