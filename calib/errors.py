@@ -539,9 +539,12 @@ class BandOptionError(InputError):
 
 
 class DemoDirectoryError(InputError):
-    """The demo's directory already holds a store; nothing is overwritten without ``--fresh``."""
+    """The demo's directory holds a store the demo did not make; kept unless ``--fresh``."""
 
-    TEMPLATE = "{path} already exists: pass --fresh to replace the demo's files, or choose --dir"
+    TEMPLATE = (
+        "{path} already exists and is not the demo's: pass --fresh to replace it, or choose "
+        "another --dir"
+    )
 
     def __init__(self, path: str) -> None:
         self.path = path

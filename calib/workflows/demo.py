@@ -13,9 +13,11 @@ of the latest approved run (``DIR/report/index.html``) and returns a :class:`Dem
 The mornings are fitted one after another with :func:`calib.workflows.runs.fit_day`, each
 gated against the set approved the morning before, exactly as the morning job would.
 
-A directory that already holds ``calib.sqlite`` is refused unless ``fresh``; then only the
-demo's own files are replaced (the store, ``inputs/``, ``report/``, the compare files and the
-summary), nothing else in the directory is touched.
+Running the demo again into the same directory replaces its own earlier output: the demo
+marks a directory it writes into with :data:`MARKER` before it creates anything. A
+``calib.sqlite`` in an unmarked directory is someone else's store and is refused unless
+``fresh``. Only the demo's own files are replaced (the store, ``inputs/``, ``report/``, the
+compare files and the summary); nothing else in the directory is touched.
 """
 
 from __future__ import annotations
@@ -49,6 +51,8 @@ from calib.workflows.scenario import Scenario, ScenarioSpec, generate, write_csv
 Progress = Callable[[str], None]
 
 DB_FILE = "calib.sqlite"
+MARKER = ".calib-demo"
+"""The file that marks a directory as the demo's own (a later demo may replace its files)."""
 USER = "demo"
 """Who the demo records on its batches, estimate, runs and approvals."""
 
@@ -176,7 +180,7 @@ class DemoSummary:
 
 def _prepare(directory: Path, fresh: bool) -> None:
     db = directory / DB_FILE
-    if db.exists() and not fresh:
+    if db.exists() and not (fresh or (directory / MARKER).exists()):
         raise DemoDirectoryError(str(db))
     for name in (DB_FILE, f"{DB_FILE}-wal", f"{DB_FILE}-shm", "compare.csv", "compare.png"):
         (directory / name).unlink(missing_ok=True)
@@ -184,6 +188,10 @@ def _prepare(directory: Path, fresh: bool) -> None:
     for sub in ("inputs", "report"):
         shutil.rmtree(directory / sub, ignore_errors=True)
     directory.mkdir(parents=True, exist_ok=True)
+    (directory / MARKER).write_text(
+        "Written by `calib demo`; it replaces its own files here when run again.\n",
+        encoding="utf-8",
+    )
 
 
 def _register(store: Store, scenario: Scenario) -> None:
@@ -239,7 +247,7 @@ def run_demo(
     Raises
     ------
     DemoDirectoryError
-        ``directory`` already holds a store and ``fresh`` is false.
+        ``directory`` holds a store the demo did not make, and ``fresh`` is false.
     """
     plan = plan or DemoPlan()
     started = time.monotonic()
@@ -271,6 +279,10 @@ def run_demo(
         est_days = [d for d in days if d < est_end]
         fit_start = add_months(plan.spec.start, 12 * plan.spec.years - plan.fit_months)
         fit_days = [d for d in days if d >= fit_start]
+        progress(
+            f"estimating on {est_days[0]}..{est_days[-1]} ({len(est_days)} days; the first run "
+            "on a machine also compiles the Kalman filter, up to a minute)"
+        )
         record = estimate(
             store.sessions,
             code,

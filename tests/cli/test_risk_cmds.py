@@ -25,7 +25,7 @@ from calib.cli import _register_all, app, main
 from calib.store.engine import make_store
 from calib.store.run_models import CalibrationRun, HistoricalEstimate, RunResidual
 from calib.workflows.compare import csv_columns
-from calib.workflows.demo import QUICK_PLAN
+from calib.workflows.demo import MARKER, QUICK_PLAN
 from calib.workflows.report import FIGURES
 from calib.workflows.run_report import ANCHOR_FACTORS, report_inputs
 
@@ -113,14 +113,18 @@ def test_demo_runs_the_whole_chain(demo: Demo) -> None:
     assert "ingested options" in demo.stderr and "morning 1/" in demo.stderr
 
 
-def test_demo_summary_text_and_refusal(
-    demo: Demo, capsys: pytest.CaptureFixture[str], monkeypatch: pytest.MonkeyPatch
+def test_demo_refuses_a_store_it_did_not_make(
+    demo: Demo, tmp_path: Path, capsys: pytest.CaptureFixture[str], monkeypatch: pytest.MonkeyPatch
 ) -> None:
-    code, out, err = run(capsys, monkeypatch, "demo", "--dir", str(demo.folder))
+    assert (demo.folder / MARKER).is_file()  # the demo's own folder: a rerun may replace it
+    theirs = tmp_path / "theirs"
+    theirs.mkdir()
+    (theirs / "calib.sqlite").write_bytes(b"someone else's store")
+    code, out, err = run(capsys, monkeypatch, "demo", "--dir", str(theirs))
     assert code == 2 and out == "" and err.count("\n") == 1
-    assert "calib.sqlite already exists: pass --fresh" in err
-    # the refusal touched nothing
-    assert Path(demo.summary["report"]).is_file()
+    assert "calib.sqlite already exists and is not the demo's: pass --fresh" in err
+    assert sorted(p.name for p in theirs.iterdir()) == ["calib.sqlite"]
+    assert (theirs / "calib.sqlite").read_bytes() == b"someone else's store"
 
 
 # --- report ------------------------------------------------------------------------------------
