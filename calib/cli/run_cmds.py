@@ -10,7 +10,7 @@ from __future__ import annotations
 import time
 from datetime import UTC, datetime
 from pathlib import Path
-from typing import Annotated, Any
+from typing import Annotated, Any, NoReturn
 
 import typer
 
@@ -30,6 +30,14 @@ from calib.workflows import runs as run_flow
 
 EXIT_FIT_FAILED = 1
 EXIT_RERUN_DIFFERS = 1
+EXIT_NONE_APPROVED = 2
+
+
+def _exit(code: int) -> NoReturn:
+    # SystemExit, not typer.Exit: in click's non-standalone mode (calib.cli.main) an Exit is
+    # turned into a return value and its code would be lost
+    raise SystemExit(code)
+
 
 Commodity = Annotated[str, typer.Argument(help="Commodity code.")]
 RunId = Annotated[int, typer.Argument(help="Run id.", metavar="RUN")]
@@ -260,7 +268,7 @@ def fit_cmd(
     else:
         _print_fit(outcome)
     if outcome.run.outcome == "failed":
-        raise typer.Exit(EXIT_FIT_FAILED)
+        _exit(EXIT_FIT_FAILED)
 
 
 def approve_cmd(
@@ -396,7 +404,7 @@ def latest_cmd(
     if run is None:
         when = "now" if as_of is None else f"at {_as_of(as_of)}"
         typer.echo(f"error: {commodity}: no approved parameter set {when}", err=True)
-        raise typer.Exit(2)
+        _exit(EXIT_NONE_APPROVED)
     if as_json:
         echo_json(run.to_dict())
     else:
@@ -424,4 +432,4 @@ def rerun_cmd(run_id: RunId, db: DbOption = None, as_json: JsonOption = False) -
             f"  stored by {result.run.code_version}, now {result.to_dict()['code_version_now']}"
         )
     if not result.identical:
-        raise typer.Exit(EXIT_RERUN_DIFFERS)
+        _exit(EXIT_RERUN_DIFFERS)
