@@ -484,6 +484,11 @@ def _reject_duplicates(
             rows.reject(mask, KEY_FIELD, _lookup(found))
 
 
+def _each(template: str, **columns: npt.NDArray[Any]) -> Callable[[IntArray], Iterable[str]]:
+    """Per-row reasons: ``template`` filled with each refused row's values of ``columns``."""
+    return lambda idx: (template.format(**{k: v[i] for k, v in columns.items()}) for i in idx)
+
+
 def _lookup(reasons: dict[int, str]) -> Callable[[IntArray], Iterable[str]]:
     return lambda idx: (reasons[int(i)] for i in idx)
 
@@ -531,9 +536,7 @@ def _check_futures(session: Session, rows: _Rows, cid: IntArray) -> _Checked:
     rows.reject(
         delivery < trade,
         "delivery",
-        lambda idx: (
-            msg.ROW_BEFORE_TRADE.format(value=delivery[i], trade_date=trade[i]) for i in idx
-        ),
+        _each(msg.ROW_BEFORE_TRADE, value=delivery, trade_date=trade),
     )
     _reject_duplicates(rows, [cid, _days(trade), _days(delivery)], [settle])
     ok = rows.ok
@@ -593,22 +596,16 @@ def _check_options(session: Session, rows: _Rows, cid: IntArray) -> _Checked:
     )
     rows.reject(bid < 0, "bid", rows.value_reason("bid", msg.ROW_NEGATIVE))
     rows.reject(ask < 0, "ask", rows.value_reason("ask", msg.ROW_NEGATIVE))
-    rows.reject(
-        bid > ask, "bid", lambda idx: (msg.ROW_BID_ASK.format(bid=bid[i], ask=ask[i]) for i in idx)
-    )
+    rows.reject(bid > ask, "bid", _each(msg.ROW_BID_ASK, bid=bid, ask=ask))
     rows.reject(
         expiry < trade,
         "expiry",
-        lambda idx: (
-            msg.ROW_BEFORE_TRADE.format(value=expiry[i], trade_date=trade[i]) for i in idx
-        ),
+        _each(msg.ROW_BEFORE_TRADE, value=expiry, trade_date=trade),
     )
     rows.reject(
         expiry > delivery,
         "expiry",
-        lambda idx: (
-            msg.ROW_AFTER_DELIVERY.format(value=expiry[i], delivery=delivery[i]) for i in idx
-        ),
+        _each(msg.ROW_AFTER_DELIVERY, value=expiry, delivery=delivery),
     )
 
     # the underlying future's settlement that day, as stored now
@@ -636,9 +633,7 @@ def _check_options(session: Session, rows: _Rows, cid: IntArray) -> _Checked:
     rows.reject(
         np.isnan(forward),
         "delivery",
-        lambda idx: (
-            msg.ROW_NO_FUTURE.format(delivery=delivery[i], trade_date=trade[i]) for i in idx
-        ),
+        _each(msg.ROW_NO_FUTURE, delivery=delivery, trade_date=trade),
     )
 
     # no-arbitrage bounds of the premiums
@@ -699,9 +694,7 @@ def _check_rates(rows: _Rows) -> _Checked:
     rows.reject(
         maturity <= trade,
         "maturity",
-        lambda idx: (
-            msg.ROW_NOT_AFTER_TRADE.format(value=maturity[i], trade_date=trade[i]) for i in idx
-        ),
+        _each(msg.ROW_NOT_AFTER_TRADE, value=maturity, trade_date=trade),
     )
     _reject_duplicates(rows, [_days(trade), _days(maturity)], [rate])
     ok = rows.ok
