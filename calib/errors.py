@@ -382,6 +382,20 @@ class EstimationWarning(CalibWarning):
     """The estimate did not converge, or its Hessian gives no standard errors; see the result."""
 
 
+# --- fit reports and compare over time (workflows) --------------------------------------------
+
+
+class ReportInputError(InputError, ValueError):
+    """Report or compare inputs that do not hang together (lengths, empty series)."""
+
+    TEMPLATE = "cannot build the {what}: {reason}"
+
+    def __init__(self, what: str, reason: str) -> None:
+        self.what = what
+        self.reason = reason
+        super().__init__(self.TEMPLATE.format(what=what, reason=reason))
+
+
 # --- estimates, calibration runs and approvals (storage and workflows) -------------------------
 
 

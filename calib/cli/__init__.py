@@ -48,7 +48,7 @@ def main() -> None:
     """Entry point of the ``calib`` console script."""
     _register_all()
     try:
-        app(standalone_mode=False)
+        code = app(standalone_mode=False)
     except InputError as exc:
         typer.echo(f"error: {exc}", err=True)
         sys.exit(2)
@@ -67,3 +67,6 @@ def main() -> None:
             exc.show()
             sys.exit(exc.exit_code)
         raise
+    # click returns the code of typer.Exit(code) instead of exiting when not standalone
+    if isinstance(code, int) and code != 0:
+        sys.exit(code)

@@ -1,0 +1,71 @@
+"""The layers of DESIGN §2: imports point down only, and the numeric core does no I/O."""
+
+from __future__ import annotations
+
+import ast
+from pathlib import Path
+
+import pytest
+
+ROOT = Path(__file__).resolve().parents[1] / "calib"
+
+# layer -> the calib packages it may not import
+FORBIDDEN: dict[str, tuple[str, ...]] = {
+    "model": ("store", "workflows", "cli", "api", "estimate", "calibrate", "client"),
+    "estimate": ("store", "workflows", "cli", "api", "calibrate", "client"),
+    "calibrate": ("store", "workflows", "cli", "api", "estimate", "client"),
+    "store": ("workflows", "cli", "api", "client"),
+    "workflows": ("cli", "api"),
+}
+NUMERIC = ("model", "estimate", "calibrate")
+IO_MODULES = ("pathlib", "sqlalchemy", "pandas", "csv", "sqlite3", "shutil", "tomllib")
+
+
+def _imports(path: Path) -> list[str]:
+    names: list[str] = []
+    for node in ast.walk(ast.parse(path.read_text(), filename=str(path))):
+        if isinstance(node, ast.Import):
+            names.extend(alias.name for alias in node.names)
+        elif isinstance(node, ast.ImportFrom) and node.module and node.level == 0:
+            names.append(node.module)
+    return names
+
+
+def _modules(layer: str) -> list[Path]:
+    return sorted((ROOT / layer).rglob("*.py"))
+
+
+@pytest.mark.parametrize("layer", sorted(FORBIDDEN))
+def test_imports_point_down(layer: str) -> None:
+    bad = [
+        f"{path.relative_to(ROOT.parent)} imports {name}"
+        for path in _modules(layer)
+        for name in _imports(path)
+        if any(name == f"calib.{up}" or name.startswith(f"calib.{up}.") for up in FORBIDDEN[layer])
+    ]
+    assert not bad, "\n".join(bad)
+
+
+@pytest.mark.parametrize("layer", NUMERIC)
+def test_numeric_core_does_no_io(layer: str) -> None:
+    bad: list[str] = []
+    for path in _modules(layer):
+        tree = ast.parse(path.read_text(), filename=str(path))
+        bad += [
+            f"{path.relative_to(ROOT.parent)} imports {name}"
+            for name in _imports(path)
+            if name.split(".")[0] in IO_MODULES
+        ]
+        bad += [
+            f"{path.relative_to(ROOT.parent)}:{node.lineno} calls open()"
+            for node in ast.walk(tree)
+            if isinstance(node, ast.Call)
+            and isinstance(node.func, ast.Name)
+            and node.func.id == "open"
+        ]
+    assert not bad, "\n".join(bad)
+
+
+def test_every_layer_exists() -> None:
+    for layer in FORBIDDEN:
+        assert _modules(layer), f"calib/{layer} has no modules"
