@@ -4,24 +4,14 @@ approve, reject, runs, show, latest, rerun (text, --json, exit codes)."""
 from __future__ import annotations
 
 import json
-import sys
 from pathlib import Path
 
 import pytest
 
-from calib.cli import main
 from calib.model.twofactor import PARAM_NAMES
 from calib.store.engine import Store
+from tests.cli.test_store_cmds import run
 from tests.workflows.small_day import load_scenario, write_estimate_file
-
-
-def run(capsys: pytest.CaptureFixture[str], monkeypatch: pytest.MonkeyPatch, *args: str):  # type: ignore[no-untyped-def]
-    monkeypatch.setattr(sys, "argv", ["calib", *args])
-    with pytest.raises(SystemExit) as exit_info:
-        main()
-        raise SystemExit(0)
-    out = capsys.readouterr()
-    return exit_info.value.code or 0, out.out, out.err
 
 
 def test_morning_run_from_the_command_line(
