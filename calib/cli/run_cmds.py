@@ -39,7 +39,7 @@ def _exit(code: int) -> NoReturn:
     raise SystemExit(code)
 
 
-Commodity = Annotated[str, typer.Argument(help="Commodity code.")]
+Commodity = Annotated[str, typer.Argument(help="Commodity code.", metavar="COMMODITY")]
 RunId = Annotated[int, typer.Argument(help="Run id.", metavar="RUN")]
 ByOpt = Annotated[str, typer.Option("--by", help="Who decides (recorded on the event).")]
 NoteOpt = Annotated[str, typer.Option("--note", help="Why (recorded on the event).")]
@@ -129,10 +129,14 @@ def estimate_cmd(
 def estimates_cmd(
     what: Annotated[str, typer.Argument(help="COMMODITY to list, or `import`.", metavar="ARG")],
     commodity: Annotated[
-        str | None, typer.Argument(help="With `import`: the commodity.", show_default=False)
+        str | None,
+        typer.Argument(
+            help="With `import`: the commodity.", metavar="[COMMODITY]", show_default=False
+        ),
     ] = None,
     file: Annotated[
-        Path | None, typer.Argument(help="With `import`: the JSON file.", show_default=False)
+        Path | None,
+        typer.Argument(help="With `import`: the JSON file.", metavar="[FILE]", show_default=False),
     ] = None,
     db: DbOption = None,
     as_json: JsonOption = False,
@@ -191,7 +195,7 @@ def _print_run(run: RunRecord) -> None:
         typer.echo(f"  fit failed: {run.failure_reason}")
         return
     d = run.diagnostics
-    unit = "vol" if d["error_measure"] == "vol" else "premium per unit forward"
+    unit = "Black vol, decimal" if d["error_measure"] == "vol" else "premium, currency"
     typer.echo(
         f"  fit: rmse {d['rmse']:.4g}, max error {d['max_error']:.4g} ({unit}); "
         f"{d['n_quotes']} quotes, {len(d['dropped'])} dropped; {d['solver']} {d['status']}, "
