@@ -14,6 +14,7 @@ from tests.cli.test_store_cmds import run
 from tests.workflows.small_day import load_scenario, write_estimate_file
 
 
+@pytest.mark.slow
 def test_morning_run_from_the_command_line(
     store: Store,
     db_url: str,
