@@ -11,9 +11,7 @@ import csv
 import itertools
 import json
 import math
-import sys
 from dataclasses import dataclass
-from html.parser import HTMLParser
 from pathlib import Path
 from typing import Any
 
@@ -21,13 +19,15 @@ import pytest
 from sqlalchemy import func, select
 from typer.testing import CliRunner
 
-from calib.cli import _register_all, app, main
+from calib.cli import _register_all, app
 from calib.store.engine import make_store
 from calib.store.run_models import CalibrationRun, HistoricalEstimate, RunResidual
 from calib.workflows.compare import csv_columns
 from calib.workflows.demo import MARKER, QUICK_PLAN
 from calib.workflows.report import FIGURES
 from calib.workflows.run_report import ANCHOR_FACTORS, report_inputs
+from tests.cli.test_store_cmds import run
+from tests.workflows.test_report import _parse
 
 PNG_MAGIC = b"\x89PNG\r\n\x1a\n"  # PNG signature, ISO/IEC 15948 section 5.2
 
@@ -55,15 +55,6 @@ def demo(tmp_path_factory: pytest.TempPathFactory) -> Demo:
     runs = CliRunner().invoke(app, ["runs", "QLM", "--limit", "1000", "--json", "--db", db_url])
     assert runs.exit_code == 0, runs.output
     return Demo(folder, db_url, summary, result.stdout, result.stderr, json.loads(runs.stdout))
-
-
-def run(capsys: pytest.CaptureFixture[str], monkeypatch: pytest.MonkeyPatch, *args: str):  # type: ignore[no-untyped-def]
-    monkeypatch.setattr(sys, "argv", ["calib", *args])
-    with pytest.raises(SystemExit) as exit_info:
-        main()
-        raise SystemExit(0)
-    out = capsys.readouterr()
-    return exit_info.value.code or 0, out.out, out.err
 
 
 def _ever_approved(r: dict[str, Any]) -> bool:
@@ -130,30 +121,6 @@ def test_demo_refuses_a_store_it_did_not_make(
 # --- report ------------------------------------------------------------------------------------
 
 
-class _Page(HTMLParser):
-    def __init__(self) -> None:
-        super().__init__()
-        self.images: list[str] = []
-        self.tables = 0
-        self.open: list[str] = []
-        self.text: list[str] = []
-
-    def handle_starttag(self, tag: str, attrs: list[tuple[str, str | None]]) -> None:
-        if tag == "img":
-            self.images.append(dict(attrs)["src"] or "")
-        elif tag == "table":
-            self.tables += 1
-        if tag not in ("img", "meta", "br"):
-            self.open.append(tag)
-
-    def handle_endtag(self, tag: str) -> None:
-        assert self.open and self.open[-1] == tag, f"</{tag}> closes <{self.open[-1:]}>"
-        self.open.pop()
-
-    def handle_data(self, data: str) -> None:
-        self.text.append(data)
-
-
 def test_report_of_a_fitted_run(
     demo: Demo,
     tmp_path: Path,
@@ -170,11 +137,9 @@ def test_report_of_a_fitted_run(
     assert sorted(paths["figures"]) == sorted(name for name, _ in FIGURES)
     for p in paths["figures"].values():
         assert Path(p).read_bytes()[:8] == PNG_MAGIC
-    page = _Page()
-    page.feed(Path(paths["index"]).read_text(encoding="utf-8"))
-    page.close()
-    assert page.open == [] and page.tables >= 5
-    assert sorted(page.images) == sorted(Path(p).name for p in paths["figures"].values())
+    page = _parse(Path(paths["index"]))
+    assert page.scripts == 0 and page.text.count("Approval gates") == 1
+    assert sorted(page.imgs) == sorted(Path(p).name for p in paths["figures"].values())
     text = " ".join(page.text)
     assert f"run {superseded['run_id']}" in text and "superseded" in text
     assert "model-validation policy prevails" in text and "Quellium" in text
