@@ -4,18 +4,16 @@ from __future__ import annotations
 
 import datetime as dt
 import json
-import sys
 from pathlib import Path
 
 import numpy as np
 import pytest
 
-from calib.cli import main
 from calib.model.spread import ForwardVols, SpreadOption, price_exact, spread_law
 from calib.store.engine import Store
 from calib.workflows import runs as flow
-from calib.workflows.estimates import import_estimate
-from tests.workflows.small_day import Loaded, load_scenario, write_estimate_file
+from tests.cli.test_store_cmds import run
+from tests.workflows.small_day import Loaded, load_with_estimate
 
 FAST = flow.RunSettings.from_dict({"calibration": {"refit_costs": False}})
 KEYS = {
@@ -51,25 +49,9 @@ KEYS = {
 }
 
 
-def run(capsys: pytest.CaptureFixture[str], monkeypatch: pytest.MonkeyPatch, *args: str):  # type: ignore[no-untyped-def]
-    monkeypatch.setattr(sys, "argv", ["calib", *args])
-    with pytest.raises(SystemExit) as exit_info:
-        main()
-        raise SystemExit(0)
-    out = capsys.readouterr()
-    return exit_info.value.code or 0, out.out, out.err
-
-
 @pytest.fixture
 def loaded(store: Store, tmp_path: Path) -> Loaded:
-    data = load_scenario(store, tmp_path)
-    import_estimate(
-        store.sessions,
-        data.code,
-        write_estimate_file(tmp_path / "e.json", data.scenario),
-        user="tester",
-    )
-    return data
+    return load_with_estimate(store, tmp_path)
 
 
 def _day_futures(loaded: Loaded, day: dt.date) -> dict[dt.date, float]:

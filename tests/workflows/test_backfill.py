@@ -21,7 +21,7 @@ from calib.store.runs import (
 from calib.workflows import backfill as flow
 from calib.workflows.estimates import import_estimate
 from calib.workflows.runs import RunSettings, rerun
-from tests.workflows.small_day import Loaded, load_scenario, write_estimate_file
+from tests.workflows.small_day import Loaded, load_with_estimate, write_estimate_file
 
 N_DAYS = 8
 FAST = RunSettings.from_dict({"calibration": {"refit_costs": False}})
@@ -42,14 +42,7 @@ LOOSE = RunSettings.from_dict(
 
 @pytest.fixture
 def loaded(store: Store, tmp_path: Path) -> Loaded:
-    data = load_scenario(store, tmp_path)
-    import_estimate(
-        store.sessions,
-        data.code,
-        write_estimate_file(tmp_path / "e.json", data.scenario),
-        user="tester",
-    )
-    return data
+    return load_with_estimate(store, tmp_path)
 
 
 class StopRequestedError(Exception):
