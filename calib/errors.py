@@ -537,3 +537,41 @@ SPREAD_RUN_FAILED = "run {run_id} failed and has no parameters"
 SPREAD_NOT_QUOTED = "no futures settlement for delivery {delivery} on {day}"
 SPREAD_ORDER = "the near delivery {near} must come before the far delivery {far}"
 SPREAD_EXPIRY = "the expiry {expiry} must lie after {day} and not after the near delivery {near}"
+
+
+# --- fit report, compare over stored runs, the demo (workflows) ------------------------------
+
+
+class RunNotFittedError(InputError):
+    """A run that failed has no fit to report or compare."""
+
+    TEMPLATE = "run {run_id} failed ({reason}): it has no fit to report"
+
+    def __init__(self, run_id: int, reason: str) -> None:
+        self.run_id = run_id
+        self.reason = reason
+        super().__init__(self.TEMPLATE.format(run_id=run_id, reason=reason))
+
+
+class BandOptionError(InputError):
+    """A ``--band-*`` option that is not ``LO,HI`` with two finite numbers, ``LO <= HI``."""
+
+    TEMPLATE = "{option} {value!r}: {reason} (give LO,HI, e.g. 0.8,1.25)"
+
+    def __init__(self, option: str, value: str, reason: str) -> None:
+        self.option = option
+        self.value = value
+        super().__init__(self.TEMPLATE.format(option=option, value=value, reason=reason))
+
+
+class DemoDirectoryError(InputError):
+    """The demo's directory holds a store the demo did not make; kept unless ``--fresh``."""
+
+    TEMPLATE = (
+        "{path} already exists and is not the demo's: pass --fresh to replace it, or choose "
+        "another --dir"
+    )
+
+    def __init__(self, path: str) -> None:
+        self.path = path
+        super().__init__(self.TEMPLATE.format(path=path))

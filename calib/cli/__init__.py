@@ -43,6 +43,7 @@ _COMMAND_MODULES: list[str] = [
     "run_cmds",
     "backfill_cmds",
     "price_cmds",
+    "risk_cmds",
 ]
 
 
