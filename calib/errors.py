@@ -513,6 +513,32 @@ ESTIMATE_FILE_DATE = "{key} must be an ISO date (YYYY-MM-DD): {value!r}"
 ESTIMATE_FILE_WINDOW = "window_start {start} is after window_end {end}"
 
 
+# --- backfill and spread pricing (workflows) ---------------------------------------------------
+
+
+class BackfillRangeError(InputError):
+    """A backfill asked for an empty date range or no workers."""
+
+
+class SpreadRequestError(InputError):
+    """A spread option that cannot be priced from the store as asked (nothing is priced)."""
+
+    TEMPLATE = "{commodity}: {reason}"
+
+    def __init__(self, commodity: str, reason: str) -> None:
+        self.commodity = commodity
+        self.reason = reason
+        super().__init__(self.TEMPLATE.format(commodity=commodity, reason=reason))
+
+
+SPREAD_NO_APPROVED = "no approved parameter set (fit and approve a run, or name one with --run)"
+SPREAD_RUN_OTHER = "run {run_id} is {other}'s, not this commodity's"
+SPREAD_RUN_FAILED = "run {run_id} failed and has no parameters"
+SPREAD_NOT_QUOTED = "no futures settlement for delivery {delivery} on {day}"
+SPREAD_ORDER = "the near delivery {near} must come before the far delivery {far}"
+SPREAD_EXPIRY = "the expiry {expiry} must lie after {day} and not after the near delivery {near}"
+
+
 # --- fit report, compare over stored runs, the demo (workflows) ------------------------------
 
 

@@ -155,7 +155,11 @@ class ConvexStep:
         try:
             with warnings.catch_warnings():  # cvxpy's own caution; ours follows below
                 warnings.filterwarnings("ignore", "Solution may be inaccurate", UserWarning)
-                self.problem.solve(solver=SOLVER, ignore_dpp=False, **self.solver_options)
+                # no warm start: a Clarabel solver re-used from the day before would make a
+                # day's result depend on what was solved earlier; a rerun must be bit-identical
+                self.problem.solve(
+                    solver=SOLVER, ignore_dpp=False, warm_start=False, **self.solver_options
+                )
         except cp.error.SolverError as exc:
             raise CalibrationSolverError(SOLVER, "solver_error", str(exc)) from exc
         status = str(self.problem.status)

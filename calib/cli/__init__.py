@@ -41,6 +41,8 @@ _COMMAND_MODULES: list[str] = [
     # one module name per line
     "store_cmds",
     "run_cmds",
+    "backfill_cmds",
+    "price_cmds",
     "risk_cmds",
 ]
 
