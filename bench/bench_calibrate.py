@@ -116,7 +116,7 @@ def _via_cvxpy_solve(cal: Calibrator, days: list[OptionQuotes]) -> list[float]:
     real = step.problem.solve
 
     def cvxpy_solve(*args: Any, **kwargs: Any) -> Any:
-        return real(solver=SOLVER, **step.solver_options)
+        return real(solver=SOLVER, warm_start=False, **step.solver_options)
 
     step.problem.solve = cvxpy_solve
     cal.fit(days[0], HIST)  # first solve compiles cvxpy's own chain

@@ -61,8 +61,14 @@ def _scale(J: float) -> float:
 
 
 def bucket_edges(expiry: FloatArray) -> FloatArray:
-    """Forward-mode calendar edges ``[0, t_1, ..., t_K]`` at the distinct expiries."""
-    return np.concatenate(([0.0], np.unique(np.round(expiry, 12))))
+    """Forward-mode calendar edges ``[0, t_1, ..., t_K]`` at the distinct expiries.
+
+    Expiries equal to 12 decimals share an edge; the last edge is the latest expiry itself
+    (not its rounded value), so every option ends inside the buckets.
+    """
+    edges = np.concatenate(([0.0], np.unique(np.round(expiry, 12))))
+    edges[-1] = max(edges[-1], float(np.max(expiry)))
+    return edges
 
 
 def check_feasible(settings: CalibrationSettings, historical: TwoFactorParams) -> None:

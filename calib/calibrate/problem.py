@@ -163,6 +163,9 @@ class ConvexStep:
                 warnings.filterwarnings("ignore", "Solution may be inaccurate", UserWarning)
                 if self._program is None:  # compile once, at the first parameter values
                     self._program = conic.ConeProgram(self.problem, self.solver_options)
+                # a fresh Clarabel solver each time, no warm start: a solver re-used from the
+                # day before would make a day's result depend on what was solved earlier; a
+                # rerun must be bit-identical
                 self.problem.solve(method=conic.METHOD, program=self._program)
         except cp.error.SolverError as exc:
             raise CalibrationSolverError(SOLVER, "solver_error", str(exc)) from exc
