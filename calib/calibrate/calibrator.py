@@ -127,6 +127,8 @@ class Calibrator:
     def __init__(self, settings: CalibrationSettings, n_buckets: int = 1) -> None:
         self.settings = settings
         self.n_buckets = int(n_buckets) if settings.mode == "forward" else 1
+        self._without: dict[CalibrationSettings, Calibrator] = {}
+        """The re-fits' calibrators (one constraint off), built at their first use."""
         self.step: ConvexStep | None = None
         if settings.mode != "held_rho":
             self.step = ConvexStep(
@@ -150,6 +152,18 @@ class Calibrator:
             s = replace(s, anchor_weight=anchor_weight)
         check_feasible(s, historical)
         data = prepare(quotes, s)
+        result = self._fit_data(data, quotes, historical, s)
+        if s.refit_costs:
+            result = self._with_refit_costs(result, data, quotes, historical)
+        return result
+
+    def _fit_data(
+        self,
+        data: FitData,
+        quotes: OptionQuotes,
+        hist: TwoFactorParams,
+        s: CalibrationSettings,
+    ) -> CalibrationResult:
         needed = _MIN_QUOTES[s.mode]
         if data.n < needed:
             counts: dict[str, int] = {}
@@ -157,12 +171,42 @@ class Calibrator:
                 counts[d.reason] = counts.get(d.reason, 0) + 1
             raise TooFewQuotesError(data.n, len(quotes), s.mode, needed, counts)
         if s.mode == "held_rho":
-            result = self._fit_held(data, historical, s, quotes)
-        else:
-            result = self._fit_convex(data, historical, s, quotes)
-        if s.refit_costs:
-            result = _with_refit_costs(result, quotes, historical)
-        return result
+            return self._fit_held(data, hist, s, quotes)
+        return self._fit_convex(data, hist, s, quotes)
+
+    def _with_refit_costs(
+        self,
+        result: CalibrationResult,
+        data: FitData,
+        quotes: OptionQuotes,
+        hist: TwoFactorParams,
+    ) -> CalibrationResult:
+        """Price each binding constraint family by re-fitting without it (refit_cost >= 0).
+
+        Each re-fit is what :func:`fit` with that constraint off would give: its own
+        :class:`Calibrator` (kept for the next day, as this one is), the same prepared
+        quotes (the filters and weights do not depend on the constraints), the same checks.
+        """
+        s = result.settings
+        costs: dict[str, float] = {}
+        for name in sorted({c.name for c in result.constraints if c.binds and c.name != "psd"}):
+            off = replace(s, refit_costs=False)
+            if name == "rho_held":
+                off = replace(off, mode="constant")
+            elif name == "decay_bound":
+                off = replace(off, decay_bound=False)
+            elif name == "yield_floor":
+                off = replace(off, yield_floor=0.0)
+            else:
+                off = replace(off, sigma_spot_cap=None)
+            other = self._without.get(off)
+            if other is None:
+                # the same data, so forward mode has this calibrator's buckets
+                other = self._without[off] = Calibrator(off, self.n_buckets)
+            check_feasible(off, hist)
+            costs[name] = result.objective - other._fit_data(data, quotes, hist, off).objective
+        reports = tuple(replace(c, refit_cost=costs.get(c.name)) for c in result.constraints)
+        return replace(result, constraints=reports)
 
     # --- constant and forward modes: Gauss-Newton over the convex sub-problem ----------------
 
@@ -452,28 +496,6 @@ def _result(
         historical=hist,
         dropped=data.dropped,
     )
-
-
-def _with_refit_costs(
-    result: CalibrationResult, quotes: OptionQuotes, hist: TwoFactorParams
-) -> CalibrationResult:
-    """Price each binding constraint family by re-fitting without it (refit_cost >= 0)."""
-    s = result.settings
-    costs: dict[str, float] = {}
-    for name in sorted({c.name for c in result.constraints if c.binds and c.name != "psd"}):
-        off = replace(s, refit_costs=False)
-        if name == "rho_held":
-            off = replace(off, mode="constant")
-        elif name == "decay_bound":
-            off = replace(off, decay_bound=False)
-        elif name == "yield_floor":
-            off = replace(off, yield_floor=0.0)
-        else:
-            off = replace(off, sigma_spot_cap=None)
-        other = fit(quotes, hist, off)
-        costs[name] = result.objective - other.objective
-    reports = tuple(replace(c, refit_cost=costs.get(c.name)) for c in result.constraints)
-    return replace(result, constraints=reports)
 
 
 def fit(

@@ -264,6 +264,51 @@ def test_a_calibrator_re_solves_days_like_fresh_fits(quotes: OptionQuotes) -> No
         Calibrator(replace(EXACT, mode="forward"), n_buckets=2).fit(quotes, TRUE)
 
 
+_WITHOUT = {
+    "decay_bound": {"decay_bound": False},
+    "yield_floor": {"yield_floor": 0.0},
+    "rho_held": {"mode": "constant"},
+}
+
+
+@pytest.mark.parametrize(
+    ("mode", "floor", "yield_sigmas", "families"),
+    [
+        ("constant", 0.9, (0.5, 0.25, 0.35, 0.5), {"decay_bound", "yield_floor"}),
+        ("forward", 0.9, (0.5, 0.25, 0.35), {"decay_bound"}),
+        ("held_rho", 0.5, (0.6, 0.25), {"decay_bound", "rho_held"}),
+    ],
+)
+def test_a_re_used_calibrator_prices_constraints_as_fresh_fits_do(
+    quotes: OptionQuotes,
+    mode: str,
+    floor: float,
+    yield_sigmas: tuple[float, ...],
+    families: set[str],
+) -> None:
+    # days on which different constraints bind (decay bound and floor, none, held rho): the
+    # re-fits' cached calibrators must give bit for bit what a fresh fit without each gives
+    settings = CalibrationSettings(mode=mode, yield_floor=floor, refit_costs=True)  # type: ignore[arg-type]
+    cal = Calibrator(settings, n_buckets=len(EXPIRIES))
+    priced: set[str] = set()
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        day2 = make_quotes(replace(TRUE, sigma_spot=0.4))
+        for k, s2 in enumerate(yield_sigmas):
+            q, h = (quotes, day2)[k % 2], TRUE.with_vols(0.3, s2, 0.7)
+            res = cal.fit(q, h)
+            alone = fit(q, h, replace(settings, refit_costs=False))
+            assert res.params == alone.params and res.objective == alone.objective
+            for c in res.constraints:
+                if c.refit_cost is None:
+                    assert not c.binds or c.name == "psd"
+                    continue
+                off = replace(settings, refit_costs=False, **_WITHOUT[c.name])  # type: ignore[arg-type]
+                assert c.refit_cost == res.objective - fit(q, h, off).objective
+                priced.add(c.name)
+    assert priced == families
+
+
 def test_frontier_trades_fit_for_distance(quotes: OptionQuotes) -> None:
     hist = TRUE.with_vols(0.3, 0.32, 0.7)
     points = frontier(quotes, hist, [0.0, 1e-6, 1e-4, 1e-2], CalibrationSettings())
