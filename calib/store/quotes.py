@@ -454,68 +454,132 @@ def load_day(
     UnknownCommodityError
         If ``commodity`` is not registered.
     """
+    return load_days(session=session, commodity=commodity, dates=[trade_date], as_of=as_of)[0]
+
+
+_DAY_COLUMNS: Mapping[str, Mapping[str, npt.DTypeLike]] = {
+    "futures": {"delivery": "datetime64[D]", "settle": np.float64},
+    "options": {
+        "delivery": "datetime64[D]",
+        "expiry": "datetime64[D]",
+        "is_call": np.bool_,
+        "strike": np.float64,
+        "premium": np.float64,
+        "implied_vol": np.float64,
+        "bid": np.float64,
+        "ask": np.float64,
+    },
+    "rates": {"maturity": "datetime64[D]", "zero_rate": np.float64},
+}
+"""Per quote table, the columns a :class:`DayQuotes` holds (besides row and batch ids)."""
+
+_KEYS = {"futures": FUTURES_KEY, "options": OPTIONS_KEY, "rates": RATES_KEY}
+"""Per quote table, the key a later batch's row supersedes an earlier one by."""
+
+_DAY_ORDER = {
+    "futures": ("delivery",),
+    "options": ("delivery", "expiry", "is_call", "strike"),
+    "rates": ("maturity",),
+}
+"""Per quote table, the sort order of a day's rows (put before call: ``False < True``)."""
+
+
+class _DayRows:
+    """The current rows of one quote table over several days, sorted by day then
+    :data:`_DAY_ORDER`, column by column as numpy arrays (NULL is NaN)."""
+
+    def __init__(
+        self, session: Session, kind: str, where: Sequence[ColumnElement[bool]], as_of: datetime
+    ) -> None:
+        table = QUOTE_TABLES[kind]
+        dtypes: dict[str, npt.DTypeLike] = {
+            "trade_date": "datetime64[D]",
+            **_DAY_COLUMNS[kind],
+            "id": np.int64,
+            "batch_id": np.int64,
+        }
+        rows = session.execute(_latest(table, _KEYS[kind], where, as_of)).all()
+        names = [c.name for c in table.columns]
+        values = dict(zip(names, list(zip(*rows, strict=True)) or [()] * len(names), strict=True))
+        cols = {
+            name: np.array([np.nan if v is None else v for v in values[name]], dtype=dtype)
+            if dtype is np.float64
+            else np.array(values[name], dtype=dtype)
+            for name, dtype in dtypes.items()
+        }
+        keys = [cols[name] for name in reversed(_DAY_ORDER[kind])]  # lexsort: last key first
+        perm = np.lexsort((*keys, cols["trade_date"]))
+        self.columns = {name: col[perm] for name, col in cols.items()}
+
+    def of(self, day: date) -> dict[str, Any]:
+        """That day's rows: each column a fresh read-only array."""
+        days = self.columns["trade_date"]
+        at = np.datetime64(day, "D")
+        rows = slice(
+            int(np.searchsorted(days, at, "left")), int(np.searchsorted(days, at, "right"))
+        )
+        return {name: _frozen(col[rows], col.dtype) for name, col in self.columns.items()}
+
+
+def load_days(
+    *,
+    session: Session,
+    commodity: str,
+    dates: Sequence[date],
+    as_of: datetime | None = None,
+) -> list[DayQuotes]:
+    """:func:`load_day` for each of ``dates`` (in their order), in one query per table.
+
+    Every day gets exactly what :func:`load_day` gives it, all as known at the same ``as_of``
+    (default now): futures sorted by delivery, options by (delivery, expiry, put before call,
+    strike), the zero curve by maturity, read-only arrays, the source batches. A day without
+    futures, options or rates gets empty arrays for them. The dates enter the queries as one
+    ``IN`` list, so hand over tens or hundreds of days at a time, not years.
+
+    Raises
+    ------
+    UnknownCommodityError
+        If ``commodity`` is not registered.
+    """
     as_of = as_of or utc_now()
     cid = require_commodity(session=session, code=commodity).id
-    fut = list(
-        session.execute(
-            _latest(
-                _futures,
-                FUTURES_KEY,
-                [_futures.c.commodity_id == cid, _futures.c.trade_date == trade_date],
-                as_of,
+    wanted = sorted(set(dates))
+    tables = {
+        kind: _DayRows(
+            session,
+            kind,
+            [table.c.trade_date.in_(wanted)]
+            + ([] if kind == "rates" else [table.c.commodity_id == cid]),
+            as_of,
+        )
+        for kind, table in QUOTE_TABLES.items()
+    }
+    out: list[DayQuotes] = []
+    for d in dates:
+        fut, opt, rat = (tables[kind].of(d) for kind in ("futures", "options", "rates"))
+        batches = {int(b) for part in (fut, opt, rat) for b in part["batch_id"].tolist()}
+        out.append(
+            DayQuotes(
+                commodity=commodity,
+                commodity_id=cid,
+                trade_date=d,
+                as_of=as_of,
+                futures=FuturesCurve(
+                    delivery=fut["delivery"], settle=fut["settle"], row_id=fut["id"]
+                ),
+                options=OptionChain(
+                    **{name: opt[name] for name in _DAY_COLUMNS["options"]}, row_id=opt["id"]
+                ),
+                rates=ZeroCurve(
+                    trade_date=d,
+                    maturity=rat["maturity"],
+                    zero_rate=rat["zero_rate"],
+                    row_id=rat["id"],
+                ),
+                batch_ids=tuple(sorted(batches)),
             )
         )
-    )
-    fut.sort(key=lambda r: r.delivery)
-    opt = list(
-        session.execute(
-            _latest(
-                _options,
-                OPTIONS_KEY,
-                [_options.c.commodity_id == cid, _options.c.trade_date == trade_date],
-                as_of,
-            )
-        )
-    )
-    opt.sort(key=lambda r: (r.delivery, r.expiry, r.is_call, r.strike))
-    curve = zero_curves(session=session, start=trade_date, end=trade_date, as_of=as_of).get(
-        trade_date,
-        ZeroCurve(
-            trade_date=trade_date,
-            maturity=_dates([]),
-            zero_rate=_frozen([], np.float64),
-            row_id=_frozen([], np.int64),
-        ),
-    )
-    batch_ids = {r.batch_id for r in fut} | {r.batch_id for r in opt}
-    if len(curve):
-        batch_ids |= set(
-            session.scalars(select(_rates.c.batch_id).where(_rates.c.id.in_(curve.row_id.tolist())))
-        )
-    return DayQuotes(
-        commodity=commodity,
-        commodity_id=cid,
-        trade_date=trade_date,
-        as_of=as_of,
-        futures=FuturesCurve(
-            delivery=_dates([r.delivery for r in fut]),
-            settle=_frozen([r.settle for r in fut], np.float64),
-            row_id=_frozen([r.id for r in fut], np.int64),
-        ),
-        options=OptionChain(
-            delivery=_dates([r.delivery for r in opt]),
-            expiry=_dates([r.expiry for r in opt]),
-            is_call=_frozen([r.is_call for r in opt], np.bool_),
-            strike=_frozen([r.strike for r in opt], np.float64),
-            premium=_nan([r.premium for r in opt]),
-            implied_vol=_nan([r.implied_vol for r in opt]),
-            bid=_nan([r.bid for r in opt]),
-            ask=_nan([r.ask for r in opt]),
-            row_id=_frozen([r.id for r in opt], np.int64),
-        ),
-        rates=curve,
-        batch_ids=tuple(sorted(batch_ids)),
-    )
+    return out
 
 
 def trade_dates(

@@ -11,7 +11,7 @@ from sqlalchemy import text
 
 from calib.errors import UnknownCommodityError
 from calib.store.engine import Store
-from calib.store.quotes import load_day, load_futures_history, trade_dates
+from calib.store.quotes import DayQuotes, load_day, load_days, load_futures_history, trade_dates
 from calib.workflows.ingest import NewCommodity, ingest_file
 
 FUT_HEADER = "trade_date,commodity,delivery,settle\n"
@@ -76,6 +76,73 @@ def test_load_day_returns_sorted_read_only_arrays(history: tuple[Store, int, int
     # ACT/365, flat beyond the last point: exp(-0.05 * 730/365) (common practice)
     far = day.rates.discount(np.array(["2033-03-02"], dtype="datetime64[D]"))
     np.testing.assert_allclose(far, np.exp(-0.05 * 730 / 365), rtol=1e-15)
+
+
+OPT_HEADER = "trade_date,commodity,delivery,expiry,kind,strike,premium\n"
+
+
+def _same_day(a: DayQuotes, b: DayQuotes) -> None:
+    assert (a.commodity, a.commodity_id, a.trade_date, a.as_of, a.batch_ids) == (
+        b.commodity,
+        b.commodity_id,
+        b.trade_date,
+        b.as_of,
+        b.batch_ids,
+    )
+    for part in ("futures", "options", "rates"):
+        x, y = getattr(a, part), getattr(b, part)
+        for name, value in vars(x).items():
+            other = getattr(y, name)
+            if isinstance(value, np.ndarray):
+                assert value.dtype == other.dtype and not value.flags.writeable, (part, name)
+                np.testing.assert_array_equal(value, other, err_msg=f"{part}.{name}")
+            else:
+                assert value == other
+
+
+def test_load_days_gives_each_day_what_load_day_gives(
+    history: tuple[Store, int, int], tmp_path: Path
+) -> None:
+    store, first, second = history
+    # options of two days, out of order in the file; a later batch re-states one quote
+    early = _put(
+        store,
+        tmp_path / "o1.csv",
+        OPT_HEADER
+        + "2031-03-04,QRX,2031-05-01,2031-04-25,call,50,2.5\n"
+        + "2031-03-03,QRX,2031-06-01,2031-05-26,call,48,5.0\n"
+        + "2031-03-03,QRX,2031-05-01,2031-04-25,call,50,2.1\n"
+        + "2031-03-03,QRX,2031-05-01,2031-04-25,put,50,1.9\n"
+        + "2031-03-03,QRX,2031-05-01,2031-04-25,call,45,5.2\n",
+        "options",
+        T1,
+    )
+    late = _put(
+        store,
+        tmp_path / "o2.csv",
+        OPT_HEADER + "2031-03-03,QRX,2031-05-01,2031-04-25,put,50,2.0\n",
+        "options",
+        T2,
+    )
+    wanted = [date(2031, 3, 5), date(2031, 3, 3), date(2031, 3, 9), date(2031, 3, 4)]
+    for as_of in (datetime(2025, 1, 1, 12, tzinfo=UTC), datetime(2025, 1, 3, tzinfo=UTC)):
+        with store.sessions() as s:
+            days = load_days(session=s, commodity="QRX", dates=wanted, as_of=as_of)
+            one_by_one = [
+                load_day(session=s, commodity="QRX", trade_date=d, as_of=as_of) for d in wanted
+            ]
+        assert [d.trade_date for d in days] == wanted
+        for batched, alone in zip(days, one_by_one, strict=True):
+            _same_day(batched, alone)
+    # as known now: sorted by delivery, expiry, put before call, strike; the re-stated put
+    third = days[1]
+    assert third.options.strike.tolist() == [50.0, 45.0, 50.0, 48.0]
+    assert third.options.is_call.tolist() == [False, True, True, True]
+    assert third.options.premium.tolist() == [2.0, 5.2, 2.1, 5.0]
+    assert np.isnan(third.options.implied_vol).all()
+    assert {first, early, late} < set(third.batch_ids) and len(third.batch_ids) == 4  # + rates
+    assert len(days[2].futures) == len(days[2].options) == len(days[2].rates) == 0
+    assert days[3].futures.settle.tolist() == [51.5] and second in days[3].batch_ids
 
 
 def test_trade_dates_and_history_follow_as_of(history: tuple[Store, int, int]) -> None:
