@@ -48,7 +48,7 @@ import sys
 import time
 import tomllib
 import warnings
-from collections.abc import Callable, Mapping
+from collections.abc import Callable, Mapping, Sequence
 from dataclasses import asdict, dataclass, fields
 from datetime import date
 from pathlib import Path
@@ -548,69 +548,127 @@ def store_attempt(
     event, gated against the approved set in force (and approved if asked and every gate
     passes). A failed attempt is stored ``rejected`` with its reason.
     """
-    inputs = _inputs(day)
+    (stored,) = store_attempts(
+        sessions, [(day, attempt)], estimate_id, settings, user=user, auto_approve=auto_approve
+    )
+    return stored
+
+
+def store_attempts(
+    sessions: sessionmaker[Session],
+    fits: Sequence[tuple[DayQuotes, Attempt]],
+    estimate_id: int,
+    settings: RunSettings,
+    *,
+    user: str,
+    auto_approve: bool,
+) -> list[StoredAttempt]:
+    """:func:`store_attempt` for several days of one commodity, in order, in **one** write
+    transaction: all of them are stored, or (interrupted, failed) none.
+
+    Each day is gated against the approved set in force when it is written, which includes
+    an earlier day of ``fits`` approved in this transaction.
+    """
+    if not fits:
+        return []
+    commodity_id = fits[0][0].commodity_id
+    assert all(day.commodity_id == commodity_id for day, _ in fits), "one commodity at a time"
+    run_settings = settings.to_dict()
+    version = code_version()
+    out: list[StoredAttempt] = []
     with sessions.begin() as session:
         begin_write(session)
-        lock_commodity(session=session, commodity_id=day.commodity_id)
-        previous = latest_approved(session=session, commodity=day.commodity)
-        result = attempt.result
-        gates: tuple[Gate, ...] = ()
-        if result is not None:
-            gates = evaluate_gates(
-                result, settings.gates, None if previous is None else previous.params
-            )
-        run_id = add_run(
-            session=session,
-            commodity_id=day.commodity_id,
-            trade_date=day.trade_date,
-            created_at=utc_now(),
-            created_by=user,
-            estimate_id=estimate_id,
-            mode=settings.calibration.mode,
-            settings=settings.to_dict(),
-            inputs=inputs,
-            inputs_sha256=inputs_sha256(inputs),
-            outcome="fitted" if result is not None else "failed",
-            failure_reason=attempt.failure,
-            params=None if result is None else result.params,
-            buckets=None if result is None else _buckets(result),
-            diagnostics={"failure": attempt.failure}
-            if result is None
-            else _diagnostics(result, gates, attempt.warnings),
-            code_version=code_version(),
-        )
-        if result is not None:
-            add_residuals(
-                session=session,
-                run_id=run_id,
-                quote_id=[int(x) for x in np.asarray(result.labels)],
-                columns={
-                    "market_price": result.market_price,
-                    "model_price": result.model_price,
-                    "market_vol": result.market_vol,
-                    "model_vol": result.model_vol,
-                    "price_residual": result.price_residual,
-                    "vol_residual": result.vol_residual,
-                    "weight": result.weight,
-                },
-            )
-            append_event(
-                session=session, run_id=run_id, to_status="candidate", actor=user, note="fitted"
-            )
-        else:
-            append_event(
-                session=session,
-                run_id=run_id,
-                to_status="rejected",
-                actor=user,
-                note=f"fit failed: {attempt.failure}",
-            )
-        approved = auto_approve and result is not None and all(g.passed for g in gates)
-        if approved:
-            _approve_in(
-                session, run_id, day.commodity_id, by=user, note="auto-approved: every gate passed"
+        lock_commodity(session=session, commodity_id=commodity_id)
+        for day, attempt in fits:
+            out.append(
+                _store_in(
+                    session,
+                    day,
+                    estimate_id,
+                    settings,
+                    run_settings,
+                    version,
+                    attempt,
+                    user=user,
+                    auto_approve=auto_approve,
+                )
             )
         _pause_for_tests()
+    return out
+
+
+def _store_in(
+    session: Session,
+    day: DayQuotes,
+    estimate_id: int,
+    settings: RunSettings,
+    run_settings: dict[str, Any],
+    version: str,
+    attempt: Attempt,
+    *,
+    user: str,
+    auto_approve: bool,
+) -> StoredAttempt:
+    """Write one day's run inside the caller's write transaction (which holds the lock)."""
+    inputs = _inputs(day)
+    previous = latest_approved(session=session, commodity=day.commodity)
+    result = attempt.result
+    gates: tuple[Gate, ...] = ()
+    if result is not None:
+        gates = evaluate_gates(
+            result, settings.gates, None if previous is None else previous.params
+        )
+    run_id = add_run(
+        session=session,
+        commodity_id=day.commodity_id,
+        trade_date=day.trade_date,
+        created_at=utc_now(),
+        created_by=user,
+        estimate_id=estimate_id,
+        mode=settings.calibration.mode,
+        settings=run_settings,
+        inputs=inputs,
+        inputs_sha256=inputs_sha256(inputs),
+        outcome="fitted" if result is not None else "failed",
+        failure_reason=attempt.failure,
+        params=None if result is None else result.params,
+        buckets=None if result is None else _buckets(result),
+        diagnostics={"failure": attempt.failure}
+        if result is None
+        else _diagnostics(result, gates, attempt.warnings),
+        code_version=version,
+    )
+    if result is not None:
+        add_residuals(
+            session=session,
+            run_id=run_id,
+            quote_id=[int(x) for x in np.asarray(result.labels)],
+            columns={
+                "market_price": result.market_price,
+                "model_price": result.model_price,
+                "market_vol": result.market_vol,
+                "model_vol": result.model_vol,
+                "price_residual": result.price_residual,
+                "vol_residual": result.vol_residual,
+                "weight": result.weight,
+            },
+        )
+        append_event(
+            session=session, run_id=run_id, to_status="candidate", actor=user, note="fitted"
+        )
+    else:
+        append_event(
+            session=session,
+            run_id=run_id,
+            to_status="rejected",
+            actor=user,
+            note=f"fit failed: {attempt.failure}",
+        )
+    approved = auto_approve and result is not None and all(g.passed for g in gates)
+    if approved:
+        _approve_in(
+            session, run_id, day.commodity_id, by=user, note="auto-approved: every gate passed"
+        )
     return StoredAttempt(run_id, previous, approved)
 
 
