@@ -2,27 +2,34 @@
 
 Units of work
 -------------
-Each day is the morning run's unit of work: its quotes are read in one read transaction and
-fitted outside any transaction (:func:`calib.workflows.runs.attempt_fit`); the run, its
-residuals and its first event are written in one write transaction
-(:func:`calib.workflows.runs.store_attempt`, the same code :func:`~calib.workflows.runs.fit_day`
-uses). A day the calibration refuses is stored as a failed run (status ``rejected``) with its
-reason; a day with futures but no options is reported and nothing is stored for it.
+Days are read :data:`DAYS_PER_TASK` at a time, in one read transaction and one query per
+quote table (:func:`calib.store.quotes.load_days`, which gives each day exactly what
+:func:`~calib.store.quotes.load_day` gives it), and fitted outside any transaction
+(:func:`calib.workflows.runs.attempt_fit`). The runs are written :data:`DAYS_PER_WRITE` days
+per write transaction (:func:`calib.workflows.runs.store_attempts`, the code
+:func:`~calib.workflows.runs.fit_day` uses for its one day): each run with its residuals and
+first event, every day of the batch or, interrupted, none of them. The progress listener
+hears of a day only once its batch is committed. A day the calibration refuses is stored as
+a failed run (status ``rejected``) with its reason; a day with futures but no options is
+reported and nothing is stored for it.
 
 Workers
 -------
 With ``workers > 1`` a :class:`concurrent.futures.ProcessPoolExecutor` (``spawn`` context) reads
-and fits days in parallel; each worker process builds one
+and fits the tasks in parallel; each worker process builds one
 :class:`~calib.calibrate.Calibrator` per problem shape (forward mode: per number of expiry
-buckets) and re-solves it for every day it is given. The calling process is the one writer: it
-stores the days strictly in date order, so with ``auto_approve`` each day is gated against, and
-supersedes, the approved set of the day before. SQLite admits one writer at a time (WAL), and a
-day's write is a small part of its fit, so one writer costs no parallelism.
+buckets) and re-solves it for every day it is given (a fresh solver each time, no warm
+start: a day's result does not depend on the days before it, so one worker, two, and
+:func:`calib.workflows.runs.rerun` agree bit for bit). The calling process is the one writer:
+it stores the days strictly in date order, so with ``auto_approve`` each day is gated
+against, and supersedes, the approved set of the day before (an earlier day of the same
+batch included). SQLite admits one writer at a time (WAL), and a day's write is a small part
+of its fit, so one writer costs no parallelism.
 
 Resume
 ------
-A backfill interrupted at any point leaves every day it stored complete (one transaction a
-day). A day is skipped when it already has a run of the commodity keyed by the same
+A backfill interrupted at any point leaves every day it stored complete (whole batches of
+complete runs). A day is skipped when it already has a run of the commodity keyed by the same
 **estimate id** and the same **settings hash**: the SHA-256 of the canonical JSON (sorted keys,
 no spaces) of the run's stored settings, ``{"calibration": ..., "gates": ...}``. So a rerun of
 the same command fits only the days still missing; changed settings (or another estimate) fit
@@ -31,10 +38,11 @@ every day again, as new runs beside the old ones.
 
 from __future__ import annotations
 
+import itertools
 import multiprocessing
 import time
 from collections import Counter, deque
-from collections.abc import Generator
+from collections.abc import Generator, Sequence
 from concurrent.futures import Future, ProcessPoolExecutor
 from contextlib import closing
 from dataclasses import dataclass, field
@@ -46,7 +54,7 @@ from calib.calibrate.quotes import prepare
 from calib.errors import BackfillRangeError
 from calib.model.twofactor import TwoFactorParams
 from calib.store.engine import Store, make_store
-from calib.store.quotes import DayQuotes, load_day, trade_dates
+from calib.store.quotes import DayQuotes, load_days, trade_dates
 from calib.store.runs import run_keys
 from calib.workflows.provenance import inputs_sha256
 from calib.workflows.runs import (
@@ -55,11 +63,17 @@ from calib.workflows.runs import (
     RunSettings,
     attempt_fit,
     choose_estimate,
-    store_attempt,
+    store_attempts,
 )
 
-QUEUE_PER_WORKER = 4
-"""Days handed out ahead per worker (keeps the workers busy while the writer stores)."""
+DAYS_PER_TASK = 16
+"""Days a worker reads in one query per table and fits before handing them back."""
+
+DAYS_PER_WRITE = 16
+"""Days stored per write transaction: every one of them, or (interrupted) none."""
+
+TASKS_PER_WORKER = 2
+"""Tasks handed out ahead per worker (keeps the workers busy while the writer stores)."""
 
 OUTCOMES = ("fitted", "failed", "no_quotes")
 """Per day: stored with parameters; stored as a failed (rejected) run; nothing to fit."""
@@ -218,20 +232,28 @@ class DayFitter:
             found = self._calibrators[n] = Calibrator(self.settings, n)
         return found
 
-    def __call__(self, trade_date: date) -> FittedDay:
+    def __call__(self, dates: Sequence[date]) -> list[FittedDay]:
+        """Read ``dates`` in one read transaction (:func:`~calib.store.quotes.load_days`),
+        then fit each; a day's ``seconds`` is its fit and its share of the read."""
         started = time.perf_counter()
         if self._store is None:
             self._store = make_store(self.url)
         with self._store.sessions.begin() as session:
-            day = load_day(session=session, commodity=self.commodity, trade_date=trade_date)
-        if not len(day.options):
-            return FittedDay(
-                trade_date, None, None, "no options stored", time.perf_counter() - started
-            )
-        attempt = attempt_fit(
-            day, self.historical, self.settings, calibrator_for=self.calibrator_for
-        )
-        return FittedDay(trade_date, day, attempt, None, time.perf_counter() - started)
+            days = load_days(session=session, commodity=self.commodity, dates=dates)
+        read_share = (time.perf_counter() - started) / max(len(days), 1)
+        out = []
+        for day in days:
+            t0 = time.perf_counter()
+            if not len(day.options):
+                fitted = FittedDay(day.trade_date, None, None, "no options stored", read_share)
+            else:
+                attempt = attempt_fit(
+                    day, self.historical, self.settings, calibrator_for=self.calibrator_for
+                )
+                seconds = read_share + time.perf_counter() - t0
+                fitted = FittedDay(day.trade_date, day, attempt, None, seconds)
+            out.append(fitted)
+        return out
 
     def close(self) -> None:
         if self._store is not None:
@@ -247,18 +269,21 @@ def _start_worker(fitter: DayFitter) -> None:
     _WORKER = fitter
 
 
-def _fit_in_worker(trade_date: date) -> FittedDay:
+def _fit_in_worker(dates: list[date]) -> list[FittedDay]:
     assert _WORKER is not None, "worker not initialised"
-    return _WORKER(trade_date)
+    return _WORKER(dates)
 
 
 def _fitted_in_order(
     fitter: DayFitter, dates: list[date], workers: int
 ) -> Generator[FittedDay, None, None]:
-    """The days fitted, in date order: in this process, or by ``workers`` spawned processes."""
+    """The days fitted, in date order: in this process, or by ``workers`` spawned processes,
+    :data:`DAYS_PER_TASK` days at a time."""
+    tasks = [dates[i : i + DAYS_PER_TASK] for i in range(0, len(dates), DAYS_PER_TASK)]
     if workers <= 1:
         try:
-            yield from map(fitter, dates)
+            for task in tasks:
+                yield from fitter(task)
         finally:
             fitter.close()
         return
@@ -266,20 +291,17 @@ def _fitted_in_order(
     pool = ProcessPoolExecutor(
         max_workers=workers, mp_context=context, initializer=_start_worker, initargs=(fitter,)
     )
-    pending: deque[Future[FittedDay]] = deque()
-    ahead = QUEUE_PER_WORKER * workers
-    todo = iter(dates)
+    pending: deque[Future[list[FittedDay]]] = deque()
+    todo = iter(tasks)
     try:
-        for d in todo:
-            pending.append(pool.submit(_fit_in_worker, d))
-            if len(pending) >= ahead:
-                break
+        for task in itertools.islice(todo, TASKS_PER_WORKER * workers):
+            pending.append(pool.submit(_fit_in_worker, task))
         while pending:
             done = pending.popleft().result()
             nxt = next(todo, None)
             if nxt is not None:
                 pending.append(pool.submit(_fit_in_worker, nxt))
-            yield done
+            yield from done
     finally:
         pool.shutdown(wait=True, cancel_futures=True)
 
@@ -346,34 +368,44 @@ def backfill(
     )
     days: list[BackfillDay] = []
     fit_seconds = write_seconds = 0.0
-    fitted_days = _fitted_in_order(fitter, todo, workers)
-    with closing(fitted_days):  # an interruption stops the workers at once
-        for fitted in fitted_days:
-            fit_seconds += fitted.seconds
-            if fitted.day is None or fitted.attempt is None:
-                day = BackfillDay(fitted.trade_date, "no_quotes", None, fitted.reason, False)
+
+    def write(batch: list[FittedDay]) -> None:
+        """Store ``batch`` in one transaction, then tell ``progress`` of each day in order."""
+        nonlocal write_seconds
+        t0 = time.perf_counter()
+        fits = [(f.day, f.attempt) for f in batch if f.day is not None and f.attempt is not None]
+        stored = iter(
+            store_attempts(
+                store.sessions,
+                fits,
+                estimate.estimate_id,
+                settings,
+                user=user,
+                auto_approve=auto_approve,
+            )
+        )
+        write_seconds += time.perf_counter() - t0
+        for f in batch:
+            if f.day is None or f.attempt is None:
+                day = BackfillDay(f.trade_date, "no_quotes", None, f.reason, False)
             else:
-                t0 = time.perf_counter()
-                stored = store_attempt(
-                    store.sessions,
-                    fitted.day,
-                    estimate.estimate_id,
-                    settings,
-                    fitted.attempt,
-                    user=user,
-                    auto_approve=auto_approve,
-                )
-                write_seconds += time.perf_counter() - t0
-                failure = fitted.attempt.failure
-                day = BackfillDay(
-                    fitted.trade_date,
-                    "failed" if failure is not None else "fitted",
-                    stored.run_id,
-                    failure,
-                    stored.auto_approved,
-                )
+                run = next(stored)
+                failure = f.attempt.failure
+                outcome = "failed" if failure is not None else "fitted"
+                day = BackfillDay(f.trade_date, outcome, run.run_id, failure, run.auto_approved)
             days.append(day)
             progress.advance(day)
+
+    fitted_days = _fitted_in_order(fitter, todo, workers)
+    with closing(fitted_days):  # an interruption stops the workers at once
+        batch: list[FittedDay] = []
+        for fitted in fitted_days:
+            fit_seconds += fitted.seconds
+            batch.append(fitted)
+            if len(batch) == DAYS_PER_WRITE:
+                write(batch)
+                batch = []
+        write(batch)
     return BackfillReport(
         commodity=commodity,
         start=start,

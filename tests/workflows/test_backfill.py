@@ -8,6 +8,7 @@ import itertools
 from pathlib import Path
 
 import pytest
+from sqlalchemy import text
 
 from calib.errors import BackfillRangeError
 from calib.store.engine import Store
@@ -19,6 +20,7 @@ from calib.store.runs import (
     run_status,
 )
 from calib.workflows import backfill as flow
+from calib.workflows import runs as runs_flow
 from calib.workflows.estimates import import_estimate
 from calib.workflows.runs import RunSettings, rerun
 from tests.workflows.small_day import Loaded, load_with_estimate, write_estimate_file
@@ -72,18 +74,21 @@ def _keys(store: Store, loaded: Loaded) -> list[tuple[dt.date, int]]:
     return [(k.trade_date, k.estimate_id) for k in keys]
 
 
-def test_interrupted_backfill_resumes_without_duplicates(store: Store, loaded: Loaded) -> None:
+def test_interrupted_backfill_resumes_without_duplicates(
+    store: Store, loaded: Loaded, monkeypatch: pytest.MonkeyPatch
+) -> None:
+    monkeypatch.setattr(flow, "DAYS_PER_WRITE", 2)
     days = loaded.days[:N_DAYS]
-    stop = StopAfter(3)
+    stop = StopAfter(3)  # told of a day once its write transaction has committed
     with pytest.raises(StopRequestedError):
         flow.backfill(store, loaded.code, days[0], days[-1], user="q", settings=FAST, progress=stop)
     assert stop.total == N_DAYS
-    assert sorted(d for d, _ in _keys(store, loaded)) == days[:3]
+    assert sorted(d for d, _ in _keys(store, loaded)) == days[:4]  # two complete writes
 
     again = flow.backfill(store, loaded.code, days[0], days[-1], user="q", settings=FAST)
-    assert again.skipped == tuple(days[:3])
-    assert [d.trade_date for d in again.days] == days[3:]
-    assert again.count("fitted") == N_DAYS - 3 and not again.failures
+    assert again.skipped == tuple(days[:4])
+    assert [d.trade_date for d in again.days] == days[4:]
+    assert again.count("fitted") == N_DAYS - 4 and not again.failures
     stored = sorted(d for d, _ in _keys(store, loaded))
     assert stored == days  # every day once: none twice, none missing
 
@@ -95,6 +100,35 @@ def test_interrupted_backfill_resumes_without_duplicates(store: Store, loaded: L
     redo = flow.backfill(store, loaded.code, days[0], days[2], user="q", settings=other)
     assert not redo.skipped and redo.count("fitted") == 3
     assert redo.settings_sha256 != again.settings_sha256 == flow.settings_sha256(FAST)
+
+
+def test_a_write_interrupted_before_its_commit_stores_none_of_its_days(
+    store: Store, loaded: Loaded, monkeypatch: pytest.MonkeyPatch
+) -> None:
+    monkeypatch.setattr(flow, "DAYS_PER_WRITE", 3)
+    writes = itertools.count(1)
+
+    def interrupt_the_second_write() -> None:  # inside the transaction, rows inserted
+        if next(writes) == 2:
+            raise StopRequestedError
+
+    monkeypatch.setattr(runs_flow, "_pause_for_tests", interrupt_the_second_write)
+    days = loaded.days[:N_DAYS]
+    with pytest.raises(StopRequestedError):
+        flow.backfill(store, loaded.code, days[0], days[-1], user="q", settings=FAST)
+    assert sorted(d for d, _ in _keys(store, loaded)) == days[:3]
+    with store.engine.connect() as conn:  # nothing of the rolled-back days is left behind
+        runs = conn.execute(text("SELECT count(*) FROM calibration_runs")).scalar_one()
+        events = conn.execute(text("SELECT count(*) FROM run_events")).scalar_one()
+        orphans = conn.execute(
+            text(
+                "SELECT count(*) FROM run_residuals WHERE run_id NOT IN "
+                "(SELECT id FROM calibration_runs)"
+            )
+        ).scalar_one()
+    assert (runs, events, orphans) == (3, 3, 0)
+    again = flow.backfill(store, loaded.code, days[0], days[-1], user="q", settings=FAST)
+    assert again.skipped == tuple(days[:3]) and again.count("fitted") == N_DAYS - 3
 
 
 def test_failures_are_summarised_with_reasons(store: Store, loaded: Loaded, tmp_path: Path) -> None:
@@ -156,10 +190,12 @@ def test_auto_approve_supersedes_in_date_order(store: Store, loaded: Loaded) -> 
 
 @pytest.mark.slow
 def test_two_worker_processes_give_the_same_parameters(
-    store: Store, loaded: Loaded, tmp_path: Path
+    store: Store, loaded: Loaded, tmp_path: Path, monkeypatch: pytest.MonkeyPatch
 ) -> None:
+    monkeypatch.setattr(flow, "DAYS_PER_TASK", 3)  # both workers get days, three at a time
     days = loaded.days[:N_DAYS]
-    one = flow.backfill(store, loaded.code, days[0], days[-1], user="q", settings=FAST)
+    priced = RunSettings.from_dict({})  # re-fits without each binding constraint too
+    one = flow.backfill(store, loaded.code, days[0], days[-1], user="q", settings=priced)
     # the same estimate imported again: a new estimate id, so the days are fitted again
     second = import_estimate(
         store.sessions,
@@ -173,16 +209,19 @@ def test_two_worker_processes_give_the_same_parameters(
         days[0],
         days[-1],
         user="q",
-        settings=FAST,
+        settings=priced,
         estimate_id=second.estimate_id,
         workers=2,
     )
     assert [d.trade_date for d in two.days] == days  # stored in date order
     with store.sessions() as s:
-        params_one = [require_run(session=s, run_id=d.run_id).params for d in one.days]  # type: ignore[arg-type]
-        params_two = [require_run(session=s, run_id=d.run_id).params for d in two.days]  # type: ignore[arg-type]
-    assert all(p is not None for p in params_one)
-    assert params_one == params_two  # bit for bit
+        runs_one = [require_run(session=s, run_id=d.run_id) for d in one.days]  # type: ignore[arg-type]
+        runs_two = [require_run(session=s, run_id=d.run_id) for d in two.days]  # type: ignore[arg-type]
+    assert all(r.params is not None for r in runs_one)
+    assert [r.params for r in runs_one] == [r.params for r in runs_two]  # bit for bit
+    constraints = [r.diagnostics["constraints"] for r in runs_one]
+    assert constraints == [r.diagnostics["constraints"] for r in runs_two]
+    assert any(c["refit_cost"] is not None for day in constraints for c in day)
     # and equal to a fresh fit of the day from its stored rows (problem rebuilt)
     again = rerun(store.sessions, two.days[-1].run_id)  # type: ignore[arg-type]
     assert again.identical
