@@ -579,20 +579,24 @@ def store_attempts(
     with sessions.begin() as session:
         begin_write(session)
         lock_commodity(session=session, commodity_id=commodity_id)
+        # under the lock only these writes can change the approved set in force
+        previous = latest_approved(session=session, commodity=fits[0][0].commodity)
         for day, attempt in fits:
-            out.append(
-                _store_in(
-                    session,
-                    day,
-                    estimate_id,
-                    settings,
-                    run_settings,
-                    version,
-                    attempt,
-                    user=user,
-                    auto_approve=auto_approve,
-                )
+            stored = _store_in(
+                session,
+                day,
+                estimate_id,
+                settings,
+                run_settings,
+                version,
+                attempt,
+                previous,
+                user=user,
+                auto_approve=auto_approve,
             )
+            out.append(stored)
+            if stored.auto_approved:
+                previous = latest_approved(session=session, commodity=day.commodity)
         _pause_for_tests()
     return out
 
@@ -605,13 +609,14 @@ def _store_in(
     run_settings: dict[str, Any],
     version: str,
     attempt: Attempt,
+    previous: RunRecord | None,
     *,
     user: str,
     auto_approve: bool,
 ) -> StoredAttempt:
-    """Write one day's run inside the caller's write transaction (which holds the lock)."""
+    """Write one day's run inside the caller's write transaction (which holds the lock),
+    gated against ``previous``, the approved run in force."""
     inputs = _inputs(day)
-    previous = latest_approved(session=session, commodity=day.commodity)
     result = attempt.result
     gates: tuple[Gate, ...] = ()
     if result is not None:
