@@ -46,6 +46,105 @@ class ImpliedVolError(InputError, ValueError):
         super().__init__(self.TEMPLATE.format(premium=premium, reason=reason))
 
 
+# --- Black-76 implied volatility (numeric core) ---------------------------------------------
+
+IMPLIED_VOL_REASONS: dict[str, str] = {
+    "BELOW_INTRINSIC": "the premium is below the discounted intrinsic value",
+    "ABOVE_UPPER_BOUND": (
+        "the premium is at or above its upper bound (discounted futures price for a call, "
+        "discounted strike for a put)"
+    ),
+    "NON_POSITIVE_INPUT": "futures price, strike and time to expiry must all be > 0",
+    "NO_TIME_VALUE": "the premium equals the intrinsic value, so it carries no volatility",
+    "NON_FINITE_INPUT": "an input is NaN or infinite",
+}
+"""Reason phrases of :class:`ImpliedVolError`, keyed by the implied-vol reason-code name."""
+
+
+# --- calibration ------------------------------------------------------------------------------
+
+
+class SettingError(ParameterError):
+    """A calibration setting outside its domain (e.g. ``yield_floor = 1.5``)."""
+
+
+class QuoteError(InputError, ValueError):
+    """Option quotes that cannot be used as given (shapes, signs, missing fields)."""
+
+    TEMPLATE = "option quotes: {field} {reason}"
+
+    def __init__(self, field: str, reason: str) -> None:
+        self.field = field
+        self.reason = reason
+        super().__init__(self.TEMPLATE.format(field=field, reason=reason))
+
+
+class TooFewQuotesError(InputError):
+    """Fewer usable quotes than the calibration mode has free parameters."""
+
+    TEMPLATE = (
+        "only {usable} usable option quote(s) of {total}, {mode} mode needs at least {needed}"
+        "{dropped}"
+    )
+
+    def __init__(
+        self, usable: int, total: int, mode: str, needed: int, dropped: dict[str, int]
+    ) -> None:
+        self.usable = usable
+        self.needed = needed
+        self.dropped = dict(dropped)
+        why = "; dropped: " + ", ".join(f"{r} ({k})" for r, k in sorted(dropped.items()))
+        super().__init__(
+            self.TEMPLATE.format(
+                usable=usable, total=total, mode=mode, needed=needed, dropped=why if dropped else ""
+            )
+        )
+
+
+class InfeasibleSettingsError(InputError):
+    """Constraints that no parameter set can meet together; says which and by how much."""
+
+    TEMPLATE = "calibration constraints conflict: {conflict}"
+
+    def __init__(self, conflict: str, shortfall: float) -> None:
+        self.conflict = conflict
+        self.shortfall = shortfall
+        super().__init__(self.TEMPLATE.format(conflict=conflict))
+
+
+class CalibrationShapeError(InputError, ValueError):
+    """Quotes that do not fit the shape a re-usable calibrator was built for."""
+
+    TEMPLATE = "calibrator built for {built}, these quotes need {needed}"
+
+    def __init__(self, built: str, needed: str) -> None:
+        super().__init__(self.TEMPLATE.format(built=built, needed=needed))
+
+
+class CalibrationSolverError(CalibError):
+    """The conic solver failed or returned no usable solution; names the solver and status."""
+
+    TEMPLATE = "solver {solver} returned {status}: {cause}"
+
+    def __init__(self, solver: str, status: str, cause: str) -> None:
+        self.solver = solver
+        self.status = status
+        self.cause = cause
+        super().__init__(self.TEMPLATE.format(solver=solver, status=status, cause=cause))
+
+
+class CalibrationInaccurateWarning(CalibWarning):
+    """The solver stopped short of its tolerances; the result carries the flag too."""
+
+    TEMPLATE = "solver {solver} returned {status} at Gauss-Newton iteration {iteration}"
+
+
+class CalibrationNotConvergedWarning(CalibWarning):
+    """Gauss-Newton steps stopped at the iteration limit; the result carries the flag too."""
+
+    TEMPLATE = "Gauss-Newton did not converge in {iterations} iterations (last step {step:.3g})"
+
+
 # --- quote store and ingestion ----------------------------------------------------------------
 
 
@@ -168,105 +267,6 @@ class StoreUnavailableError(CalibError):
         self.url = url
         self.detail = detail
         super().__init__(self.TEMPLATE.format(url=url, detail=detail))
-
-
-# --- Black-76 implied volatility (numeric core) ---------------------------------------------
-
-IMPLIED_VOL_REASONS: dict[str, str] = {
-    "BELOW_INTRINSIC": "the premium is below the discounted intrinsic value",
-    "ABOVE_UPPER_BOUND": (
-        "the premium is at or above its upper bound (discounted futures price for a call, "
-        "discounted strike for a put)"
-    ),
-    "NON_POSITIVE_INPUT": "futures price, strike and time to expiry must all be > 0",
-    "NO_TIME_VALUE": "the premium equals the intrinsic value, so it carries no volatility",
-    "NON_FINITE_INPUT": "an input is NaN or infinite",
-}
-"""Reason phrases of :class:`ImpliedVolError`, keyed by the implied-vol reason-code name."""
-
-
-# --- calibration ------------------------------------------------------------------------------
-
-
-class SettingError(ParameterError):
-    """A calibration setting outside its domain (e.g. ``yield_floor = 1.5``)."""
-
-
-class QuoteError(InputError, ValueError):
-    """Option quotes that cannot be used as given (shapes, signs, missing fields)."""
-
-    TEMPLATE = "option quotes: {field} {reason}"
-
-    def __init__(self, field: str, reason: str) -> None:
-        self.field = field
-        self.reason = reason
-        super().__init__(self.TEMPLATE.format(field=field, reason=reason))
-
-
-class TooFewQuotesError(InputError):
-    """Fewer usable quotes than the calibration mode has free parameters."""
-
-    TEMPLATE = (
-        "only {usable} usable option quote(s) of {total}, {mode} mode needs at least {needed}"
-        "{dropped}"
-    )
-
-    def __init__(
-        self, usable: int, total: int, mode: str, needed: int, dropped: dict[str, int]
-    ) -> None:
-        self.usable = usable
-        self.needed = needed
-        self.dropped = dict(dropped)
-        why = "; dropped: " + ", ".join(f"{r} ({k})" for r, k in sorted(dropped.items()))
-        super().__init__(
-            self.TEMPLATE.format(
-                usable=usable, total=total, mode=mode, needed=needed, dropped=why if dropped else ""
-            )
-        )
-
-
-class InfeasibleSettingsError(InputError):
-    """Constraints that no parameter set can meet together; says which and by how much."""
-
-    TEMPLATE = "calibration constraints conflict: {conflict}"
-
-    def __init__(self, conflict: str, shortfall: float) -> None:
-        self.conflict = conflict
-        self.shortfall = shortfall
-        super().__init__(self.TEMPLATE.format(conflict=conflict))
-
-
-class CalibrationShapeError(InputError, ValueError):
-    """Quotes that do not fit the shape a re-usable calibrator was built for."""
-
-    TEMPLATE = "calibrator built for {built}, these quotes need {needed}"
-
-    def __init__(self, built: str, needed: str) -> None:
-        super().__init__(self.TEMPLATE.format(built=built, needed=needed))
-
-
-class CalibrationSolverError(CalibError):
-    """The conic solver failed or returned no usable solution; names the solver and status."""
-
-    TEMPLATE = "solver {solver} returned {status}: {cause}"
-
-    def __init__(self, solver: str, status: str, cause: str) -> None:
-        self.solver = solver
-        self.status = status
-        self.cause = cause
-        super().__init__(self.TEMPLATE.format(solver=solver, status=status, cause=cause))
-
-
-class CalibrationInaccurateWarning(CalibWarning):
-    """The solver stopped short of its tolerances; the result carries the flag too."""
-
-    TEMPLATE = "solver {solver} returned {status} at Gauss-Newton iteration {iteration}"
-
-
-class CalibrationNotConvergedWarning(CalibWarning):
-    """Gauss-Newton steps stopped at the iteration limit; the result carries the flag too."""
-
-    TEMPLATE = "Gauss-Newton did not converge in {iterations} iterations (last step {step:.3g})"
 
 
 # --- estimation (Kalman-filter maximum likelihood) ---------------------------------------------
@@ -394,3 +394,118 @@ class ReportInputError(InputError, ValueError):
         self.what = what
         self.reason = reason
         super().__init__(self.TEMPLATE.format(what=what, reason=reason))
+# --- estimates, calibration runs and approvals (storage and workflows) -------------------------
+
+
+class UnknownRunError(InputError):
+    """A calibration run id that is not stored."""
+
+    TEMPLATE = "no calibration run {run_id}"
+
+    def __init__(self, run_id: int) -> None:
+        self.run_id = run_id
+        super().__init__(self.TEMPLATE.format(run_id=run_id))
+
+
+class UnknownEstimateError(InputError):
+    """A historical estimate id that is not stored, or belongs to another commodity."""
+
+    TEMPLATE = "no historical estimate {estimate_id}{detail}"
+
+    def __init__(self, estimate_id: int, detail: str = "") -> None:
+        self.estimate_id = estimate_id
+        super().__init__(self.TEMPLATE.format(estimate_id=estimate_id, detail=detail))
+
+
+class NoEstimateError(InputError):
+    """No converged historical estimate to hold the slow parameters at."""
+
+    TEMPLATE = (
+        "no converged historical estimate for {commodity}{unconverged}: run `calib estimate` or "
+        "`calib estimates import`, or name one with --estimate"
+    )
+
+    def __init__(self, commodity: str, unconverged: list[int]) -> None:
+        self.commodity = commodity
+        self.unconverged = list(unconverged)
+        extra = f" (not converged: {', '.join(map(str, unconverged))})" if unconverged else ""
+        super().__init__(self.TEMPLATE.format(commodity=commodity, unconverged=extra))
+
+
+class NotConvergedEstimateError(InputError):
+    """An estimate named explicitly that did not converge (never used silently)."""
+
+    TEMPLATE = "historical estimate {estimate_id} did not converge ({message}); it is not used"
+
+    def __init__(self, estimate_id: int, message: str) -> None:
+        self.estimate_id = estimate_id
+        super().__init__(self.TEMPLATE.format(estimate_id=estimate_id, message=message))
+
+
+class IllegalTransitionError(InputError):
+    """A status change the run's state machine does not allow."""
+
+    TEMPLATE = "run {run_id} is {current}: it cannot become {wanted} (allowed: {allowed})"
+
+    def __init__(self, run_id: int, current: str, wanted: str, allowed: list[str]) -> None:
+        self.run_id = run_id
+        self.current = current
+        self.wanted = wanted
+        super().__init__(
+            self.TEMPLATE.format(
+                run_id=run_id,
+                current=current,
+                wanted=wanted,
+                allowed=", ".join(allowed) if allowed else "none, it is final",
+            )
+        )
+
+
+class EstimateFileError(InputError):
+    """An estimate file that cannot be imported; nothing is stored."""
+
+    TEMPLATE = "{file}: {reason}"
+
+    def __init__(self, file: str, reason: str) -> None:
+        self.file = file
+        self.reason = reason
+        super().__init__(self.TEMPLATE.format(file=file, reason=reason))
+
+
+class SettingsFileError(InputError):
+    """A settings file (TOML) that cannot be read or holds a bad value."""
+
+    TEMPLATE = "{file}: {reason}"
+
+    def __init__(self, file: str, reason: str) -> None:
+        self.file = file
+        self.reason = reason
+        super().__init__(self.TEMPLATE.format(file=file, reason=reason))
+
+
+class NoQuotesError(InputError):
+    """Nothing stored to fit or estimate from (no run is stored)."""
+
+    TEMPLATE = "{commodity}: {what}"
+
+    def __init__(self, commodity: str, what: str) -> None:
+        self.commodity = commodity
+        self.what = what
+        super().__init__(self.TEMPLATE.format(commodity=commodity, what=what))
+
+
+class InputsChangedError(CalibError):
+    """Rows a stored run was made from are no longer in the store as recorded."""
+
+    TEMPLATE = "run {run_id}: its stored inputs cannot be rebuilt: {reason}"
+
+    def __init__(self, run_id: int, reason: str) -> None:
+        self.run_id = run_id
+        super().__init__(self.TEMPLATE.format(run_id=run_id, reason=reason))
+
+
+ESTIMATE_FILE_NOT_JSON = "not a JSON object ({detail})"
+ESTIMATE_FILE_MISSING = "missing key(s) {keys}; an estimate file needs {required}"
+ESTIMATE_FILE_UNKNOWN = "unknown key(s) {keys}; known: {known}"
+ESTIMATE_FILE_DATE = "{key} must be an ISO date (YYYY-MM-DD): {value!r}"
+ESTIMATE_FILE_WINDOW = "window_start {start} is after window_end {end}"

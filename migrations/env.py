@@ -12,6 +12,7 @@ from sqlalchemy import Connection
 
 import calib.store.models  # noqa: F401  (registers the tables on Base.metadata)
 from calib.settings import get_settings
+from calib.store import run_models  # noqa: F401  (the run and estimate tables)
 from calib.store.base import Base
 from calib.store.engine import create_store_engine
 

@@ -30,6 +30,7 @@ from contextlib import contextmanager  # noqa: E402
 from pathlib import Path  # noqa: E402
 
 import calib.store.models  # noqa: E402, F401  (registers the tables on Base.metadata)
+from calib.store import run_models  # noqa: E402, F401  (the run and estimate tables)
 from calib.store.base import Base  # noqa: E402
 from calib.store.engine import Store, create_store_engine, make_store  # noqa: E402
 from calib.store.migrate import upgrade  # noqa: E402

@@ -40,6 +40,7 @@ def _register_all() -> None:
 _COMMAND_MODULES: list[str] = [
     # one module name per line
     "store_cmds",
+    "run_cmds",
 ]
 
 

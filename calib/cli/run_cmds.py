@@ -1,0 +1,427 @@
+"""Historical estimates and the morning run: estimate, estimates, fit, approve, reject, runs,
+show, latest, rerun.
+
+Exit codes: 0 done; 1 the fit failed (a rejected run was stored) or a rerun differs; 2 a user
+mistake (unknown commodity or run, bad file, illegal status change), nothing stored.
+"""
+
+from __future__ import annotations
+
+import time
+from datetime import UTC, datetime
+from pathlib import Path
+from typing import Annotated, Any
+
+import typer
+
+from calib.cli.common import DbOption, JsonOption, echo_json, open_store
+from calib.model.twofactor import PARAM_NAMES
+from calib.store.estimates import EstimateRecord, list_estimates
+from calib.store.runs import (
+    RunRecord,
+    approved_history,
+    latest_approved,
+    list_runs,
+    require_run,
+    run_residuals,
+)
+from calib.workflows import estimates as estimate_flow
+from calib.workflows import runs as run_flow
+
+EXIT_FIT_FAILED = 1
+EXIT_RERUN_DIFFERS = 1
+
+Commodity = Annotated[str, typer.Argument(help="Commodity code.")]
+RunId = Annotated[int, typer.Argument(help="Run id.", metavar="RUN")]
+ByOpt = Annotated[str, typer.Option("--by", help="Who decides (recorded on the event).")]
+NoteOpt = Annotated[str, typer.Option("--note", help="Why (recorded on the event).")]
+
+
+def register(app: typer.Typer) -> None:
+    """Add the estimate and run commands to ``app``."""
+    app.command("estimate")(estimate_cmd)
+    app.command("estimates")(estimates_cmd)
+    app.command("fit")(fit_cmd)
+    app.command("approve")(approve_cmd)
+    app.command("reject")(reject_cmd)
+    app.command("runs")(runs_cmd)
+    app.command("show")(show_cmd)
+    app.command("latest")(latest_cmd)
+    app.command("rerun")(rerun_cmd)
+
+
+def _g(value: float | None, fmt: str = ".6g") -> str:
+    return "-" if value is None else format(value, fmt)
+
+
+def _params_line(values: dict[str, Any]) -> str:
+    return "  ".join(f"{n}={_g(values.get(n))}" for n in PARAM_NAMES)
+
+
+# --- estimates ---------------------------------------------------------------------------------
+
+
+def _print_estimate(e: EstimateRecord) -> None:
+    flag = "converged" if e.converged else "NOT CONVERGED (never used by default)"
+    typer.echo(
+        f"estimate {e.estimate_id} of {e.commodity} ({e.source}), {e.window_start}..{e.window_end}"
+        f": {flag}"
+    )
+    if e.n_days is not None:
+        typer.echo(
+            f"  {e.n_days} days x {e.n_contracts} contracts, {e.n_obs} prices, "
+            f"log-likelihood {_g(e.loglik, '.6f')}, r = {_g(e.rate, '.4%')}"
+        )
+    typer.echo(f"  {e.message}")
+    for n in PARAM_NAMES:
+        se = e.std_errors.get(n)
+        typer.echo(f"  {n:<12} {getattr(e.params, n):>12.6g}   s.e. {_g(se)}")
+    if e.noise_sd:
+        typer.echo("  noise sd     " + "  ".join(f"{x:.4g}" for x in e.noise_sd))
+
+
+def _progress(started: float) -> estimate_flow.Progress:
+    """Progress lines on stderr, each with the seconds since ``started``."""
+
+    def show(message: str) -> None:
+        typer.echo(f"[{time.monotonic() - started:6.1f}s] {message}", err=True)
+
+    return show
+
+
+def estimate_cmd(
+    commodity: Commodity,
+    start: Annotated[datetime, typer.Option("--from", formats=["%Y-%m-%d"], help="First day.")],
+    end: Annotated[datetime, typer.Option("--to", formats=["%Y-%m-%d"], help="Last day.")],
+    contracts: Annotated[int, typer.Option("--contracts", min=2, help="Contracts a day.")] = 5,
+    min_days: Annotated[
+        int, typer.Option("--min-days", min=2, help="Fewest trading days accepted.")
+    ] = estimate_flow.MIN_DAYS,
+    db: DbOption = None,
+    as_json: JsonOption = False,
+) -> None:
+    """Estimate the model from stored futures (Kalman-filter maximum likelihood) and store it."""
+    with open_store(db) as (store, settings):
+        record = estimate_flow.estimate(
+            store.sessions,
+            commodity,
+            start.date(),
+            end.date(),
+            user=settings.user,
+            n_contracts=contracts,
+            min_days=min_days,
+            progress=_progress(time.monotonic()),
+        )
+    if as_json:
+        echo_json(record.to_dict())
+    else:
+        _print_estimate(record)
+
+
+def estimates_cmd(
+    what: Annotated[str, typer.Argument(help="COMMODITY to list, or `import`.", metavar="ARG")],
+    commodity: Annotated[
+        str | None, typer.Argument(help="With `import`: the commodity.", show_default=False)
+    ] = None,
+    file: Annotated[
+        Path | None, typer.Argument(help="With `import`: the JSON file.", show_default=False)
+    ] = None,
+    db: DbOption = None,
+    as_json: JsonOption = False,
+) -> None:
+    """List a commodity's estimates (`calib estimates QLM`), or register one made elsewhere
+    (`calib estimates import QLM FILE.json`: the seven parameter names plus window_start and
+    window_end; marked imported)."""
+    if what == "import":
+        if commodity is None or file is None:
+            raise typer.BadParameter("usage: calib estimates import COMMODITY FILE.json")
+        with open_store(db) as (store, settings):
+            record = estimate_flow.import_estimate(
+                store.sessions, commodity, file, user=settings.user
+            )
+        if as_json:
+            echo_json(record.to_dict())
+        else:
+            _print_estimate(record)
+        return
+    if commodity is not None:
+        raise typer.BadParameter(f"unexpected argument {commodity!r} (did you mean `import`?)")
+    with open_store(db) as (store, _), store.sessions.begin() as session:
+        records = list_estimates(session=session, commodity=what)
+    if as_json:
+        echo_json([r.to_dict() for r in records])
+        return
+    if not records:
+        typer.echo(f"{what}: no estimates stored")
+    for r in records:
+        typer.echo(
+            f"{r.estimate_id:>5}  {r.source:<8}  {r.window_start}..{r.window_end}  "
+            f"{'converged' if r.converged else 'NOT converged':<13}  "
+            f"{r.created_at:%Y-%m-%d %H:%M} {r.created_by:<10}  {_params_line(r.params.to_dict())}"
+        )
+
+
+# --- runs --------------------------------------------------------------------------------------
+
+
+def _print_gates(gates: list[dict[str, Any]]) -> None:
+    typer.echo("gates:")
+    for g in gates:
+        value = g["value"] if isinstance(g["value"], str) else _g(g["value"], ".4g")
+        limit = g["limit"] if isinstance(g["limit"], str) else _g(g["limit"], ".4g")
+        mark = "pass" if g["passed"] else "FAIL"
+        detail = f"  ({g['detail']})" if g["detail"] else ""
+        typer.echo(f"  {mark}  {g['name']:<17} {value:>22}   limit {limit}{detail}")
+
+
+def _print_run(run: RunRecord) -> None:
+    typer.echo(
+        f"run {run.run_id}: {run.commodity} {run.trade_date}, {run.mode} mode, "
+        f"estimate {run.estimate_id}: {run.status.upper()}"
+    )
+    if run.params is None:
+        typer.echo(f"  fit failed: {run.failure_reason}")
+        return
+    d = run.diagnostics
+    unit = "vol" if d["error_measure"] == "vol" else "premium per unit forward"
+    typer.echo(
+        f"  fit: rmse {d['rmse']:.4g}, max error {d['max_error']:.4g} ({unit}); "
+        f"{d['n_quotes']} quotes, {len(d['dropped'])} dropped; {d['solver']} {d['status']}, "
+        f"{d['iterations']} iterations{'; flags ' + ', '.join(d['flags']) if d['flags'] else ''}"
+    )
+    typer.echo(f"  binding constraints: {', '.join(d['binding']) or 'none'}")
+    typer.echo("  " + _params_line(run.params.to_dict()))
+    if run.approved_at is not None:
+        typer.echo(f"  approved {run.approved_at:%Y-%m-%d %H:%M:%S} by {run.approved_by}")
+
+
+def _print_fit(outcome: run_flow.FitOutcome) -> None:
+    run = outcome.run
+    _print_run(run)
+    if run.params is None:
+        typer.echo("  status rejected; the approved set is unchanged")
+        return
+    change = outcome.change()
+    if change is None:
+        typer.echo("change: no approved set yet")
+    else:
+        assert outcome.previous is not None
+        typer.echo(f"change against approved run {outcome.previous.run_id}:")
+        for n in ("sigma_spot", "sigma_yield", "rho"):
+            c = change[n]
+            typer.echo(f"  {n:<12} {c['approved']:.6g} -> {c['new']:.6g}  ({c['change']:+.4g})")
+    _print_gates(outcome.gates)
+    if outcome.auto_approved:
+        typer.echo("every gate passed: approved")
+
+
+def fit_cmd(
+    commodity: Commodity,
+    trade_date: Annotated[
+        datetime, typer.Option("--date", formats=["%Y-%m-%d"], help="Trading day (YYYY-MM-DD).")
+    ],
+    settings_file: Annotated[
+        Path | None,
+        typer.Option(
+            "--settings", help="TOML: [calibration] and [gates] tables.", show_default=False
+        ),
+    ] = None,
+    estimate_id: Annotated[
+        int | None,
+        typer.Option(
+            "--estimate",
+            help="Historical estimate id (default: newest converged).",
+            show_default=False,
+        ),
+    ] = None,
+    auto_approve: Annotated[
+        bool, typer.Option("--auto-approve", help="Approve if every gate passes.")
+    ] = False,
+    db: DbOption = None,
+    as_json: JsonOption = False,
+) -> None:
+    """Calibrate the volatilities to a day's option quotes and store the run as a candidate.
+
+    Exit code 1 when the fit failed (stored as a rejected run with its reason).
+    """
+    settings = run_flow.load_settings(settings_file, commodity)
+    with open_store(db) as (store, program):
+        outcome = run_flow.fit_day(
+            store.sessions,
+            commodity,
+            trade_date.date(),
+            user=program.user,
+            settings=settings,
+            estimate_id=estimate_id,
+            auto_approve=auto_approve,
+        )
+    if as_json:
+        echo_json(outcome.to_dict())
+    else:
+        _print_fit(outcome)
+    if outcome.run.outcome == "failed":
+        raise typer.Exit(EXIT_FIT_FAILED)
+
+
+def approve_cmd(
+    run_id: RunId, by: ByOpt, note: NoteOpt, db: DbOption = None, as_json: JsonOption = False
+) -> None:
+    """Approve a candidate run; the commodity's previous approved set becomes superseded."""
+    with open_store(db) as (store, _):
+        result = run_flow.approve(store.sessions, run_id, by=by, note=note)
+    if as_json:
+        echo_json({**result.run.to_dict(), "superseded_run_id": result.superseded})
+        return
+    typer.echo(f"run {run_id} approved by {by}")
+    if result.superseded is not None:
+        typer.echo(f"run {result.superseded} superseded")
+
+
+def reject_cmd(
+    run_id: RunId, by: ByOpt, note: NoteOpt, db: DbOption = None, as_json: JsonOption = False
+) -> None:
+    """Reject a candidate run."""
+    with open_store(db) as (store, _):
+        run = run_flow.reject(store.sessions, run_id, by=by, note=note)
+    if as_json:
+        echo_json(run.to_dict())
+    else:
+        typer.echo(f"run {run_id} rejected by {by}")
+
+
+def runs_cmd(
+    commodity: Commodity,
+    on: Annotated[
+        datetime | None,
+        typer.Option(
+            "--date", formats=["%Y-%m-%d"], help="Only this trading day.", show_default=False
+        ),
+    ] = None,
+    limit: Annotated[int, typer.Option("--limit", min=1, help="At most this many.")] = 50,
+    db: DbOption = None,
+    as_json: JsonOption = False,
+) -> None:
+    """List a commodity's runs, newest first, with their current status."""
+    with open_store(db) as (store, _), store.sessions.begin() as session:
+        runs = list_runs(
+            session=session,
+            commodity=commodity,
+            trade_date=None if on is None else on.date(),
+            limit=limit,
+        )
+    if as_json:
+        echo_json([r.to_dict() for r in runs])
+        return
+    if not runs:
+        typer.echo(f"{commodity}: no runs stored")
+    for r in runs:
+        quality = f"rmse {r.diagnostics['rmse']:.3g}" if r.params is not None else "failed"
+        values = r.params.to_dict() if r.params is not None else {}
+        typer.echo(
+            f"{r.run_id:>5}  {r.trade_date}  {r.status:<10}  {quality:<12}  "
+            + "  ".join(
+                f"{n}={_g(values.get(n), '.4g')}" for n in ("sigma_spot", "sigma_yield", "rho")
+            )
+        )
+
+
+def show_cmd(run_id: RunId, db: DbOption = None, as_json: JsonOption = False) -> None:
+    """Show a run: parameters, fit, gates, events and per-quote residuals."""
+    with open_store(db) as (store, _), store.sessions.begin() as session:
+        run = require_run(session=session, run_id=run_id)
+        residuals = run_residuals(session=session, run_id=run_id)
+    if as_json:
+        echo_json(
+            {
+                **run.to_dict(with_inputs=True),
+                "residuals": residuals.to_dict(orient="records"),
+            }
+        )
+        return
+    _print_run(run)
+    if run.params is not None:
+        _print_gates(list(run.diagnostics.get("gates", [])))
+    typer.echo("events:")
+    for e in run.events:
+        typer.echo(f"  {e.at:%Y-%m-%d %H:%M:%S}  {e.to_status:<10} by {e.actor}: {e.note}")
+    if len(residuals):
+        typer.echo("residuals (vol points, model - market):")
+        for q, v in zip(residuals["quote_id"], residuals["vol_residual"], strict=True):
+            typer.echo(f"  quote {q:>7}  {100 * v:+.3f}")
+
+
+def _as_of(value: datetime | None) -> datetime | None:
+    if value is not None and value.tzinfo is None:
+        return value.replace(tzinfo=UTC)
+    return value
+
+
+def latest_cmd(
+    commodity: Commodity,
+    as_of: Annotated[
+        datetime | None,
+        typer.Option(
+            "--as-of",
+            formats=["%Y-%m-%d", "%Y-%m-%dT%H:%M:%S", "%Y-%m-%dT%H:%M:%S%z"],
+            help="The set in force at this time (UTC unless a zone is given); default now.",
+            show_default=False,
+        ),
+    ] = None,
+    history: Annotated[
+        bool, typer.Option("--history", help="Every approval, oldest first.")
+    ] = False,
+    db: DbOption = None,
+    as_json: JsonOption = False,
+) -> None:
+    """The approved parameter set in force (exit code 2 if there is none)."""
+    with open_store(db) as (store, _), store.sessions.begin() as session:
+        if history:
+            approvals = approved_history(session=session, commodity=commodity)
+            run = None
+        else:
+            run = latest_approved(session=session, commodity=commodity, as_of=_as_of(as_of))
+    if history:
+        if as_json:
+            echo_json([a.to_dict() for a in approvals])
+            return
+        for a in approvals:
+            until = (
+                "in force" if a.superseded_at is None else f"until {a.superseded_at:%Y-%m-%d %H:%M}"
+            )
+            typer.echo(
+                f"run {a.run_id:>5}  {a.trade_date}  approved {a.approved_at:%Y-%m-%d %H:%M} by "
+                f"{a.approved_by} ({until})  {_params_line(a.params.to_dict())}"
+            )
+        return
+    if run is None:
+        when = "now" if as_of is None else f"at {_as_of(as_of)}"
+        typer.echo(f"error: {commodity}: no approved parameter set {when}", err=True)
+        raise typer.Exit(2)
+    if as_json:
+        echo_json(run.to_dict())
+    else:
+        _print_run(run)
+
+
+def rerun_cmd(run_id: RunId, db: DbOption = None, as_json: JsonOption = False) -> None:
+    """Fit a run again from its stored quote rows and settings; say if the result is identical.
+
+    Exit code 1 if the parameters differ.
+    """
+    with open_store(db) as (store, _):
+        result = run_flow.rerun(store.sessions, run_id)
+    if as_json:
+        echo_json(result.to_dict())
+    elif result.identical:
+        typer.echo(f"run {run_id}: rerun identical, bit for bit ({result.run.code_version})")
+    else:
+        typer.echo(f"run {run_id}: rerun DIFFERS")
+        for n, d in result.differences.items():
+            typer.echo(f"  {n}: {d:+.3e}")
+        if result.failure:
+            typer.echo(f"  rerun failed: {result.failure}")
+        typer.echo(
+            f"  stored by {result.run.code_version}, now {result.to_dict()['code_version_now']}"
+        )
+    if not result.identical:
+        raise typer.Exit(EXIT_RERUN_DIFFERS)

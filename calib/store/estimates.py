@@ -1,0 +1,234 @@
+"""Historical estimates: the store functions workflows call (sessions handed in, STYLE 13).
+
+An estimate is inserted once with its states and never changed. The calibration holds its
+slow parameters at the newest *converged* estimate of the commodity (:func:`latest_estimate`)
+unless the user names another; an estimate that did not converge is stored (so the attempt is
+on record) but never picked by default.
+"""
+
+from __future__ import annotations
+
+from collections.abc import Mapping, Sequence
+from dataclasses import dataclass
+from datetime import date, datetime
+from types import MappingProxyType
+from typing import Any, cast
+
+import pandas as pd
+from sqlalchemy import Table, select
+from sqlalchemy.orm import Session
+
+from calib.model.twofactor import PARAM_NAMES, TwoFactorParams
+from calib.store.models import Commodity
+from calib.store.quotes import DateArray, insert_columns, require_commodity
+from calib.store.run_models import EstimateState, HistoricalEstimate
+from calib.types import FloatArray
+
+STATE_COLUMNS = ("log_spot_filtered", "yield_filtered", "log_spot_smoothed", "yield_smoothed")
+
+_states = cast(Table, EstimateState.__table__)
+
+
+@dataclass(frozen=True, slots=True)
+class EstimateRecord:
+    """A stored historical estimate (read-only); ``std_errors`` values are ``None`` if unknown."""
+
+    estimate_id: int
+    commodity: str
+    created_at: datetime
+    created_by: str
+    source: str
+    window_start: date
+    window_end: date
+    n_contracts: int | None
+    n_days: int | None
+    n_obs: int | None
+    loglik: float | None
+    rate: float | None
+    converged: bool
+    message: str
+    params: TwoFactorParams
+    std_errors: Mapping[str, float | None]
+    noise_sd: tuple[float, ...]
+    inputs_sha256: str
+    settings: Mapping[str, Any]
+    code_version: str
+
+    def to_dict(self) -> dict[str, Any]:
+        """Plain values for JSON, the seven parameter names at the top level."""
+        return {
+            "estimate_id": self.estimate_id,
+            "commodity": self.commodity,
+            "source": self.source,
+            **self.params.to_dict(),
+            "std_errors": dict(self.std_errors),
+            "noise_sd": list(self.noise_sd),
+            "window_start": self.window_start.isoformat(),
+            "window_end": self.window_end.isoformat(),
+            "n_contracts": self.n_contracts,
+            "n_days": self.n_days,
+            "n_obs": self.n_obs,
+            "loglik": self.loglik,
+            "rate": self.rate,
+            "converged": self.converged,
+            "message": self.message,
+            "inputs_sha256": self.inputs_sha256,
+            "settings": dict(self.settings),
+            "created_at": self.created_at.isoformat(),
+            "created_by": self.created_by,
+            "code_version": self.code_version,
+        }
+
+
+def _record(row: HistoricalEstimate, code: str) -> EstimateRecord:
+    return EstimateRecord(
+        estimate_id=row.id,
+        commodity=code,
+        created_at=row.created_at,
+        created_by=row.created_by,
+        source=row.source,
+        window_start=row.window_start,
+        window_end=row.window_end,
+        n_contracts=row.n_contracts,
+        n_days=row.n_days,
+        n_obs=row.n_obs,
+        loglik=row.loglik,
+        rate=row.rate,
+        converged=row.converged,
+        message=row.message,
+        params=TwoFactorParams(**{n: getattr(row, n) for n in PARAM_NAMES}),
+        std_errors=MappingProxyType(dict(row.std_errors)),
+        noise_sd=tuple(row.noise_sd),
+        inputs_sha256=row.inputs_sha256,
+        settings=MappingProxyType(dict(row.settings)),
+        code_version=row.code_version,
+    )
+
+
+@dataclass(frozen=True, slots=True)
+class StatesIn:
+    """The states to store with an estimate: (n_days,) dates and four aligned columns."""
+
+    trade_date: DateArray
+    log_spot_filtered: FloatArray
+    yield_filtered: FloatArray
+    log_spot_smoothed: FloatArray
+    yield_smoothed: FloatArray
+
+
+def add_estimate(
+    *,
+    session: Session,
+    commodity_id: int,
+    created_at: datetime,
+    created_by: str,
+    source: str,
+    window_start: date,
+    window_end: date,
+    params: TwoFactorParams,
+    converged: bool,
+    message: str,
+    std_errors: Mapping[str, float | None],
+    noise_sd: Sequence[float],
+    inputs: Mapping[str, Any],
+    inputs_sha256: str,
+    settings: Mapping[str, Any],
+    code_version: str,
+    n_contracts: int | None = None,
+    n_days: int | None = None,
+    n_obs: int | None = None,
+    loglik: float | None = None,
+    rate: float | None = None,
+    states: StatesIn | None = None,
+) -> int:
+    """Insert an estimate (and its states, in bulk); returns its id."""
+    row = HistoricalEstimate(
+        commodity_id=commodity_id,
+        created_at=created_at,
+        created_by=created_by,
+        source=source,
+        window_start=window_start,
+        window_end=window_end,
+        n_contracts=n_contracts,
+        n_days=n_days,
+        n_obs=n_obs,
+        loglik=loglik,
+        rate=rate,
+        converged=converged,
+        message=message,
+        std_errors=dict(std_errors),
+        noise_sd=[float(x) for x in noise_sd],
+        inputs=dict(inputs),
+        inputs_sha256=inputs_sha256,
+        settings=dict(settings),
+        code_version=code_version,
+        **params.to_dict(),
+    )
+    session.add(row)
+    session.flush()
+    if states is not None:
+        insert_columns(
+            session=session,
+            table=_states,
+            columns={
+                "estimate_id": row.id,
+                "trade_date": states.trade_date,
+                **{name: getattr(states, name) for name in STATE_COLUMNS},
+            },
+            count=len(states.trade_date),
+        )
+    return row.id
+
+
+def _code(session: Session, commodity_id: int) -> str:
+    return session.scalars(select(Commodity.code).where(Commodity.id == commodity_id)).one()
+
+
+def get_estimate(*, session: Session, estimate_id: int) -> EstimateRecord | None:
+    """The estimate ``estimate_id``, or ``None``."""
+    row = session.get(HistoricalEstimate, estimate_id)
+    return None if row is None else _record(row, _code(session, row.commodity_id))
+
+
+def list_estimates(*, session: Session, commodity: str) -> list[EstimateRecord]:
+    """Every estimate of ``commodity``, newest first."""
+    cid = require_commodity(session=session, code=commodity).id
+    stmt = (
+        select(HistoricalEstimate)
+        .where(HistoricalEstimate.commodity_id == cid)
+        .order_by(HistoricalEstimate.id.desc())
+    )
+    return [_record(row, commodity) for row in session.scalars(stmt)]
+
+
+def latest_estimate(
+    *, session: Session, commodity: str, converged_only: bool = True
+) -> EstimateRecord | None:
+    """The newest estimate of ``commodity`` (by default the newest converged one), or ``None``."""
+    cid = require_commodity(session=session, code=commodity).id
+    stmt = select(HistoricalEstimate).where(HistoricalEstimate.commodity_id == cid)
+    if converged_only:
+        stmt = stmt.where(HistoricalEstimate.converged.is_(True))
+    row = session.scalars(stmt.order_by(HistoricalEstimate.id.desc()).limit(1)).one_or_none()
+    return None if row is None else _record(row, commodity)
+
+
+def unconverged_estimate_ids(*, session: Session, commodity: str) -> list[int]:
+    """Ids of the commodity's estimates that did not converge, newest first."""
+    cid = require_commodity(session=session, code=commodity).id
+    stmt = (
+        select(HistoricalEstimate.id)
+        .where(HistoricalEstimate.commodity_id == cid, HistoricalEstimate.converged.is_(False))
+        .order_by(HistoricalEstimate.id.desc())
+    )
+    return list(session.scalars(stmt))
+
+
+def estimate_states(*, session: Session, estimate_id: int) -> pd.DataFrame:
+    """Columns ``trade_date`` and :data:`STATE_COLUMNS`, by trade date (empty if imported)."""
+    stmt = (
+        select(_states.c.trade_date, *[_states.c[c] for c in STATE_COLUMNS])
+        .where(_states.c.estimate_id == estimate_id)
+        .order_by(_states.c.trade_date)
+    )
+    return pd.DataFrame(session.execute(stmt).all(), columns=["trade_date", *STATE_COLUMNS])
