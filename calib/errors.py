@@ -509,3 +509,27 @@ ESTIMATE_FILE_MISSING = "missing key(s) {keys}; an estimate file needs {required
 ESTIMATE_FILE_UNKNOWN = "unknown key(s) {keys}; known: {known}"
 ESTIMATE_FILE_DATE = "{key} must be an ISO date (YYYY-MM-DD): {value!r}"
 ESTIMATE_FILE_WINDOW = "window_start {start} is after window_end {end}"
+
+
+# --- serving: the pricers' client and the HTTP API ---------------------------------------------
+
+
+class NoApprovedSetError(InputError):
+    """A commodity that had no approved parameter set at the time asked for."""
+
+    TEMPLATE = "{commodity}: no approved parameter set {when}"
+
+    def __init__(self, commodity: str, when: str) -> None:
+        self.commodity = commodity
+        super().__init__(self.TEMPLATE.format(commodity=commodity, when=when))
+
+
+class ApiTokenError(InputError):
+    """An approval token for the HTTP API that cannot be used; the server does not start."""
+
+    TEMPLATE = "approval token {source}: {reason}"
+    MIN_LENGTH = 16
+
+    def __init__(self, source: str, reason: str) -> None:
+        self.source = source
+        super().__init__(self.TEMPLATE.format(source=source, reason=reason))
