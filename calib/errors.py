@@ -394,6 +394,8 @@ class ReportInputError(InputError, ValueError):
         self.what = what
         self.reason = reason
         super().__init__(self.TEMPLATE.format(what=what, reason=reason))
+
+
 # --- estimates, calibration runs and approvals (storage and workflows) -------------------------
 
 

@@ -10,7 +10,7 @@ from __future__ import annotations
 import time
 from datetime import UTC, datetime
 from pathlib import Path
-from typing import Annotated, Any
+from typing import Annotated, Any, NoReturn
 
 import typer
 
@@ -30,8 +30,16 @@ from calib.workflows import runs as run_flow
 
 EXIT_FIT_FAILED = 1
 EXIT_RERUN_DIFFERS = 1
+EXIT_NONE_APPROVED = 2
 
-Commodity = Annotated[str, typer.Argument(help="Commodity code.")]
+
+def _exit(code: int) -> NoReturn:
+    # SystemExit, not typer.Exit: in click's non-standalone mode (calib.cli.main) an Exit is
+    # turned into a return value and its code would be lost
+    raise SystemExit(code)
+
+
+Commodity = Annotated[str, typer.Argument(help="Commodity code.", metavar="COMMODITY")]
 RunId = Annotated[int, typer.Argument(help="Run id.", metavar="RUN")]
 ByOpt = Annotated[str, typer.Option("--by", help="Who decides (recorded on the event).")]
 NoteOpt = Annotated[str, typer.Option("--note", help="Why (recorded on the event).")]
@@ -121,10 +129,14 @@ def estimate_cmd(
 def estimates_cmd(
     what: Annotated[str, typer.Argument(help="COMMODITY to list, or `import`.", metavar="ARG")],
     commodity: Annotated[
-        str | None, typer.Argument(help="With `import`: the commodity.", show_default=False)
+        str | None,
+        typer.Argument(
+            help="With `import`: the commodity.", metavar="[COMMODITY]", show_default=False
+        ),
     ] = None,
     file: Annotated[
-        Path | None, typer.Argument(help="With `import`: the JSON file.", show_default=False)
+        Path | None,
+        typer.Argument(help="With `import`: the JSON file.", metavar="[FILE]", show_default=False),
     ] = None,
     db: DbOption = None,
     as_json: JsonOption = False,
@@ -183,7 +195,7 @@ def _print_run(run: RunRecord) -> None:
         typer.echo(f"  fit failed: {run.failure_reason}")
         return
     d = run.diagnostics
-    unit = "vol" if d["error_measure"] == "vol" else "premium per unit forward"
+    unit = "Black vol, decimal" if d["error_measure"] == "vol" else "premium, currency"
     typer.echo(
         f"  fit: rmse {d['rmse']:.4g}, max error {d['max_error']:.4g} ({unit}); "
         f"{d['n_quotes']} quotes, {len(d['dropped'])} dropped; {d['solver']} {d['status']}, "
@@ -260,7 +272,7 @@ def fit_cmd(
     else:
         _print_fit(outcome)
     if outcome.run.outcome == "failed":
-        raise typer.Exit(EXIT_FIT_FAILED)
+        _exit(EXIT_FIT_FAILED)
 
 
 def approve_cmd(
@@ -396,7 +408,7 @@ def latest_cmd(
     if run is None:
         when = "now" if as_of is None else f"at {_as_of(as_of)}"
         typer.echo(f"error: {commodity}: no approved parameter set {when}", err=True)
-        raise typer.Exit(2)
+        _exit(EXIT_NONE_APPROVED)
     if as_json:
         echo_json(run.to_dict())
     else:
@@ -424,4 +436,4 @@ def rerun_cmd(run_id: RunId, db: DbOption = None, as_json: JsonOption = False) -
             f"  stored by {result.run.code_version}, now {result.to_dict()['code_version_now']}"
         )
     if not result.identical:
-        raise typer.Exit(EXIT_RERUN_DIFFERS)
+        _exit(EXIT_RERUN_DIFFERS)

@@ -15,6 +15,17 @@ from calib import __version__
 _SOURCE_ROOT = Path(__file__).resolve().parents[2]
 
 
+def _git(*args: str) -> str:
+    done = subprocess.run(
+        ["git", "-C", str(_SOURCE_ROOT), *args],
+        capture_output=True,
+        text=True,
+        timeout=5,
+        check=True,
+    )
+    return done.stdout.strip()
+
+
 @cache
 def code_version() -> str:
     """``calib.__version__``, plus ``+g<commit>`` (and ``.dirty``) when run from a git checkout.
@@ -23,20 +34,8 @@ def code_version() -> str:
     package) only the version is given.
     """
     try:
-        commit = subprocess.run(
-            ["git", "-C", str(_SOURCE_ROOT), "rev-parse", "--short=12", "HEAD"],
-            capture_output=True,
-            text=True,
-            timeout=5,
-            check=True,
-        ).stdout.strip()
-        dirty = subprocess.run(
-            ["git", "-C", str(_SOURCE_ROOT), "status", "--porcelain", "--untracked-files=no"],
-            capture_output=True,
-            text=True,
-            timeout=5,
-            check=True,
-        ).stdout.strip()
+        commit = _git("rev-parse", "--short=12", "HEAD")
+        dirty = _git("status", "--porcelain", "--untracked-files=no")
     except (OSError, subprocess.SubprocessError):
         return __version__
     return f"{__version__}+g{commit}{'.dirty' if dirty else ''}" if commit else __version__

@@ -9,6 +9,7 @@ from pathlib import Path
 import pytest
 
 from calib.cli import main
+from calib.store.migrate import head_revision
 
 FUTURES = "trade_date,commodity,delivery,settle\n2031-03-03,QRX,2031-05-01,50\n"
 OPTIONS = (
@@ -91,5 +92,5 @@ def test_commands_need_an_initialised_database(
     code, _, err = run(capsys, monkeypatch, "quotes", "QRX", "--date", "2031-03-03")
     assert code == 2 and "calib init" in err and not (tmp_path / "db").exists()
     code, out, _ = run(capsys, monkeypatch, "init", "--json")
-    assert code == 0 and json.loads(out)["after"] == "0001"
+    assert code == 0 and json.loads(out)["after"] == head_revision()
     assert (tmp_path / "db" / "calib.sqlite").exists()
