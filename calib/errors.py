@@ -513,6 +513,70 @@ ESTIMATE_FILE_DATE = "{key} must be an ISO date (YYYY-MM-DD): {value!r}"
 ESTIMATE_FILE_WINDOW = "window_start {start} is after window_end {end}"
 
 
+# --- backfill and spread pricing (workflows) ---------------------------------------------------
+
+
+class BackfillRangeError(InputError):
+    """A backfill asked for an empty date range or no workers."""
+
+
+class SpreadRequestError(InputError):
+    """A spread option that cannot be priced from the store as asked (nothing is priced)."""
+
+    TEMPLATE = "{commodity}: {reason}"
+
+    def __init__(self, commodity: str, reason: str) -> None:
+        self.commodity = commodity
+        self.reason = reason
+        super().__init__(self.TEMPLATE.format(commodity=commodity, reason=reason))
+
+
+SPREAD_NO_APPROVED = "no approved parameter set (fit and approve a run, or name one with --run)"
+SPREAD_RUN_OTHER = "run {run_id} is {other}'s, not this commodity's"
+SPREAD_RUN_FAILED = "run {run_id} failed and has no parameters"
+SPREAD_NOT_QUOTED = "no futures settlement for delivery {delivery} on {day}"
+SPREAD_ORDER = "the near delivery {near} must come before the far delivery {far}"
+SPREAD_EXPIRY = "the expiry {expiry} must lie after {day} and not after the near delivery {near}"
+
+
+# --- fit report, compare over stored runs, the demo (workflows) ------------------------------
+
+
+class RunNotFittedError(InputError):
+    """A run that failed has no fit to report or compare."""
+
+    TEMPLATE = "run {run_id} failed ({reason}): it has no fit to report"
+
+    def __init__(self, run_id: int, reason: str) -> None:
+        self.run_id = run_id
+        self.reason = reason
+        super().__init__(self.TEMPLATE.format(run_id=run_id, reason=reason))
+
+
+class BandOptionError(InputError):
+    """A ``--band-*`` option that is not ``LO,HI`` with two finite numbers, ``LO <= HI``."""
+
+    TEMPLATE = "{option} {value!r}: {reason} (give LO,HI, e.g. 0.8,1.25)"
+
+    def __init__(self, option: str, value: str, reason: str) -> None:
+        self.option = option
+        self.value = value
+        super().__init__(self.TEMPLATE.format(option=option, value=value, reason=reason))
+
+
+class DemoDirectoryError(InputError):
+    """The demo's directory holds a store the demo did not make; kept unless ``--fresh``."""
+
+    TEMPLATE = (
+        "{path} already exists and is not the demo's: pass --fresh to replace it, or choose "
+        "another --dir"
+    )
+
+    def __init__(self, path: str) -> None:
+        self.path = path
+        super().__init__(self.TEMPLATE.format(path=path))
+
+
 # --- serving: the pricers' client and the HTTP API ---------------------------------------------
 
 

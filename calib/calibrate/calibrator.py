@@ -9,7 +9,10 @@ smoothness`` over the convex set of the constraints. Gauss-Newton: linearise
 linearisation is at the market variances, i.e. weighted least squares on total variance);
 step towards its solution, halving the step until ``J`` does not increase (both points are
 feasible, so every point between is). A fixed point is a KKT point of the true problem, and
-the duals of the last sub-problem are its multipliers.
+the duals of the last sub-problem are its multipliers. The sub-problem's objective equals
+``J`` at the linearisation point, so ``J - (its optimum)`` is the decrease it predicts; the
+iteration stops once that is below the solver's resolution (``solver_tol / scale``, the gap
+tolerance of the scaled sub-problem), or the step vanishes.
 """
 
 from __future__ import annotations
@@ -58,8 +61,14 @@ def _scale(J: float) -> float:
 
 
 def bucket_edges(expiry: FloatArray) -> FloatArray:
-    """Forward-mode calendar edges ``[0, t_1, ..., t_K]`` at the distinct expiries."""
-    return np.concatenate(([0.0], np.unique(np.round(expiry, 12))))
+    """Forward-mode calendar edges ``[0, t_1, ..., t_K]`` at the distinct expiries.
+
+    Expiries equal to 12 decimals share an edge; the last edge is the latest expiry itself
+    (not its rounded value), so every option ends inside the buckets.
+    """
+    edges = np.concatenate(([0.0], np.unique(np.round(expiry, 12))))
+    edges[-1] = max(edges[-1], float(np.max(expiry)))
+    return edges
 
 
 def check_feasible(settings: CalibrationSettings, historical: TwoFactorParams) -> None:
@@ -189,15 +198,14 @@ class Calibrator:
         )
         root_w = np.sqrt(data.weight)
 
-        def total(x: FloatArray) -> float:
+        def penalties(x: FloatArray) -> float:
             Q = np.maximum(x[K : 2 * K], 0.0)
             dev = np.sqrt(Q) - s2h
             smooth = float(np.sum(np.diff(x.reshape(3, K), axis=1) ** 2)) if K > 1 else 0.0
-            return float(
-                fit_term(data, A @ x, s.error_measure)
-                + s.anchor_weight * np.mean(dev * dev)
-                + s.smoothness * smooth
-            )
+            return float(s.anchor_weight * np.mean(dev * dev) + s.smoothness * smooth)
+
+        def total(x: FloatArray) -> float:
+            return float(fit_term(data, A @ x, s.error_measure)) + penalties(x)
 
         V_mkt = data.vol**2 * data.expiry
         _, g = errors(data, V_mkt, s.error_measure)
@@ -221,9 +229,20 @@ class Calibrator:
             V = A @ x
             e, g = errors(data, V, s.error_measure)
             rows = root_w[:, None] * g[:, None] * A
-            solved, inaccurate = step.solve(rows, root_w * (g * V - e), it, _scale(J))
+            target = root_w * (g * V - e)
+            scale = _scale(J)
+            solved, inaccurate = step.solve(rows, target, it, scale)
             if inaccurate:
                 flags.add("inaccurate")
+            model = float(np.sum((rows @ solved.x - target) ** 2)) + penalties(solved.x)
+            if J - model <= s.solver_tol / scale:
+                # the sub-problem (equal to J at x) predicts no decrease the solver resolves:
+                # x is a KKT point to solver precision; take its answer only if no worse
+                J_new = total(solved.x)
+                if J_new <= J:
+                    x, J = solved.x, J_new
+                converged = True
+                break
             d = solved.x - x
             tau, J_new = 1.0, total(solved.x)
             for _ in range(_BACKTRACKS):

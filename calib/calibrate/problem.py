@@ -1,9 +1,10 @@
 """The convex sub-problem of a Gauss-Newton step, built once in cvxpy with DPP parameters.
 
 Variables ``x = (P_1..P_K, Q_1..Q_K, C_1..C_K)`` with ``P = s1^2``, ``Q = s2^2``,
-``C = rho s1 s2`` per bucket. Data (rows, targets, kappa, floor, cap, anchor, smoothness)
-enter as :class:`cvxpy.Parameter`, so a new day or a new Gauss-Newton step re-solves the same
-canonicalised problem.
+``C = rho s1 s2`` per bucket. Data (rows, targets, kappa, floor, cap, anchor weights) enter as
+:class:`cvxpy.Parameter`, so a new day or a new Gauss-Newton step re-solves the same
+canonicalised problem: its cone program is taken from cvxpy once, at the first solve, and
+every solve goes to Clarabel directly (:mod:`calib.calibrate.conic`).
 """
 
 from __future__ import annotations
@@ -15,6 +16,7 @@ from typing import Any
 import cvxpy
 import numpy as np
 
+from calib.calibrate import conic
 from calib.errors import (
     CalibrationInaccurateWarning,
     CalibrationSolverError,
@@ -51,9 +53,12 @@ class ConvexStep:
 
     Notes
     -----
-    The quotes enter through the QR factor of ``M``: with ``M = U R`` (``R`` is ``3K x 3K``)
-    ``|M x - y|^2 = |R x - U^T y|^2 + |y|^2 - |U^T y|^2``, so the conic problem has ``3K``
-    rows whatever the number of quotes (same minimiser and duals; the constant is dropped).
+    The smoothness penalty ``s sum_k |x_{k+1} - x_k|^2 = |sqrt(s) D x|^2`` (``D`` the
+    differences of neighbouring buckets of ``P``, ``Q`` and ``C``) is stacked under the quote
+    rows, ``M_s = [M; sqrt(s) D]``, ``y_s = [y; 0]``; both enter through the QR factor: with
+    ``M_s = U R`` (``R`` is ``3K x 3K``) ``|M_s x - y_s|^2 = |R x - U^T y_s|^2 + |y_s|^2 -
+    |U^T y_s|^2``, so the conic problem has ``3K`` least-squares rows whatever the number of
+    quotes (same minimiser and duals; the constant is dropped).
     ``[[P, C], [C, Q]] >= 0`` is the second-order cone ``|(2C, P - Q)| <= P + Q``. The anchor
     ``w mean_k (s2_k - s2_hist)^2 = w mean_k (Q_k - 2 s2_hist sqrt(Q_k)) + const`` is convex
     because ``-sqrt`` is; it enters as ``lin * sum(Q) - root * sum(sqrt(Q))`` with the two
@@ -80,16 +85,11 @@ class ConvexStep:
         self.kappa = cp.Parameter(nonneg=True)
         self.floor = cp.Parameter(nonneg=True)
         self.cap = cp.Parameter(nonneg=True)
-        self.smooth = cp.Parameter(nonneg=True)
         objective = (
             cp.sum_squares(self.M @ self.x - self.y)
             + self.anchor_lin * cp.sum(Q)
             - self.anchor_root * cp.sum(cp.sqrt(Q))
         )
-        if K > 1:
-            objective = objective + self.smooth * (
-                cp.sum_squares(cp.diff(P)) + cp.sum_squares(cp.diff(Q)) + cp.sum_squares(cp.diff(C))
-            )
         self.constraints: dict[str, Any] = {
             "psd": cp.SOC(P + Q, cp.vstack([2.0 * C, P - Q]), axis=0)
         }
@@ -108,9 +108,12 @@ class ConvexStep:
             "tol_feas": solver_tol,
             "tol_ktratio": max(solver_tol, 1e-8),
         }
-        for p in (self.anchor_lin, self.anchor_root, self.kappa, self.floor, self.cap, self.smooth):
+        for p in (self.anchor_lin, self.anchor_root, self.kappa, self.floor, self.cap):
             p.value = 0.0
         self._weights = (0.0, 0.0, 0.0)
+        # neighbouring-bucket differences of P, Q and C: the rows of the smoothness penalty
+        self._diff = np.kron(np.eye(3), np.diff(np.eye(K), axis=0))
+        self._program: conic.ConeProgram | None = None
 
     def set_day(
         self,
@@ -140,22 +143,30 @@ class ConvexStep:
         for every status without a usable solution and warns
         :class:`CalibrationInaccurateWarning` for ``optimal_inaccurate``.
         """
+        K = self.n_buckets
         root = np.sqrt(scale)
+        lin, sq, smooth = self._weights
+        if K > 1 and smooth > 0.0:
+            M = np.vstack([M, np.sqrt(smooth) * self._diff])
+            y = np.concatenate([y, np.zeros(self._diff.shape[0])])
         U, R = np.linalg.qr(M, mode="reduced")
-        rows = np.zeros((3 * self.n_buckets, 3 * self.n_buckets))
+        rows = np.zeros((3 * K, 3 * K))
         rows[: R.shape[0]] = root * R
-        target = np.zeros(3 * self.n_buckets)
+        target = np.zeros(3 * K)
         target[: R.shape[0]] = root * (U.T @ y)
         self.M.value = rows
         self.y.value = target
-        lin, sq, smooth = self._weights
         self.anchor_lin.value = scale * lin
         self.anchor_root.value = scale * sq
-        self.smooth.value = scale * smooth if self.n_buckets > 1 else 0.0
         try:
             with warnings.catch_warnings():  # cvxpy's own caution; ours follows below
                 warnings.filterwarnings("ignore", "Solution may be inaccurate", UserWarning)
-                self.problem.solve(solver=SOLVER, ignore_dpp=False, **self.solver_options)
+                if self._program is None:  # compile once, at the first parameter values
+                    self._program = conic.ConeProgram(self.problem, self.solver_options)
+                # a fresh Clarabel solver each time, no warm start: a solver re-used from the
+                # day before would make a day's result depend on what was solved earlier; a
+                # rerun must be bit-identical
+                self.problem.solve(method=conic.METHOD, program=self._program)
         except cp.error.SolverError as exc:
             raise CalibrationSolverError(SOLVER, "solver_error", str(exc)) from exc
         status = str(self.problem.status)

@@ -42,6 +42,9 @@ _COMMAND_MODULES: list[str] = [
     "store_cmds",
     "run_cmds",
     "serve_cmds",
+    "backfill_cmds",
+    "price_cmds",
+    "risk_cmds",
 ]
 
 

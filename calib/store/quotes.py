@@ -13,6 +13,8 @@ before it (ties broken by batch id), i.e. what was known at that time.
 
 from __future__ import annotations
 
+import io
+import sqlite3
 from collections.abc import Mapping, Sequence
 from dataclasses import dataclass
 from datetime import date, datetime
@@ -21,6 +23,8 @@ from typing import Any, cast
 import numpy as np
 import numpy.typing as npt
 import pandas as pd
+import pyarrow as pa
+import pyarrow.csv as pa_csv
 from sqlalchemy import ColumnElement, Select, Table, func, insert, select
 from sqlalchemy.orm import Session
 
@@ -261,28 +265,31 @@ QUOTE_TABLES: Mapping[str, Table] = {"futures": _futures, "options": _options, "
 """The quote table of each batch kind."""
 
 
-def _db_dates(values: DateArray, dialect: str) -> list[Any]:
-    days = np.asarray(values, dtype="datetime64[D]")
-    codes, uniques = pd.factorize(days.astype(np.int64))
-    as_days = uniques.astype("datetime64[D]")
-    if dialect == "sqlite":  # SQLAlchemy's SQLite Date stores YYYY-MM-DD text
-        stored = np.array(np.datetime_as_string(as_days, unit="D").tolist(), dtype=object)
-    else:
-        stored = np.array(as_days.tolist(), dtype=object)
-    return list(stored[codes]) if len(uniques) else []
+def _sqlite_dates(values: DateArray) -> list[str]:
+    """``YYYY-MM-DD`` text, as SQLAlchemy's SQLite ``Date`` stores it; one ``str`` per day."""
+    codes, uniques = pd.factorize(np.asarray(values, dtype="datetime64[D]").astype(np.int64))
+    text = np.array(np.datetime_as_string(uniques.astype("datetime64[D]"), unit="D"), dtype=object)
+    return list(text[codes])
 
 
-def _db_values(values: Any, count: int, dialect: str) -> list[Any]:
+def _sqlite_values(values: Any, count: int) -> list[Any]:
+    """One column as the sqlite3 module binds it: dates as text, NaN as NULL."""
     if np.isscalar(values):
         return [values] * count
     arr = np.asarray(values)
     if arr.dtype.kind == "M":
-        return _db_dates(arr, dialect)
+        return _sqlite_dates(arr)
     if arr.dtype.kind == "f" and np.isnan(arr).any():
         out = arr.astype(object)
         out[np.isnan(arr)] = None
         return list(out.tolist())
     return list(arr.tolist())
+
+
+def _arrow_values(values: Any, count: int) -> pa.Array:
+    """One column as an arrow array (dates as ``date32``, NaN as null)."""
+    arr = np.full(count, values) if np.isscalar(values) else np.asarray(values)
+    return pa.array(arr, from_pandas=arr.dtype.kind == "f")
 
 
 def insert_columns(
@@ -315,21 +322,29 @@ def insert_columns(
     if dialect.name == "postgresql":
         import psycopg  # the postgres extra; only reached with a PostgreSQL engine
 
-        # COPY in CSV form: ISO dates, shortest round-trip floats, empty = NULL
-        text = pd.DataFrame(
-            {name: _db_values(columns[name], count, "sqlite") for name in names}
-        ).to_csv(header=False, index=False, na_rep="")
+        # COPY in CSV form, written by arrow: ISO dates, shortest round-trip floats, empty = NULL
+        text = io.BytesIO()
+        pa_csv.write_csv(
+            pa.table({name: _arrow_values(columns[name], count) for name in names}),
+            text,
+            pa_csv.WriteOptions(include_header=False),
+        )
         raw = cast(psycopg.Connection[Any], connection.connection.dbapi_connection)
         with (
             raw.cursor() as cursor,
             cursor.copy(f"COPY {target} ({column_list}) FROM STDIN WITH (FORMAT csv)") as copy,
         ):
-            copy.write(text)
+            copy.write(text.getbuffer())
         return
-    prepared = [_db_values(columns[name], count, dialect.name) for name in names]
-    rows = list(zip(*prepared, strict=True))
+    prepared = [_sqlite_values(columns[name], count) for name in names]
     marks = ", ".join("?" for _ in names)
-    connection.exec_driver_sql(f"INSERT INTO {target} ({column_list}) VALUES ({marks})", rows)
+    lite = cast(sqlite3.Connection, connection.connection.dbapi_connection).cursor()
+    try:  # the driver's own executemany, fed row tuples as it goes
+        lite.executemany(
+            f"INSERT INTO {target} ({column_list}) VALUES ({marks})", zip(*prepared, strict=True)
+        )
+    finally:
+        lite.close()
 
 
 def insert_rows(*, session: Session, table: Table, rows: Sequence[Mapping[str, Any]]) -> None:
@@ -368,7 +383,8 @@ def _latest(
 
 
 def _frame(session: Session, stmt: Select[Any], columns: Sequence[str]) -> pd.DataFrame:
-    return pd.DataFrame(session.execute(stmt).all(), columns=list(columns))
+    rows = [tuple(row) for row in session.execute(stmt)]  # plain tuples: pandas reads them fast
+    return pd.DataFrame(rows, columns=list(columns))
 
 
 def _to_days(series: pd.Series) -> DateArray:

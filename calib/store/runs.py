@@ -557,3 +557,34 @@ def load_rows(
         ),
         batch_ids=tuple(sorted(batches)),
     )
+
+
+@dataclass(frozen=True, slots=True)
+class RunKey:
+    """What identifies a run for a backfill's resume: its day, estimate and settings."""
+
+    run_id: int
+    trade_date: date
+    estimate_id: int
+    settings: Mapping[str, Any]
+    outcome: str
+
+
+def run_keys(*, session: Session, commodity: str, start: date, end: date) -> list[RunKey]:
+    """Every run of ``commodity`` with a trade date in ``start..end`` (inclusive), by id.
+
+    One query on ``(commodity_id, trade_date)``; no events are read.
+    """
+    cid = require_commodity(session=session, code=commodity).id
+    stmt = (
+        select(
+            CalibrationRun.id,
+            CalibrationRun.trade_date,
+            CalibrationRun.estimate_id,
+            CalibrationRun.settings,
+            CalibrationRun.outcome,
+        )
+        .where(CalibrationRun.commodity_id == cid, CalibrationRun.trade_date.between(start, end))
+        .order_by(CalibrationRun.id)
+    )
+    return [RunKey(*row) for row in session.execute(stmt)]

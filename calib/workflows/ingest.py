@@ -38,7 +38,9 @@ numbered by its first line); Parquet rows count from 1. Blank CSV lines are skip
 
 from __future__ import annotations
 
+import codecs
 import csv
+import functools
 import hashlib
 import io
 import re
@@ -52,6 +54,8 @@ import numpy as np
 import numpy.typing as npt
 import pandas as pd
 import pyarrow as pa
+import pyarrow.compute as pc
+import pyarrow.csv as pa_csv
 from sqlalchemy.orm import Session, sessionmaker
 
 from calib import errors as msg
@@ -168,6 +172,8 @@ class _Table:
     early: list[RowProblem]
     """Rows refused while reading (wrong number of fields)."""
     ignored: list[str]
+    numbers: dict[str, FloatArray] = field(default_factory=dict)
+    """Columns the reader already parsed as numbers, every value of them (else absent)."""
 
 
 def _csv_text(values: Iterable[str]) -> str:
@@ -200,55 +206,76 @@ def _decode(name: str, data: bytes) -> str:
         raise IngestFileError(name, msg.FILE_NOT_TEXT.format(detail=detail)) from None
 
 
-def _read_plain_csv(name: str, text: str) -> _Table | None:
+def _text_array(column: pa.ChunkedArray) -> ObjArray:
+    """An arrow text column as an object array; each distinct value is one ``str`` object."""
+    encoded = pc.dictionary_encode(column).combine_chunks()
+    distinct = encoded.dictionary.to_numpy(zero_copy_only=False)
+    return np.asarray(distinct[encoded.indices.to_numpy()])
+
+
+def _number_array(column: pa.ChunkedArray) -> FloatArray | None:
+    """An arrow text column parsed as float64 if every value is a plain number, else ``None``.
+
+    Arrow's grammar (optional sign, digits, point, exponent; ``nan``, ``inf``) accepts a subset
+    of what :func:`pandas.to_numeric` does, so the rules see the same numbers either way.
+    """
+    try:
+        pc.cast(column.slice(0, 1), pa.float64())  # a text column fails here, cheaply
+        floats = pc.cast(column, pa.float64())
+    except pa.ArrowInvalid:
+        return None
+    return np.asarray(floats.to_numpy(), dtype=np.float64)
+
+
+def _read_plain_csv(name: str, text: str, data: bytes) -> _Table | None:
     """Fast path for the common file: no quotes, no blank lines, every line the same width.
 
-    Returns ``None`` when the file is not that simple (the general reader takes over).
+    The body is parsed by pyarrow's CSV reader, every column as text. Returns ``None`` when
+    the file is not that simple (the general reader takes over).
     """
-    if "\r\n" in text:
-        text = text.replace("\r\n", "\n")
-    if '"' in text or "\r" in text or "\x00" in text:
+    if '"' in text or "\x00" in text or text.count("\r") != text.count("\r\n"):
+        return None  # quotes, NUL or a lone carriage return
+    head, _, body = text.partition("\n")
+    if not body or body.startswith(("\n", "\r\n")) or "\n\n" in body or "\n\r\n" in body:
+        return None  # no row, or a blank line
+    header = _header(name, head.removesuffix("\r").split(","))
+    names = [f"c{j}" for j in range(len(header))]
+    frame = pa_csv.read_csv(
+        io.BytesIO(data.removeprefix(codecs.BOM_UTF8)),
+        read_options=pa_csv.ReadOptions(column_names=names, skip_rows=1),
+        parse_options=pa_csv.ParseOptions(quote_char=False),
+        convert_options=pa_csv.ConvertOptions(column_types=dict.fromkeys(names, pa.string())),
+    )
+    count = body.count("\n") + (not body.endswith("\n"))
+    if frame.num_rows != count:
         return None
-    lines = text.split("\n")
-    if lines and lines[-1] == "":
-        lines.pop()
-    if not lines:
-        return None
-    header = _header(name, lines[0].split(","))
-    commas = len(header) - 1
-    body = lines[1:]
-    if any(line.count(",") != commas or not line.strip(",").strip() for line in body):
-        return None
-    if body:
-        frame = pd.read_csv(
-            io.StringIO("\n".join(body)),
-            header=None,
-            names=list(range(len(header))),
-            dtype=object,
-            keep_default_na=False,
-            na_filter=False,
-            skip_blank_lines=False,
-            quoting=csv.QUOTE_NONE,
-        )
-        if len(frame) != len(body):
-            return None
-        fields = [frame[j].to_numpy(dtype=object) for j in range(len(header))]
-    else:
-        fields = [_object([]) for _ in header]
+    columns: dict[str, ObjArray] = {}
+    numbers: dict[str, FloatArray] = {}
+    for h, column in zip(header, frame.columns, strict=True):
+        if not h:
+            continue
+        number = _number_array(column)
+        if number is None:
+            columns[h] = _text_array(column)
+        else:
+            columns[h] = np.asarray(column.to_numpy(zero_copy_only=False))
+            numbers[h] = number
+    body_lines = functools.cache(lambda: body.replace("\r\n", "\n").split("\n"))
     return _Table(
-        columns={h: col for h, col in zip(header, fields, strict=True) if h},
-        lines=np.arange(2, len(body) + 2, dtype=np.int64),
-        raw=lambda i: body[i],
+        columns=columns,
+        lines=np.arange(2, count + 2, dtype=np.int64),
+        raw=lambda i: body_lines()[i],
         early=[],
         ignored=[],
+        numbers=numbers,
     )
 
 
 def _read_csv(name: str, data: bytes) -> _Table:
     text = _decode(name, data)
     try:
-        plain = _read_plain_csv(name, text)
-    except (ValueError, pd.errors.ParserError):
+        plain = _read_plain_csv(name, text, data)
+    except pa.ArrowInvalid:  # a line of another width, or the like: the general reader says
         plain = None
     if plain is not None:
         return plain
@@ -352,7 +379,8 @@ class _Rows:
         self.reason: ObjArray = np.empty(n, dtype=object)
 
     def text(self, name: str) -> ObjArray:
-        return self.table.columns.get(name, np.full(self.n, "", dtype=object))
+        found = self.table.columns.get(name)
+        return np.full(self.n, "", dtype=object) if found is None else found
 
     def reject(
         self, mask: BoolArray, name: str, reason: str | Callable[[IntArray], Iterable[str]]
@@ -376,7 +404,10 @@ class _Rows:
         if name not in self.table.columns and not required:
             return np.full(self.n, np.nan)
         text = self.text(name)
-        values = np.asarray(pd.to_numeric(text, errors="coerce"), dtype=np.float64)
+        parsed = self.table.numbers.get(name)
+        values = np.array(
+            pd.to_numeric(text, errors="coerce") if parsed is None else parsed, dtype=np.float64
+        )
         empty = text == ""
         unparsed = np.flatnonzero(np.isnan(values) & ~empty)
         if unparsed.size:  # blanks count as empty; the others are not numbers

@@ -48,7 +48,7 @@ import sys
 import time
 import tomllib
 import warnings
-from collections.abc import Mapping
+from collections.abc import Callable, Mapping
 from dataclasses import asdict, dataclass, fields
 from datetime import date
 from pathlib import Path
@@ -57,7 +57,13 @@ from typing import Any
 import numpy as np
 from sqlalchemy.orm import Session, sessionmaker
 
-from calib.calibrate import CalibrationResult, CalibrationSettings, OptionQuotes, fit
+from calib.calibrate import (
+    CalibrationResult,
+    CalibrationSettings,
+    Calibrator,
+    OptionQuotes,
+    fit,
+)
 from calib.errors import (
     CalibrationSolverError,
     CalibWarning,
@@ -370,13 +376,26 @@ class Attempt:
 
 
 def attempt_fit(
-    day: DayQuotes, historical: TwoFactorParams, settings: CalibrationSettings
+    day: DayQuotes,
+    historical: TwoFactorParams,
+    settings: CalibrationSettings,
+    *,
+    calibrator_for: Callable[[OptionQuotes], Calibrator] | None = None,
 ) -> Attempt:
-    """Fit ``day``; a refusal of the calibration becomes ``failure`` (its message)."""
+    """Fit ``day``; a refusal of the calibration becomes ``failure`` (its message).
+
+    ``calibrator_for`` hands out a :class:`~calib.calibrate.Calibrator` built with
+    ``settings`` for the day's quotes (a backfill re-solves one compiled problem); without it
+    the problem is built for this day alone (:func:`calib.calibrate.fit`).
+    """
     with warnings.catch_warnings(record=True) as caught:
         warnings.simplefilter("always", CalibWarning)
         try:
-            result = fit(option_quotes(day), historical, settings)
+            quotes = option_quotes(day)
+            if calibrator_for is None:
+                result = fit(quotes, historical, settings)
+            else:
+                result = calibrator_for(quotes).fit(quotes, historical)
         except CALIBRATION_FAILURES as exc:
             return Attempt(None, f"{type(exc).__name__}: {exc}", ())
     notes = tuple(str(w.message) for w in caught if issubclass(w.category, CalibWarning))
@@ -506,38 +525,34 @@ def _approve_in(
     return previous
 
 
-def fit_day(
+@dataclass(frozen=True, slots=True)
+class StoredAttempt:
+    """What :func:`store_attempt` wrote: the run id, the set it was gated against, approval."""
+
+    run_id: int
+    previous: RunRecord | None
+    auto_approved: bool
+
+
+def store_attempt(
     sessions: sessionmaker[Session],
-    commodity: str,
-    trade_date: date,
+    day: DayQuotes,
+    estimate_id: int,
+    settings: RunSettings,
+    attempt: Attempt,
     *,
     user: str,
-    settings: RunSettings | None = None,
-    estimate_id: int | None = None,
-    auto_approve: bool = False,
-) -> FitOutcome:
-    """Fit one day's options, store the run (candidate, or rejected if it failed), gate it.
-
-    Raises
-    ------
-    UnknownCommodityError, NoQuotesError
-        Unknown commodity, or no futures or options stored for the day (nothing stored).
-    NoEstimateError, UnknownEstimateError, NotConvergedEstimateError
-        No usable historical estimate (nothing stored).
+    auto_approve: bool,
+) -> StoredAttempt:
+    """Store a fit of ``day`` in one write transaction: the run, its residuals, its first
+    event, gated against the approved set in force (and approved if asked and every gate
+    passes). A failed attempt is stored ``rejected`` with its reason.
     """
-    settings = settings or RunSettings(CalibrationSettings(), GateLimits())
-    with sessions.begin() as session:
-        day = load_day(session=session, commodity=commodity, trade_date=trade_date)
-        estimate = choose_estimate(session, commodity, estimate_id)
-    if not len(day.options) or not len(day.futures):
-        what = "options" if len(day.futures) else "futures"
-        raise NoQuotesError(commodity, f"no {what} stored for {trade_date}")
-    attempt = attempt_fit(day, estimate.params, settings.calibration)
     inputs = _inputs(day)
     with sessions.begin() as session:
         begin_write(session)
         lock_commodity(session=session, commodity_id=day.commodity_id)
-        previous = latest_approved(session=session, commodity=commodity)
+        previous = latest_approved(session=session, commodity=day.commodity)
         result = attempt.result
         gates: tuple[Gate, ...] = ()
         if result is not None:
@@ -547,10 +562,10 @@ def fit_day(
         run_id = add_run(
             session=session,
             commodity_id=day.commodity_id,
-            trade_date=trade_date,
+            trade_date=day.trade_date,
             created_at=utc_now(),
             created_by=user,
-            estimate_id=estimate.estimate_id,
+            estimate_id=estimate_id,
             mode=settings.calibration.mode,
             settings=settings.to_dict(),
             inputs=inputs,
@@ -596,6 +611,40 @@ def fit_day(
                 session, run_id, day.commodity_id, by=user, note="auto-approved: every gate passed"
             )
         _pause_for_tests()
+    return StoredAttempt(run_id, previous, approved)
+
+
+def fit_day(
+    sessions: sessionmaker[Session],
+    commodity: str,
+    trade_date: date,
+    *,
+    user: str,
+    settings: RunSettings | None = None,
+    estimate_id: int | None = None,
+    auto_approve: bool = False,
+) -> FitOutcome:
+    """Fit one day's options, store the run (candidate, or rejected if it failed), gate it.
+
+    Raises
+    ------
+    UnknownCommodityError, NoQuotesError
+        Unknown commodity, or no futures or options stored for the day (nothing stored).
+    NoEstimateError, UnknownEstimateError, NotConvergedEstimateError
+        No usable historical estimate (nothing stored).
+    """
+    settings = settings or RunSettings(CalibrationSettings(), GateLimits())
+    with sessions.begin() as session:
+        day = load_day(session=session, commodity=commodity, trade_date=trade_date)
+        estimate = choose_estimate(session, commodity, estimate_id)
+    if not len(day.options) or not len(day.futures):
+        what = "options" if len(day.futures) else "futures"
+        raise NoQuotesError(commodity, f"no {what} stored for {trade_date}")
+    attempt = attempt_fit(day, estimate.params, settings.calibration)
+    stored = store_attempt(
+        sessions, day, estimate.estimate_id, settings, attempt, user=user, auto_approve=auto_approve
+    )
+    run_id, previous, approved = stored.run_id, stored.previous, stored.auto_approved
     with sessions.begin() as session:
         run = require_run(session=session, run_id=run_id)
     return FitOutcome(run=run, previous=previous, auto_approved=approved)

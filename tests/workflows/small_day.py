@@ -46,3 +46,13 @@ def write_estimate_file(path: Path, scenario: Scenario, **extra: object) -> Path
     }
     path.write_text(json.dumps(data), encoding="utf-8")
     return path
+
+
+def load_with_estimate(store: Store, folder: Path, spec: ScenarioSpec = SPEC) -> Loaded:
+    """:func:`load_scenario`, plus the scenario's true parameters imported as the estimate."""
+    from calib.workflows.estimates import import_estimate
+
+    data = load_scenario(store, folder, spec)
+    path = write_estimate_file(folder / "estimate.json", data.scenario)
+    import_estimate(store.sessions, data.code, path, user="tester")
+    return data

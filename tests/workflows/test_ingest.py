@@ -333,6 +333,41 @@ def test_whitespace_and_case_tolerated(day: Store, tmp_path: Path) -> None:
     assert ingest(day, path, "options").rows_accepted == 1
 
 
+@pytest.mark.parametrize("newline", ["\n", "\r\n"])
+def test_plain_and_quoted_files_read_alike(day: Store, tmp_path: Path, newline: str) -> None:
+    # An unquoted file takes the fast reader, the same rows fully quoted the general one: the
+    # rules must see the same values either way (numbers in forms only one parser might take).
+    header = [*OPTION_HEADER, "implied_vol"]
+    body = [
+        [*option(50.0, fair(50.0)), ""],
+        [*option(50.0, "1_0", kind="put"), ""],
+        [*option(48.0, "nan"), ""],
+        [*option(46.0, "inf"), ""],
+        [*option(0, 1)[:5], "nan", 1.0, ""],  # strikes: every other one arrow can parse
+        [*option(0, 1)[:5], "-inf", 1.0, ""],
+        [*option(0, 1)[:5], "-0", 1.0, ""],
+        [*option(44.0, f"+{fair(44.0)}"), ""],
+        [*option(42.0, "0x1"), ""],
+        [*option(0.0, 1.0), ""],
+        [*option(52.0, ""), "0.3"],
+        [*option(54.0, ""), ""],
+    ]
+    seen = []
+    for name, quoting in (("plain.csv", csv.QUOTE_MINIMAL), ("quoted.csv", csv.QUOTE_ALL)):
+        path = tmp_path / name
+        with path.open("w", newline="") as handle:
+            writer = csv.writer(handle, quoting=quoting, lineterminator=newline)
+            writer.writerow(header)
+            writer.writerows(body)
+        report = ingest(day, path, "options")
+        seen.append((report.rows_accepted, [(p.line, p.field, p.reason) for p in report.problems]))
+        if quoting == csv.QUOTE_MINIMAL:
+            assert '"' not in path.read_text()
+            assert report.problems[0].raw == ",".join(str(v) for v in body[1])
+    assert seen[0] == seen[1]
+    assert seen[0][0] == 3, seen[0]
+
+
 # --- files as units ----------------------------------------------------------------------------
 
 

@@ -1,0 +1,107 @@
+"""Backfill of 2,500 trading days (12 expiries x 15 strikes) against a fresh fit per day.
+
+Own: :func:`calib.workflows.backfill.backfill` with two worker processes on a temporary SQLite
+store (one compiled problem per worker, re-solved each day; one writer storing every run,
+its residuals and events). Peer, in the same run: the same days read and fitted by a fresh
+:func:`calib.calibrate.fit` each (problem rebuilt every day), one process, nothing stored, on
+every ``SUBSAMPLE``-th day, scaled to all the days. Data: the invented demo scenario over ten
+years with 15 strikes, and its true parameters imported as the historical estimate.
+"""
+
+from __future__ import annotations
+
+import json
+import tempfile
+import time
+from dataclasses import replace
+from pathlib import Path
+
+from calib.store.engine import make_store
+from calib.store.migrate import upgrade
+from calib.store.quotes import load_day, trade_dates
+from calib.workflows.backfill import backfill
+from calib.workflows.estimates import import_estimate
+from calib.workflows.ingest import NewCommodity, ingest_file
+from calib.workflows.runs import RunSettings, attempt_fit
+from calib.workflows.scenario import ScenarioSpec, generate, write_csv
+
+N_DATES = 2_500
+WORKERS = 2
+SUBSAMPLE = 50
+TARGET_SECONDS = 30.0
+SPEC = ScenarioSpec(years=10, n_strikes=15)
+
+
+def main() -> None:
+    settings = RunSettings.from_dict({})
+    with tempfile.TemporaryDirectory() as tmp:
+        folder = Path(tmp)
+        t0 = time.perf_counter()
+        scenario = generate(SPEC)
+        paths = write_csv(scenario, folder)
+        store = make_store(f"sqlite:///{folder / 'bench.sqlite'}")
+        upgrade(store.engine)
+        new = NewCommodity(unit="tonne", currency="USD", calendar_rule="monthly")
+        for kind in ("futures", "rates", "options"):
+            ingest_file(store.sessions, paths[kind], kind, user="bench", create=new)
+        estimate_file = folder / "estimate.json"
+        estimate_file.write_text(
+            json.dumps(
+                {
+                    **scenario.params.to_dict(),
+                    "window_start": "2031-01-06",
+                    "window_end": "2031-12-31",
+                }
+            )
+        )
+        code = scenario.commodity["code"]
+        estimate = import_estimate(store.sessions, code, estimate_file, user="bench")
+        with store.sessions() as s:
+            dates = trade_dates(session=s, commodity=code)[:N_DATES]
+        print(
+            f"setup (generate, ingest {len(scenario.options):,} options): "
+            f"{time.perf_counter() - t0:.1f} s; {len(dates)} trade dates"
+        )
+
+        report = backfill(store, code, dates[0], dates[-1], user="bench", workers=WORKERS)
+        n = len(report.days)
+        print(
+            f"own  backfill, {WORKERS} workers: {report.seconds:.1f} s for {n} days "
+            f"({1e3 * report.seconds / n:.1f} ms/day; {report.count('fitted')} fitted, "
+            f"{len(report.failures)} failed); target <= {TARGET_SECONDS:.0f} s"
+        )
+        print(
+            f"     where the time goes: read+fit {report.fit_seconds:.1f} s summed over the "
+            f"workers ({1e3 * report.fit_seconds / n:.1f} ms/day/worker), writes "
+            f"{report.write_seconds:.1f} s in the writer "
+            f"({1e3 * report.write_seconds / n:.1f} ms/day)"
+        )
+
+        sample = dates[::SUBSAMPLE]
+        t1 = time.perf_counter()
+        with store.sessions() as s:
+            for d in sample:
+                day = load_day(session=s, commodity=code, trade_date=d)
+                attempt_fit(day, estimate.params, settings.calibration)
+        peer_each = (time.perf_counter() - t1) / len(sample)
+        peer = peer_each * len(dates)
+        print(
+            f"peer fresh fit per day, 1 process: {1e3 * peer_each:.1f} ms/day on {len(sample)} "
+            f"days, scaled to {len(dates)}: {peer:.1f} s"
+        )
+        print(f"ratio peer / own: {peer / report.seconds:.2f}")
+        fast = replace(settings.calibration, refit_costs=False)
+        t2 = time.perf_counter()
+        with store.sessions() as s:
+            for d in sample:
+                day = load_day(session=s, commodity=code, trade_date=d)
+                attempt_fit(day, estimate.params, fast)
+        print(
+            f"note: refit_costs=False, fresh fit per day: "
+            f"{1e3 * (time.perf_counter() - t2) / len(sample):.1f} ms/day"
+        )
+        store.engine.dispose()
+
+
+if __name__ == "__main__":
+    main()

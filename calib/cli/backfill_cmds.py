@@ -1,0 +1,148 @@
+"""Backfill: ``calib backfill COMMODITY --from D1 --to D2 [--workers N]``.
+
+Exit codes: 0 every day fitted; 1 some days failed (stored as rejected runs, or had no
+options); 2 a user mistake, nothing stored.
+"""
+
+from __future__ import annotations
+
+from contextlib import nullcontext
+from datetime import datetime
+from typing import Annotated
+
+import typer
+from rich.console import Console
+from rich.progress import (
+    BarColumn,
+    MofNCompleteColumn,
+    Progress,
+    ProgressColumn,
+    Task,
+    TextColumn,
+    TimeElapsedColumn,
+    TimeRemainingColumn,
+)
+from rich.text import Text
+
+from calib.cli.common import (
+    DbOption,
+    EstimateOption,
+    JsonOption,
+    SettingsOption,
+    echo_json,
+    open_store,
+)
+from calib.workflows import backfill as flow
+from calib.workflows.runs import load_settings
+
+EXIT_SOME_FAILED = 1
+FAILURES_LISTED = 20
+
+
+def register(app: typer.Typer) -> None:
+    """Add the backfill command to ``app``."""
+    app.command("backfill")(backfill_cmd)
+
+
+class _Rate(ProgressColumn):
+    """Days stored per second."""
+
+    def render(self, task: Task) -> Text:
+        speed = task.finished_speed or task.speed
+        return Text("-- days/s" if speed is None else f"{speed:.1f} days/s")
+
+
+class _Bar:
+    """A progress bar on stderr: days done, rate, elapsed and remaining time."""
+
+    def __init__(self) -> None:
+        self.bar = Progress(
+            TextColumn("backfill"),
+            BarColumn(),
+            MofNCompleteColumn(),
+            _Rate(),
+            TimeElapsedColumn(),
+            TextColumn("eta"),
+            TimeRemainingColumn(),
+            console=Console(stderr=True),
+            transient=False,
+        )
+        self.task = self.bar.add_task("backfill", total=None)
+
+    def start(self, total: int, skipped: int) -> None:
+        if skipped:
+            self.bar.console.print(f"{skipped} day(s) already fitted with these settings: skipped")
+        self.bar.update(self.task, total=total)
+
+    def advance(self, day: flow.BackfillDay) -> None:
+        self.bar.advance(self.task)
+
+
+def _print_report(report: flow.BackfillReport) -> None:
+    typer.echo(
+        f"{report.commodity} {report.start}..{report.end}: {report.trade_dates} trading day(s), "
+        f"{len(report.skipped)} skipped (already fitted), {report.count('fitted')} fitted, "
+        f"{report.count('failed')} failed, {report.count('no_quotes')} without options"
+    )
+    typer.echo(
+        f"  estimate {report.estimate_id}, settings {report.settings_sha256[:12]}, "
+        f"{report.workers} worker(s), {report.seconds:.1f} s"
+    )
+    if report.approved:
+        typer.echo(f"  auto-approved: {report.approved} (in date order, each superseding the last)")
+    failures = report.failures
+    if not failures:
+        return
+    typer.echo("failures by kind:")
+    for kind, n in report.failure_kinds().items():
+        typer.echo(f"  {n:>5}  {kind}")
+    for d in failures[:FAILURES_LISTED]:
+        run = "not stored" if d.run_id is None else f"run {d.run_id}"
+        typer.echo(f"  {d.trade_date}  {run}: {d.reason}")
+    if len(failures) > FAILURES_LISTED:
+        typer.echo(f"  ... and {len(failures) - FAILURES_LISTED} more (--json lists them all)")
+
+
+def backfill_cmd(
+    commodity: Annotated[str, typer.Argument(help="Commodity code.")],
+    start: Annotated[datetime, typer.Option("--from", formats=["%Y-%m-%d"], help="First day.")],
+    end: Annotated[datetime, typer.Option("--to", formats=["%Y-%m-%d"], help="Last day.")],
+    workers: Annotated[
+        int, typer.Option("--workers", min=1, help="Processes that read and fit days.")
+    ] = 1,
+    settings_file: SettingsOption = None,
+    estimate_id: EstimateOption = None,
+    auto_approve: Annotated[
+        bool,
+        typer.Option("--auto-approve", help="Approve each day whose gates all pass, in order."),
+    ] = False,
+    db: DbOption = None,
+    as_json: JsonOption = False,
+) -> None:
+    """Fit every trading day from --from to --to and store the runs as candidates.
+
+    Days already fitted with the same estimate and settings are skipped, so an interrupted
+    backfill resumes where it stopped. Exit code 1 if any day failed.
+    """
+    settings = load_settings(settings_file, commodity)
+    with open_store(db) as (store, program):
+        bar = None if as_json else _Bar()
+        with bar.bar if bar is not None else nullcontext():
+            report = flow.backfill(
+                store,
+                commodity,
+                start.date(),
+                end.date(),
+                user=program.user,
+                settings=settings,
+                estimate_id=estimate_id,
+                workers=workers,
+                auto_approve=auto_approve,
+                progress=bar,
+            )
+    if as_json:
+        echo_json(report.to_dict())
+    else:
+        _print_report(report)
+    if report.failures:
+        raise typer.Exit(EXIT_SOME_FAILED)

@@ -1,0 +1,251 @@
+"""The fit report of a stored run: gather its values from the store, recompute the frontier, render.
+
+:func:`report_inputs` reads, in one read transaction, everything a stored run was made from and
+left behind: its parameters and diagnostics, the historical estimate it held fixed, its
+residuals joined with the option quotes they belong to (expiry, delivery, strike, kind), and
+the futures curve and zero curve of its stored inputs (by row id, exactly as the fit saw
+them). Outside the transaction it re-solves the calibration over a few anchor weights around
+the run's own (:func:`anchor_weights`) to draw the trade-off frontier, and :func:`write_report`
+renders the page with :func:`calib.workflows.report.render_report`.
+
+Notes
+-----
+The frontier is recomputed, not stored: the run's quotes, estimate and settings are stored,
+and the calibration is deterministic, so the point at the run's own weight reproduces the run
+(the rerun check of :func:`calib.workflows.runs.rerun`). The weights are the run's weight
+``w`` times :data:`ANCHOR_FACTORS` (``0`` is the unanchored fit, the far end of the
+frontier); a run fitted with ``w = 0`` takes its ladder from the default weight instead.
+"""
+
+from __future__ import annotations
+
+import datetime as dt
+from collections.abc import Sequence
+from dataclasses import dataclass
+from pathlib import Path
+from typing import Any
+
+import numpy as np
+import pandas as pd
+from sqlalchemy.orm import Session, sessionmaker
+
+from calib.calibrate import BucketVols, CalibrationSettings, ConstraintReport, frontier
+from calib.errors import RunNotFittedError
+from calib.model.twofactor import TwoFactorParams
+from calib.store.estimates import EstimateRecord, get_estimate
+from calib.store.quotes import DayQuotes, require_commodity, year_fractions
+from calib.store.runs import RunRecord, load_rows, require_run, run_residuals
+from calib.workflows.report import (
+    Commodity,
+    DroppedRow,
+    FrontierRow,
+    FuturesCurve,
+    GateRow,
+    QuoteFits,
+    ReportFiles,
+    ReportInputs,
+    RunInfo,
+    SolveInfo,
+    render_report,
+)
+from calib.workflows.runs import RunSettings, option_quotes
+
+ANCHOR_FACTORS: tuple[float, ...] = (0.0, 0.1, 1.0, 10.0, 100.0, 1000.0)
+"""Multiples of the run's anchor weight at which the frontier is re-solved (``1`` = the run)."""
+
+_AT_LEAST = frozenset({"decay_bound"})
+"""Gates whose value must be at least the limit; every other numeric gate is "at most"."""
+
+
+def anchor_weights(chosen: float, factors: Sequence[float] = ANCHOR_FACTORS) -> tuple[float, ...]:
+    """The frontier's anchor weights: ``chosen`` times each factor, ascending, no repeats.
+
+    With ``chosen = 0`` the ladder is built on the default weight of
+    :class:`~calib.calibrate.CalibrationSettings`, and ``0`` (the run's own) is among them.
+    """
+    base = chosen if chosen > 0.0 else CalibrationSettings().anchor_weight
+    return tuple(sorted({base * float(f) for f in factors} | {float(chosen)}))
+
+
+@dataclass(frozen=True, slots=True)
+class RunReport:
+    """What :func:`write_report` wrote, and the anchor weights of the frontier it drew."""
+
+    run_id: int
+    files: ReportFiles
+    anchor_weights: tuple[float, ...]
+
+    def to_dict(self) -> dict[str, Any]:
+        return {
+            "run_id": self.run_id,
+            "index": str(self.files.index),
+            "figures": {name: str(p) for name, p in self.files.figures.items()},
+            "frontier_anchor_weights": list(self.anchor_weights),
+        }
+
+
+def _kind(is_call: Any) -> str:
+    return "call" if bool(is_call) else "put"
+
+
+def _day(value: Any) -> dt.date:
+    return dt.date.fromisoformat(str(np.datetime64(value, "D")))
+
+
+def _quote_label(day: DayQuotes, pos: int) -> str:
+    o = day.options
+    return (
+        f"{int(o.row_id[pos])}: {_kind(o.is_call[pos])} {float(o.strike[pos]):g} "
+        f"exp {_day(o.expiry[pos])}"
+    )
+
+
+def _quote_fits(day: DayQuotes, residuals: pd.DataFrame) -> QuoteFits:
+    """The fitted quotes: residual rows joined with their option rows by quote id."""
+    o = day.options
+    order = np.argsort(o.row_id, kind="stable")
+    ids = residuals["quote_id"].to_numpy(dtype=np.int64)
+    pos = order[np.searchsorted(o.row_id[order], ids)]
+    # load_rows returns exactly the run's rows; a residual keyed to any other row is a bug
+    assert np.array_equal(o.row_id[pos], ids), "residuals name quotes outside the run's inputs"
+    return QuoteFits(
+        label=tuple(str(i) for i in ids.tolist()),
+        expiry=tuple(_day(x) for x in o.expiry[pos]),
+        delivery=tuple(_day(x) for x in o.delivery[pos]),
+        kind=tuple(_kind(x) for x in o.is_call[pos]),
+        strike=o.strike[pos],
+        time_to_expiry=year_fractions(day.trade_date, o.expiry[pos]),
+        market_vol=residuals["market_vol"].to_numpy(),
+        model_vol=residuals["model_vol"].to_numpy(),
+        market_price=residuals["market_price"].to_numpy(),
+        model_price=residuals["model_price"].to_numpy(),
+    )
+
+
+def _gate_row(g: dict[str, Any]) -> GateRow:
+    """A stored gate as the report shows it: numeric value, limit as ``<= x`` / ``>= x``."""
+    value, limit = g["value"], g["limit"]
+    if isinstance(value, str) or isinstance(limit, str) or limit is None:
+        text = "" if limit is None else f"{limit}"
+        if isinstance(value, str):
+            text = f"{text} (found {value})".strip()
+        return GateRow(g["name"], None, text, bool(g["passed"]))
+    sign = ">=" if g["name"] in _AT_LEAST else "<="
+    shown = None if value is None else float(value)
+    return GateRow(g["name"], shown, f"{sign} {float(limit):.6g}", bool(g["passed"]))
+
+
+def _settings(run: RunRecord, estimate: EstimateRecord) -> dict[str, Any]:
+    out: dict[str, Any] = dict(run.settings.get("calibration", {}))
+    for name, limit in dict(run.settings.get("gates", {})).items():
+        out[f"gates.{name}"] = limit
+    out["historical_estimate"] = (
+        f"{estimate.estimate_id} ({estimate.source}, {estimate.window_start}.."
+        f"{estimate.window_end}, {'converged' if estimate.converged else 'NOT converged'})"
+    )
+    return out
+
+
+def _solve(run: RunRecord) -> SolveInfo:
+    d = run.diagnostics
+    return SolveInfo(
+        solver=str(d["solver"]),
+        status=str(d["status"]),
+        iterations=int(d["iterations"]),
+        converged=bool(d["converged"]),
+        rmse=float(d["rmse"]),
+        max_error=float(d["max_error"]),
+        error_measure=str(d["error_measure"]),
+        flags=tuple(d.get("flags", ())),
+    )
+
+
+def _frontier(
+    day: DayQuotes, historical: TwoFactorParams, settings: CalibrationSettings
+) -> tuple[tuple[FrontierRow, ...], tuple[float, ...]]:
+    weights = anchor_weights(settings.anchor_weight)
+    points = frontier(option_quotes(day), historical, weights, settings)
+    rows = tuple(FrontierRow(p.anchor_weight, p.distance, p.rmse, p.fit) for p in points)
+    return rows, weights
+
+
+def report_inputs(
+    sessions: sessionmaker[Session], run_id: int
+) -> tuple[ReportInputs, tuple[float, ...]]:
+    """The :class:`ReportInputs` of a stored run and the frontier's anchor weights.
+
+    Raises
+    ------
+    UnknownRunError
+        No run ``run_id``.
+    RunNotFittedError
+        The run failed: it has no parameters or residuals to show.
+    """
+    with sessions.begin() as session:
+        run = require_run(session=session, run_id=run_id)
+        if run.params is None:
+            raise RunNotFittedError(run_id, run.failure_reason or "no reason stored")
+        commodity = require_commodity(session=session, code=run.commodity)
+        estimate = get_estimate(session=session, estimate_id=run.estimate_id)
+        assert estimate is not None  # foreign key
+        residuals = run_residuals(session=session, run_id=run_id)
+        ids = run.inputs
+        day = load_rows(
+            session=session,
+            commodity=run.commodity,
+            trade_date=run.trade_date,
+            futures_rows=ids["futures_rows"],
+            option_rows=ids["option_rows"],
+            rate_rows=ids["rate_rows"],
+        )
+    settings = RunSettings.from_dict(run.settings).calibration
+    rows, weights = _frontier(day, estimate.params, settings)
+    d = run.diagnostics
+    by_id = {int(i): pos for pos, i in enumerate(day.options.row_id.tolist())}
+    inputs = ReportInputs(
+        commodity=Commodity(commodity.code, commodity.name, commodity.unit, commodity.currency),
+        trade_date=run.trade_date,
+        run=RunInfo(
+            run_id=str(run.run_id),
+            status=run.status,
+            created_at=run.created_at,
+            created_by=run.created_by,
+            code_version=run.code_version,
+            input_batches=tuple(str(b) for b in ids.get("batch_ids", ())),
+            inputs_hash=run.inputs_sha256,
+        ),
+        params=run.params,
+        historical=estimate.params,
+        quotes=_quote_fits(day, residuals),
+        curve=FuturesCurve(
+            delivery=tuple(_day(x) for x in day.futures.delivery),
+            time_to_maturity=year_fractions(run.trade_date, day.futures.delivery),
+            settle=day.futures.settle,
+        ),
+        solve=_solve(run),
+        buckets=tuple(
+            BucketVols(float(b["start"]), float(b["end"]), TwoFactorParams.from_dict(b["params"]))
+            for b in run.buckets
+        ),
+        constraints=tuple(ConstraintReport(**c) for c in d.get("constraints", ())),
+        gates=tuple(_gate_row(g) for g in d.get("gates", ())),
+        dropped=tuple(
+            DroppedRow(_quote_label(day, by_id[int(x["quote_id"])]), str(x["reason"]))
+            for x in d.get("dropped", ())
+        ),
+        frontier=rows,
+        settings=_settings(run, estimate),
+    )
+    return inputs, weights
+
+
+def write_report(sessions: sessionmaker[Session], run_id: int, out_dir: Path) -> RunReport:
+    """Render the fit report of a stored run into ``out_dir`` (``index.html`` + figures).
+
+    Raises
+    ------
+    UnknownRunError, RunNotFittedError
+        As :func:`report_inputs`.
+    """
+    inputs, weights = report_inputs(sessions, run_id)
+    return RunReport(run_id, render_report(inputs, Path(out_dir)), weights)
