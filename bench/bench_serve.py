@@ -27,77 +27,30 @@ import sys
 import tempfile
 import time
 from collections.abc import Callable
-from datetime import UTC, date, datetime, timedelta
+from datetime import UTC, datetime
 from pathlib import Path
 from typing import Any
 
 from calib.client import Client, latest_set_stmt
-from calib.model.twofactor import TwoFactorParams
 from calib.store.engine import Store, make_store
-from calib.store.estimates import add_estimate
 from calib.store.migrate import upgrade
-from calib.store.quotes import add_commodity
-from calib.store.runs import add_run, append_event, latest_approved
+from calib.store.runs import latest_approved
 from calib.workflows.runs import approve
+from tests.serving.seed import CODE, candidate, commodity
 
-CODE = "QLM"
 N_READS = 20_000
 N_ORM_READS = 2_000
 HTTP_SECONDS = 4.0
 CONNECTIONS = 16
-PARAMS = TwoFactorParams(
-    mu=0.05, kappa=1.2, alpha=0.06, lam=0.02, sigma_spot=0.3, sigma_yield=0.2, rho=0.7
-)
 ROOT = Path(__file__).resolve().parents[1]
 
 
 def seed(store: Store, n_runs: int = 5) -> int:
     """A commodity with ``n_runs`` runs approved one after the other; the last one's id."""
-    t0 = datetime(2031, 1, 6, 7, tzinfo=UTC)
-    with store.sessions.begin() as s:
-        cid = add_commodity(
-            session=s, code=CODE, name="Quellium", unit="t", currency="USD", calendar_rule="m"
-        ).id
-        eid = add_estimate(
-            session=s,
-            commodity_id=cid,
-            created_at=t0,
-            created_by="bench",
-            source="imported",
-            window_start=date(2030, 1, 2),
-            window_end=date(2030, 12, 30),
-            params=PARAMS,
-            converged=True,
-            message="imported",
-            std_errors={},
-            noise_sd=[],
-            inputs={"file": "bench"},
-            inputs_sha256="0" * 64,
-            settings={},
-            code_version="bench",
-        )
+    cid, eid = commodity(store, CODE)
     run_id = 0
     for k in range(n_runs):
-        with store.sessions.begin() as s:
-            run_id = add_run(
-                session=s,
-                commodity_id=cid,
-                trade_date=date(2031, 1, 6) + timedelta(days=k),
-                created_at=t0,
-                created_by="bench",
-                estimate_id=eid,
-                mode="constant",
-                settings={},
-                inputs={"option_rows": []},
-                inputs_sha256="1" * 64,
-                outcome="fitted",
-                failure_reason=None,
-                params=PARAMS.with_vols(0.3 + k / 100, 0.2, 0.7),
-                buckets=[{"start": 0.0, "end": 1.0, "params": PARAMS.to_dict()}],
-                diagnostics={},
-                code_version="bench",
-            )
-            append_event(session=s, run_id=run_id, to_status="candidate", actor="bench", note="")
+        run_id = candidate(store, cid, eid, k)
         approve(store.sessions, run_id, by="bench", note="bench")
     return run_id
 

@@ -1,4 +1,5 @@
-"""Approved runs written straight through the store functions: the serving tests' data."""
+"""Approved runs written straight through the store functions: the data of the serving tests
+and of `bench/bench_serve.py`."""
 
 from __future__ import annotations
 
