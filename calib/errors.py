@@ -575,3 +575,27 @@ class DemoDirectoryError(InputError):
     def __init__(self, path: str) -> None:
         self.path = path
         super().__init__(self.TEMPLATE.format(path=path))
+
+
+# --- serving: the pricers' client and the HTTP API ---------------------------------------------
+
+
+class NoApprovedSetError(InputError):
+    """A commodity that had no approved parameter set at the time asked for."""
+
+    TEMPLATE = "{commodity}: no approved parameter set {when}"
+
+    def __init__(self, commodity: str, when: str) -> None:
+        self.commodity = commodity
+        super().__init__(self.TEMPLATE.format(commodity=commodity, when=when))
+
+
+class ApiTokenError(InputError):
+    """An approval token for the HTTP API that cannot be used; the server does not start."""
+
+    TEMPLATE = "approval token {source}: {reason}"
+    MIN_LENGTH = 16
+
+    def __init__(self, source: str, reason: str) -> None:
+        self.source = source
+        super().__init__(self.TEMPLATE.format(source=source, reason=reason))

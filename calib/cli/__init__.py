@@ -41,6 +41,7 @@ _COMMAND_MODULES: list[str] = [
     # one module name per line
     "store_cmds",
     "run_cmds",
+    "serve_cmds",
     "backfill_cmds",
     "price_cmds",
     "risk_cmds",

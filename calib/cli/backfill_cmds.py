@@ -8,7 +8,6 @@ from __future__ import annotations
 
 from contextlib import nullcontext
 from datetime import datetime
-from pathlib import Path
 from typing import Annotated
 
 import typer
@@ -25,7 +24,14 @@ from rich.progress import (
 )
 from rich.text import Text
 
-from calib.cli.common import DbOption, JsonOption, echo_json, open_store
+from calib.cli.common import (
+    DbOption,
+    EstimateOption,
+    JsonOption,
+    SettingsOption,
+    echo_json,
+    open_store,
+)
 from calib.workflows import backfill as flow
 from calib.workflows.runs import load_settings
 
@@ -104,20 +110,8 @@ def backfill_cmd(
     workers: Annotated[
         int, typer.Option("--workers", min=1, help="Processes that read and fit days.")
     ] = 1,
-    settings_file: Annotated[
-        Path | None,
-        typer.Option(
-            "--settings", help="TOML: [calibration] and [gates] tables.", show_default=False
-        ),
-    ] = None,
-    estimate_id: Annotated[
-        int | None,
-        typer.Option(
-            "--estimate",
-            help="Historical estimate id (default: newest converged).",
-            show_default=False,
-        ),
-    ] = None,
+    settings_file: SettingsOption = None,
+    estimate_id: EstimateOption = None,
     auto_approve: Annotated[
         bool,
         typer.Option("--auto-approve", help="Approve each day whose gates all pass, in order."),

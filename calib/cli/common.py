@@ -11,6 +11,7 @@ import json
 from collections.abc import Iterator
 from contextlib import contextmanager
 from datetime import date, datetime
+from pathlib import Path
 from typing import Annotated, Any
 
 import typer
@@ -31,6 +32,16 @@ DbOption = Annotated[
     ),
 ]
 JsonOption = Annotated[bool, typer.Option("--json", help="Print the result as JSON.")]
+SettingsOption = Annotated[
+    Path | None,
+    typer.Option("--settings", help="TOML: [calibration] and [gates] tables.", show_default=False),
+]
+EstimateOption = Annotated[
+    int | None,
+    typer.Option(
+        "--estimate", help="Historical estimate id (default: newest converged).", show_default=False
+    ),
+]
 
 
 @contextmanager

@@ -14,7 +14,14 @@ from typing import Annotated, Any, NoReturn
 
 import typer
 
-from calib.cli.common import DbOption, JsonOption, echo_json, open_store
+from calib.cli.common import (
+    DbOption,
+    EstimateOption,
+    JsonOption,
+    SettingsOption,
+    echo_json,
+    open_store,
+)
 from calib.model.twofactor import PARAM_NAMES
 from calib.store.estimates import EstimateRecord, list_estimates
 from calib.store.runs import (
@@ -232,20 +239,8 @@ def fit_cmd(
     trade_date: Annotated[
         datetime, typer.Option("--date", formats=["%Y-%m-%d"], help="Trading day (YYYY-MM-DD).")
     ],
-    settings_file: Annotated[
-        Path | None,
-        typer.Option(
-            "--settings", help="TOML: [calibration] and [gates] tables.", show_default=False
-        ),
-    ] = None,
-    estimate_id: Annotated[
-        int | None,
-        typer.Option(
-            "--estimate",
-            help="Historical estimate id (default: newest converged).",
-            show_default=False,
-        ),
-    ] = None,
+    settings_file: SettingsOption = None,
+    estimate_id: EstimateOption = None,
     auto_approve: Annotated[
         bool, typer.Option("--auto-approve", help="Approve if every gate passes.")
     ] = False,

@@ -1,0 +1,74 @@
+"""Approved runs written straight through the store functions: the data of the serving tests
+and of `bench/bench_serve.py`."""
+
+from __future__ import annotations
+
+from datetime import UTC, date, datetime, timedelta
+
+from calib.model.twofactor import TwoFactorParams
+from calib.store.engine import Store
+from calib.store.estimates import add_estimate
+from calib.store.quotes import add_commodity
+from calib.store.runs import add_run, append_event
+
+CODE = "QLM"
+PARAMS = TwoFactorParams(
+    mu=0.05, kappa=1.2, alpha=0.06, lam=0.02, sigma_spot=0.3, sigma_yield=0.2, rho=0.7
+)
+T0 = datetime(2031, 1, 6, 7, tzinfo=UTC)
+
+
+def commodity(store: Store, code: str = CODE) -> tuple[int, int]:
+    """Register ``code`` with an imported estimate; its id and the estimate's id."""
+    with store.sessions.begin() as s:
+        cid = add_commodity(
+            session=s, code=code, name="Quellium", unit="t", currency="USD", calendar_rule="m"
+        ).id
+        eid = add_estimate(
+            session=s,
+            commodity_id=cid,
+            created_at=T0,
+            created_by="tester",
+            source="imported",
+            window_start=date(2030, 1, 2),
+            window_end=date(2030, 12, 30),
+            params=PARAMS,
+            converged=True,
+            message="imported",
+            std_errors={},
+            noise_sd=[],
+            inputs={"file": "e.json"},
+            inputs_sha256="0" * 64,
+            settings={},
+            code_version="test",
+        )
+    return cid, eid
+
+
+def candidate(store: Store, cid: int, eid: int, k: int, *, mode: str = "constant") -> int:
+    """A fitted candidate run whose ``sigma_spot`` is ``0.3 + k / 100`` (two buckets if forward)."""
+    params = PARAMS.with_vols(0.3 + k / 100, 0.2, 0.7)
+    buckets = [{"start": 0.0, "end": 0.5, "params": params.to_dict()}]
+    if mode == "forward":
+        buckets.append({"start": 0.5, "end": 2.0, "params": PARAMS.to_dict()})
+    with store.sessions.begin() as s:
+        run_id = add_run(
+            session=s,
+            commodity_id=cid,
+            trade_date=date(2031, 1, 6) + timedelta(days=k),
+            created_at=T0,
+            created_by="tester",
+            estimate_id=eid,
+            mode=mode,
+            settings={},
+            inputs={"option_rows": []},
+            inputs_sha256="1" * 64,
+            outcome="fitted",
+            failure_reason=None,
+            params=params,
+            buckets=buckets,
+            diagnostics={"rmse": 0.001},
+            code_version="test",
+        )
+        append_event(session=s, run_id=run_id, to_status="candidate", actor="tester", note="fit")
+    return run_id
