@@ -498,6 +498,19 @@ def _floats(values: Sequence[float | None]) -> Any:
     return _array([np.nan if v is None else v for v in values], np.float64)
 
 
+def run_quotes(*, session: Session, run: RunRecord) -> DayQuotes:
+    """The quote rows ``run`` was fitted to, by the ids it stored (see :func:`load_rows`)."""
+    ids = run.inputs
+    return load_rows(
+        session=session,
+        commodity=run.commodity,
+        trade_date=run.trade_date,
+        futures_rows=ids["futures_rows"],
+        option_rows=ids["option_rows"],
+        rate_rows=ids["rate_rows"],
+    )
+
+
 def load_rows(
     *,
     session: Session,

@@ -34,7 +34,7 @@ from calib.errors import RunNotFittedError
 from calib.model.twofactor import TwoFactorParams
 from calib.store.estimates import EstimateRecord, get_estimate
 from calib.store.quotes import DayQuotes, require_commodity, year_fractions
-from calib.store.runs import RunRecord, load_rows, require_run, run_residuals
+from calib.store.runs import RunRecord, require_run, run_quotes, run_residuals
 from calib.workflows.report import (
     Commodity,
     DroppedRow,
@@ -106,7 +106,7 @@ def _quote_fits(day: DayQuotes, residuals: pd.DataFrame) -> QuoteFits:
     order = np.argsort(o.row_id, kind="stable")
     ids = residuals["quote_id"].to_numpy(dtype=np.int64)
     pos = order[np.searchsorted(o.row_id[order], ids)]
-    # load_rows returns exactly the run's rows; a residual keyed to any other row is a bug
+    # run_quotes returns exactly the run's rows; a residual keyed to any other row is a bug
     assert np.array_equal(o.row_id[pos], ids), "residuals name quotes outside the run's inputs"
     return QuoteFits(
         label=tuple(str(i) for i in ids.tolist()),
@@ -189,15 +189,7 @@ def report_inputs(
         estimate = get_estimate(session=session, estimate_id=run.estimate_id)
         assert estimate is not None  # foreign key
         residuals = run_residuals(session=session, run_id=run_id)
-        ids = run.inputs
-        day = load_rows(
-            session=session,
-            commodity=run.commodity,
-            trade_date=run.trade_date,
-            futures_rows=ids["futures_rows"],
-            option_rows=ids["option_rows"],
-            rate_rows=ids["rate_rows"],
-        )
+        day = run_quotes(session=session, run=run)
     settings = RunSettings.from_dict(run.settings).calibration
     rows, weights = _frontier(day, estimate.params, settings)
     d = run.diagnostics
@@ -211,7 +203,7 @@ def report_inputs(
             created_at=run.created_at,
             created_by=run.created_by,
             code_version=run.code_version,
-            input_batches=tuple(str(b) for b in ids.get("batch_ids", ())),
+            input_batches=tuple(str(b) for b in run.inputs.get("batch_ids", ())),
             inputs_hash=run.inputs_sha256,
         ),
         params=run.params,

@@ -96,9 +96,9 @@ from calib.store.runs import (
     append_event,
     latest_approved,
     latest_approved_stmt,
-    load_rows,
     lock_commodity,
     require_run,
+    run_quotes,
 )
 from calib.workflows.provenance import code_version, inputs_sha256
 
@@ -791,14 +791,7 @@ def rerun(sessions: sessionmaker[Session], run_id: int) -> Rerun:
         if inputs_sha256(dict(run.inputs)) != run.inputs_sha256:
             raise InputsChangedError(run_id, "the stored ids do not match their stored hash")
         ids = run.inputs
-        day = load_rows(
-            session=session,
-            commodity=run.commodity,
-            trade_date=run.trade_date,
-            futures_rows=ids["futures_rows"],
-            option_rows=ids["option_rows"],
-            rate_rows=ids["rate_rows"],
-        )
+        day = run_quotes(session=session, run=run)
         estimate = get_estimate(session=session, estimate_id=run.estimate_id)
     for what, key in (
         ("futures", "futures_rows"),
