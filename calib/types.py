@@ -4,7 +4,7 @@ The shapes are documentation: numpy's typing cannot check them, so each alias na
 shape in its docstring and the functions that take it say which axis is which.
 """
 
-from typing import TypeAlias
+from typing import Any, TypeAlias
 
 import numpy as np
 import numpy.typing as npt
@@ -20,3 +20,14 @@ IntArray: TypeAlias = npt.NDArray[np.int64]
 
 ArrayLike: TypeAlias = npt.ArrayLike
 """Anything numpy turns into an array: scalars, lists, arrays."""
+
+
+def readonly(values: Any, dtype: npt.DTypeLike | None = None) -> npt.NDArray[Any]:
+    """A read-only copy of ``values`` (as ``dtype`` if given): arrays held by frozen results.
+
+    The copy keeps a caller's later writes out of the result, and the write flag keeps the
+    result's users from changing it in place.
+    """
+    out = np.array(values, dtype=dtype, copy=True)
+    out.flags.writeable = False
+    return out

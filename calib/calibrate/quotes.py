@@ -11,15 +11,9 @@ import numpy.typing as npt
 from calib.calibrate.settings import CalibrationSettings
 from calib.errors import IMPLIED_VOL_REASONS, QuoteError
 from calib.model import black76
-from calib.types import ArrayLike, BoolArray, FloatArray, IntArray
+from calib.types import ArrayLike, BoolArray, FloatArray, IntArray, readonly
 
 DAYS_PER_YEAR = 365.0  # ACT/365, as the inputs (DESIGN §7)
-
-
-def _readonly(x: npt.NDArray[Any]) -> npt.NDArray[Any]:
-    x = np.array(x, copy=True)
-    x.setflags(write=False)
-    return x
 
 
 @dataclass(frozen=True, slots=True, eq=False)
@@ -65,7 +59,7 @@ class OptionQuotes:
                 raise QuoteError(name, f"has shape {a.shape}, expected ({n},)")
             if dtype is np.float64 and not np.all(np.isfinite(a)):
                 raise QuoteError(name, f"is not finite at index {int(np.argmin(np.isfinite(a)))}")
-            return _readonly(a)
+            return readonly(a)
 
         set_ = object.__setattr__
         set_(self, "expiry", arr("expiry", t))

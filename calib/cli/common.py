@@ -10,7 +10,7 @@ from __future__ import annotations
 import json
 from collections.abc import Iterator
 from contextlib import contextmanager
-from datetime import date, datetime
+from datetime import UTC, date, datetime
 from pathlib import Path
 from typing import Annotated, Any
 
@@ -32,6 +32,17 @@ DbOption = Annotated[
     ),
 ]
 JsonOption = Annotated[bool, typer.Option("--json", help="Print the result as JSON.")]
+AS_OF_FORMATS = ["%Y-%m-%d", "%Y-%m-%dT%H:%M:%S", "%Y-%m-%dT%H:%M:%S%z"]
+"""Accepted forms of an ``--as-of`` time (UTC unless a zone is given)."""
+
+
+def as_utc(value: datetime | None) -> datetime | None:
+    """An ``--as-of`` time with its zone: naive times are taken as UTC."""
+    if value is not None and value.tzinfo is None:
+        return value.replace(tzinfo=UTC)
+    return value
+
+
 SettingsOption = Annotated[
     Path | None,
     typer.Option("--settings", help="TOML: [calibration] and [gates] tables.", show_default=False),

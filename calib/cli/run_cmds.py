@@ -8,17 +8,19 @@ mistake (unknown commodity or run, bad file, illegal status change), nothing sto
 from __future__ import annotations
 
 import time
-from datetime import UTC, datetime
+from datetime import datetime
 from pathlib import Path
 from typing import Annotated, Any, NoReturn
 
 import typer
 
 from calib.cli.common import (
+    AS_OF_FORMATS,
     DbOption,
     EstimateOption,
     JsonOption,
     SettingsOption,
+    as_utc,
     echo_json,
     open_store,
 )
@@ -357,19 +359,13 @@ def show_cmd(run_id: RunId, db: DbOption = None, as_json: JsonOption = False) ->
             typer.echo(f"  quote {q:>7}  {100 * v:+.3f}")
 
 
-def _as_of(value: datetime | None) -> datetime | None:
-    if value is not None and value.tzinfo is None:
-        return value.replace(tzinfo=UTC)
-    return value
-
-
 def latest_cmd(
     commodity: Commodity,
     as_of: Annotated[
         datetime | None,
         typer.Option(
             "--as-of",
-            formats=["%Y-%m-%d", "%Y-%m-%dT%H:%M:%S", "%Y-%m-%dT%H:%M:%S%z"],
+            formats=AS_OF_FORMATS,
             help="The set in force at this time (UTC unless a zone is given); default now.",
             show_default=False,
         ),
@@ -386,7 +382,7 @@ def latest_cmd(
             approvals = approved_history(session=session, commodity=commodity)
             run = None
         else:
-            run = latest_approved(session=session, commodity=commodity, as_of=_as_of(as_of))
+            run = latest_approved(session=session, commodity=commodity, as_of=as_utc(as_of))
     if history:
         if as_json:
             echo_json([a.to_dict() for a in approvals])
@@ -401,7 +397,7 @@ def latest_cmd(
             )
         return
     if run is None:
-        when = "now" if as_of is None else f"at {_as_of(as_of)}"
+        when = "now" if as_of is None else f"at {as_utc(as_of)}"
         typer.echo(f"error: {commodity}: no approved parameter set {when}", err=True)
         _exit(EXIT_NONE_APPROVED)
     if as_json:

@@ -8,14 +8,14 @@ loaded); 1 some rows were quarantined, the others landed; 2 a file was refused a
 from __future__ import annotations
 
 import math
-from datetime import UTC, datetime
+from datetime import datetime
 from enum import StrEnum
 from pathlib import Path
 from typing import Annotated, Any
 
 import typer
 
-from calib.cli.common import DbOption, JsonOption, echo_json, open_store
+from calib.cli.common import AS_OF_FORMATS, DbOption, JsonOption, as_utc, echo_json, open_store
 from calib.errors import IngestFileError
 from calib.store.migrate import upgrade
 from calib.store.quotes import DayQuotes, load_day
@@ -181,7 +181,7 @@ def quotes_cmd(
         datetime | None,
         typer.Option(
             "--as-of",
-            formats=["%Y-%m-%d", "%Y-%m-%dT%H:%M:%S", "%Y-%m-%dT%H:%M:%S%z"],
+            formats=AS_OF_FORMATS,
             help="Show what was known at this time (UTC unless a zone is given); default now.",
             show_default=False,
         ),
@@ -190,8 +190,7 @@ def quotes_cmd(
     as_json: JsonOption = False,
 ) -> None:
     """Show the futures, options and zero curve stored for a commodity on a day."""
-    if as_of is not None and as_of.tzinfo is None:
-        as_of = as_of.replace(tzinfo=UTC)
+    as_of = as_utc(as_of)
     with open_store(db) as (store, _), store.sessions.begin() as session:
         day = load_day(
             session=session, commodity=commodity, trade_date=trade_date.date(), as_of=as_of

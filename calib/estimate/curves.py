@@ -22,16 +22,10 @@ from calib.errors import (
     TooFewContractsError,
     TooFewDaysError,
 )
-from calib.types import ArrayLike, FloatArray, IntArray
+from calib.types import ArrayLike, FloatArray, IntArray, readonly
 
 DAYS_PER_YEAR = 365.0
 """ACT/365: year fractions are calendar days over 365 (common practice)."""
-
-
-def _frozen(a: np.ndarray[Any, Any]) -> np.ndarray[Any, Any]:
-    a = np.array(a, copy=True)
-    a.setflags(write=False)
-    return a
 
 
 def _as_dates(dates: ArrayLike) -> np.ndarray[Any, Any]:
@@ -93,11 +87,11 @@ class Curves:
             raise EmptySlotError(int(np.argmax(empty)))
         if dates.size and np.unique(tau[0, present[0]]).size < 2:
             raise FirstCurveError(dates[0], int(present[0].sum()))
-        object.__setattr__(self, "dates", _frozen(dates))
-        object.__setattr__(self, "tau", _frozen(np.where(present, tau, np.nan)))
-        object.__setattr__(self, "log_price", _frozen(y))
+        object.__setattr__(self, "dates", readonly(dates))
+        object.__setattr__(self, "tau", readonly(np.where(present, tau, np.nan)))
+        object.__setattr__(self, "log_price", readonly(y))
         if self.delivery is not None:
-            object.__setattr__(self, "delivery", _frozen(_as_dates(self.delivery)))
+            object.__setattr__(self, "delivery", readonly(_as_dates(self.delivery)))
 
     @classmethod
     def from_prices(

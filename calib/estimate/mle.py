@@ -38,7 +38,7 @@ from calib.errors import EstimationError, EstimationWarning
 from calib.estimate import kalman
 from calib.estimate.curves import Curves
 from calib.model.twofactor import PARAM_NAMES, TwoFactorParams
-from calib.types import ArrayLike, FloatArray, IntArray
+from calib.types import ArrayLike, FloatArray, IntArray, readonly
 
 GRAD_STEP = 6e-6
 """Relative central-difference step of the gradient (about ``eps^(1/3)``)."""
@@ -118,12 +118,6 @@ class _Problem:
 # --- states --------------------------------------------------------------------------------
 
 
-def _frozen(a: FloatArray) -> FloatArray:
-    a = np.array(a, dtype=np.float64, copy=True)
-    a.setflags(write=False)
-    return a
-
-
 def _cov3(p: FloatArray) -> FloatArray:
     """(n, 3) packed ``P00, P01, P11`` to (n, 2, 2)."""
     out = np.empty((p.shape[0], 2, 2))
@@ -155,10 +149,10 @@ def _states(problem: _Problem, theta: FloatArray) -> States:
     a_s, p_s = kalman.smooth_moments(theta, gi, gaps, a_f, p_f, a_p, p_p)
     return States(
         loglik=float(ll),
-        filtered=_frozen(a_f),
-        filtered_cov=_frozen(_cov3(p_f)),
-        smoothed=_frozen(a_s),
-        smoothed_cov=_frozen(_cov3(p_s)),
+        filtered=readonly(a_f, np.float64),
+        filtered_cov=readonly(_cov3(p_f), np.float64),
+        smoothed=readonly(a_s, np.float64),
+        smoothed_cov=readonly(_cov3(p_s), np.float64),
     )
 
 
@@ -393,9 +387,9 @@ def fit(
     states = _states(problem, theta)
     return Estimate(
         params=_params(theta),
-        noise_sd=_frozen(theta[kalman.N_MODEL :]),
+        noise_sd=readonly(theta[kalman.N_MODEL :], np.float64),
         std_errors=se,
-        covariance=_frozen(cov),
+        covariance=readonly(cov, np.float64),
         loglik=float(ll),
         n_obs=problem.n_obs,
         n_days=curves.n_days,

@@ -73,7 +73,7 @@ from calib.model.twofactor import (
     interval_coefficients,
     variance_coefficients,
 )
-from calib.types import ArrayLike, BoolArray, FloatArray
+from calib.types import ArrayLike, BoolArray, FloatArray, readonly
 
 DEFAULT_NODES = 64
 """Gauss-Hermite nodes of :func:`price_exact` (1e-10 relative on model calendar spreads)."""
@@ -83,12 +83,6 @@ _INV_SQRT_2PI = 0.3989422804014327
 
 def _f(x: ArrayLike) -> FloatArray:
     return np.asarray(x, dtype=np.float64)
-
-
-def _frozen(x: ArrayLike) -> FloatArray:
-    x = np.array(x, copy=True)
-    x.setflags(write=False)
-    return x
 
 
 # --- inputs -------------------------------------------------------------------------------------
@@ -137,7 +131,7 @@ class SpreadOption:
         for name, value in zip(names, values, strict=True):
             if name != "kind" and not np.all(np.isfinite(value)):
                 raise ParameterError(name, value[~np.isfinite(value)][0], "must be finite")
-            object.__setattr__(self, name, _frozen(value))
+            object.__setattr__(self, name, readonly(value))
         checks = (
             ("expiry", self.expiry > 0.0, "must be > 0"),
             ("near", self.near >= self.expiry, "the near future must not mature before expiry"),
@@ -176,13 +170,13 @@ class ForwardVols:
             raise ParameterError("kappa", self.kappa, "mean reversion must be > 0")
         object.__setattr__(self, "kappa", float(self.kappa))
         edges = check_bucket_edges(self.edges)
-        object.__setattr__(self, "edges", _frozen(edges))
+        object.__setattr__(self, "edges", readonly(edges))
         n = edges.size - 1
         for name in ("sigma_spot", "sigma_yield", "rho"):
             value = np.atleast_1d(_f(getattr(self, name)))
             if value.shape != (n,) or not np.all(np.isfinite(value)):
                 raise ParameterError(name, value.tolist(), f"need {n} finite values (one a bucket)")
-            object.__setattr__(self, name, _frozen(value))
+            object.__setattr__(self, name, readonly(value))
         if np.any(self.sigma_spot < 0.0) or np.any(self.sigma_yield < 0.0):
             raise ParameterError("sigma", self.sigma_spot.tolist(), "a volatility must be >= 0")
         if np.any(np.abs(self.rho) > 1.0):
@@ -225,7 +219,7 @@ class SpreadLaw:
         names = ("mean_near", "mean_far", "var_near", "var_far", "cov")
         values = np.broadcast_arrays(*(np.atleast_1d(_f(getattr(self, n))) for n in names))
         for name, value in zip(names, values, strict=True):
-            object.__setattr__(self, name, _frozen(value))
+            object.__setattr__(self, name, readonly(value))
         if np.any(self.var_near <= 0.0):
             raise ParameterError("var_near", self.var_near.min(), "must be > 0")
         if np.any(self.var_far < 0.0):
@@ -367,7 +361,7 @@ def hermite_nodes(n: int) -> tuple[FloatArray, FloatArray]:
         raise ParameterError("nodes", n, "need at least 2 quadrature nodes")
     z, w = roots_hermitenorm(n)
     w = w / w.sum()
-    return _frozen(z), _frozen(w)
+    return readonly(z), readonly(w)
 
 
 @dataclass(frozen=True, slots=True)

@@ -28,6 +28,11 @@ The first column only, because PostgreSQL truncates names beyond 63 characters.
 """
 
 
+def in_check(column: str, values: tuple[str, ...]) -> str:
+    """SQL of a check constraint that ``column`` is one of ``values``."""
+    return f"{column} IN ({', '.join(repr(v) for v in values)})"
+
+
 class Base(DeclarativeBase):
     """Base class of every calib table; ``Base.metadata`` is Alembic's target."""
 

@@ -29,17 +29,13 @@ from sqlalchemy import (
 )
 from sqlalchemy.orm import Mapped, mapped_column
 
-from calib.store.base import Base, UtcDateTime
+from calib.store.base import Base, UtcDateTime, in_check
 
 BATCH_KINDS = ("futures", "options", "rates")
 """What an ingest batch holds; one file is one kind."""
 
 BATCH_STATUSES = ("loaded", "rejected")
 """``loaded``: good rows stored (bad ones quarantined); ``rejected``: ``--strict`` refused it."""
-
-
-def _in(column: str, values: tuple[str, ...]) -> str:
-    return f"{column} IN ({', '.join(repr(v) for v in values)})"
 
 
 class Commodity(Base):
@@ -61,8 +57,8 @@ class IngestBatch(Base):
 
     __tablename__ = "ingest_batches"
     __table_args__ = (
-        CheckConstraint(_in("kind", BATCH_KINDS), name="kind"),
-        CheckConstraint(_in("status", BATCH_STATUSES), name="status"),
+        CheckConstraint(in_check("kind", BATCH_KINDS), name="kind"),
+        CheckConstraint(in_check("status", BATCH_STATUSES), name="status"),
         CheckConstraint("rows_read = rows_accepted + rows_rejected", name="row_counts"),
         Index(None, "sha256"),
         Index(None, "received_at"),

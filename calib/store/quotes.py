@@ -38,7 +38,7 @@ from calib.store.models import (
     QuarantinedRow,
     RateQuote,
 )
-from calib.types import BoolArray, FloatArray, IntArray
+from calib.types import BoolArray, FloatArray, IntArray, readonly
 
 DateArray = npt.NDArray[np.datetime64]
 """``datetime64[D]`` array of calendar dates."""
@@ -57,14 +57,8 @@ _batches = cast(Table, IngestBatch.__table__)
 _quarantine = cast(Table, QuarantinedRow.__table__)
 
 
-def _frozen(values: Any, dtype: npt.DTypeLike) -> Any:
-    arr = np.array(values, dtype=dtype)
-    arr.flags.writeable = False
-    return arr
-
-
 def _dates(values: Sequence[date]) -> DateArray:
-    return np.asarray(_frozen(list(values), "datetime64[D]"))
+    return np.asarray(readonly(list(values), "datetime64[D]"))
 
 
 def year_fractions(start: date, end: DateArray) -> FloatArray:
@@ -426,15 +420,16 @@ def zero_curves(
         day: ZeroCurve(
             trade_date=day,
             maturity=_dates([r.maturity for r in day_rows]),
-            zero_rate=_frozen([r.zero_rate for r in day_rows], np.float64),
-            row_id=_frozen([r.id for r in day_rows], np.int64),
+            zero_rate=readonly([r.zero_rate for r in day_rows], np.float64),
+            row_id=readonly([r.id for r in day_rows], np.int64),
         )
         for day, day_rows in by_day.items()
     }
 
 
-def _nan(values: Sequence[float | None]) -> FloatArray:
-    return np.asarray(_frozen([np.nan if v is None else v for v in values], np.float64))
+def nan_for_none(values: Sequence[float | None]) -> FloatArray:
+    """A read-only float array with NaN where a stored value is NULL."""
+    return np.asarray(readonly([np.nan if v is None else v for v in values], np.float64))
 
 
 def load_day(
@@ -518,7 +513,7 @@ class _DayRows:
         rows = slice(
             int(np.searchsorted(days, at, "left")), int(np.searchsorted(days, at, "right"))
         )
-        return {name: _frozen(col[rows], col.dtype) for name, col in self.columns.items()}
+        return {name: readonly(col[rows], col.dtype) for name, col in self.columns.items()}
 
 
 def load_days(

@@ -50,7 +50,7 @@ from sqlalchemy import (
 )
 from sqlalchemy.orm import Mapped, mapped_column
 
-from calib.store.base import Base, UtcDateTime
+from calib.store.base import Base, UtcDateTime, in_check
 
 ESTIMATE_SOURCES = ("kalman", "imported")
 """``kalman``: estimated here from stored futures; ``imported``: registered from a file."""
@@ -65,16 +65,12 @@ PARAM_COLUMNS = ("mu", "kappa", "alpha", "lam", "sigma_spot", "sigma_yield", "rh
 """The seven parameter columns, in the order of ``TwoFactorParams``."""
 
 
-def _in(column: str, values: tuple[str, ...]) -> str:
-    return f"{column} IN ({', '.join(repr(v) for v in values)})"
-
-
 class HistoricalEstimate(Base):
     """A maximum-likelihood (or imported) estimate of the two-factor model for one commodity."""
 
     __tablename__ = "historical_estimates"
     __table_args__ = (
-        CheckConstraint(_in("source", ESTIMATE_SOURCES), name="source"),
+        CheckConstraint(in_check("source", ESTIMATE_SOURCES), name="source"),
         Index(None, "commodity_id", "converged", "id"),
     )
 
@@ -130,7 +126,7 @@ class CalibrationRun(Base):
 
     __tablename__ = "calibration_runs"
     __table_args__ = (
-        CheckConstraint(_in("outcome", RUN_OUTCOMES), name="outcome"),
+        CheckConstraint(in_check("outcome", RUN_OUTCOMES), name="outcome"),
         CheckConstraint(
             "outcome = 'failed' OR ("
             + " AND ".join(f"{c} IS NOT NULL" for c in PARAM_COLUMNS)
@@ -193,7 +189,7 @@ class RunEvent(Base):
 
     __tablename__ = "run_events"
     __table_args__ = (
-        CheckConstraint(_in("to_status", RUN_STATUSES), name="to_status"),
+        CheckConstraint(in_check("to_status", RUN_STATUSES), name="to_status"),
         UniqueConstraint("run_id", "to_status"),
         Index(None, "commodity_id", "to_status", "at", "id"),
     )

@@ -35,9 +35,11 @@ from calib.store.quotes import (
     OptionChain,
     ZeroCurve,
     insert_columns,
+    nan_for_none,
     require_commodity,
 )
 from calib.store.run_models import CalibrationRun, RunEvent, RunResidual
+from calib.types import readonly
 
 TRANSITIONS: Mapping[str, frozenset[str]] = MappingProxyType(
     {
@@ -488,16 +490,6 @@ def run_residuals(*, session: Session, run_id: int) -> pd.DataFrame:
     return pd.DataFrame(session.execute(stmt).all(), columns=["quote_id", *RESIDUAL_COLUMNS])
 
 
-def _array(values: Sequence[Any], dtype: Any) -> Any:
-    out = np.array(values, dtype=dtype)
-    out.flags.writeable = False
-    return out
-
-
-def _floats(values: Sequence[float | None]) -> Any:
-    return _array([np.nan if v is None else v for v in values], np.float64)
-
-
 def run_quotes(*, session: Session, run: RunRecord) -> DayQuotes:
     """The quote rows ``run`` was fitted to, by the ids it stored (see :func:`load_rows`)."""
     ids = run.inputs
@@ -547,26 +539,26 @@ def load_rows(
         trade_date=trade_date,
         as_of=utc_now(),
         futures=FuturesCurve(
-            delivery=_array([r.delivery for r in fut], "datetime64[D]"),
-            settle=_array([r.settle for r in fut], np.float64),
-            row_id=_array([r.id for r in fut], np.int64),
+            delivery=readonly([r.delivery for r in fut], "datetime64[D]"),
+            settle=readonly([r.settle for r in fut], np.float64),
+            row_id=readonly([r.id for r in fut], np.int64),
         ),
         options=OptionChain(
-            delivery=_array([r.delivery for r in opt], "datetime64[D]"),
-            expiry=_array([r.expiry for r in opt], "datetime64[D]"),
-            is_call=_array([r.is_call for r in opt], np.bool_),
-            strike=_array([r.strike for r in opt], np.float64),
-            premium=_floats([r.premium for r in opt]),
-            implied_vol=_floats([r.implied_vol for r in opt]),
-            bid=_floats([r.bid for r in opt]),
-            ask=_floats([r.ask for r in opt]),
-            row_id=_array([r.id for r in opt], np.int64),
+            delivery=readonly([r.delivery for r in opt], "datetime64[D]"),
+            expiry=readonly([r.expiry for r in opt], "datetime64[D]"),
+            is_call=readonly([r.is_call for r in opt], np.bool_),
+            strike=readonly([r.strike for r in opt], np.float64),
+            premium=nan_for_none([r.premium for r in opt]),
+            implied_vol=nan_for_none([r.implied_vol for r in opt]),
+            bid=nan_for_none([r.bid for r in opt]),
+            ask=nan_for_none([r.ask for r in opt]),
+            row_id=readonly([r.id for r in opt], np.int64),
         ),
         rates=ZeroCurve(
             trade_date=trade_date,
-            maturity=_array([r.maturity for r in rates], "datetime64[D]"),
-            zero_rate=_array([r.zero_rate for r in rates], np.float64),
-            row_id=_array([r.id for r in rates], np.int64),
+            maturity=readonly([r.maturity for r in rates], "datetime64[D]"),
+            zero_rate=readonly([r.zero_rate for r in rates], np.float64),
+            row_id=readonly([r.id for r in rates], np.int64),
         ),
         batch_ids=tuple(sorted(batches)),
     )
