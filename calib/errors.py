@@ -599,3 +599,44 @@ class ApiTokenError(InputError):
     def __init__(self, source: str, reason: str) -> None:
         self.source = source
         super().__init__(self.TEMPLATE.format(source=source, reason=reason))
+
+
+# --- quote files: limits, plausibility, store text limits (ingest) -----------------------------
+
+FILE_TOO_MANY_COLUMNS = "the header has {found} columns; at most {limit} are read"
+FILE_HEADER_TOO_LONG = (
+    "the header line is longer than {limit} bytes; at most {columns} columns are read"
+)
+FILE_NO_ROWS = "no rows after the header"
+FILE_NO_CURVE = (
+    "no zero curve stored for trade date(s) {days}: ingest the day's rates before its options"
+)
+HINT_KNOWN = " (known: {known})"
+ROW_NUL = "contains a NUL character"
+ROW_LINE_TOO_LONG = "line of {found} characters; at most {limit} are read"
+ROW_UNBALANCED_QUOTE = "unbalanced quote: {count} quote character(s) on the line"
+ROW_BEYOND_HORIZON = "{value} is more than {years} years after the trade date {trade_date}"
+ROW_PRICE_RANGE = "must be within {low}..{high}: {value!r}"
+ROW_TOO_HIGH = "must be at most {high}: {value!r}"
+ROW_VOL_LOW = "implied volatility below {low}: {value!r}"
+ROW_STRIKE_RATIO = (
+    "strike {strike:.10g} is beyond x{limit:g} of the future's settlement {forward:.10g}"
+)
+ROW_PREMIUM_TINY = "premium {premium:.10g} is below {ratio:g} of max(F, K)"
+ROW_UNKNOWN_COMMODITY = "unknown commodity {value!r}; known: {known}"
+ROW_DAY_MOVE = (
+    "{name} {value:.10g} is x{ratio:.4g} the previous {previous:.10g} of {day},"
+    " beyond the day-on-day band (x{limit:g} either way)"
+)
+
+
+class TextTooLongError(InputError):
+    """A text value longer than the store keeps (same limit on every engine)."""
+
+    TEMPLATE = "{what} is {found} characters long; at most {limit} are stored"
+
+    def __init__(self, what: str, found: int, limit: int) -> None:
+        self.what = what
+        self.found = found
+        self.limit = limit
+        super().__init__(self.TEMPLATE.format(what=what, found=found, limit=limit))

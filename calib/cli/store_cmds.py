@@ -1,8 +1,10 @@
 """``calib init``, ``calib ingest`` and ``calib quotes``: the quote store's commands.
 
 Exit codes of ``calib ingest``: 0 every row of every file accepted (or the file was already
-loaded); 1 some rows were quarantined, the others landed; 2 a file was refused as a whole
-(unreadable, missing columns, unknown commodity, or ``--strict`` with a bad row).
+loaded with every row accepted); 1 some rows were quarantined, the others landed (also when the
+file was already loaded and its first ingest quarantined rows); 2 a file was refused as a whole
+(unreadable, no rows, missing columns, unknown commodity in a futures file, options before
+their day's zero curve, or ``--strict`` with a bad row).
 """
 
 from __future__ import annotations
@@ -17,6 +19,7 @@ import typer
 
 from calib.cli.common import AS_OF_FORMATS, DbOption, JsonOption, as_utc, echo_json, open_store
 from calib.errors import IngestFileError
+from calib.inputs.rules import Bands
 from calib.store.migrate import upgrade
 from calib.store.quotes import DayQuotes, load_day
 from calib.workflows.ingest import IngestReport, NewCommodity, ingest_file
@@ -59,7 +62,12 @@ def init_cmd(db: DbOption = None, as_json: JsonOption = False) -> None:
 
 def _print_report(report: IngestReport) -> None:
     if report.status == "duplicate":
-        typer.echo(f"{report.file}: already loaded as batch {report.batch_id}, nothing done")
+        held = (
+            f" ({report.rows_quarantined} row(s) of it are in quarantine)"
+            if report.rows_quarantined
+            else ""
+        )
+        typer.echo(f"{report.file}: already loaded as batch {report.batch_id}{held}, nothing done")
         return
     verb = "refused (--strict)" if report.status == "rejected" else "loaded"
     typer.echo(
@@ -71,8 +79,8 @@ def _print_report(report: IngestReport) -> None:
     for problem in report.problems[:SHOWN_PROBLEMS]:
         typer.echo(f"  {report.file}:{problem.line}: {problem.field}: {problem.reason}")
     shown = min(len(report.problems), SHOWN_PROBLEMS)
-    if report.rows_rejected > shown and report.problems:
-        typer.echo(f"  ... {report.rows_rejected - shown} more (see the quarantine)")
+    if report.rows_quarantined > shown:
+        typer.echo(f"  ... {report.rows_quarantined - shown} more (see the quarantine)")
     for note in report.notes:
         typer.echo(f"  note: {note}")
 
@@ -89,21 +97,42 @@ def ingest_cmd(
     unit: Annotated[str, typer.Option(help="Unit of a commodity registered by --create.")] = "unit",
     currency: Annotated[str, typer.Option(help="Its quote currency.")] = "USD",
     calendar: Annotated[str, typer.Option(help="Its contract calendar rule.")] = "monthly",
+    settle_band: Annotated[
+        float,
+        typer.Option(
+            help="Day-on-day band of a futures settlement: at most this factor either way."
+        ),
+    ] = Bands.settle_move,
+    vol_band: Annotated[
+        float,
+        typer.Option(help="Day-on-day band of an implied volatility, as a factor either way."),
+    ] = Bands.vol_move,
     db: DbOption = None,
     as_json: JsonOption = False,
 ) -> None:
     """Validate and store quote files; bad rows are quarantined with their reasons.
 
-    Exit code 0: all rows accepted; 1: some rows quarantined; 2: a file refused as a whole.
+    Exit code 0: all rows accepted; 1: some rows quarantined (now, or when the same file was
+    first loaded); 2: a file refused as a whole.
     """
     new = NewCommodity(unit=unit, currency=currency, calendar_rule=calendar) if create else None
+    try:
+        bands = Bands(settle_move=settle_band, vol_move=vol_band)
+    except ValueError as exc:
+        raise typer.BadParameter(str(exc)) from None
     code = 0
     results: list[dict[str, Any]] = []
     with open_store(db) as (store, settings):
         for path in files:
             try:
                 report = ingest_file(
-                    store.sessions, path, kind.value, user=settings.user, strict=strict, create=new
+                    store.sessions,
+                    path,
+                    kind.value,
+                    user=settings.user,
+                    strict=strict,
+                    create=new,
+                    bands=bands,
                 )
             except IngestFileError as exc:
                 code = EXIT_FILE_REFUSED
@@ -113,7 +142,7 @@ def ingest_cmd(
                 continue
             if report.status == "rejected":
                 code = EXIT_FILE_REFUSED
-            elif report.status == "loaded" and report.rows_rejected:
+            elif report.rows_quarantined:  # loaded now, or before (a duplicate says it again)
                 code = max(code, EXIT_ROWS_REJECTED)
             results.append(report.to_dict())
             if not as_json:
