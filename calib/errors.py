@@ -599,3 +599,24 @@ class ApiTokenError(InputError):
     def __init__(self, source: str, reason: str) -> None:
         self.source = source
         super().__init__(self.TEMPLATE.format(source=source, reason=reason))
+
+
+# --- American options on futures (numeric core) ---------------------------------------------
+
+AMERICAN_IMPLIED_VOL_REASONS: dict[str, str] = {
+    "BELOW_INTRINSIC": (
+        "the premium is below the undiscounted intrinsic value (an American option can be "
+        "exercised now)"
+    ),
+    "ABOVE_UPPER_BOUND": (
+        "the premium is at or above its upper bound (the futures price for a call, the strike "
+        "for a put)"
+    ),
+    "NON_POSITIVE_INPUT": IMPLIED_VOL_REASONS["NON_POSITIVE_INPUT"],
+    "NO_TIME_VALUE": (
+        "the premium equals the undiscounted intrinsic value, which every volatility up to the "
+        "one at which immediate exercise stops being optimal reproduces"
+    ),
+    "NON_FINITE_INPUT": IMPLIED_VOL_REASONS["NON_FINITE_INPUT"],
+}
+"""Reason phrases of :class:`ImpliedVolError` for American premiums, keyed like Black-76's."""
