@@ -60,7 +60,10 @@ def _per_option_pricer(F: np.ndarray, laws: list[tuple[float, float, float]], n:
         k = i % len(laws)
         v1, v2, c = laws[k]
         f1, f2 = F[i, k]
-        law = SpreadLaw(math.log(f1) - 0.5 * v1, math.log(f2) - 0.5 * v2, v1, v2, c)
+        law = SpreadLaw(
+            *(np.array([x]) for x in (math.log(f1) - v1 / 2, math.log(f2) - v2 / 2)),
+            *(np.array([x]) for x in (v1, v2, c)),
+        )
         spread_greeks(law, OPTION.strike, "call", 0.97)
     return (time.perf_counter() - t0) / n
 
@@ -93,7 +96,14 @@ def _vectorised_per_date(F: np.ndarray, laws: list[tuple[float, float, float]]) 
     t0 = time.perf_counter()
     for k in range(dates):
         v1, v2, c = laws[k]
-        law = SpreadLaw(np.log(F[:, k, 0]) - 0.5 * v1, np.log(F[:, k, 1]) - 0.5 * v2, v1, v2, c)
+        ones = np.ones(PATHS)
+        law = SpreadLaw(
+            np.log(F[:, k, 0]) - 0.5 * v1,
+            np.log(F[:, k, 1]) - 0.5 * v2,
+            v1 * ones,
+            v2 * ones,
+            c * ones,
+        )
         spread_greeks(law, OPTION.strike, "call", 0.97)
     return (time.perf_counter() - t0) / dates
 
