@@ -362,7 +362,8 @@ def write_paths_csv(sim: HedgeSimulation, path: Path) -> Path:
 
 
 def plot_histogram(sim: HedgeSimulation, path: Path) -> Path:
-    """PNG histogram of the P&L in % of premium, with the mean and the 5 % quantile marked."""
+    """PNG histogram of the P&L in % of premium (central 99 % of paths drawn, the rest counted),
+    with the mean and the 5 % quantile marked."""
     from matplotlib.backends.backend_agg import FigureCanvasAgg
     from matplotlib.figure import Figure
 
@@ -371,7 +372,19 @@ def plot_histogram(sim: HedgeSimulation, path: Path) -> Path:
     fig = Figure(figsize=(8.0, 4.5), layout="constrained")
     FigureCanvasAgg(fig)
     ax = fig.subplots()
-    ax.hist(sim.result.pnl_pct, bins=80, color="#6baed6", edgecolor="#2171b5", lw=0.4)
+    pct = sim.result.pnl_pct
+    lo, hi = np.quantile(pct, [0.005, 0.995])
+    pad = 0.05 * max(hi - lo, 1e-12)
+    shown = (pct >= lo - pad) & (pct <= hi + pad)
+    outside = int(pct.size - shown.sum())
+    ax.hist(
+        pct[shown],
+        bins=80,
+        color="#6baed6",
+        edgecolor="#2171b5",
+        lw=0.4,
+        label=f"{outside} paths beyond the 0.5-99.5 % range not drawn" if outside else None,
+    )
     s = sim.stats
     ax.axvline(s.mean.value, color="#08306b", lw=1.5, label=f"mean {s.mean.value:+.2f} %")
     q5 = s.quantiles["5"].value
