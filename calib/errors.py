@@ -601,6 +601,44 @@ class ApiTokenError(InputError):
         super().__init__(self.TEMPLATE.format(source=source, reason=reason))
 
 
+# --- rolling estimates, stability and price uncertainty (issue 15) -----------------------------
+
+
+class PeriodError(InputError):
+    """A window length or step that is not a whole number of years, months, weeks or days."""
+
+    TEMPLATE = (
+        "{option} {text!r}: expected a positive whole number and a unit y, m, w or d (2y, 1m)"
+    )
+
+    def __init__(self, option: str, text: str) -> None:
+        self.option = option
+        super().__init__(self.TEMPLATE.format(option=option, text=text))
+
+
+class RollingRequestError(InputError):
+    """A rolling re-estimation or stability request that cannot be served as asked."""
+
+    TEMPLATE = "{commodity}: {reason}"
+
+    def __init__(self, commodity: str, reason: str) -> None:
+        self.commodity = commodity
+        super().__init__(self.TEMPLATE.format(commodity=commodity, reason=reason))
+
+
+ROLLING_NO_WINDOWS = "no window end between {first} and {last} (--from after --to?)"
+ROLLING_ONLY_WITH = "{option} needs --rolling"
+STABILITY_NO_SERIES = (
+    "no rolling series stored (make one: calib estimate {commodity} --rolling ...)"
+)
+STABILITY_UNKNOWN_SERIES = "no rolling series {series_id} of this commodity"
+STABILITY_EMPTY = "rolling series {series_id} holds no estimate yet"
+UNCERTAINTY_NO_COVARIANCE = (
+    "estimate {estimate_id} has no stored covariance (imported, or made before covariances "
+    "were kept): re-estimate it to price its uncertainty"
+)
+
+
 # --- hedge studies (calib.hedge, workflows.hedge): block kept together for merges ----------------
 
 
