@@ -637,3 +637,11 @@ UNCERTAINTY_NO_COVARIANCE = (
     "estimate {estimate_id} has no stored covariance (imported, or made before covariances "
     "were kept): re-estimate it to price its uncertainty"
 )
+
+
+class VanillaRequestError(SpreadRequestError):
+    """A vanilla option that cannot be priced from the store as asked (nothing is priced)."""
+
+
+VANILLA_EXPIRY = "the expiry {expiry} must lie after {day} and not after the delivery {future}"
+VANILLA_STRIKE = "the strike must be a positive number, got {strike}"
