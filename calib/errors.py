@@ -639,6 +639,14 @@ UNCERTAINTY_NO_COVARIANCE = (
 )
 
 
+class VanillaRequestError(SpreadRequestError):
+    """A vanilla option that cannot be priced from the store as asked (nothing is priced)."""
+
+
+VANILLA_EXPIRY = "the expiry {expiry} must lie after {day} and not after the delivery {future}"
+VANILLA_STRIKE = "the strike must be a positive number, got {strike}"
+
+
 # --- hedge studies (calib.hedge, workflows.hedge): block kept together for merges ----------------
 
 
