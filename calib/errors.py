@@ -599,3 +599,16 @@ class ApiTokenError(InputError):
     def __init__(self, source: str, reason: str) -> None:
         self.source = source
         super().__init__(self.TEMPLATE.format(source=source, reason=reason))
+
+
+# --- the review pages (calib serve) ------------------------------------------------------------
+
+
+class AsOfError(InputError):
+    """A moment typed into a review page's as-of control that is not an ISO time."""
+
+    TEMPLATE = "as of {value!r}: not an ISO date or time (e.g. 2032-01-05T07:30:00Z)"
+
+    def __init__(self, value: str) -> None:
+        self.value = value
+        super().__init__(self.TEMPLATE.format(value=value))
