@@ -601,6 +601,67 @@ class ApiTokenError(InputError):
         super().__init__(self.TEMPLATE.format(source=source, reason=reason))
 
 
+# --- rolling estimates, stability and price uncertainty (issue 15) -----------------------------
+
+
+class PeriodError(InputError):
+    """A window length or step that is not a whole number of years, months, weeks or days."""
+
+    TEMPLATE = (
+        "{option} {text!r}: expected a positive whole number and a unit y, m, w or d (2y, 1m)"
+    )
+
+    def __init__(self, option: str, text: str) -> None:
+        self.option = option
+        super().__init__(self.TEMPLATE.format(option=option, text=text))
+
+
+class RollingRequestError(InputError):
+    """A rolling re-estimation or stability request that cannot be served as asked."""
+
+    TEMPLATE = "{commodity}: {reason}"
+
+    def __init__(self, commodity: str, reason: str) -> None:
+        self.commodity = commodity
+        super().__init__(self.TEMPLATE.format(commodity=commodity, reason=reason))
+
+
+ROLLING_NO_WINDOWS = "no window end between {first} and {last} (--from after --to?)"
+ROLLING_ONLY_WITH = "{option} needs --rolling"
+STABILITY_NO_SERIES = (
+    "no rolling series stored (make one: calib estimate {commodity} --rolling ...)"
+)
+STABILITY_UNKNOWN_SERIES = "no rolling series {series_id} of this commodity"
+STABILITY_EMPTY = "rolling series {series_id} holds no estimate yet"
+UNCERTAINTY_NO_COVARIANCE = (
+    "estimate {estimate_id} has no stored covariance (imported, or made before covariances "
+    "were kept): re-estimate it to price its uncertainty"
+)
+
+
+# --- hedge studies (calib.hedge, workflows.hedge): block kept together for merges ----------------
+
+
+class HedgeRequestError(InputError):
+    """A hedge study that cannot run as asked (nothing is simulated or replayed)."""
+
+    TEMPLATE = "{commodity}: {reason}"
+
+    def __init__(self, commodity: str, reason: str) -> None:
+        self.commodity = commodity
+        self.reason = reason
+        super().__init__(self.TEMPLATE.format(commodity=commodity, reason=reason))
+
+
+HEDGE_OPTION_LEGS = (
+    "name the option's futures: --future D for a vanilla, or --near D1 --far D2 for a spread"
+)
+HEDGE_NO_SET = "no approved parameter set {when} (fit and approve a run, or name one with --run)"
+HEDGE_WORLD_FILE = "world file {path}: {reason}"
+HEDGE_WORLD_RUN = "world run {run_id} has no parameters (it failed)"
+HEDGE_STEPS = "--steps-per-year must be >= 1 and --paths >= 2 (got {steps} and {paths})"
+
+
 # --- the review pages (calib serve) ------------------------------------------------------------
 
 

@@ -45,6 +45,8 @@ _COMMAND_MODULES: list[str] = [
     "backfill_cmds",
     "price_cmds",
     "risk_cmds",
+    "stability_cmds",
+    "hedge_cmds",
 ]
 
 
