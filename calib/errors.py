@@ -689,3 +689,16 @@ AMERICAN_IMPLIED_VOL_REASONS: dict[str, str] = {
     "NON_FINITE_INPUT": IMPLIED_VOL_REASONS["NON_FINITE_INPUT"],
 }
 """Reason phrases of :class:`ImpliedVolError` for American premiums, keyed like Black-76's."""
+
+
+# --- the review pages (calib serve) ------------------------------------------------------------
+
+
+class AsOfError(InputError):
+    """A moment typed into a review page's as-of control that is not an ISO time."""
+
+    TEMPLATE = "as of {value!r}: not an ISO date or time (e.g. 2032-01-05T07:30:00Z)"
+
+    def __init__(self, value: str) -> None:
+        self.value = value
+        super().__init__(self.TEMPLATE.format(value=value))
