@@ -7,18 +7,25 @@ after the near delivery, unknown run, ...), nothing priced.
 from __future__ import annotations
 
 from datetime import datetime
-from typing import Annotated, Literal
+from typing import TYPE_CHECKING, Annotated, Literal
 
 import typer
 
 from calib.cli.common import DbOption, JsonOption, echo_json, open_store
-from calib.workflows import pricing as flow
+
+if TYPE_CHECKING:
+    from calib.workflows import pricing as flow
 
 price_app = typer.Typer(
     name="price",
     help="Price options from the approved parameter set (or a named run).",
     no_args_is_help=True,
+    rich_markup_mode=None,
 )
+MC_PATHS = 200_000
+"""Default of ``--paths``: ``calib.workflows.pricing.MC_PATHS`` (a test keeps them equal)."""
+MC_SEED = 20310106
+"""Default of ``--seed``: ``calib.workflows.pricing.MC_SEED`` (a test keeps them equal)."""
 
 Day = Annotated[datetime, typer.Option(formats=["%Y-%m-%d"])]
 
@@ -88,15 +95,15 @@ def spread_cmd(
             show_default=False,
         ),
     ] = None,
-    paths: Annotated[
-        int, typer.Option("--paths", min=4, help="Monte Carlo paths.")
-    ] = flow.MC_PATHS,
-    seed: Annotated[int, typer.Option("--seed", help="Monte Carlo seed.")] = flow.MC_SEED,
+    paths: Annotated[int, typer.Option("--paths", min=4, help="Monte Carlo paths.")] = MC_PATHS,
+    seed: Annotated[int, typer.Option("--seed", help="Monte Carlo seed.")] = MC_SEED,
     db: DbOption = None,
     as_json: JsonOption = False,
 ) -> None:
     """Price a calendar-spread option on F(far) - F(near): price, hedge ratios in both futures,
     sensitivities to the calibrated volatilities, and the Kirk and Monte Carlo cross-checks."""
+    from calib.workflows import pricing as flow
+
     with open_store(db) as (store, _):
         result = flow.price_spread(
             store.sessions,
