@@ -575,3 +575,39 @@ class AsOfError(TemplatedError, InputError, ValueError):
     TEMPLATE: ClassVar[str] = "as_of {value!r}: {reason}"
     value: str
     reason: str
+
+
+# --- rolling estimates, stability and price uncertainty (issue 15) -----------------------------
+
+
+@dataclass(eq=False, repr=False)
+class PeriodError(TemplatedError, InputError):
+    """A window length or step that is not a whole number of years, months, weeks or days."""
+
+    TEMPLATE: ClassVar[str] = (
+        "{option} {text!r}: expected a positive whole number and a unit y, m, w or d (2y, 1m)"
+    )
+    option: str
+    text: str
+
+
+@dataclass(eq=False, repr=False)
+class RollingRequestError(TemplatedError, InputError):
+    """A rolling re-estimation or stability request that cannot be served as asked."""
+
+    TEMPLATE: ClassVar[str] = "{commodity}: {reason}"
+    commodity: str
+    reason: str
+
+
+ROLLING_NO_WINDOWS = "no window end between {first} and {last} (--from after --to?)"
+ROLLING_ONLY_WITH = "{option} needs --rolling"
+STABILITY_NO_SERIES = (
+    "no rolling series stored (make one: calib estimate {commodity} --rolling ...)"
+)
+STABILITY_UNKNOWN_SERIES = "no rolling series {series_id} of this commodity"
+STABILITY_EMPTY = "rolling series {series_id} holds no estimate yet"
+UNCERTAINTY_NO_COVARIANCE = (
+    "estimate {estimate_id} has no stored covariance (imported, or made before covariances "
+    "were kept): re-estimate it to price its uncertainty"
+)

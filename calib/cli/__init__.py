@@ -66,6 +66,7 @@ _COMMAND_MODULES: list[str] = [
     "backfill_cmds",
     "price_cmds",
     "risk_cmds",
+    "stability_cmds",
 ]
 
 

@@ -113,10 +113,57 @@ def estimate_cmd(
     min_days: Annotated[
         int, typer.Option("--min-days", min=2, help="Fewest trading days accepted.")
     ] = MIN_DAYS,
+    rolling: Annotated[
+        str | None,
+        typer.Option(
+            "--rolling",
+            metavar="LENGTH",
+            help="Rolling series: one estimate per window of this length (2y, 18m) ending on "
+            "--from, --from + --step, .. --to.",
+            show_default=False,
+        ),
+    ] = None,
+    step: Annotated[
+        str | None,
+        typer.Option(
+            "--step",
+            metavar="STEP",
+            help="With --rolling: between window ends (1m).",
+            show_default=False,
+        ),
+    ] = None,
+    workers: Annotated[
+        int | None,
+        typer.Option(
+            "--workers",
+            min=1,
+            help="With --rolling: worker processes (default: cores).",
+            show_default=False,
+        ),
+    ] = None,
     db: DbOption = None,
     as_json: JsonOption = False,
 ) -> None:
-    """Estimate the model from stored futures (Kalman-filter maximum likelihood) and store it."""
+    """Estimate the model from stored futures (Kalman-filter maximum likelihood) and store it.
+
+    With --rolling: a rolling series (resumable: the same command again estimates only the
+    windows not stored yet); its estimates are never the morning fit's default."""
+    if rolling is not None or step is not None or workers is not None:
+        from calib.cli.stability_cmds import rolling_estimate
+
+        rolling_estimate(
+            commodity,
+            start.date(),
+            end.date(),
+            rolling,
+            step,
+            workers,
+            contracts=contracts,
+            min_days=min_days,
+            db=db,
+            as_json=as_json,
+        )
+        return
     from calib.workflows import estimates as estimate_flow
 
     with open_store(db) as (store, settings):
