@@ -611,3 +611,26 @@ UNCERTAINTY_NO_COVARIANCE = (
     "estimate {estimate_id} has no stored covariance (imported, or made before covariances "
     "were kept): re-estimate it to price its uncertainty"
 )
+
+
+# --- hedge studies (calib.hedge, workflows.hedge): block kept together for merges ----------------
+
+
+class HedgeRequestError(InputError):
+    """A hedge study that cannot run as asked (nothing is simulated or replayed)."""
+
+    TEMPLATE = "{commodity}: {reason}"
+
+    def __init__(self, commodity: str, reason: str) -> None:
+        self.commodity = commodity
+        self.reason = reason
+        super().__init__(self.TEMPLATE.format(commodity=commodity, reason=reason))
+
+
+HEDGE_OPTION_LEGS = (
+    "name the option's futures: --future D for a vanilla, or --near D1 --far D2 for a spread"
+)
+HEDGE_NO_SET = "no approved parameter set {when} (fit and approve a run, or name one with --run)"
+HEDGE_WORLD_FILE = "world file {path}: {reason}"
+HEDGE_WORLD_RUN = "world run {run_id} has no parameters (it failed)"
+HEDGE_STEPS = "--steps-per-year must be >= 1 and --paths >= 2 (got {steps} and {paths})"

@@ -67,6 +67,7 @@ _COMMAND_MODULES: list[str] = [
     "price_cmds",
     "risk_cmds",
     "stability_cmds",
+    "hedge_cmds",
 ]
 
 
