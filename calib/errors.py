@@ -613,6 +613,14 @@ UNCERTAINTY_NO_COVARIANCE = (
 )
 
 
+class VanillaRequestError(SpreadRequestError):
+    """A vanilla option that cannot be priced from the store as asked (nothing is priced)."""
+
+
+VANILLA_EXPIRY = "the expiry {expiry} must lie after {day} and not after the delivery {future}"
+VANILLA_STRIKE = "the strike must be a positive number, got {strike}"
+
+
 # --- hedge studies (calib.hedge, workflows.hedge): block kept together for merges ----------------
 
 
@@ -634,3 +642,24 @@ HEDGE_NO_SET = "no approved parameter set {when} (fit and approve a run, or name
 HEDGE_WORLD_FILE = "world file {path}: {reason}"
 HEDGE_WORLD_RUN = "world run {run_id} has no parameters (it failed)"
 HEDGE_STEPS = "--steps-per-year must be >= 1 and --paths >= 2 (got {steps} and {paths})"
+
+
+# --- American options on futures (numeric core) ---------------------------------------------
+
+AMERICAN_IMPLIED_VOL_REASONS: dict[str, str] = {
+    "BELOW_INTRINSIC": (
+        "the premium is below the undiscounted intrinsic value (an American option can be "
+        "exercised now)"
+    ),
+    "ABOVE_UPPER_BOUND": (
+        "the premium is at or above its upper bound (the futures price for a call, the strike "
+        "for a put)"
+    ),
+    "NON_POSITIVE_INPUT": IMPLIED_VOL_REASONS["NON_POSITIVE_INPUT"],
+    "NO_TIME_VALUE": (
+        "the premium equals the undiscounted intrinsic value, which every volatility up to the "
+        "one at which immediate exercise stops being optimal reproduces"
+    ),
+    "NON_FINITE_INPUT": IMPLIED_VOL_REASONS["NON_FINITE_INPUT"],
+}
+"""Reason phrases of :class:`ImpliedVolError` for American premiums, keyed like Black-76's."""
