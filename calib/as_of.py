@@ -37,7 +37,7 @@ def parse_as_of(text: str) -> datetime:
     """
     value = text.strip()
     if not _ISO.fullmatch(value):
-        raise AsOfError(text, "not an ISO date or date-time (e.g. 2033-06-01 or 2033-06-01T17:00Z)")
+        raise AsOfError(text, "not an ISO date or time (e.g. 2033-06-01 or 2033-06-01T17:00Z)")
     try:
         moment = datetime.fromisoformat(value)
     except ValueError as exc:

@@ -572,7 +572,7 @@ class ApiTokenError(TemplatedError, InputError):
 class AsOfError(TemplatedError, InputError, ValueError):
     """An ``as_of`` that is not a wall-clock time calib reads (:mod:`calib.as_of`)."""
 
-    TEMPLATE: ClassVar[str] = "as_of {value!r}: {reason}"
+    TEMPLATE: ClassVar[str] = "as of {value!r}: {reason}"
     value: str
     reason: str
 

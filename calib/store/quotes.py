@@ -197,6 +197,11 @@ def require_commodity(*, session: Session, code: str) -> CommodityRecord:
     return found
 
 
+def list_commodities(*, session: Session) -> list[CommodityRecord]:
+    """Every registered commodity, by code."""
+    return [_record(row) for row in session.scalars(select(Commodity).order_by(Commodity.code))]
+
+
 def commodity_ids(*, session: Session, codes: Sequence[str]) -> dict[str, int]:
     """Ids of those of ``codes`` that are registered."""
     rows = session.execute(select(Commodity.code, Commodity.id).where(Commodity.code.in_(codes)))

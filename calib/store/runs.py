@@ -21,7 +21,7 @@ from types import MappingProxyType
 from typing import TYPE_CHECKING, Any, cast
 
 import numpy as np
-from sqlalchemy import Select, Table, select
+from sqlalchemy import Select, Table, func, select
 from sqlalchemy.orm import Session
 
 from calib.errors import IllegalTransitionError, UnknownRunError
@@ -597,3 +597,17 @@ def run_keys(*, session: Session, commodity: str, start: date, end: date) -> lis
         .order_by(CalibrationRun.id)
     )
     return [RunKey(*row) for row in session.execute(stmt)]
+
+
+def newest_trade_date(*, session: Session, commodity: str) -> date | None:
+    """The latest trade date with a stored run of ``commodity`` (``None``: no run yet).
+
+    Raises
+    ------
+    UnknownCommodityError
+        ``commodity`` is not registered.
+    """
+    cid = require_commodity(session=session, code=commodity).id
+    stmt = select(func.max(CalibrationRun.trade_date)).where(CalibrationRun.commodity_id == cid)
+    found: date | None = session.scalars(stmt).one()
+    return found
