@@ -92,6 +92,9 @@ def test_overview_lists_the_candidate_read_only_without_a_token(
         for chip, gate in zip(chips.all(), stored, strict=True):
             assert gate["name"] in chip.inner_text()
             assert ("pass" in (chip.get_attribute("class") or "")) == gate["passed"]
+        failed = page.locator(f"tr.fit-row[data-run='{review_store.failed}']")
+        assert failed.locator(".status").inner_text() == "rejected"
+        assert "fit failed" in failed.locator(".gate.fail").inner_text()
         in_force = page.locator(".inforce")
         assert f"run {review_store.approved[1]}" in in_force.inner_text()
         assert "quant.b" in in_force.inner_text()
