@@ -45,6 +45,7 @@ from jinja2 import Environment, PackageLoader, StrictUndefined
 
 from calib import __version__
 from calib.api.schemas import ApproveRequest, ErrorBody, RunBody
+from calib.as_of import parse_as_of
 from calib.client import ApprovedSet, Client
 from calib.errors import (
     AsOfError,
@@ -119,21 +120,6 @@ class _Cache(Generic[_K, _V]):
 def _drawn(draw: Callable[..., bytes], *args: Any, **kwargs: Any) -> bytes:
     with _DRAWING:
         return draw(*args, **kwargs)
-
-
-def parse_as_of(text: str) -> datetime:
-    """A moment typed into the as-of control: ISO date or time, UTC unless a zone is given.
-
-    Raises
-    ------
-    AsOfError
-        Not an ISO date or time.
-    """
-    try:
-        when = datetime.fromisoformat(text.strip())
-    except ValueError:
-        raise AsOfError(text) from None
-    return when.replace(tzinfo=UTC) if when.tzinfo is None else when.astimezone(UTC)
 
 
 def _num(value: Any, fmt: str = ".4g") -> str:

@@ -367,6 +367,11 @@ def _values(
         g = black76.greeks(F_[euro], K_[euro], T_[euro], r_[euro], vol_[euro], call[euro])
         value[euro] = g["price"]
         delta[euro] = g["delta"]
+        # at 0 < r T <= _NEGLIGIBLE_RT exercising now may still beat the European premium
+        sign = np.where(call, 1.0, -1.0)
+        now = euro & (r_ > 0.0) & (sign * (F_ - K_) > value)
+        value[now] = (sign * (F_ - K_))[now]
+        delta[now] = sign[now]
     return value.reshape(shape), delta.reshape(shape)
 
 
