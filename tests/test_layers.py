@@ -17,8 +17,9 @@ FORBIDDEN: dict[str, tuple[str, ...]] = {
     "inputs": ("store", "workflows", "cli", "api", "estimate", "calibrate", "client"),
     "store": ("workflows", "cli", "api", "client"),
     "workflows": ("cli", "api"),
+    "hedge": ("store", "workflows", "cli", "api", "estimate", "calibrate", "client"),
 }
-NUMERIC = ("model", "estimate", "calibrate")
+NUMERIC = ("model", "estimate", "calibrate", "hedge")
 IO_MODULES = ("pathlib", "sqlalchemy", "pandas", "csv", "sqlite3", "shutil", "tomllib")
 
 

@@ -71,9 +71,14 @@ class RowCheck:
         reasons = [reason] * idx.size if isinstance(reason, str) else list(reason(idx))
         self.reason[idx] = np.array(reasons, dtype=object)
 
-    def value_reason(self, name: str, template: str) -> Callable[[IntArray], Iterable[str]]:
-        """Per-row reasons: ``template`` filled with each refused row's text of ``name``."""
-        return lambda idx: (template.format(value=_shown(v)) for v in self.table.text_at(name, idx))
+    def value_reason(
+        self, name: str, template: str, **fixed: object
+    ) -> Callable[[IntArray], Iterable[str]]:
+        """Per-row reasons: ``template`` filled with each refused row's text of ``name`` (as
+        ``value``, cut to :data:`MAX_VALUE_CHARS`) and the ``fixed`` fields."""
+        return lambda idx: (
+            template.format(value=_shown(v), **fixed) for v in self.table.text_at(name, idx)
+        )
 
     # parsers: each refuses the rows it cannot parse and returns the parsed column
 
@@ -128,10 +133,8 @@ class RowCheck:
         row_status = status[codes]
         self.reject(row_status == 1, name, msg.ROW_EMPTY)
         self.reject(row_status == 2, name, self.value_reason(name, msg.ROW_NOT_DATE))
-        out_of_range = msg.ROW_DATE_RANGE.replace("{low}", str(DATE_MIN)).replace(
-            "{high}", str(DATE_MAX)
-        )
-        self.reject(row_status == 3, name, self.value_reason(name, out_of_range))
+        out_of_range = self.value_reason(name, msg.ROW_DATE_RANGE, low=DATE_MIN, high=DATE_MAX)
+        self.reject(row_status == 3, name, out_of_range)
         return np.asarray(parsed[codes])
 
     def choice(
@@ -165,9 +168,16 @@ def days(values: DateArray) -> IntArray:
     return np.asarray(values.astype(np.int64))
 
 
-def each(template: str, **columns: npt.NDArray[Any]) -> Callable[[IntArray], Iterable[str]]:
-    """Per-row reasons: ``template`` filled with each refused row's values of ``columns``."""
-    return lambda idx: (template.format(**{k: v[i] for k, v in columns.items()}) for i in idx)
+def each(template: str, **columns: object) -> Callable[[IntArray], Iterable[str]]:
+    """Per-row reasons: ``template`` filled with each refused row's values of ``columns``
+    (arrays, one value a row; anything else is the same for every row)."""
+
+    def at(value: object, i: int) -> object:
+        return value[i] if isinstance(value, np.ndarray) else value
+
+    return lambda idx: (
+        template.format(**{k: at(v, int(i)) for k, v in columns.items()}) for i in idx
+    )
 
 
 def lookup(reasons: dict[int, str]) -> Callable[[IntArray], Iterable[str]]:

@@ -135,17 +135,16 @@ def _good(rows: RowCheck, **columns: npt.NDArray[Any]) -> Checked:
 
 
 def _horizon(rows: RowCheck, trade: DateArray, ahead: DateArray, name: str) -> None:
-    template = msg.ROW_BEYOND_HORIZON.replace("{years}", str(HORIZON_YEARS))
     rows.reject(
         days(ahead) - days(trade) > _HORIZON_DAYS,
         name,
-        each(template, value=ahead, trade_date=trade),
+        each(msg.ROW_BEYOND_HORIZON, value=ahead, trade_date=trade, years=HORIZON_YEARS),
     )
 
 
 def _price_range(rows: RowCheck, values: FloatArray, name: str, low: float) -> None:
-    rule = msg.ROW_PRICE_RANGE.replace("{low}", f"{low:g}").replace("{high}", f"{PRICE_MAX:g}")
-    rows.reject((values < low) | (values > PRICE_MAX), name, rows.value_reason(name, rule))
+    rule = rows.value_reason(name, msg.ROW_PRICE_RANGE, low=low, high=PRICE_MAX)
+    rows.reject((values < low) | (values > PRICE_MAX), name, rule)
 
 
 def commodity_codes(rows: RowCheck) -> tuple[IntArray, list[str]]:
@@ -165,8 +164,9 @@ def commodity_ids(
     codes are refused, the reason listing the ``registered`` codes."""
     lookup_ids = np.array([known.get(u, -1) for u in uniques] + [-1], dtype=np.int64)
     ids = np.asarray(lookup_ids[factor])
-    reason = msg.ROW_UNKNOWN_COMMODITY.replace("{known}", listed(list(registered)) or "none")
-    rows.reject(ids < 0, "commodity", rows.value_reason("commodity", reason))
+    known_codes = listed(list(registered)) or "none"
+    reason = rows.value_reason("commodity", msg.ROW_UNKNOWN_COMMODITY, known=known_codes)
+    rows.reject(ids < 0, "commodity", reason)
     return ids
 
 
@@ -203,19 +203,18 @@ def check_options(
     _price_range(rows, strike, "strike", PRICE_MIN)
     rows.reject(np.isnan(premium) & np.isnan(vol), "premium", msg.ROW_NO_PRICE)
     rows.reject(premium <= 0, "premium", rows.value_reason("premium", msg.ROW_NOT_POSITIVE))
-    rows.reject(premium > PRICE_MAX, "premium", rows.value_reason("premium", _too_high()))
-    vol_range = msg.ROW_VOL_RANGE.replace("{high}", f"{IMPLIED_VOL_MAX:g}")
+    _too_high(rows, premium, "premium")
     rows.reject(
         (vol <= 0) | (vol > IMPLIED_VOL_MAX),
         "implied_vol",
-        rows.value_reason("implied_vol", vol_range),
+        rows.value_reason("implied_vol", msg.ROW_VOL_RANGE, high=IMPLIED_VOL_MAX),
     )
-    vol_low = msg.ROW_VOL_LOW.replace("{low}", f"{IMPLIED_VOL_MIN:g}")
-    rows.reject(vol < IMPLIED_VOL_MIN, "implied_vol", rows.value_reason("implied_vol", vol_low))
+    vol_low = rows.value_reason("implied_vol", msg.ROW_VOL_LOW, low=IMPLIED_VOL_MIN)
+    rows.reject(vol < IMPLIED_VOL_MIN, "implied_vol", vol_low)
     rows.reject(bid < 0, "bid", rows.value_reason("bid", msg.ROW_NEGATIVE))
     rows.reject(ask < 0, "ask", rows.value_reason("ask", msg.ROW_NEGATIVE))
-    rows.reject(bid > PRICE_MAX, "bid", rows.value_reason("bid", _too_high()))
-    rows.reject(ask > PRICE_MAX, "ask", rows.value_reason("ask", _too_high()))
+    _too_high(rows, bid, "bid")
+    _too_high(rows, ask, "ask")
     rows.reject(bid > ask, "bid", each(msg.ROW_BID_ASK, bid=bid, ask=ask))
     rows.reject(
         expiry < trade,
@@ -243,11 +242,7 @@ def check_options(
     rows.reject(
         (ratio > STRIKE_RATIO_MAX) | (ratio < 1.0 / STRIKE_RATIO_MAX),
         "strike",
-        each(
-            msg.ROW_STRIKE_RATIO.replace("{limit:g}", f"{STRIKE_RATIO_MAX:g}"),
-            strike=strike,
-            forward=forward,
-        ),
+        each(msg.ROW_STRIKE_RATIO, strike=strike, forward=forward, limit=STRIKE_RATIO_MAX),
     )
 
     # the day's discount factors: the curve must come first
@@ -283,7 +278,7 @@ def check_options(
     rows.reject(
         premium < PREMIUM_MIN_RATIO * scale,
         "premium",
-        each(msg.ROW_PREMIUM_TINY.replace("{ratio:g}", f"{PREMIUM_MIN_RATIO:g}"), premium=premium),
+        each(msg.ROW_PREMIUM_TINY, premium=premium, ratio=PREMIUM_MIN_RATIO),
     )
     checked = _good(
         rows,
@@ -302,16 +297,17 @@ def check_options(
     return checked
 
 
-def _too_high() -> str:
-    return msg.ROW_TOO_HIGH.replace("{high}", f"{PRICE_MAX:g}")
+def _too_high(rows: RowCheck, values: FloatArray, name: str) -> None:
+    rule = rows.value_reason(name, msg.ROW_TOO_HIGH, high=PRICE_MAX)
+    rows.reject(values > PRICE_MAX, name, rule)
 
 
 def check_rates(rows: RowCheck) -> Checked:
     trade = rows.date("trade_date")
     maturity = rows.date("maturity")
     rate = rows.number("zero_rate")
-    limit = msg.ROW_RATE_RANGE.replace("{limit}", f"{ZERO_RATE_LIMIT:g}")
-    rows.reject(np.abs(rate) > ZERO_RATE_LIMIT, "zero_rate", rows.value_reason("zero_rate", limit))
+    limit = rows.value_reason("zero_rate", msg.ROW_RATE_RANGE, limit=ZERO_RATE_LIMIT)
+    rows.reject(np.abs(rate) > ZERO_RATE_LIMIT, "zero_rate", limit)
     rows.reject(
         maturity <= trade,
         "maturity",
