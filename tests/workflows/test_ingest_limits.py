@@ -6,6 +6,7 @@ The scenario is the invented one of ingest_day.py (commodity QRX, trade date 203
 
 from __future__ import annotations
 
+import csv
 from pathlib import Path
 
 import pytest
@@ -232,9 +233,12 @@ def test_nul_in_a_field_is_one_quarantined_row(day: Store, tmp_path: Path) -> No
 
 
 def test_field_over_the_line_limit_is_one_quarantined_row(day: Store, tmp_path: Path) -> None:
+    # quoted, so the line-by-line reader (whose field limit used to refuse the file) reads it
     good = [[TD, "QRX", f"2031-{m:02d}-01", 50.0 + m] for m in range(7, 12)]
     huge = [TD, "QRX" + "x" * (MAX_LINE_CHARS + 10), "2031-12-01", 60.0]
-    path = write_csv(tmp_path / "h.csv", FUT, [good[0], huge, *good[1:]])
+    path = tmp_path / "h.csv"
+    with path.open("w", newline="") as handle:
+        csv.writer(handle, quoting=csv.QUOTE_ALL).writerows([FUT, good[0], huge, *good[1:]])
     report = ingest(day, path, "futures")
     assert (report.rows_read, report.rows_accepted, report.rows_quarantined) == (6, 5, 1)
     (problem,) = report.problems
