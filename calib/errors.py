@@ -599,3 +599,32 @@ class ApiTokenError(InputError):
     def __init__(self, source: str, reason: str) -> None:
         self.source = source
         super().__init__(self.TEMPLATE.format(source=source, reason=reason))
+
+
+# --- calibration: robustness (the fit's own block) -----------------------------------------------
+
+
+class CalibrationNumericalError(CalibError):
+    """A numerical failure inside a fit (overflow, division by zero, a singular system)."""
+
+    TEMPLATE = "calibration failed numerically: {reason}"
+
+    def __init__(self, reason: str) -> None:
+        self.reason = reason
+        super().__init__(self.TEMPLATE.format(reason=reason))
+
+
+class CalibrationNotIdentifiedWarning(CalibWarning):
+    """The quotes do not identify a fitted parameter; the result carries the flag too."""
+
+    TEMPLATE = "the quotes do not identify {what}: {reason}"
+
+
+CALIBRATION_ERRORS: tuple[type[CalibError], ...] = (
+    TooFewQuotesError,
+    InfeasibleSettingsError,
+    QuoteError,
+    CalibrationSolverError,
+    CalibrationNumericalError,
+)
+"""What a fit raises for a day it cannot fit: each is stored as a rejected run with its reason."""

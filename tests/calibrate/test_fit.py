@@ -165,10 +165,10 @@ def test_held_rho_with_binding_floor_beats_a_brute_force_grid(quotes: OptionQuot
         mode="held_rho", yield_floor=0.9, anchor_weight=0.0, decay_bound=False
     )
     res = fit(quotes, hist, settings)
-    assert set(res.binding) == {"yield_floor", "rho_held"}
+    assert set(res.binding) == {"yield_floor", "held_rho"}
     assert res.params.rho == hist.rho
     assert res.params.sigma_yield == pytest.approx(0.45, abs=BIND_TOL)
-    assert {c.name: c.refit_cost for c in res.constraints}["rho_held"] > 0.0
+    assert {c.name: c.refit_cost for c in res.constraints}["held_rho"] > 0.0
     J = _independent_objective(quotes, res.weight, hist, 0.0)
     assert J(_vols(res.params)) == pytest.approx(res.objective, rel=1e-10)
     # brute force over (s1, s2 >= floor) at the held rho
@@ -267,7 +267,7 @@ def test_a_calibrator_re_solves_days_like_fresh_fits(quotes: OptionQuotes) -> No
 _WITHOUT = {
     "decay_bound": {"decay_bound": False},
     "yield_floor": {"yield_floor": 0.0},
-    "rho_held": {"mode": "constant"},
+    "held_rho": {"mode": "constant"},
 }
 
 
@@ -276,7 +276,7 @@ _WITHOUT = {
     [
         ("constant", 0.9, (0.5, 0.25, 0.35, 0.5), {"decay_bound", "yield_floor"}),
         ("forward", 0.9, (0.5, 0.25, 0.35), {"decay_bound"}),
-        ("held_rho", 0.5, (0.6, 0.25), {"decay_bound", "rho_held"}),
+        ("held_rho", 0.5, (0.6, 0.25), {"decay_bound", "held_rho"}),
     ],
 )
 def test_a_re_used_calibrator_prices_constraints_as_fresh_fits_do(
