@@ -41,11 +41,16 @@ from calib.calibrate.constraints import (
 )
 from calib.calibrate.objective import errors, fit_term
 from calib.calibrate.penalties import Anchor
-from calib.calibrate.problem import SOLVER, ConvexStep, huber_capacity
+from calib.calibrate.problem import SOLVER, ConvexStep, Solved, huber_capacity
 from calib.calibrate.quotes import FitData, OptionQuotes, prepare
 from calib.calibrate.result import BucketVols, CalibrationResult, ConstraintReport, FrontierPoint
 from calib.calibrate.settings import CalibrationSettings
-from calib.calibrate.uncertainty import Uncertainty, standard_errors
+from calib.calibrate.uncertainty import (
+    Uncertainty,
+    profile_curvature,
+    standard_errors,
+    theta_jacobian,
+)
 from calib.errors import (
     CALIBRATION_ERRORS,
     CalibrationNotConvergedWarning,
@@ -81,6 +86,8 @@ def bucket_edges(expiry: FloatArray) -> FloatArray:
     Expiries equal to 12 decimals share an edge; the last edge is the latest expiry itself
     (not its rounded value), so every option ends inside the buckets.
     """
+    if expiry.size == 0:  # no usable quote: no bucket (the fit refuses the day)
+        return np.zeros(1)
     edges = np.concatenate(([0.0], np.unique(np.round(expiry, 12))))
     edges[-1] = max(edges[-1], float(np.max(expiry)))
     return edges
@@ -261,11 +268,28 @@ class Calibrator:
                 z[:, None] for z in variance_coefficients(data.expiry, data.maturity, hist.kappa)
             )
         A = np.hstack([a, b, -2.0 * c])
-        step = self._step_for(None if s.loss == "squares" else huber_capacity(data.n))
+        step = self._step_for(None)
         s2h = hist.sigma_yield
-        anchor = Anchor(s.anchor_weight * data.anchor_scale, s2h, K)
+        anchor = Anchor(s.anchor_weight * anchor_scale(data, A, hist, s.error_measure), s2h, K)
         step.set_day(lim, anchor, s.smoothness)
         w, d = data.weight, data.threshold
+        huber_step = None
+        if d is not None:
+            huber_step = self._step_for(huber_capacity(data.n))
+            huber_step.set_day(lim, anchor, s.smoothness)
+
+        def sub_solve(
+            G: FloatArray, t: FloatArray, it: int, scale: float
+        ) -> tuple[Solved, bool, float, float]:
+            """The sub-problem; with Huber, its squared-loss solution when every linearised
+            residual stays within its threshold (where the two losses and their slopes agree,
+            so it is the Huber optimum too), else the conic Huber solve."""
+            used = step
+            solved, inaccurate = step.solve(G, t, w, None, it, scale)
+            if d is not None and huber_step is not None and np.any(np.abs(G @ solved.x - t) > d):
+                used = huber_step
+                solved, inaccurate = huber_step.solve(G, t, w, d, it, scale)
+            return solved, inaccurate, used.solver_tol, used.feasibility(solved.status)
 
         def total(x: FloatArray) -> float:
             return float(fit_term(data, A @ x, s.error_measure)) + step.penalties(x)
@@ -279,7 +303,10 @@ class Calibrator:
                 np.full(K, hist.rho * hist.sigma_spot * s2h),
             ]
         )
-        solved, inaccurate = step.solve(g[:, None] * A, g * V_mkt, w, d, 0, _scale(total(x_hist)))
+        solved, inaccurate, tol, feas = sub_solve(
+            g[:, None] * A, g * V_mkt, 0, _scale(total(x_hist))
+        )
+        x_feas = feas  # the feasibility precision of the solve the solution comes from
         x = solved.x
         J = total(x)
         n_inaccurate = int(inaccurate)
@@ -294,16 +321,16 @@ class Calibrator:
             G = g[:, None] * A
             target = g * V - e
             scale = _scale(J)
-            solved, inaccurate = step.solve(G, target, w, d, it, scale)
+            solved, inaccurate, tol, feas = sub_solve(G, target, it, scale)
             n_inaccurate += int(inaccurate)
             model = step.model(G, target, w, d, solved.x)
-            if J - model <= step.solver_tol / scale:
+            if J - model <= tol / scale:
                 # the sub-problem (equal to J at x) predicts no decrease the solver resolves:
                 # x is a KKT point to solver precision; take its answer only if no worse
                 J_new = total(solved.x)
                 if J_new <= J:
                     x, J = solved.x, J_new
-                    last_inaccurate, last_iteration = inaccurate, it
+                    last_inaccurate, last_iteration, x_feas = inaccurate, it, feas
                 converged = True
                 break
             dx = solved.x - x
@@ -318,6 +345,7 @@ class Calibrator:
                 decrease, move = J - J_new, tau * float(np.max(np.abs(dx)))
                 x, J = x + tau * dx, J_new
                 last_inaccurate, last_iteration = inaccurate, it
+                x_feas = feas if tau == 1.0 else max(feas, x_feas)  # between two feasible points
             if move <= s.step_tol or decrease == 0.0:
                 converged = True  # the step vanished, or none decreases J at solver precision
                 break
@@ -342,7 +370,7 @@ class Calibrator:
             rho = np.where(s1 * s2 > 0.0, C / (s1 * s2), 0.0)
         rho = np.clip(rho, -1.0, 1.0)  # |rho| may exceed 1 by the solver tolerance only
         params = [hist.with_vols(float(s1[k]), float(s2[k]), float(rho[k])) for k in range(K)]
-        var_tol = variance_tolerance(step.solver_tol, x)
+        var_tol = variance_tolerance(x_feas, x)
         reports = self._reports(params, lim, solved.duals, var_tol)
         V = A @ x
         return _result(
@@ -411,7 +439,10 @@ class Calibrator:
         lim: Limits,
     ) -> CalibrationResult:
         a, b, c = variance_coefficients(data.expiry, data.maturity, hist.kappa)
-        anchor = Anchor(s.anchor_weight * data.anchor_scale, hist.sigma_yield, 1)
+        A = np.stack([a, b, -2.0 * c], axis=1)
+        anchor = Anchor(
+            s.anchor_weight * anchor_scale(data, A, hist, s.error_measure), hist.sigma_yield, 1
+        )
         problem = held.HeldProblem(
             data=data,
             a=a,
@@ -452,7 +483,6 @@ class Calibrator:
         var_tol = SCAN_VAR_TOL * max(best.P, 1.0)
         reports = self._reports(params, lim, None, var_tol)
         V = best.P * (a + b * best.ratio**2 - 2.0 * c * hist.rho * best.ratio)
-        A = np.stack([a, b, -2.0 * c], axis=1)
         return _result(
             data,
             quotes,
@@ -473,6 +503,35 @@ class Calibrator:
             var_tol,
             anchor,
         )
+
+
+def anchor_scale(data: FitData, A: FloatArray, hist: TwoFactorParams, measure: str) -> float:
+    """The factor of ``anchor_weight`` in the error measure ``measure`` (1 in price).
+
+    Notes
+    -----
+    ``anchor_weight`` is stated against the price measure. The anchor pulls ``sigma_yield``
+    against the fit term's curvature along ``sigma_yield`` once ``sigma_spot`` and ``rho``
+    have adjusted (the profile curvature ``1 / (u' H^+ u)``, ``H = J' W J`` the Gauss-Newton
+    information at the historical set and the market's variances, ``u`` the direction of
+    ``sigma_yield`` in every bucket). In the vol measure the weight is multiplied by the ratio
+    of that curvature in vol to that in price (about ``1 / sum_i w_i nu_i^2``, ``nu_i`` the
+    vega per unit mean forward), so the same ``anchor_weight`` moves ``sigma_yield`` by about
+    as much in either measure.
+    """
+    if measure == "price":
+        return 1.0
+    K = A.shape[1] // 3
+    theta = np.tile([hist.sigma_spot, hist.sigma_yield, hist.rho], (K, 1))
+    AT = A @ theta_jacobian(theta)
+    u = np.tile([0.0, 1.0, 0.0], K)
+    V_mkt = data.vol**2 * data.expiry
+    curvature = {}
+    for m in ("price", "vol"):
+        _, g = errors(data, V_mkt, m)
+        curvature[m] = profile_curvature(g[:, None] * AT, data.weight, u)
+    ratio = curvature["vol"] / curvature["price"]
+    return ratio if math.isfinite(ratio) and ratio > 0.0 else 1.0
 
 
 def _fixed_directions(
@@ -582,7 +641,7 @@ def _result(
         dropped=data.dropped,
         inaccurate_steps=int(inaccurate_steps),
         solver_precision=float(var_tol),
-        anchor_scale=float(data.anchor_scale),
+        anchor_scale=float(anchor.weight / s.anchor_weight) if s.anchor_weight > 0.0 else 1.0,
         anchor_penalty=float(anchor.value(Q)),
         not_identified=unc.not_identified,
         not_identified_reason=unc.reason,

@@ -14,6 +14,7 @@ import warnings
 from dataclasses import dataclass
 from typing import Any
 
+import clarabel  # type: ignore[import-untyped]
 import cvxpy
 import numpy as np
 
@@ -44,6 +45,9 @@ class Solved:
     status: str
     duals: dict[str, FloatArray]
 
+
+REDUCED_TOL_FEAS = float(clarabel.DefaultSettings().reduced_tol_feas)
+"""Clarabel's feasibility tolerance of an "almost solved" (``optimal_inaccurate``) return."""
 
 HUBER_MIN_TOL = 1e-9
 """Tightest solver tolerance of a Huber sub-problem (see :class:`ConvexStep`)."""
@@ -264,6 +268,10 @@ class ConvexStep:
             for name, c in self.constraints.items()
         }
         return Solved(np.asarray(x, dtype=np.float64), status, duals), inaccurate
+
+    def feasibility(self, status: str) -> float:
+        """The solver's stated feasibility precision for a solve that returned ``status``."""
+        return self.solver_tol if status == cp.OPTIMAL else max(self.solver_tol, REDUCED_TOL_FEAS)
 
     def warn_inaccurate(self, status: str, iteration: int) -> None:
         """Warn that the final sub-problem stopped short of its tolerances."""

@@ -187,8 +187,6 @@ class FitData:
     """Market vega per unit of ``scale``: the price error of one unit of volatility."""
     threshold: FloatArray | None
     """Huber thresholds per quote in the error measure's units (``None``: squared loss)."""
-    anchor_scale: float
-    """Factor of ``anchor_weight`` for this error measure (1 in price; see :func:`prepare`)."""
 
     @property
     def n(self) -> int:
@@ -214,15 +212,15 @@ def prepare(quotes: OptionQuotes, settings: CalibrationSettings) -> FitData:
     ``vega / F`` or ``1 / spread^2`` with the spread in the error measure's units (price
     spread over the mean forward, or over vega for vol), normalised to sum to one.
 
-    The anchor's scale: with ``nu_i`` the market vega per unit mean forward (the price
-    error, per unit forward, of one unit of volatility error), the fit term moves by about
-    ``sum_i w_i nu_i^2`` per squared unit of volatility error in the price measure and by
-    ``1`` in the vol measure. ``anchor_weight`` is stated against the price measure; in the
-    vol measure it is multiplied by ``1 / sum_i w_i nu_i^2`` so that it pulls as hard
-    against the fit term in either measure.
-
     Huber thresholds: ``huber_threshold`` vol points, times ``nu_i`` in the price measure.
     """
+    try:
+        return _prepare(quotes, settings)
+    except ArithmeticError as exc:  # a numerical failure in the pricer: the day's refusal
+        raise CalibrationNumericalError(f"{type(exc).__name__}: {exc}") from exc
+
+
+def _prepare(quotes: OptionQuotes, settings: CalibrationSettings) -> FitData:
     q = quotes
     r = q.rate
     with np.errstate(all="ignore"):
@@ -304,9 +302,7 @@ def prepare(quotes: OptionQuotes, settings: CalibrationSettings) -> FitData:
             "weights or vegas of the usable quotes are not finite (prices far outside float64 "
             "range relative to each other)"
         )
-    price_scale = float(np.sum(w * nu * nu)) if idx.size else 1.0
     vol_measure = settings.error_measure == "vol"
-    anchor_scale = 1.0 / price_scale if vol_measure and price_scale > 0.0 else 1.0
     threshold = None
     if settings.loss == "huber":
         d = settings.huber_threshold / 100.0
@@ -327,7 +323,6 @@ def prepare(quotes: OptionQuotes, settings: CalibrationSettings) -> FitData:
         dropped=dropped,
         vega=nu,
         threshold=threshold,
-        anchor_scale=anchor_scale,
     )
 
 

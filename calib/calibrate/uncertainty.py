@@ -15,9 +15,10 @@ correlation) remove their directions: with ``Z`` a basis of the null space of th
 ``N``, the covariance is ``sigma^2 Z (Z' H Z)^{-1} Z'`` with the residual variance
 ``sigma^2 = sum_i w_i e_i^2 / (n - p)`` (``p`` the free directions, the weights scaled as
 inverse error variances: weighted least squares, e.g. Seber & Wild (1989), *Nonlinear
-Regression*, ch. 2). A parameter is *not identified* when ``Z' H Z`` is singular or
-near-singular (reciprocal condition number of its diagonally scaled form below
-:data:`RCOND_MIN`): it is named with the reason, and its standard error is ``inf``.
+Regression*, ch. 2). A parameter is *not identified* when it loads on a direction in which
+``Z' H Z`` is singular or near-singular (eigenvalue of its diagonally scaled form below
+:data:`RCOND_MIN` times the largest): it is named with the reason, and its standard error is
+``inf``; the other standard errors come from the remaining directions.
 
 In forward mode each bucket's ``sigma_yield`` is *set by the quotes* when its variance is below
 half of what the anchor alone would leave (``sigma^2 K / (w m)``), else it *follows the anchor*.
@@ -53,6 +54,26 @@ class Uncertainty:
     residual_variance: float
 
 
+def theta_jacobian(theta: FloatArray) -> FloatArray:
+    """``dx/dtheta``: ``x = (P_1..K, Q_1..K, C_1..K)``; ``theta`` is ``(s1, s2, rho)`` per row."""
+    K = theta.shape[0]
+    s1, s2, rho = theta[:, 0], theta[:, 1], theta[:, 2]
+    T = np.zeros((3 * K, 3 * K))
+    for k in range(K):
+        T[k, 3 * k] = 2.0 * s1[k]
+        T[K + k, 3 * k + 1] = 2.0 * s2[k]
+        T[2 * K + k, 3 * k : 3 * k + 3] = (rho[k] * s2[k], rho[k] * s1[k], s1[k] * s2[k])
+    return T
+
+
+def profile_curvature(J: FloatArray, weight: FloatArray, direction: FloatArray) -> float:
+    """Curvature of ``sum_i w_i (J_i theta)^2`` along ``direction`` once the other parameters
+    have adjusted: ``1 / (u' H^+ u)`` with ``H = J' W J``."""
+    H = J.T @ (weight[:, None] * J)
+    spread = float(direction @ np.linalg.pinv(H, rcond=RCOND_MIN, hermitian=True) @ direction)
+    return 1.0 / spread if spread > 0.0 else math.inf
+
+
 def standard_errors(
     *,
     J_V: FloatArray,
@@ -81,13 +102,7 @@ def standard_errors(
     per_bucket : forward mode (names carry ``@k``).
     """
     K = theta.shape[0]
-    s1, s2, rho = theta[:, 0], theta[:, 1], theta[:, 2]
-    # dx/dtheta: x is (P_1..K, Q_1..K, C_1..K); theta is bucket-major (s1, s2, rho)_k
-    T = np.zeros((3 * K, 3 * K))
-    for k in range(K):
-        T[k, 3 * k] = 2.0 * s1[k]
-        T[K + k, 3 * k + 1] = 2.0 * s2[k]
-        T[2 * K + k, 3 * k : 3 * k + 3] = (rho[k] * s2[k], rho[k] * s1[k], s1[k] * s2[k])
+    T = theta_jacobian(theta)
     J = (J_V[:, None] * A) @ T
     w = weight * inlier
     H = J.T @ (w[:, None] * J)
@@ -116,20 +131,20 @@ def standard_errors(
         cov = np.zeros((3 * K, 3 * K))
     else:
         d = np.sqrt(np.maximum(np.diag(M), 0.0))
-        ok = d > 0.0
-        scaled = M / np.outer(np.where(ok, d, 1.0), np.where(ok, d, 1.0))
-        evals, evecs = np.linalg.eigh(scaled)
-        rcond = float(evals[0] / evals[-1]) if evals[-1] > 0.0 else 0.0
-        if not ok.all() or rcond < RCOND_MIN:
-            weak = np.abs(Z @ evecs[:, 0])
-            weak = weak / max(float(weak.max()), 1e-300)
-            unidentified = [names[j] for j in np.flatnonzero(weak >= _LOADING)]
+        d = np.where(d > 0.0, d, 1.0)
+        evals, evecs = np.linalg.eigh(M / np.outer(d, d))
+        top = max(float(evals[-1]), 1e-300)
+        weak = evals < RCOND_MIN * top
+        strong = evecs[:, ~weak] / d[:, None]  # back to the unscaled coordinates of M
+        cov = sigma2 * (Z @ strong @ np.diag(1.0 / evals[~weak]) @ strong.T @ Z.T)
+        if weak.any():
+            loading = np.sqrt(np.sum((Z @ (evecs[:, weak] / d[:, None])) ** 2, axis=1))
+            loading = loading / max(float(loading.max()), 1e-300)
+            unidentified = [names[j] for j in np.flatnonzero(loading >= _LOADING)]
             reason = (
-                f"the information matrix is singular (reciprocal condition {rcond:.2g}); "
-                "more expiries or maturities are needed"
+                f"the information matrix is singular or nearly so (reciprocal condition "
+                f"{max(float(evals[0]), 0.0) / top:.2g}); more expiries or futures are needed"
             )
-        else:
-            cov = sigma2 * (Z @ np.linalg.inv(M) @ Z.T)
     if dof <= 0 and not reason:
         reason = f"{n} quote(s) for {p} free parameter(s): no residual to scale the errors"
     with np.errstate(invalid="ignore"):

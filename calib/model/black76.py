@@ -274,6 +274,11 @@ def _solve_normalised(beta: float, x: float) -> float:
             hi = s
         else:
             break
+        if not f1 > 0.0:  # the slope underflowed (|x| near the float64 exponent limit): bisect
+            s = 0.5 * (lo + hi) if hi < math.inf else 2.0 * s
+            if hi - lo <= 4e-16 * s:
+                break
+            continue
         nu = -f / f1
         k2 = f2 / f1
         k3 = f3 / f1
