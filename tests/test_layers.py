@@ -16,8 +16,9 @@ FORBIDDEN: dict[str, tuple[str, ...]] = {
     "calibrate": ("store", "workflows", "cli", "api", "estimate", "client"),
     "store": ("workflows", "cli", "api", "client"),
     "workflows": ("cli", "api"),
+    "hedge": ("store", "workflows", "cli", "api", "estimate", "calibrate", "client"),
 }
-NUMERIC = ("model", "estimate", "calibrate")
+NUMERIC = ("model", "estimate", "calibrate", "hedge")
 IO_MODULES = ("pathlib", "sqlalchemy", "pandas", "csv", "sqlite3", "shutil", "tomllib")
 
 
