@@ -148,6 +148,27 @@ class OptionQuotes:
     def __len__(self) -> int:
         return int(self.expiry.shape[0])
 
+    def take(self, index: ArrayLike) -> OptionQuotes:
+        """The quotes at positions ``index`` (in that order, repeats allowed), as a new day."""
+        i = np.asarray(index, dtype=np.int64)
+
+        def pick(x: FloatArray | None) -> FloatArray | None:
+            return None if x is None else x[i]
+
+        return OptionQuotes(
+            expiry=self.expiry[i],
+            maturity=self.maturity[i],
+            is_call=self.is_call[i],
+            strike=self.strike[i],
+            forward=self.forward[i],
+            discount=self.discount[i],
+            premium=pick(self.premium),
+            implied_vol=pick(self.implied_vol),
+            bid=pick(self.bid),
+            ask=pick(self.ask),
+            labels=None if self.labels is None else tuple(self.labels[j] for j in i.tolist()),
+        )
+
     @property
     def rate(self) -> FloatArray:
         """Continuously compounded rate implied by the discount factor, ``-ln D / T``."""

@@ -206,15 +206,7 @@ INVARIANCE_TOL = 1e-6
 
 def test_permuting_quotes_changes_nothing(quotes: OptionQuotes) -> None:
     perm = np.random.default_rng(3).permutation(len(quotes))
-    permuted = OptionQuotes(
-        expiry=quotes.expiry[perm],
-        maturity=quotes.maturity[perm],
-        is_call=quotes.is_call[perm],
-        strike=quotes.strike[perm],
-        forward=quotes.forward[perm],
-        discount=quotes.discount[perm],
-        premium=None if quotes.premium is None else quotes.premium[perm],
-    )
+    permuted = quotes.take(perm)
     np.testing.assert_allclose(_fit_vols(permuted), _fit_vols(quotes), atol=INVARIANCE_TOL)
 
 

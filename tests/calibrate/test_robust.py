@@ -97,7 +97,7 @@ def test_one_planted_x10_premium_moves_the_robust_fit_as_little_as_deleting_it(
         assert move.max() < VOL_MOVE, i
         # the same as removing the quote: its premium no longer matters
         keep = np.arange(len(demo)) != i
-        without = cal.fit(_subset(demo, keep), hist)
+        without = cal.fit(demo.take(np.flatnonzero(keep)), hist)
         np.testing.assert_allclose(_vols(res.params), _vols(without.params), atol=1e-9)
         plain = squares.fit(planted, hist)
         worst_squares = max(
@@ -105,20 +105,6 @@ def test_one_planted_x10_premium_moves_the_robust_fit_as_little_as_deleting_it(
             float(np.max(np.abs(_vols(plain.params)[:2] / _vols(base.params)[:2] - 1.0))),
         )
     assert worst_squares > 0.1  # the same planted quotes do move a squared-loss fit
-
-
-def _subset(q: OptionQuotes, keep: np.ndarray) -> OptionQuotes:
-    assert q.premium is not None and q.labels is not None
-    return OptionQuotes(
-        expiry=q.expiry[keep],
-        maturity=q.maturity[keep],
-        is_call=q.is_call[keep],
-        strike=q.strike[keep],
-        forward=q.forward[keep],
-        discount=q.discount[keep],
-        premium=q.premium[keep],
-        labels=tuple(lb for lb, k in zip(q.labels, keep, strict=True) if k),
-    )
 
 
 def test_the_anchor_pulls_alike_in_price_and_vol(clean: OptionQuotes) -> None:

@@ -35,19 +35,6 @@ def _noisy(q: OptionQuotes, noise: float, seed: int) -> OptionQuotes:
     return replace(q, premium=None, implied_vol=vol + noise * rng.standard_normal(vol.size))
 
 
-def _take(q: OptionQuotes, i: np.ndarray) -> OptionQuotes:
-    assert q.implied_vol is not None
-    return OptionQuotes(
-        expiry=q.expiry[i],
-        maturity=q.maturity[i],
-        is_call=q.is_call[i],
-        strike=q.strike[i],
-        forward=q.forward[i],
-        discount=q.discount[i],
-        implied_vol=q.implied_vol[i],
-    )
-
-
 def test_standard_errors_match_the_bootstrap_spread() -> None:
     # 126 quotes on three futures per expiry, 0.2 vol points of seeded noise, weighted least
     # squares in vol with equal weights: the pairs bootstrap (Efron & Tibshirani (1993), An
@@ -63,7 +50,7 @@ def test_standard_errors_match_the_bootstrap_spread() -> None:
     boot = []
     cal = Calibrator(s)  # one compiled problem re-solved for every resample
     for _ in range(N_BOOT):
-        p = cal.fit(_take(q, rng.integers(0, len(q), len(q))), TRUE).params
+        p = cal.fit(q.take(rng.integers(0, len(q), len(q))), TRUE).params
         boot.append((p.sigma_spot, p.sigma_yield, p.rho))
     spread = np.std(np.array(boot), axis=0, ddof=1)
     np.testing.assert_allclose(se, spread, rtol=SE_TOL)
