@@ -12,7 +12,7 @@ from typing import Annotated, Literal
 
 import typer
 
-from calib.cli.common import AS_OF_FORMATS, DbOption, JsonOption, as_utc, echo_json, open_store
+from calib.cli.common import AsOfOption, DbOption, JsonOption, echo_json, open_store
 
 hedge_app = typer.Typer(
     name="hedge",
@@ -50,15 +50,7 @@ def sim_cmd(
             "--run", help="Pricing set's run (default: approved set in force).", show_default=False
         ),
     ] = None,
-    as_of: Annotated[
-        datetime | None,
-        typer.Option(
-            "--as-of",
-            formats=AS_OF_FORMATS,
-            help="Use the approved set in force at this time (UTC).",
-            show_default=False,
-        ),
-    ] = None,
+    as_of: AsOfOption = None,
     on: Annotated[
         datetime | None,
         typer.Option(
@@ -112,7 +104,7 @@ def sim_cmd(
             commodity,
             trade,
             run_id=run_id,
-            as_of=as_utc(as_of),
+            as_of=as_of,
             on=None if on is None else on.date(),
             world=world,
             steps_per_year=steps_per_year,

@@ -7,7 +7,7 @@ after the near delivery, unknown run, ...), nothing priced.
 from __future__ import annotations
 
 from datetime import datetime
-from typing import Annotated, Literal
+from typing import TYPE_CHECKING, Annotated, Literal
 
 import typer
 
@@ -22,13 +22,20 @@ from calib.cli.stability_cmds import (
     vanilla_cmd,
     with_uncertainty,
 )
-from calib.workflows import pricing as flow
+
+if TYPE_CHECKING:
+    from calib.workflows import pricing as flow
 
 price_app = typer.Typer(
     name="price",
     help="Price options from the approved parameter set (or a named run).",
     no_args_is_help=True,
+    rich_markup_mode=None,
 )
+MC_PATHS = 200_000
+"""Default of ``--paths``: ``calib.workflows.pricing.MC_PATHS`` (a test keeps them equal)."""
+MC_SEED = 20310106
+"""Default of ``--seed``: ``calib.workflows.pricing.MC_SEED`` (a test keeps them equal)."""
 
 Day = Annotated[datetime, typer.Option(formats=["%Y-%m-%d"])]
 
@@ -88,10 +95,8 @@ def spread_cmd(
     ] = "call",
     run_id: PricingRunOption = None,
     on: PricingDayOption = None,
-    paths: Annotated[
-        int, typer.Option("--paths", min=4, help="Monte Carlo paths.")
-    ] = flow.MC_PATHS,
-    seed: Annotated[int, typer.Option("--seed", help="Monte Carlo seed.")] = flow.MC_SEED,
+    paths: Annotated[int, typer.Option("--paths", min=4, help="Monte Carlo paths.")] = MC_PATHS,
+    seed: Annotated[int, typer.Option("--seed", help="Monte Carlo seed.")] = MC_SEED,
     uncertainty: UncertaintyOption = False,
     draws: DrawsOption = 200,
     series_id: SeriesOption = None,
@@ -101,6 +106,8 @@ def spread_cmd(
     """Price a calendar-spread option on F(far) - F(near): price, hedge ratios in both futures,
     sensitivities to the calibrated volatilities, and the Kirk and Monte Carlo cross-checks.
     With --uncertainty: the price's standard error from the historical estimate."""
+    from calib.workflows import pricing as flow
+
     with open_store(db) as (store, _):
         result = flow.price_spread(
             store.sessions,

@@ -11,19 +11,17 @@ import statistics
 import time
 from datetime import datetime
 from pathlib import Path
-from typing import Annotated
+from typing import TYPE_CHECKING, Annotated
 
 import typer
 
 from calib.cli.common import DbOption, JsonOption, echo_json, open_store
 from calib.cli.run_cmds import _progress
 from calib.errors import BandOptionError
-from calib.model.twofactor import PARAM_NAMES
-from calib.workflows import compare as compare_out
-from calib.workflows.compare import Band, Bands
-from calib.workflows.demo import QUICK_PLAN, DemoPlan, DemoSummary, run_demo
-from calib.workflows.run_compare import Selection, compare_runs
-from calib.workflows.run_report import write_report
+
+if TYPE_CHECKING:  # the workflows are imported by the commands that use them
+    from calib.workflows.compare import Band
+    from calib.workflows.demo import DemoPlan, DemoSummary
 
 DEFAULT_DEMO_DIR = Path("demo-out")
 """Where ``calib demo`` writes by default (under the working folder; git-ignored)."""
@@ -47,6 +45,8 @@ def report_cmd(
 ) -> None:
     """Write a run's fit report: an HTML page and PNG figures (smiles, residual heat map,
     futures curve and vol term structure, anchor frontier, constraints, gates, inputs)."""
+    from calib.workflows.run_report import write_report
+
     with open_store(db) as (store, _):
         result = write_report(store.sessions, run_id, out)
     if as_json:
@@ -66,6 +66,8 @@ def parse_band(option: str, value: str | None, default: Band) -> Band:
     BandOptionError
         Not two comma-separated finite numbers with ``LO <= HI``.
     """
+    from calib.workflows.compare import Band
+
     if value is None:
         return default
     parts = value.split(",")
@@ -121,6 +123,10 @@ def compare_cmd(
 
     By default the runs that were ever approved (superseded ones included); --all for every
     fitted run."""
+    from calib.workflows import compare as compare_out
+    from calib.workflows.compare import Bands
+    from calib.workflows.run_compare import Selection, compare_runs
+
     default = Bands()
     bands = Bands(
         sigma_spot=parse_band("--band-spot", band_spot, default.sigma_spot),
@@ -180,6 +186,8 @@ def _finite(x: float) -> float | None:
 
 
 def _summary_lines(s: DemoSummary) -> list[str]:
+    from calib.model.twofactor import PARAM_NAMES
+
     db = f"--db {s.db_url}"
     e = s.estimate
     rmse = s.rmse_vol_points
@@ -251,6 +259,8 @@ def demo_cmd(
     """Run the whole job on an invented metal: generate three years of quotes, ingest,
     estimate on two years, fit, gate and approve each morning of the last quarter, compare,
     report, and say where everything is."""
+    from calib.workflows.demo import QUICK_PLAN, DemoPlan, run_demo
+
     plan: DemoPlan = QUICK_PLAN if quick else DemoPlan()
     summary = run_demo(directory, plan=plan, fresh=fresh, progress=_progress(time.monotonic()))
     if as_json:

@@ -10,33 +10,28 @@ from __future__ import annotations
 import time
 from datetime import datetime
 from pathlib import Path
-from typing import Annotated, Any, NoReturn
+from typing import TYPE_CHECKING, Annotated, Any, NoReturn
 
 import typer
 
 from calib.cli.common import (
-    AS_OF_FORMATS,
+    AsOfOption,
     DbOption,
     EstimateOption,
     JsonOption,
     SettingsOption,
-    as_utc,
     echo_json,
     open_store,
 )
-from calib.model.twofactor import PARAM_NAMES
-from calib.store.estimates import EstimateRecord, list_estimates
-from calib.store.runs import (
-    RunRecord,
-    approved_history,
-    latest_approved,
-    list_runs,
-    require_run,
-    run_residuals,
-)
-from calib.workflows import estimates as estimate_flow
-from calib.workflows import runs as run_flow
 
+if TYPE_CHECKING:  # the store and the workflows are imported by the commands that use them
+    from calib.store.estimates import EstimateRecord
+    from calib.store.runs import RunRecord
+    from calib.workflows import estimates as estimate_flow
+    from calib.workflows import runs as run_flow
+
+MIN_DAYS = 250
+"""Default of ``--min-days``: ``calib.workflows.estimates.MIN_DAYS`` (a test keeps them equal)."""
 EXIT_FIT_FAILED = 1
 EXIT_RERUN_DIFFERS = 1
 EXIT_NONE_APPROVED = 2
@@ -72,6 +67,8 @@ def _g(value: float | None, fmt: str = ".6g") -> str:
 
 
 def _params_line(values: dict[str, Any]) -> str:
+    from calib.model.twofactor import PARAM_NAMES
+
     return "  ".join(f"{n}={_g(values.get(n))}" for n in PARAM_NAMES)
 
 
@@ -79,6 +76,8 @@ def _params_line(values: dict[str, Any]) -> str:
 
 
 def _print_estimate(e: EstimateRecord) -> None:
+    from calib.model.twofactor import PARAM_NAMES
+
     flag = "converged" if e.converged else "NOT CONVERGED (never used by default)"
     typer.echo(
         f"estimate {e.estimate_id} of {e.commodity} ({e.source}), {e.window_start}..{e.window_end}"
@@ -113,7 +112,7 @@ def estimate_cmd(
     contracts: Annotated[int, typer.Option("--contracts", min=2, help="Contracts a day.")] = 5,
     min_days: Annotated[
         int, typer.Option("--min-days", min=2, help="Fewest trading days accepted.")
-    ] = estimate_flow.MIN_DAYS,
+    ] = MIN_DAYS,
     rolling: Annotated[
         str | None,
         typer.Option(
@@ -165,6 +164,8 @@ def estimate_cmd(
             as_json=as_json,
         )
         return
+    from calib.workflows import estimates as estimate_flow
+
     with open_store(db) as (store, settings):
         record = estimate_flow.estimate(
             store.sessions,
@@ -200,6 +201,9 @@ def estimates_cmd(
     """List a commodity's estimates (`calib estimates QLM`), or register one made elsewhere
     (`calib estimates import QLM FILE.json`: the seven parameter names plus window_start and
     window_end; marked imported)."""
+    from calib.store.estimates import list_estimates
+    from calib.workflows import estimates as estimate_flow
+
     if what == "import":
         if commodity is None or file is None:
             raise typer.BadParameter("usage: calib estimates import COMMODITY FILE.json")
@@ -300,6 +304,8 @@ def fit_cmd(
 
     Exit code 1 when the fit failed (stored as a rejected run with its reason).
     """
+    from calib.workflows import runs as run_flow
+
     settings = run_flow.load_settings(settings_file, commodity)
     with open_store(db) as (store, program):
         outcome = run_flow.fit_day(
@@ -323,6 +329,8 @@ def approve_cmd(
     run_id: RunId, by: ByOpt, note: NoteOpt, db: DbOption = None, as_json: JsonOption = False
 ) -> None:
     """Approve a candidate run; the commodity's previous approved set becomes superseded."""
+    from calib.workflows import runs as run_flow
+
     with open_store(db) as (store, _):
         result = run_flow.approve(store.sessions, run_id, by=by, note=note)
     if as_json:
@@ -337,6 +345,8 @@ def reject_cmd(
     run_id: RunId, by: ByOpt, note: NoteOpt, db: DbOption = None, as_json: JsonOption = False
 ) -> None:
     """Reject a candidate run."""
+    from calib.workflows import runs as run_flow
+
     with open_store(db) as (store, _):
         run = run_flow.reject(store.sessions, run_id, by=by, note=note)
     if as_json:
@@ -358,6 +368,8 @@ def runs_cmd(
     as_json: JsonOption = False,
 ) -> None:
     """List a commodity's runs, newest first, with their current status."""
+    from calib.store.runs import list_runs
+
     with open_store(db) as (store, _), store.sessions.begin() as session:
         runs = list_runs(
             session=session,
@@ -383,6 +395,8 @@ def runs_cmd(
 
 def show_cmd(run_id: RunId, db: DbOption = None, as_json: JsonOption = False) -> None:
     """Show a run: parameters, fit, gates, events and per-quote residuals."""
+    from calib.store.runs import require_run, run_residuals
+
     with open_store(db) as (store, _), store.sessions.begin() as session:
         run = require_run(session=session, run_id=run_id)
         residuals = run_residuals(session=session, run_id=run_id)
@@ -408,15 +422,7 @@ def show_cmd(run_id: RunId, db: DbOption = None, as_json: JsonOption = False) ->
 
 def latest_cmd(
     commodity: Commodity,
-    as_of: Annotated[
-        datetime | None,
-        typer.Option(
-            "--as-of",
-            formats=AS_OF_FORMATS,
-            help="The set in force at this time (UTC unless a zone is given); default now.",
-            show_default=False,
-        ),
-    ] = None,
+    as_of: AsOfOption = None,
     history: Annotated[
         bool, typer.Option("--history", help="Every approval, oldest first.")
     ] = False,
@@ -424,12 +430,14 @@ def latest_cmd(
     as_json: JsonOption = False,
 ) -> None:
     """The approved parameter set in force (exit code 2 if there is none)."""
+    from calib.store.runs import approved_history, latest_approved
+
     with open_store(db) as (store, _), store.sessions.begin() as session:
         if history:
             approvals = approved_history(session=session, commodity=commodity)
             run = None
         else:
-            run = latest_approved(session=session, commodity=commodity, as_of=as_utc(as_of))
+            run = latest_approved(session=session, commodity=commodity, as_of=as_of)
     if history:
         if as_json:
             echo_json([a.to_dict() for a in approvals])
@@ -444,7 +452,7 @@ def latest_cmd(
             )
         return
     if run is None:
-        when = "now" if as_of is None else f"at {as_utc(as_of)}"
+        when = "now" if as_of is None else f"at {as_of:%Y-%m-%d %H:%M:%S} UTC"
         typer.echo(f"error: {commodity}: no approved parameter set {when}", err=True)
         _exit(EXIT_NONE_APPROVED)
     if as_json:
@@ -458,6 +466,8 @@ def rerun_cmd(run_id: RunId, db: DbOption = None, as_json: JsonOption = False) -
 
     Exit code 1 if the parameters differ.
     """
+    from calib.workflows import runs as run_flow
+
     with open_store(db) as (store, _):
         result = run_flow.rerun(store.sessions, run_id)
     if as_json:

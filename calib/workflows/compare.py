@@ -24,17 +24,21 @@ from __future__ import annotations
 
 import csv
 import datetime as dt
+import io
 import math
 from collections.abc import Mapping, Sequence
 from dataclasses import dataclass, field
 from pathlib import Path
 from types import MappingProxyType
-from typing import TypeVar
+from typing import TYPE_CHECKING, TypeVar
 
 import numpy as np
 
 from calib.errors import ReportInputError
 from calib.types import BoolArray, FloatArray
+
+if TYPE_CHECKING:
+    from matplotlib.figure import Figure
 
 QUANTITIES: tuple[str, ...] = ("sigma_spot", "sigma_yield", "rho")
 """The compared quantities, by their stable parameter names."""
@@ -312,11 +316,23 @@ def plot(table: CompareTable, path: Path, *, title: str = "") -> Path:
     band it implies (``hist * [low, high]`` for a volatility, ``hist + [low, high]`` for
     ``rho``) shaded, the calibrated series with markers, and flagged days circled in red.
     """
+    path = Path(path)
+    path.parent.mkdir(parents=True, exist_ok=True)
+    _figure(table, title).savefig(path, format="png", dpi=100)
+    return path
+
+
+def plot_png(table: CompareTable, *, title: str = "") -> bytes:
+    """The figure of :func:`plot` as PNG bytes."""
+    buffer = io.BytesIO()
+    _figure(table, title).savefig(buffer, format="png", dpi=100)
+    return buffer.getvalue()
+
+
+def _figure(table: CompareTable, title: str) -> Figure:
     from matplotlib.backends.backend_agg import FigureCanvasAgg
     from matplotlib.figure import Figure
 
-    path = Path(path)
-    path.parent.mkdir(parents=True, exist_ok=True)
     dates = np.array(table.trade_date, dtype="datetime64[D]")
     fig = Figure(figsize=(10.0, 8.0), layout="constrained")
     FigureCanvasAgg(fig)
@@ -350,5 +366,4 @@ def plot(table: CompareTable, path: Path, *, title: str = "") -> Path:
         ax.legend(loc="upper left", fontsize=8, ncols=4, frameon=False)
     axes[-1].set_xlabel("trade date")
     fig.suptitle(title or "Calibrated against historical parameters")
-    fig.savefig(path, format="png", dpi=100)
-    return path
+    return fig

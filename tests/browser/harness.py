@@ -2,7 +2,8 @@
 
 Playwright only drives the browser here: it never downloads one of its own. The tests run the
 system browser at :data:`CHROMIUM` (Debian package ``chromium``, installed by ``.ci/run``),
-headless, with a fresh profile per test and with every background service of the browser off,
+headless, with a fresh profile per launch and a fresh browser context per test, and with every
+background service of the browser off,
 so a test talks to nothing but the loopback server under test.
 
 Outside CI a machine without the browser (or without Playwright) skips these tests with the
@@ -22,7 +23,7 @@ from typing import TYPE_CHECKING
 import pytest
 
 if TYPE_CHECKING:
-    from playwright.sync_api import Page
+    from playwright.sync_api import Browser, Page
 
 CHROMIUM = Path("/usr/bin/chromium")
 """Debian's Chromium (package ``chromium``)."""
@@ -72,23 +73,34 @@ def require_browser() -> None:
 
 
 @contextmanager
-def chromium_page(profile: Path) -> Iterator[Page]:
-    """A page of a fresh headless Chromium whose profile lives in ``profile``."""
+def chromium() -> Iterator[Browser]:
+    """A headless Chromium (Playwright gives each launch a fresh, temporary profile)."""
     require_browser()
     from playwright.sync_api import sync_playwright
 
     with sync_playwright() as pw:
-        context = pw.chromium.launch_persistent_context(
-            str(profile),
-            executable_path=str(CHROMIUM),
-            headless=True,
-            args=list(FLAGS),
-            viewport=VIEWPORT,  # type: ignore[arg-type]
-        )
+        browser = pw.chromium.launch(executable_path=str(CHROMIUM), headless=True, args=list(FLAGS))
         try:
-            yield context.new_page()
+            yield browser
         finally:
-            context.close()
+            browser.close()
+
+
+@contextmanager
+def new_page(browser: Browser) -> Iterator[Page]:
+    """A page in a context of its own (no cookies, storage or cache shared with another)."""
+    context = browser.new_context(viewport=VIEWPORT)  # type: ignore[arg-type]
+    try:
+        yield context.new_page()
+    finally:
+        context.close()
+
+
+@contextmanager
+def chromium_page() -> Iterator[Page]:
+    """One page of a browser launched for it alone."""
+    with chromium() as browser, new_page(browser) as page:
+        yield page
 
 
 def screenshot(page: Page, name: str) -> Path:

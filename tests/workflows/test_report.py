@@ -234,7 +234,7 @@ def test_page_loads_in_headless_chromium_with_every_figure(
     rendered: tuple[rp.ReportInputs, rp.ReportFiles], tmp_path: Path
 ) -> None:
     _, files = rendered
-    with chromium_page(tmp_path / "profile") as page:
+    with chromium_page() as page:
         problems: list[str] = []
         page.on("pageerror", lambda exc: problems.append(f"error: {exc}"))
         page.on("requestfailed", lambda req: problems.append(f"failed: {req.url}"))
