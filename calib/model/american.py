@@ -532,7 +532,7 @@ _NON_FINITE_INPUT = int(ImpliedVolCode.NON_FINITE_INPUT)
 _EUROPEAN = -1  # r <= 0: the premium is a Black-76 one (resolved outside the kernel)
 
 _MAX_ITER = 100
-_STEP_TOL = 1e-14  # relative secant step at which the volatility is taken as converged
+_STEP_TOL = 1e-11  # relative secant step after which the error is far smaller (superlinear)
 _MAX_VOL = 1e3  # no volatility above this is searched (its premium is within eps of the bound)
 
 

@@ -116,6 +116,14 @@ def test_approving_with_the_token_changes_the_set_in_force(
         assert "Deciding as quant.c" in page.locator("#token-state").inner_text()
         assert page.locator("#token-form input[name=token]").input_value() == ""
         screenshot(page, "overview-deciding")
+        # links are followed inside the page while a token is held: typed once per tab
+        page.locator(f"tr.fit-row[data-run='{run}'] a").click()
+        page.locator("h1").filter(has_text=f"Run {run}").wait_for()
+        assert page.url == f"{base}/runs/{run}"
+        assert "Deciding as quant.c" in page.locator("#token-state").inner_text()
+        page.go_back()
+        page.locator("h1").filter(has_text="This morning").wait_for()
+        assert page.url == f"{base}/"
         _decide(page, run, HOSTILE_NOTE, "approve")
         page.locator("#flash").filter(has_text=f"Run {run} approved").wait_for()
         # the page refreshed in place: the candidate is now the set in force
