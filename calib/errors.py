@@ -642,6 +642,10 @@ HEDGE_NO_SET = "no approved parameter set {when} (fit and approve a run, or name
 HEDGE_WORLD_FILE = "world file {path}: {reason}"
 HEDGE_WORLD_RUN = "world run {run_id} has no parameters (it failed)"
 HEDGE_STEPS = "--steps-per-year must be >= 1 and --paths >= 2 (got {steps} and {paths})"
+HEDGE_REPLAY_START = "cannot sell on {day}: {reason}"
+HEDGE_REPLAY_END = "the option expires on {expiry}, after the last stored settlement ({last})"
+HEDGE_REPLAY_SETS = 'sets must be "in-force" or "by-trade-date", not {value!r}'
+HEDGE_MORNING = "--morning must be a time HH:MM (UTC), not {value!r}"
 
 
 # --- American options on futures (numeric core) ---------------------------------------------

@@ -1,5 +1,6 @@
 """A small store for the review pages: the generated scenario of the run tests, three mornings
-fitted, the first two approved by hand, the third left as today's candidate."""
+fitted, the first two approved by hand, the third left as today's candidate beside a failed
+fit of the same day."""
 
 from __future__ import annotations
 
@@ -8,10 +9,20 @@ from dataclasses import dataclass
 from datetime import datetime
 from pathlib import Path
 
+from calib.calibrate import CalibrationSettings
 from calib.store.base import utc_now
 from calib.store.engine import make_store
+from calib.store.estimates import latest_estimate
 from calib.store.migrate import upgrade
-from calib.workflows.runs import approve, fit_day
+from calib.store.quotes import load_day
+from calib.workflows.runs import (
+    Attempt,
+    GateLimits,
+    RunSettings,
+    approve,
+    fit_day,
+    store_attempt,
+)
 from tests.workflows.small_day import load_with_estimate
 
 
@@ -27,6 +38,8 @@ class ReviewStore:
     """A moment after the first approval and before the second."""
     candidate: int
     """Today's candidate."""
+    failed: int
+    """A fit of today that failed (stored rejected, with its reason)."""
 
     def copy_to(self, folder: Path) -> str:
         """A fresh copy of the store in ``folder``; its URL."""
@@ -48,7 +61,20 @@ def build(folder: Path) -> ReviewStore:
         between = utc_now()
         two = fit_day(store.sessions, data.code, second, user="quant.a").run.run_id
         approve(store.sessions, two, by="quant.b", note="second morning")
+        with store.sessions.begin() as session:
+            day = load_day(session=session, commodity=data.code, trade_date=today)
+            estimate = latest_estimate(session=session, commodity=data.code)
+        assert estimate is not None
+        failed = store_attempt(
+            store.sessions,
+            day,
+            estimate.estimate_id,
+            RunSettings(CalibrationSettings(), GateLimits()),
+            Attempt(None, "TooFewQuotesError: 3 quotes left after the filters", ()),
+            user="quant.a",
+            auto_approve=False,
+        ).run_id
         three = fit_day(store.sessions, data.code, today, user="quant.a").run.run_id
     finally:
         store.engine.dispose()
-    return ReviewStore(path, data.code, (one, two), between, three)
+    return ReviewStore(path, data.code, (one, two), between, three, failed)
