@@ -433,6 +433,8 @@ LATE_SET = "the set in force (run {run_id}) was fitted on {fitted}, not before t
 NO_PRICE = "no settlement of {legs}"
 NO_DAY = "no settlements stored (missing day)"
 EXPIRY_FROM = "expiry settlement of {legs} taken from {day}"
+NO_CURVE = "no zero curve stored yet: rate 0"
+OLD_CURVE = "zero curve of {day} used"
 
 
 @dataclass(frozen=True, slots=True)
@@ -681,9 +683,14 @@ def _replay_days(
             notes[k].append(NO_PRICE.format(legs=", ".join(missing)))
         if why is not None:
             notes[k].append(why)
-        if last_curve is not None:
-            ahead = np.array([days[k + 1], trade.expiry], dtype="datetime64[D]")
-            step_discount, discount = (float(x) for x in last_curve.discount(ahead))
+        if last_curve is None:
+            notes[k].append(NO_CURVE)
+        elif last_curve.trade_date != day:
+            notes[k].append(OLD_CURVE.format(day=last_curve.trade_date))
+        if last_curve is not None:  # discount factors from this day (1 today on its own curve)
+            ahead = np.array([day, days[k + 1], trade.expiry], dtype="datetime64[D]")
+            today, step_discount, discount = (float(x) for x in last_curve.discount(ahead))
+            step_discount, discount = step_discount / today, discount / today
             rates[k] = -math.log(step_discount) / (t[k + 1] - t[k])
         else:
             discount = 1.0

@@ -116,6 +116,42 @@ def test_prices_match_quantlib_finite_differences(
     assert ours == pytest.approx(ref, rel=FD_REL_TOL)
 
 
+# Haug (1998), Option Pricing Formulas, p. 24 (as carried by QuantLib's test suite): American
+# options with r = q = 10 % (cost of carry zero, i.e. on a future), K = 100, by the
+# Barone-Adesi-Whaley approximation: (kind, F, T, vol, value).
+_HAUG_BAW_ZERO_CARRY = [
+    ("call", 90.0, 0.1, 0.15, 0.0206),
+    ("call", 100.0, 0.1, 0.25, 3.1280),
+    ("call", 110.0, 0.1, 0.35, 11.1679),
+    ("call", 90.0, 0.5, 0.25, 2.7437),
+    ("call", 100.0, 0.5, 0.35, 9.5106),
+    ("put", 90.0, 0.1, 0.25, 10.2533),
+    ("put", 110.0, 0.1, 0.15, 0.0410),
+    ("put", 100.0, 0.5, 0.15, 4.0842),
+    ("put", 110.0, 0.5, 0.35, 5.8823),
+]
+# Barone-Adesi-Whaley is an approximation: its values sit up to 0.037 (1.1 %) away from the
+# exact premium on this table (measured against our pricer, itself checked against QdFp above),
+# so the table only catches gross errors (a wrong rate, carry or symmetry).
+BAW_TABLE_ABS_TOL = 0.04
+
+
+@pytest.mark.parametrize(("kind", "F", "T", "vol", "value"), _HAUG_BAW_ZERO_CARRY)
+def test_haug_barone_adesi_whaley_table(
+    kind: str, F: float, T: float, vol: float, value: float
+) -> None:
+    ours = float(american.price(F, 100.0, T, 0.10, vol, kind))
+    assert ours == pytest.approx(value, abs=BAW_TABLE_ABS_TOL)
+
+
+def test_haug_zero_rate_row() -> None:
+    # Haug (1998), p. 24, last row: put, F = K = 100, r = q = 0, T = 0.5, vol = 0.15: 4.2294
+    # (exact: nothing is exercised early at zero rate).
+    assert float(american.price(100.0, 100.0, 0.5, 0.0, 0.15, "put")) == pytest.approx(
+        4.2294, abs=5e-5
+    )
+
+
 def test_put_call_symmetry_holds_in_quantlib_and_here() -> None:
     # McDonald and Schroder (1998): C(F, K) = P(K, F) at cost of carry zero. The relation is
     # first checked on QuantLib's own call and put (so it is a valid one), then on ours, whose
