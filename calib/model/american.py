@@ -547,8 +547,38 @@ _EUROPEAN = -1  # r <= 0: the premium is a Black-76 one (resolved outside the ke
 
 _MAX_ITER = 100
 _STEP_TOL = 1e-11  # relative secant step after which the error is far smaller (superlinear)
+_EPS = float(np.finfo(np.float64).eps)
 _PREDICTED_TOL = 1e-13  # relative error of the secant's next point, estimated: stop there
 _MAX_VOL = 1e3  # no volatility above this is searched (its premium is within eps of the bound)
+
+
+def _european_solve(
+    target: float, s: float, S: float, K: float, T: float, r: float, x: float, lo: float, hi: float
+) -> float:
+    """Root of ``P_E(vol) + s vol = target`` by Newton from ``x`` (NaN if it leaves
+    ``(lo / 2, 2 hi)``).
+
+    ``P_E`` is the European put premium; its derivative plus ``s`` is the American vega's
+    secant estimate, positive wherever the American premium rises with the volatility.
+    """
+    root_t = math.sqrt(T)
+    disc = math.exp(-r * T)
+    log_sk = math.log(S / K)
+    for _ in range(_MAX_ITER):
+        st = x * root_t
+        d1 = log_sk / st + 0.5 * st
+        value = disc * (K * _ncdf(st - d1) - S * _ncdf(-d1))
+        slope = disc * S * root_t * _INV_SQRT_2PI * math.exp(-0.5 * d1 * d1) + s
+        if not slope > 0.0:
+            return np.nan
+        step = (value + s * x - target) / slope
+        x_new = x - step
+        if x_new <= 0.5 * lo or x_new >= 2.0 * hi:
+            return np.nan
+        if abs(step) <= 4.0 * _EPS * x_new:
+            return x_new
+        x = x_new
+    return x
 
 
 def _put_vol(
@@ -585,8 +615,12 @@ def _put_vol(
         guess = black76._solve_normalised(tv1 / math.sqrt(S * K), x) / root_t
         if 0.0 < guess < hi:
             x1 = guess
+    # Each step solves P_E(x) + e(x1) + s (x - x1) = p exactly (Black-76 by Newton), with the
+    # early-exercise premium e = P - P_E taken linear through the last two points: a secant on
+    # e alone, whose error shrinks like a secant's but with e's far smaller curvature.
     x0, g0 = hi, g_hi
-    x_prev = slope_prev = np.nan  # the point before x0 and the slope through it and x0
+    e0 = g_hi + p - _european_put(S, K, T, r, hi)
+    x_prev = s_prev = np.nan  # the point before x0 and the slope of e through it and x0
     for _ in range(_MAX_ITER):
         g1 = _put_value(S, K, T, r, x1, tab, False)[0] - p
         if g1 == 0.0:
@@ -595,25 +629,31 @@ def _put_vol(
             lo = x1
         else:
             hi = x1
-        slope = (g1 - g0) / (x1 - x0)
-        secant = slope != 0.0
-        x2 = x1 - g1 / slope if secant else 0.5 * (lo + hi)
-        if not lo < x2 < hi:  # also catches NaN
+        e1 = g1 + p - _european_put(S, K, T, r, x1)
+        s = (e1 - e0) / (x1 - x0)
+        x2 = np.nan  # both in the exercise region, where the premium is flat: no model
+        if g1 != g0:
+            x2 = _european_solve(p - e1 + s * x1, s, S, K, T, r, x1, lo, hi)
+        if abs(x2 - x1) <= _STEP_TOL * x1:  # converged (x2 may sit a rounding outside)
+            return x2 if lo < x2 < hi else x1
+        inside = lo < x2 < hi  # also catches NaN
+        if not inside:
             x2 = 0.5 * (lo + hi)
-            secant = False
-        if abs(x2 - x1) <= _STEP_TOL * x2 or hi - lo <= _STEP_TOL * hi:
+        if hi - lo <= _STEP_TOL * hi:
             return x2
-        # the secant's error is curvature * (x1 - root) * (x0 - root): once that estimate
+        # the step's error is about |e''/(2 P')| (x1 - root)(x0 - root): once that estimate
         # is below _PREDICTED_TOL the root is x2 without pricing there
-        curvature = abs((slope - slope_prev) / ((x1 - x_prev) * slope))
-        if secant and abs(x2 - x1) * abs(x2 - x0) * curvature <= _PREDICTED_TOL * x2:
+        den = (x1 - x_prev) * (g1 - g0)
+        curvature = abs((s - s_prev) * (x1 - x0) / den) if den != 0.0 else np.inf
+        if inside and abs(x2 - x1) * abs(x2 - x0) * curvature <= _PREDICTED_TOL * x2:
             return x2
-        x_prev, slope_prev = x0, slope
-        x0, g0 = x1, g1
+        x_prev, s_prev = x0, s
+        x0, g0, e0 = x1, g1, e1
         x1 = x2
     return x1
 
 
+_european_solve = numba.njit(cache=True, error_model="numpy")(_european_solve)
 _put_vol = numba.njit(cache=True, error_model="numpy")(_put_vol)
 
 
