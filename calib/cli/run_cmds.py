@@ -217,9 +217,10 @@ def _fit_lines(outcome: run_flow.FitOutcome, auto_approve: bool) -> list[str]:
         for n in text.VOLS:
             c = change[n]
             lines.append(f"  {n:<12} {c['approved']:.6g} -> {c['new']:.6g}  ({c['change']:+.4g})")
-    lines += text.gate_lines(outcome.gates)
+    gates = (text.fit_of(run) or {}).get("gates", [])
+    lines += text.gate_lines(gates)
     if auto_approve:
-        lines.append(text.verdict_line(outcome.gates, outcome.auto_approved))
+        lines.append(text.verdict_line(gates, outcome.auto_approved))
     return lines
 
 
@@ -341,8 +342,9 @@ def show_cmd(run_id: RunId, db: DbOption = None, as_json: JsonOption = False) ->
         echo_json({**run.to_dict(with_inputs=True), "residuals": rows})
         return
     lines = text.run_lines(run)
-    if run.params is not None:
-        lines += text.gate_lines(run.diagnostics.get("gates", []))
+    fit = text.fit_of(run)
+    if fit is not None:
+        lines += text.gate_lines(fit.get("gates", []))
     lines.append("events:")
     lines += [
         f"  {e.at:%Y-%m-%d %H:%M:%S}  {e.to_status:<10} by {e.actor}: {e.note}" for e in run.events

@@ -75,6 +75,14 @@ def params_line(values: Mapping[str, Any], names: Sequence[str] | None = None) -
 # --- fit quality -------------------------------------------------------------------------------
 
 
+def fit_of(run: RunRecord) -> Mapping[str, Any] | None:
+    """The run's stored fit as plain values (``rmse``, ``gates``, ``buckets``, ...; ``None``:
+    the fit failed): the one place that knows how a run record holds its fit."""
+    if run.params is None:
+        return None
+    return {**run.diagnostics, "buckets": list(run.buckets or ())}
+
+
 def vol_points(diagnostics: Mapping[str, Any]) -> tuple[float, float] | None:
     """RMSE and largest error of model minus market Black vol, in vol points (``None``: unknown).
 
@@ -104,25 +112,26 @@ def quality(diagnostics: Mapping[str, Any]) -> str:
 
 def short_quality(run: RunRecord) -> str:
     """The list form: ``0.734 vp`` (vol points), ``failed`` or ``-``."""
-    if run.params is None:
+    fit = fit_of(run)
+    if fit is None:
         return "failed"
-    vp = vol_points(run.diagnostics)
+    vp = vol_points(fit)
     return "-" if vp is None else f"{vp[0]:.3g} vp"
 
 
 # --- runs --------------------------------------------------------------------------------------
 
 
-def bucket_lines(run: RunRecord) -> list[str]:
+def bucket_lines(mode: str, buckets: Sequence[Mapping[str, Any]]) -> list[str]:
     """Forward mode: one line per expiry bucket with its volatilities (else nothing)."""
-    if run.mode != "forward" or not run.buckets:
+    if mode != "forward" or not buckets:
         return []
     rows = [
         [
             f"{b['start']:.3f}..{b['end']:.3f}",
             *(g(b["params"].get(n), ".6g") for n in VOLS),
         ]
-        for b in run.buckets
+        for b in buckets
     ]
     return ["  " + r for r in table(["bucket (years)", *VOLS], rows, "<>>>")]
 
@@ -133,11 +142,11 @@ def run_lines(run: RunRecord) -> list[str]:
         f"run {run.run_id}: {run.commodity} trade date {run.trade_date}, {run.mode} mode, "
         f"estimate {run.estimate_id}: {run.status.upper()}"
     ]
-    if run.params is None:
+    d = fit_of(run)
+    if d is None or run.params is None:
         return [*lines, f"  fit failed: {run.failure_reason}"]
-    d = run.diagnostics
     flags = f"; flags {', '.join(d['flags'])}" if d["flags"] else ""
-    buckets = bucket_lines(run)
+    buckets = bucket_lines(run.mode, d["buckets"])
     # forward mode: the slow parameters here, the volatilities of every bucket below
     names = [n for n in parameters() if not buckets or n not in VOLS]
     lines += [
