@@ -706,3 +706,30 @@ class TextTooLongError(TemplatedError, InputError):
     what: str
     found: int
     limit: int
+
+
+# --- calibration: robustness (the fit's own block) -----------------------------------------------
+
+
+@dataclass(eq=False, repr=False)
+class CalibrationNumericalError(TemplatedError, CalibError):
+    """A numerical failure inside a fit (overflow, division by zero, a singular system)."""
+
+    TEMPLATE: ClassVar[str] = "calibration failed numerically: {reason}"
+    reason: str
+
+
+class CalibrationNotIdentifiedWarning(CalibWarning):
+    """The quotes do not identify a fitted parameter; the result carries the flag too."""
+
+    TEMPLATE = "the quotes do not identify {what}: {reason}"
+
+
+CALIBRATION_ERRORS: tuple[type[CalibError], ...] = (
+    TooFewQuotesError,
+    InfeasibleSettingsError,
+    QuoteError,
+    CalibrationSolverError,
+    CalibrationNumericalError,
+)
+"""What a fit raises for a day it cannot fit: each is stored as a rejected run with its reason."""

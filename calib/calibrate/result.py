@@ -5,7 +5,7 @@ from __future__ import annotations
 from dataclasses import dataclass
 from typing import Any
 
-from calib.calibrate.quotes import DroppedQuote
+from calib.calibrate.quotes import SCREENED, DroppedQuote
 from calib.calibrate.settings import CalibrationSettings
 from calib.model.twofactor import TwoFactorParams
 from calib.types import FloatArray, IntArray
@@ -13,11 +13,20 @@ from calib.types import FloatArray, IntArray
 
 @dataclass(frozen=True, slots=True)
 class BucketVols:
-    """Volatilities in force over calendar years ``[start, end)`` (forward mode: one per bucket)."""
+    """Volatilities in force over calendar years ``[start, end)`` (forward mode: one per bucket).
+
+    ``std_errors``: standard errors of ``(sigma_spot, sigma_yield, rho)`` at the fit (``inf``
+    where the quotes do not identify the parameter, 0 where a constraint holds it);
+    ``yield_set_by``: ``"quotes"`` when the quotes set ``sigma_yield``, ``"anchor"`` when it
+    only follows the anchor, ``"none"`` when neither does (see
+    :mod:`calib.calibrate.uncertainty`). ``None`` where not computed (a stored earlier run).
+    """
 
     start: float
     end: float
     params: TwoFactorParams
+    std_errors: tuple[float, float, float] | None = None
+    yield_set_by: str | None = None
 
 
 @dataclass(frozen=True, slots=True)
@@ -26,17 +35,24 @@ class ConstraintReport:
 
     Attributes
     ----------
-    name : ``psd`` (``|rho| <= 1``), ``decay_bound``, ``yield_floor``, ``spot_cap`` or
-        ``rho_held``.
+    name : the family (:mod:`calib.calibrate.constraints`): ``psd`` (``|rho| <= 1``),
+        ``decay_bound``, ``yield_floor``, ``sigma_spot_cap``, ``held_rho``, and the held
+        scan's ranges ``spot_limit`` and ``ratio_limit``.
     form : the constraint in words and symbols.
     bucket : forward-mode bucket index, ``None`` for a constant fit.
     slack : distance to the boundary in natural units (>= 0 when met): ``1 - |rho|``,
-        ``rho kappa s1 - s2``, ``s2 - q s2_hist``, ``cap - s1``; ``None`` for ``rho_held``.
-    binds : whether the constraint is active (slack within 1e-7, or rho held).
+        ``rho kappa s1 - s2``, ``s2 - q s2_hist``, ``cap - s1``, ``10 - s1``,
+        ``max_vol_ratio s1 - s2``; ``None`` for ``held_rho``.
+    binds : whether the constraint is active (slack within ``max(1e-7, tolerance)``, or rho
+        held).
     dual : the multiplier of the final convex sub-problem (objective per unit of the
         constraint in variance terms), ``None`` where the mode has no conic solve.
     refit_cost : objective saved by re-fitting without this constraint (in every bucket);
-        ``None`` when not computed (not binding, ``refit_costs`` off, or ``psd``).
+        ``None`` when not computed (see ``refit_note``).
+    tolerance : the slack's resolution at the solver's stated precision: the constraint is
+        met when ``slack >= -tolerance``.
+    refit_note : why ``refit_cost`` is ``None`` for a binding constraint (no switch, or the
+        re-fit cannot run, with its reason); ``None`` otherwise.
     """
 
     name: str
@@ -46,6 +62,13 @@ class ConstraintReport:
     binds: bool
     dual: float | None
     refit_cost: float | None
+    tolerance: float = 0.0
+    refit_note: str | None = None
+
+    @property
+    def met(self) -> bool:
+        """Whether the constraint holds within its tolerance."""
+        return self.slack is None or self.slack >= -self.tolerance
 
     def to_dict(self) -> dict[str, Any]:
         return {
@@ -56,6 +79,8 @@ class ConstraintReport:
             "binds": self.binds,
             "dual": self.dual,
             "refit_cost": self.refit_cost,
+            "tolerance": self.tolerance,
+            "refit_note": self.refit_note,
         }
 
 
@@ -75,12 +100,23 @@ class CalibrationResult:
     fit : its first term, the weighted mean square error ``sum_i w_i e_i^2``.
     rmse, max_error : unweighted root mean square and largest absolute error in the settings'
         error measure (price in currency, vol in decimal).
-    constraints : every constraint with slack, binding, dual and re-fit cost.
-    solver, status : the conic solver and cvxpy status of the final solve
-        (``"scan"``/``"optimal"`` for the held-rho scan).
+    constraints : every constraint the solver used, with slack, tolerance, binding, dual and
+        re-fit cost.
+    solver, status : the conic solver and cvxpy status of the final solve, the one the
+        returned solution comes from (``"scan"``/``"optimal"`` for the held-rho scan).
     iterations : Gauss-Newton iterations (held-rho mode: at the optimal ratio).
-    converged : Gauss-Newton met ``step_tol``; ``flags`` lists every caution
-        (``"inaccurate"``, ``"not_converged"``).
+    converged : Gauss-Newton met ``step_tol``; ``flags`` lists the cautions on the final
+        solution (``"inaccurate"``: the final solve stopped short of its tolerances;
+        ``"not_converged"``).
+    inaccurate_steps : earlier Gauss-Newton sub-solves flagged inaccurate (their steps were
+        checked against the true objective, so they do not taint the final solution).
+    solver_precision : the feasibility resolution of the final solve in variance units (the
+        constraints' ``tolerance`` derive from it).
+    anchor_scale : the factor of ``anchor_weight`` for the error measure (1 in price).
+    anchor_penalty : the anchor term at the solution.
+    not_identified : parameters the quotes do not identify (warned), ``not_identified_reason``
+        says why; the buckets carry the standard errors.
+    residual_variance : ``sum_i w_i e_i^2 / (n - p)``, the scale of the standard errors.
     """
 
     params: TwoFactorParams
@@ -107,6 +143,28 @@ class CalibrationResult:
     settings: CalibrationSettings
     historical: TwoFactorParams
     dropped: tuple[DroppedQuote, ...]
+    inaccurate_steps: int = 0
+    solver_precision: float = 0.0
+    anchor_scale: float = 1.0
+    anchor_penalty: float = 0.0
+    not_identified: tuple[str, ...] = ()
+    not_identified_reason: str = ""
+    residual_variance: float = float("nan")
+
+    @property
+    def final_optimal(self) -> bool:
+        """The final solution is optimal to the solver's precision and Gauss-Newton converged."""
+        return self.status == "optimal" and "inaccurate" not in self.flags and self.converged
+
+    @property
+    def constraints_met(self) -> bool:
+        """Every listed constraint holds within its tolerance."""
+        return all(c.met for c in self.constraints)
+
+    @property
+    def screened(self) -> tuple[DroppedQuote, ...]:
+        """The quotes the smile screen set aside (also in ``dropped``)."""
+        return tuple(d for d in self.dropped if d.reason.startswith(SCREENED))
 
     @property
     def binding(self) -> tuple[str, ...]:
@@ -122,7 +180,16 @@ class CalibrationResult:
         return {
             "params": self.params.to_dict(),
             "buckets": [
-                {"start": b.start, "end": b.end, "params": b.params.to_dict()} for b in self.buckets
+                {
+                    "start": b.start,
+                    "end": b.end,
+                    "params": b.params.to_dict(),
+                    "std_errors": None
+                    if b.std_errors is None
+                    else dict(zip(("sigma_spot", "sigma_yield", "rho"), b.std_errors, strict=True)),
+                    "yield_set_by": b.yield_set_by,
+                }
+                for b in self.buckets
             ],
             "quotes": {
                 "index": self.quote_index.tolist(),
@@ -150,6 +217,13 @@ class CalibrationResult:
             "dropped": [
                 {"index": d.index, "label": d.label, "reason": d.reason} for d in self.dropped
             ],
+            "inaccurate_steps": self.inaccurate_steps,
+            "solver_precision": self.solver_precision,
+            "anchor_scale": self.anchor_scale,
+            "anchor_penalty": self.anchor_penalty,
+            "not_identified": list(self.not_identified),
+            "not_identified_reason": self.not_identified_reason,
+            "residual_variance": self.residual_variance,
         }
 
 

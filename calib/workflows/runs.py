@@ -65,9 +65,8 @@ from calib.calibrate import (
     fit,
 )
 from calib.errors import (
-    CalibrationSolverError,
+    CALIBRATION_ERRORS,
     CalibWarning,
-    InfeasibleSettingsError,
     InputsChangedError,
     NoEstimateError,
     NoQuotesError,
@@ -75,7 +74,6 @@ from calib.errors import (
     QuoteError,
     SettingError,
     SettingsFileError,
-    TooFewQuotesError,
     UnknownEstimateError,
 )
 from calib.model import black76
@@ -106,12 +104,7 @@ PAUSE_IN_WRITE_ENV = "CALIB_TEST_PAUSE_IN_WRITE"
 """Test hook: seconds :func:`fit_day` sleeps inside its write transaction, after the run and its
 residuals are inserted and before the commit (used to kill a fit mid-write in the tests)."""
 
-CALIBRATION_FAILURES = (
-    TooFewQuotesError,
-    InfeasibleSettingsError,
-    QuoteError,
-    CalibrationSolverError,
-)
+CALIBRATION_FAILURES = CALIBRATION_ERRORS
 """What the calibration raises for a day it cannot fit; each becomes a stored failed run."""
 
 

@@ -19,7 +19,7 @@ import pytest
 
 from calib.model.spread import SpreadOption, spread_greeks, spread_law
 from calib.store.engine import Store
-from calib.store.quotes import load_day
+from calib.store.quotes import ZeroCurve, load_day
 from calib.store.runs import latest_approved
 from calib.workflows import hedge as hedge_flow
 from calib.workflows import runs as flow
@@ -60,7 +60,13 @@ def _history(store: Store, folder: Path, monkeypatch: pytest.MonkeyPatch) -> His
     gap_leg_day, missing_day = days[103], days[106]
     drop = (f["trade_date"] == np.datetime64(gap_leg_day)) & (f["delivery"] == np.datetime64(far))
     drop |= f["trade_date"] == np.datetime64(missing_day)
-    scenario = dataclasses.replace(scenario, futures=f[~drop].reset_index(drop=True))
+    rates = scenario.rates
+    no_curve = rates["trade_date"] == np.datetime64(days[102])  # a day without a zero curve
+    scenario = dataclasses.replace(
+        scenario,
+        futures=f[~drop].reset_index(drop=True),
+        rates=rates[~no_curve].reset_index(drop=True),
+    )
     paths = write_csv(scenario, folder)
     new = NewCommodity(unit="tonne", currency="USD", calendar_rule="monthly")
     for kind in ("futures", "rates", "options"):
@@ -81,6 +87,12 @@ def _history(store: Store, folder: Path, monkeypatch: pytest.MonkeyPatch) -> His
     fit_and_approve(days[109], _at(days[108], 6))  # stamped before its own day: refused
     fit_and_approve(days[110], _at(days[111], 9))  # after the 07:00 morning: used from 112
     return History(code, days, start, near, far, expiry, gap_leg_day, missing_day)
+
+
+def _discount(curve: ZeroCurve, day: dt.date, to: dt.date) -> float:
+    """Discount factor from ``day`` to ``to`` on a (possibly earlier) day's curve."""
+    d = curve.discount(np.array([day, to], dtype="datetime64[D]"))
+    return float(d[1] / d[0])
 
 
 def _slow_loop(store: Store, h: History) -> tuple[list[dict[str, float]], float, float]:
@@ -120,7 +132,7 @@ def _slow_loop(store: Store, h: History) -> tuple[list[dict[str, float]], float,
         if run is not None and run.trade_date < day and np.all(np.isfinite(F)):
             assert curve is not None and run.params is not None
             t = (h.expiry - day).days / 365.0
-            disc = float(curve.discount(np.array([h.expiry], dtype="datetime64[D]"))[0])
+            disc = _discount(curve, day, h.expiry)
             option = SpreadOption(
                 near=np.array([(h.near - day).days / 365.0]),
                 far=np.array([(h.far - day).days / 365.0]),
@@ -138,7 +150,7 @@ def _slow_loop(store: Store, h: History) -> tuple[list[dict[str, float]], float,
                 premium = cash = value
         next_day = weekdays[weekdays.index(day) + 1] if day != weekdays[-1] else h.expiry
         assert curve is not None
-        step = float(curve.discount(np.array([next_day], dtype="datetime64[D]"))[0])
+        step = _discount(curve, day, next_day)
         rate = -math.log(step) / ((next_day - day).days / 365.0)
         rows.append({"cash": cash, "value": value, "d_near": held[0], "d_far": held[1]})
         prev_day = day
@@ -169,6 +181,7 @@ def test_replay_equals_a_slow_day_by_day_loop(
     by_day = {d.day: d for d in result.days}
     assert any("no settlement of" in n for n in by_day[h.gap_leg_day].notes)
     assert any("missing day" in n for n in by_day[h.missing_day].notes)
+    assert f"zero curve of {h.days[101]} used" in by_day[h.days[102]].notes
     refused = [d for d in result.days if any("not before the day" in n for n in d.notes)]
     assert [d.day for d in refused] == [h.days[108], h.days[109]]
     run_of = {d.day: d.run_id for d in result.days}
