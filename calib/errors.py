@@ -676,8 +676,9 @@ FILE_HEADER_TOO_LONG = (
     "the header line is longer than {limit} bytes; at most {columns} columns are read"
 )
 FILE_NO_ROWS = "no rows after the header"
-FILE_NO_CURVE = (
-    "no zero curve stored for trade date(s) {days}: ingest the day's rates before its options"
+NOTE_NO_CURVE = (
+    "no zero curve stored for {count} trade date(s) ({days}): premiums checked with r = 0;"
+    " ingest a day's rates before its options"
 )
 HINT_KNOWN = " (known: {known})"
 ROW_NUL = "contains a NUL character"

@@ -2,9 +2,10 @@
 
 Exit codes of ``calib ingest``: 0 every row of every file accepted (or the file was already
 loaded with every row accepted); 1 some rows were quarantined, the others landed (also when the
-file was already loaded and its first ingest quarantined rows); 2 a file was refused as a whole
-(unreadable, no rows, missing columns, unknown commodity in a futures file, options before
-their day's zero curve, or ``--strict`` with a bad row).
+file was already loaded and its first ingest quarantined rows), or options came before their
+day's zero curve (checked with r = 0, said in a note); 2 a file was refused as a whole
+(unreadable, no rows, missing columns, unknown commodity in a futures file, or ``--strict``
+with a bad row).
 """
 
 from __future__ import annotations
@@ -120,7 +121,7 @@ def ingest_cmd(
     """Validate and store quote files; bad rows are quarantined with their reasons.
 
     Exit code 0: all rows accepted; 1: some rows quarantined (now, or when the same file was
-    first loaded); 2: a file refused as a whole.
+    first loaded), or options before their day's zero curve; 2: a file refused as a whole.
     """
     from calib.inputs.rules import Bands
     from calib.workflows.ingest import NewCommodity, ingest_file
@@ -156,7 +157,9 @@ def ingest_cmd(
                 continue
             if report.status == "rejected":
                 code = EXIT_FILE_REFUSED
-            elif report.rows_quarantined:  # loaded now, or before (a duplicate says it again)
+            elif report.rows_quarantined or report.curve_missing:
+                # rows quarantined now or before (a duplicate says it again), or options
+                # checked with r = 0 because their day's zero curve came later
                 code = max(code, EXIT_ROWS_REJECTED)
             results.append(report.to_dict())
             if not as_json:

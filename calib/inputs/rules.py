@@ -33,8 +33,9 @@ linear in the zero rate, flat beyond its ends) and ``tol =`` :data:`PREMIUM_BOUN
     D \\max(F - K, 0) - tol \\le C \\le D F + tol, \\qquad
     D \\max(K - F, 0) - tol \\le P \\le D K + tol.
 
-The curve must be stored before the options of its day: a day without one makes
-:attr:`Checked.no_curve` non-empty and the unit of work refuses the file.
+The curve should be stored before the options of its day: on a day without one the bounds
+are checked with ``D = 1`` (r = 0; a row's reason says so), the day is listed in
+:attr:`Checked.no_curve`, and the unit of work reports it (the CLI exits 1).
 """
 
 from __future__ import annotations
@@ -116,7 +117,7 @@ class Checked:
     columns: dict[str, npt.NDArray[Any]]
     lines: IntArray
     no_curve: list[date] = field(default_factory=list)
-    """Options: trade dates of rows whose day has no zero curve stored."""
+    """Options: trade dates of rows whose day has no zero curve stored (checked with r = 0)."""
 
 
 Forwards = Callable[[IntArray, DateArray, DateArray], FloatArray]
@@ -252,6 +253,7 @@ def check_options(
         disc[live] = discounts(trade[live], expiry[live])
     lacking = rows.ok & np.isnan(disc)
     no_curve = sorted({d.astype(date) for d in np.unique(trade[lacking])})
+    disc[lacking] = 1.0  # r = 0 on a day without a curve
 
     # no-arbitrage bounds of the premiums
     intrinsic = np.maximum(np.where(call, forward - strike, strike - forward), 0.0)
@@ -267,7 +269,7 @@ def check_options(
                 forward=forward[i],
                 discount=disc[i],
                 what="F" if call[i] else "K",
-                curve="",
+                curve=msg.ROW_NO_CURVE if lacking[i] else "",
             )
             for i in idx
         )

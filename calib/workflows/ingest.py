@@ -119,6 +119,8 @@ class IngestReport:
     rows_quarantined: int = 0
     problems: tuple[RowProblem, ...] = ()
     created: tuple[str, ...] = ()
+    curve_missing: tuple[str, ...] = ()
+    """Options: trade dates (ISO) without a stored zero curve, whose bounds used r = 0."""
     notes: tuple[str, ...] = field(default=())
 
     def to_dict(self) -> dict[str, Any]:
@@ -126,6 +128,7 @@ class IngestReport:
         out = asdict(self)
         out["problems"] = [asdict(p) for p in self.problems]
         out["created"] = list(self.created)
+        out["curve_missing"] = list(self.curve_missing)
         out["notes"] = list(self.notes)
         return out
 
@@ -492,9 +495,6 @@ def ingest_file(
             run.add(table)
         if run.rows_read == 0:
             raise IngestFileError(source.name, msg.FILE_NO_ROWS)
-        if run.no_curve:
-            shown = listed([str(d) for d in sorted(run.no_curve)], 3)
-            raise IngestFileError(source.name, msg.FILE_NO_CURVE.format(days=shown))
         good = run.finish()
         refused = strict and run.quarantined > 0
         accepted = 0 if refused else good
@@ -509,6 +509,9 @@ def ingest_file(
             rows_rejected=run.rows_read - accepted,
         )
     notes = []
+    lacking = [str(d) for d in sorted(run.no_curve)]
+    if lacking:
+        notes.append(msg.NOTE_NO_CURVE.format(count=len(lacking), days=listed(lacking, 3)))
     if source.ignored:
         notes.append(f"ignored column(s): {listed(source.ignored)}")
     if refused:
@@ -525,5 +528,6 @@ def ingest_file(
         rows_quarantined=run.quarantined,
         problems=tuple(run.shown),
         created=tuple(run.created),
+        curve_missing=tuple(lacking),
         notes=tuple(notes),
     )

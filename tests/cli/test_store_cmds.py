@@ -16,7 +16,6 @@ OPTIONS = (
     "trade_date,commodity,delivery,expiry,kind,strike,premium\n"
     "2031-03-03,QRX,2031-05-01,2031-04-25,call,50,2.1\n"
 )
-RATES = "trade_date,maturity,zero_rate\n2031-03-03,2032-03-03,0.0\n"
 
 
 def run(capsys: pytest.CaptureFixture[str], monkeypatch: pytest.MonkeyPatch, *args: str):  # type: ignore[no-untyped-def]
@@ -45,18 +44,17 @@ def test_init_ingest_quotes_round_trip(
     assert code == 0 and "already loaded" in out
     opt = tmp_path / "o.csv"
     opt.write_text(OPTIONS + "2031-03-03,QRX,2031-05-01,2031-04-25,put,50,-1\n")
-    code, _, err = run(capsys, monkeypatch, "ingest", "options", str(opt), "--db", db_url)
-    assert code == 2 and err.count("\n") == 1 and "ingest the day's rates before" in err
-    rates = tmp_path / "r.csv"
-    rates.write_text(RATES)
-    code, out, _ = run(capsys, monkeypatch, "ingest", "rates", str(rates), "--db", db_url)
-    assert code == 0
     code, out, _ = run(capsys, monkeypatch, "ingest", "options", str(opt), "--db", db_url)
     assert code == 1 and f"{opt}:3: premium: must be > 0: '-1'" in out
     code, out, _ = run(capsys, monkeypatch, "ingest", "options", str(opt), "--db", db_url)
     assert code == 1 and "already loaded" in out and "1 row(s) of it are in quarantine" in out
     code, out, _ = run(capsys, monkeypatch, "quotes", "QRX", "--date", "2031-03-03", "--db", db_url)
-    assert code == 0 and "1 futures, 1 options, 1 rates" in out and "2031-05-01" in out
+    assert code == 0 and "1 futures, 1 options, 0 rates" in out and "2031-05-01" in out
+    # options before their day's zero curve: accepted, checked with r = 0, said, exit 1
+    clean = tmp_path / "o2.csv"
+    clean.write_text(OPTIONS.replace("call,50,2.1", "call,51,1.6"))
+    code, out, _ = run(capsys, monkeypatch, "ingest", "options", str(clean), "--db", db_url)
+    assert code == 1 and "1 accepted, 0 rejected" in out and "checked with r = 0" in out
     code, out, _ = run(
         capsys, monkeypatch, "quotes", "QRX", "--date", "2031-03-03", "--json", "--db", db_url
     )

@@ -63,8 +63,7 @@ def history(store: Store, tmp_path: Path) -> tuple[Store, int, int]:
     _put(
         store,
         tmp_path / "r.csv",
-        "trade_date,maturity,zero_rate\n2031-03-03,2032-03-03,0.05\n2031-03-03,2031-06-03,0.04\n"
-        + "2031-03-04,2032-03-04,0.05\n",  # options need their day's curve first
+        "trade_date,maturity,zero_rate\n2031-03-03,2032-03-03,0.05\n2031-03-03,2031-06-03,0.04\n",
         "rates",
         T1,
     )

@@ -213,9 +213,7 @@ def test_no_arbitrage_bounds(
         assert ("below" in report.problems[0].reason) == (premium < D * 20)
 
 
-def test_options_before_their_days_curve_refuse_the_file(day: Store, tmp_path: Path) -> None:
-    # The curve must come first (README): without it the bounds would discount with r = 0.
-    # The file is refused whole (exit 2), nothing stored, so it can come again after the rates.
+def test_bounds_without_curve_use_zero_rate_and_say_so(day: Store, tmp_path: Path) -> None:
     other = "2031-03-04"
     fut = write_csv(
         tmp_path / "f2.csv",
@@ -223,19 +221,11 @@ def test_options_before_their_days_curve_refuse_the_file(day: Store, tmp_path: P
         [[other, "QRX", "2031-05-01", F1]],
     )
     ingest(day, fut, "futures")
+    # D = 1 without a curve: a call worth exactly the undiscounted intrinsic value passes
     path = write_csv(tmp_path / "o.csv", OPTION_HEADER, [option(40.0, 10.0, trade_date=other)])
-    with pytest.raises(
-        IngestFileError, match=r"no zero curve stored for trade date\(s\) 2031-03-04"
-    ):
-        ingest(day, path, "options")
-    with day.sessions() as s:
-        assert s.scalar(select(func.count()).select_from(OptionQuote)) == 0
-        assert s.scalar(select(func.count()).select_from(IngestBatch)) == 3
-    rates = write_csv(
-        tmp_path / "r2.csv", ["trade_date", "maturity", "zero_rate"], [[other, "2031-06-03", 0.0]]
-    )
-    ingest(day, rates, "rates")
-    assert ingest(day, path, "options").rows_accepted == 1
+    report = ingest(day, path, "options")
+    assert report.rows_accepted == 1
+    assert any("no zero curve" in note for note in report.notes)
 
 
 def test_rates_rules(store: Store, tmp_path: Path) -> None:

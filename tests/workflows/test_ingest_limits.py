@@ -337,3 +337,13 @@ def test_disk_full_during_the_bulk_insert_is_one_line(
     code, err = cli("ingest", "rates", str(path))
     assert code == 1 and err.count("\n") == 1, err
     assert "full" in err and "Traceback" not in err
+
+
+def test_options_before_their_days_curve_are_reported(day: Store, tmp_path: Path) -> None:
+    other = "2031-03-04"
+    fut = write_csv(tmp_path / "f2.csv", FUT, [[other, "QRX", "2031-05-01", 50.0]])
+    ingest(day, fut, "futures")
+    rows = [option(40.0, 10.0, trade_date=other), option(50.0, fair(50.0))]
+    report = ingest(day, write_csv(tmp_path / "o.csv", OPTION_HEADER, rows), "options")
+    assert report.rows_accepted == 2 and report.curve_missing == (other,)
+    assert report.to_dict()["curve_missing"] == [other]
