@@ -560,7 +560,8 @@ _EUROPEAN = -1  # r <= 0: the premium is a Black-76 one (resolved outside the ke
 _MAX_ITER = 100
 _STEP_TOL = 1e-11  # relative secant step after which the error is far smaller (superlinear)
 _EPS = float(np.finfo(np.float64).eps)
-_PREDICTED_TOL = 1e-13  # relative error of the secant's next point, estimated: stop there
+_PREDICTED_TOL = 1e-12  # estimated relative error of the next point at which to stop (measured
+# round trip: 8e-13 at most on 2,800 options, against the 1e-10 asked; 1e-13 costs 5 % more)
 _MAX_VOL = 1e3  # no volatility above this is searched (its premium is within eps of the bound)
 
 
@@ -729,9 +730,14 @@ def implied_vol_detail(
     The European (Black-76) volatility of the premium bounds the American one from above,
     since the American premium exceeds the European one at every volatility. The second
     point is the European volatility of the premium less the early-exercise premium at that
-    bound; secant steps follow inside the bracket that every evaluation tightens, and a step
-    leaving it is replaced by bisection. The root is that of :func:`price` itself, so a round
-    trip recovers the volatility to about ``eps * premium / vega``.
+    bound. Each further point solves the Black-76 premium plus the early-exercise premium,
+    taken linear through the last two points, equal to the premium (a secant on the
+    early-exercise premium alone, the European part exact); a point leaving the bracket that
+    every evaluation tightens, or one from two points in the exercise region, is replaced by
+    bisection. The search stops where the secant's error estimated from the last three points
+    is below 1e-12 relative, without pricing there: about 3.4 premiums per option. The root is
+    that of :func:`price` itself, so a round trip recovers the volatility to about
+    ``eps * premium / vega`` (at most 8e-13 measured).
     """
     shape, call, flat = _flat(kind, premium, F, K, T, r)
     _, F_, K_, T_, r_ = flat
