@@ -17,6 +17,8 @@ reads and writes are not timed here (a few tenths of a second for 96 windows).
 
 from __future__ import annotations
 
+import os
+import resource
 import time
 from collections.abc import Iterator
 from datetime import date
@@ -70,10 +72,16 @@ def windows(curves: Curves) -> list[WindowTask]:
     return out
 
 
-def _timed(batches: Iterator[list[WindowFit]]) -> tuple[float, list[WindowFit]]:
-    started = time.perf_counter()
+def _cpu() -> float:
+    me, kids = (resource.getrusage(w) for w in (resource.RUSAGE_SELF, resource.RUSAGE_CHILDREN))
+    return me.ru_utime + me.ru_stime + kids.ru_utime + kids.ru_stime
+
+
+def _timed(batches: Iterator[list[WindowFit]]) -> tuple[float, float, list[WindowFit]]:
+    """Wall seconds, CPU seconds (this process and its finished workers), the fits."""
+    started, cpu = time.perf_counter(), _cpu()
     fits = [f for batch in batches for f in batch]
-    return time.perf_counter() - started, fits
+    return time.perf_counter() - started, _cpu() - cpu, fits
 
 
 def main() -> None:
@@ -85,22 +93,31 @@ def main() -> None:
         ChunkTask((WindowTask(w.index, w.dates, w.tau, w.log_price, w.rate),), settings)
         for w in wins
     ]
-    warm_s, warm = _timed(estimate_windows(wins, settings, pool, chunk=CHUNK))
-    cold_s, cold = _timed(pool.map(fit_chunk, cold_tasks))
+    load = os.getloadavg()[0]
+    warm_s, warm_cpu, warm = _timed(estimate_windows(wins, settings, pool, chunk=CHUNK))
+    cold_s, cold_cpu, cold = _timed(pool.map(fit_chunk, cold_tasks))
     gap = np.array([w.loglik - c.loglik for w, c in zip(warm, cold, strict=True)])
     starts = [w.start for w in warm]
     print(
         f"{len(wins)} windows of 2y x 5 contracts (about {wins[0].dates.size} days each), "
         f"{WORKERS} worker processes"
     )
+    print(f"  load average before: {load:.2f} on {os.cpu_count()} cores (figures scale with it)")
     print(
-        f"  warm starts  {warm_s:7.2f} s   ({starts.count('warm')} warm, "
+        f"  warm starts  {warm_s:7.2f} s wall, {warm_cpu:6.1f} s CPU   "
+        f"({starts.count('warm')} warm, "
         f"{starts.count('cold')} cold, {starts.count('cold-retry')} redone cold; "
         f"{sum(w.cold_loglik is not None for w in warm)} cold-checked, "
         f"{sum(w.local_optimum is not None for w in warm)} local optima)"
     )
-    print(f"  cold starts  {cold_s:7.2f} s   (peer: default starts on every window)")
-    print(f"  ratio cold / warm: {cold_s / warm_s:.2f}x   target warm <= 30 s")
+    print(
+        f"  cold starts  {cold_s:7.2f} s wall, {cold_cpu:6.1f} s CPU   (peer: default starts "
+        "on every window)"
+    )
+    print(
+        f"  ratio cold / warm: {cold_s / warm_s:.2f}x wall, {cold_cpu / warm_cpu:.2f}x CPU; "
+        f"target warm <= 30 s wall (CPU / {WORKERS} = {warm_cpu / WORKERS:.1f} s on idle cores)"
+    )
     print(
         f"  converged: warm {sum(w.converged for w in warm)}, cold {sum(c.converged for c in cold)}"
         f"; max |loglik warm - cold| {np.max(np.abs(gap)):.2e} nats"

@@ -425,6 +425,9 @@ SETS_IN_FORCE = "in-force"
 SETS_BY_TRADE_DATE = "by-trade-date"
 """Each day's set: the newest ever-approved run fitted on an earlier trading day."""
 
+CURVE_LOOKBACK = 14
+"""Calendar days before the start searched for a zero curve when the start day has none."""
+
 MORNING = time(7, 0)
 """Default time (UTC) of the morning at which the day's set is taken (in-force mode)."""
 
@@ -594,7 +597,8 @@ def replay(
 ) -> HedgeReplay:
     """Sell ``trade`` on ``start`` and rehedge it every day on the stored history.
 
-    Each day from ``start`` to the day before expiry: the day's set (``sets``: the approved set
+    Each weekday (and any other day with settlements) from ``start`` to the day before expiry:
+    the day's set (``sets``: the approved set
     in force at ``morning`` UTC that day by the approval log, refusing one fitted on that day or
     later; or the newest ever-approved run fitted on an earlier day), the day's settlements of
     the legs and its zero curve. A day without a set or without a leg's settlement keeps the
@@ -622,8 +626,11 @@ def replay(
         futures = load_futures_history(
             session=session, commodity=commodity, start=start, end=trade.expiry
         )
-        curves = zero_curves(session=session, start=start, end=trade.expiry)
-        days = sorted(set(_weekdays(start, trade.expiry)) | {start, trade.expiry})
+        curves = zero_curves(
+            session=session, start=start - timedelta(days=CURVE_LOOKBACK), end=trade.expiry
+        )
+        settled = {d for d in stored if d < trade.expiry}  # weekend sessions included
+        days = sorted(set(_weekdays(start, trade.expiry)) | settled | {start, trade.expiry})
         days = [d for d in days if d < trade.expiry] + [trade.expiry]
         chosen = _sets_by_day(session, commodity, days[:-1], sets, morning)
     if not stored or stored[-1] < trade.expiry:
@@ -670,7 +677,8 @@ def _replay_days(
     ratios = np.full((n, len(legs)), np.nan)
     rates = np.zeros(n)
     run_ids: list[int | None] = []
-    last_curve: ZeroCurve | None = None
+    earlier = [d for d in curves if d < days[0] and len(curves[d])]
+    last_curve: ZeroCurve | None = curves[max(earlier)] if earlier else None
     for k, day in enumerate(days[:-1]):
         run, why = chosen[day]
         run_ids.append(None if run is None else run.run_id)

@@ -339,3 +339,13 @@ def test_implied_vol_at_non_positive_rate_is_black76() -> None:
     ref = black76.implied_vol_detail(premium, F, K, T, -0.01, call)
     np.testing.assert_array_equal(ours[1], ref[1])
     np.testing.assert_array_equal(ours[0], ref[0])
+
+
+def test_implied_vol_just_outside_the_exercise_region() -> None:
+    # A put 8e-6 above its intrinsic value of 24.35: the premium is flat (intrinsic) below the
+    # volatility sought and steep in early-exercise premium above it, where a solver that
+    # models the early-exercise premium linearly must not stall on the flat side.
+    F, K, T, r, vol = 64.99659129779637, 89.35025782659957, 2.16986301369863, 0.05, 0.1485574048
+    premium = float(american.price(F, K, T, r, vol, "put"))
+    assert premium - (K - F) < 1e-5
+    assert float(american.implied_vol(premium, F, K, T, r, "put")) == pytest.approx(vol, abs=IV_TOL)

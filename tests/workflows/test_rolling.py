@@ -212,3 +212,18 @@ def test_rolling_and_stability_from_the_command_line(
     assert (tmp_path / "s.png").exists() and (tmp_path / "s.csv").exists()
     code, out, _ = calib("stability", data.code, "--json")
     assert code == 2 or json.loads(out)["windows"]  # code 2: no converged single estimate
+
+
+def test_unknown_standard_errors_print_as_null() -> None:
+    # a window whose observed information was not positive definite has NaN s.e.: JSON null
+    from calib.workflows.stability import StabilityWindow
+
+    w = StabilityWindow(
+        estimate_id=1, window_start=date(2031, 1, 1), window_end=date(2031, 12, 31),
+        converged=False, params=dict.fromkeys(PARAM_NAMES, 0.5),
+        std_errors=dict.fromkeys(PARAM_NAMES, float("nan")),
+        z=dict.fromkeys(PARAM_NAMES, float("nan")), flags=("not_converged",),
+        decay_slack=float("nan"), in_use=False,
+    )  # fmt: skip
+    out = json.loads(json.dumps(w.to_dict(), allow_nan=False))
+    assert out["std_errors"]["kappa"] is None and out["z"]["rho"] is None
