@@ -57,6 +57,7 @@ from calib.errors import (
     CalibrationNotIdentifiedWarning,
     CalibrationNumericalError,
     CalibrationShapeError,
+    CalibWarning,
     InfeasibleSettingsError,
     ParameterError,
     TooFewQuotesError,
@@ -216,6 +217,19 @@ class Calibrator:
         s = result.settings
         costs: dict[str, float] = {}
         notes: dict[str, str] = {}
+
+        def refit(off: CalibrationSettings) -> CalibrationResult:
+            off = replace(off, refit_costs=False)
+            other = self._without.get(off)
+            if other is None:
+                # the same data, so forward mode has this calibrator's buckets
+                other = self._without[off] = Calibrator(off, self.n_buckets)
+            with warnings.catch_warnings():
+                # the re-fit's own cautions are not the fit's
+                warnings.simplefilter("ignore", CalibWarning)
+                lim = check_feasible(off, hist)
+                return other._fit_data(data, quotes, hist, off, lim)
+
         for family in self.families:
             if not any(c.binds and c.name == family.name for c in result.constraints):
                 continue
@@ -223,28 +237,23 @@ class Calibrator:
             if off is None or family.name == "psd":
                 notes[family.name] = "not available: the constraint has no switch"
                 continue
-            off = replace(off, refit_costs=False)
-            other = self._without.get(off)
-            if other is None:
-                # the same data, so forward mode has this calibrator's buckets
-                other = self._without[off] = Calibrator(off, self.n_buckets)
             try:
-                with warnings.catch_warnings():
-                    # the re-fit's own cautions are not the fit's
-                    warnings.simplefilter("ignore", CalibrationNotIdentifiedWarning)
-                    lim = check_feasible(off, hist)
-                    refit = other._fit_data(data, quotes, hist, off, lim)
+                costs[family.name] = result.objective - refit(off).objective
             except CALIBRATION_ERRORS as exc:
                 notes[family.name] = f"not available: {exc}"
-                continue
-            costs[family.name] = result.objective - refit.objective
+        anchor_cost = None
+        if s.anchor_weight > 0.0:
+            try:
+                anchor_cost = result.fit - refit(replace(s, anchor_weight=0.0)).fit
+            except CALIBRATION_ERRORS:
+                anchor_cost = None
         reports = tuple(
             replace(
                 c, refit_cost=costs.get(c.name), refit_note=notes.get(c.name) if c.binds else None
             )
             for c in result.constraints
         )
-        return replace(result, constraints=reports)
+        return replace(result, constraints=reports, anchor_fit_cost=anchor_cost)
 
     # --- constant and forward modes: Gauss-Newton over the convex sub-problem ----------------
 

@@ -114,6 +114,9 @@ class CalibrationResult:
         constraints' ``tolerance`` derive from it).
     anchor_scale : the factor of ``anchor_weight`` for the error measure (1 in price).
     anchor_penalty : the anchor term at the solution.
+    anchor_fit_cost : the fit term's increase caused by the anchor (this fit's ``fit`` minus
+        that of the same fit with ``anchor_weight = 0``), with the re-fit costs; ``None`` when
+        not computed (no anchor, ``refit_costs`` off, or that re-fit cannot run).
     not_identified : parameters the quotes do not identify (warned), ``not_identified_reason``
         says why; the buckets carry the standard errors.
     residual_variance : ``sum_i w_i e_i^2 / (n - p)``, the scale of the standard errors.
@@ -147,6 +150,7 @@ class CalibrationResult:
     solver_precision: float = 0.0
     anchor_scale: float = 1.0
     anchor_penalty: float = 0.0
+    anchor_fit_cost: float | None = None
     not_identified: tuple[str, ...] = ()
     not_identified_reason: str = ""
     residual_variance: float = float("nan")
@@ -221,6 +225,7 @@ class CalibrationResult:
             "solver_precision": self.solver_precision,
             "anchor_scale": self.anchor_scale,
             "anchor_penalty": self.anchor_penalty,
+            "anchor_fit_cost": self.anchor_fit_cost,
             "not_identified": list(self.not_identified),
             "not_identified_reason": self.not_identified_reason,
             "residual_variance": self.residual_variance,

@@ -54,6 +54,25 @@ class Uncertainty:
     residual_variance: float
 
 
+def _well_conditioned_inverse(S: FloatArray) -> FloatArray | None:
+    """``S^{-1}`` by Cholesky when ``S`` (unit diagonal) is surely well conditioned, else ``None``.
+
+    With a unit diagonal ``lambda_max(S) <= p`` and ``lambda_min(S) >= 1 / trace(S^{-1})``, so
+    ``1 / (p trace(S^{-1}))`` bounds the reciprocal condition number from below; at or above
+    :data:`RCOND_MIN` no eigen-decomposition is needed (the common case; a symmetric
+    eigen-decomposition with vectors costs hundreds of times more here).
+    """
+    try:
+        np.linalg.cholesky(S)  # positive definite, or a refusal
+        S_inv = np.asarray(np.linalg.inv(S), dtype=np.float64)
+    except np.linalg.LinAlgError:
+        return None
+    trace = float(np.trace(S_inv))
+    if not (math.isfinite(trace) and S.shape[0] * trace * RCOND_MIN <= 1.0):
+        return None
+    return S_inv
+
+
 def theta_jacobian(theta: FloatArray) -> FloatArray:
     """``dx/dtheta``: ``x = (P_1..K, Q_1..K, C_1..K)``; ``theta`` is ``(s1, s2, rho)`` per row."""
     K = theta.shape[0]
@@ -125,6 +144,7 @@ def standard_errors(
     names = [f"{nm}@{k}" if per_bucket else nm for k in range(K) for nm in _NAMES]
     M = Z.T @ H @ Z
     cov = np.full((3 * K, 3 * K), math.inf)
+    S_inv: FloatArray | None = None
     unidentified: list[str] = []
     reason = ""
     if p == 0:
@@ -132,7 +152,12 @@ def standard_errors(
     else:
         d = np.sqrt(np.maximum(np.diag(M), 0.0))
         d = np.where(d > 0.0, d, 1.0)
-        evals, evecs = np.linalg.eigh(M / np.outer(d, d))
+        S = M / np.outer(d, d)
+        S_inv = _well_conditioned_inverse(S)
+        if S_inv is not None:
+            cov = sigma2 * (Z @ (S_inv / np.outer(d, d)) @ Z.T)
+    if p > 0 and S_inv is None:
+        evals, evecs = np.linalg.eigh(S)
         top = max(float(evals[-1]), 1e-300)
         weak = evals < RCOND_MIN * top
         strong = evecs[:, ~weak] / d[:, None]  # back to the unscaled coordinates of M

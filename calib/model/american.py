@@ -201,7 +201,8 @@ def _baw_critical(K: float, tau: float, r: float, vol: float) -> float:
     for _ in range(N_START_NEWTON):
         d1 = math.log(s / K) / st + 0.5 * st
         nd = _ncdf(-d1)
-        g = K - s - _european_put(s, K, tau, r, vol) + (1.0 - disc * nd) * s / q1
+        euro = disc * (K * _ncdf(st - d1) - s * nd)  # the European put at s
+        g = K - s - euro + (1.0 - disc * nd) * s / q1
         dg = (
             -1.0
             + disc * nd
@@ -276,8 +277,11 @@ def _put_boundary(
     vol: float,
     h: FloatArray,
     tab: Tables,
+    work: FloatArray,
 ) -> None:
     """Fill ``h[j] = ln(B(tau_j) / K)^2`` at the nodes (``r > 0``, ``vol > 0``, ``T > 0``).
+
+    ``work``: scratch of at least :func:`_work_size` elements.
 
     The first sweeps use the coarse quadrature (they only bring the start near the boundary),
     the last ones the fine one.
@@ -285,25 +289,30 @@ def _put_boundary(
     c = tab[0]
     n = c.size - 1
     sqrt_t = math.sqrt(T)
-    bnd = np.empty(n + 1)
+    m = n * tab[1].size  # the fine quadrature's points, the most of any sweep
+    bnd = work[: n + 1]
+    ert = work[n + 1 : n + 1 + m]
+    root_h = work[n + 1 + m : n + 1 + 2 * m]
     for i in range(1, n + 1):
         bnd[i] = _baw_critical(K, T * c[i] * c[i], r, vol)
     h[0] = 0.0
     half, w, interp_b = tab[7], tab[8], tab[9]
-    ert = np.empty(n * half.size)
-    root_h = np.empty(n * half.size)
     _weights(T, r, c, half, w, ert)
     for _ in range(N_COARSE_SWEEPS):
         _sweep(bnd, h, K, vol, sqrt_t, c, half, interp_b, ert, root_h)
     half, w, interp_b = tab[1], tab[2], tab[3]
-    ert = np.empty(n * half.size)
-    root_h = np.empty(n * half.size)
     _weights(T, r, c, half, w, ert)
     for _ in range(N_SWEEPS):
         _sweep(bnd, h, K, vol, sqrt_t, c, half, interp_b, ert, root_h)
     for i in range(1, n + 1):
         lb = math.log(bnd[i] / K)
         h[i] = lb * lb
+
+
+def _work_size(tab: Tables) -> int:
+    """Scratch for :func:`_put_value`: the nodes twice, the fine quadrature's points twice."""
+    n = tab[0].size - 1
+    return 2 * (n + 1) + 2 * n * tab[1].size
 
 
 def _put_value(
@@ -314,6 +323,7 @@ def _put_value(
     vol: float,
     tab: Tables,
     want_delta: bool,
+    work: FloatArray,
 ) -> tuple[float, float]:
     """American put premium and its delta in ``S`` for finite ``S, K, T > 0``.
 
@@ -337,8 +347,8 @@ def _put_value(
     if r * T <= _NEGLIGIBLE_RT:
         return euro, euro_delta
     n = c.size - 1
-    h = np.empty(n + 1)
-    _put_boundary(K, T, r, vol, h, tab)
+    h = work[: n + 1]
+    _put_boundary(K, T, r, vol, h, tab, work[n + 1 :])
     boundary = K * math.exp(-math.sqrt(h[n]))
     if boundary >= S:
         # exercise now; at rates near zero the few sweeps leave the boundary too high (the
@@ -374,6 +384,7 @@ _european_put = numba.njit(cache=True, error_model="numpy")(_european_put)
 _baw_critical = numba.njit(cache=True, error_model="numpy")(_baw_critical)
 _sweep = numba.njit(cache=True, error_model="numpy")(_sweep)
 _weights = numba.njit(cache=True, error_model="numpy")(_weights)
+_work_size = numba.njit(cache=True, error_model="numpy")(_work_size)
 _put_boundary = numba.njit(cache=True, error_model="numpy")(_put_boundary)
 _put_value = numba.njit(cache=True, error_model="numpy")(_put_value)
 
@@ -391,6 +402,7 @@ def _value_loop(
     tab: Tables,
     want_delta: bool,
 ) -> None:
+    work = np.empty(_work_size(tab))
     for i in range(F.size):
         f, k, t, rr, v = F[i], K[i], T[i], r[i], vol[i]
         if not valid[i]:
@@ -398,11 +410,11 @@ def _value_loop(
             delta[i] = np.nan
             continue
         if call[i]:  # C(F, K) = P(K, F); dC/dF = (P - K dP/dS) / F by homogeneity
-            p, dp = _put_value(k, f, t, rr, v, tab, want_delta)
+            p, dp = _put_value(k, f, t, rr, v, tab, want_delta, work)
             value[i] = p
             delta[i] = (p - k * dp) / f
         else:
-            p, dp = _put_value(f, k, t, rr, v, tab, want_delta)
+            p, dp = _put_value(f, k, t, rr, v, tab, want_delta, work)
             value[i] = p
             delta[i] = dp
 
@@ -548,7 +560,8 @@ _EUROPEAN = -1  # r <= 0: the premium is a Black-76 one (resolved outside the ke
 _MAX_ITER = 100
 _STEP_TOL = 1e-11  # relative secant step after which the error is far smaller (superlinear)
 _EPS = float(np.finfo(np.float64).eps)
-_PREDICTED_TOL = 1e-13  # relative error of the secant's next point, estimated: stop there
+_PREDICTED_TOL = 1e-12  # estimated relative error of the next point at which to stop (measured
+# round trip: 8e-13 at most on 2,800 options, against the 1e-10 asked; 1e-13 costs 5 % more)
 _MAX_VOL = 1e3  # no volatility above this is searched (its premium is within eps of the bound)
 
 
@@ -588,6 +601,7 @@ def _put_vol(
     T: float,
     r: float,
     tab: Tables,
+    work: FloatArray,
 ) -> float:
     """Volatility at which the American put premium is ``p`` (``K - S < p < K``, ``r > 0``)."""
     intrinsic = max(K - S, 0.0)
@@ -599,12 +613,12 @@ def _put_vol(
     hi = 1.0
     if tv < min(S, K):
         hi = black76._solve_normalised(tv / math.sqrt(S * K), x) / root_t
-    g_hi = _put_value(S, K, T, r, hi, tab, False)[0] - p
+    g_hi = _put_value(S, K, T, r, hi, tab, False, work)[0] - p
     while g_hi < 0.0:
         if hi > _MAX_VOL:
             return np.nan
         hi *= 2.0
-        g_hi = _put_value(S, K, T, r, hi, tab, False)[0] - p
+        g_hi = _put_value(S, K, T, r, hi, tab, False, work)[0] - p
     if g_hi == 0.0:
         return hi
     lo = 0.0
@@ -622,7 +636,7 @@ def _put_vol(
     e0 = g_hi + p - _european_put(S, K, T, r, hi)
     x_prev = s_prev = np.nan  # the point before x0 and the slope of e through it and x0
     for _ in range(_MAX_ITER):
-        g1 = _put_value(S, K, T, r, x1, tab, False)[0] - p
+        g1 = _put_value(S, K, T, r, x1, tab, False, work)[0] - p
         if g1 == 0.0:
             return x1
         if g1 < 0.0:
@@ -668,6 +682,7 @@ def _implied_vol_loop(
     code: IntArray,
     tab: Tables,
 ) -> None:
+    work = np.empty(_work_size(tab))
     for i in range(premium.size):
         vol[i] = np.nan
         if code[i] != _OK:  # screened before the loop
@@ -684,7 +699,7 @@ def _implied_vol_loop(
         if p >= x:
             code[i] = _ABOVE_UPPER_BOUND
             continue
-        vol[i] = _put_vol(p, s, x, t, rr, tab)
+        vol[i] = _put_vol(p, s, x, t, rr, tab, work)
 
 
 _IV_KERNEL: Callable[..., None] = numba.njit(cache=True, nogil=True, error_model="numpy")(
@@ -715,9 +730,14 @@ def implied_vol_detail(
     The European (Black-76) volatility of the premium bounds the American one from above,
     since the American premium exceeds the European one at every volatility. The second
     point is the European volatility of the premium less the early-exercise premium at that
-    bound; secant steps follow inside the bracket that every evaluation tightens, and a step
-    leaving it is replaced by bisection. The root is that of :func:`price` itself, so a round
-    trip recovers the volatility to about ``eps * premium / vega``.
+    bound. Each further point solves the Black-76 premium plus the early-exercise premium,
+    taken linear through the last two points, equal to the premium (a secant on the
+    early-exercise premium alone, the European part exact); a point leaving the bracket that
+    every evaluation tightens, or one from two points in the exercise region, is replaced by
+    bisection. The search stops where the secant's error estimated from the last three points
+    is below 1e-12 relative, without pricing there: about 3.4 premiums per option. The root is
+    that of :func:`price` itself, so a round trip recovers the volatility to about
+    ``eps * premium / vega`` (at most 8e-13 measured).
     """
     shape, call, flat = _flat(kind, premium, F, K, T, r)
     _, F_, K_, T_, r_ = flat

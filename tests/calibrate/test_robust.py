@@ -123,3 +123,15 @@ def test_the_anchor_pulls_alike_in_price_and_vol(clean: OptionQuotes) -> None:
         # unscaled, the vol measure's anchor would pull far less
         raw = fit(clean, hist, replace(s, error_measure="vol", anchor_weight=w / vol.anchor_scale))
         assert raw.params.sigma_yield - 0.25 < 0.6 * pull_p
+
+
+def test_the_anchors_fit_cost_is_what_dropping_it_would_save(clean: OptionQuotes) -> None:
+    hist = TRUE.with_vols(0.35, 0.40, 0.7)
+    for measure in ("price", "vol"):
+        s = CalibrationSettings(error_measure=measure, decay_bound=False)  # type: ignore[arg-type]
+        res = fit(clean, hist, s)
+        free = fit(clean, hist, replace(s, anchor_weight=0.0, refit_costs=False))
+        assert res.anchor_fit_cost == res.fit - free.fit
+        assert res.anchor_fit_cost is not None and res.anchor_fit_cost > 0.0
+        assert res.anchor_penalty > 0.0
+    assert fit(clean, hist, replace(s, anchor_weight=0.0)).anchor_fit_cost is None
