@@ -14,6 +14,7 @@ FORBIDDEN: dict[str, tuple[str, ...]] = {
     "model": ("store", "workflows", "cli", "api", "estimate", "calibrate", "client"),
     "estimate": ("store", "workflows", "cli", "api", "calibrate", "client"),
     "calibrate": ("store", "workflows", "cli", "api", "estimate", "client"),
+    "inputs": ("store", "workflows", "cli", "api", "estimate", "calibrate", "client"),
     "store": ("workflows", "cli", "api", "client"),
     "workflows": ("cli", "api"),
     "hedge": ("store", "workflows", "cli", "api", "estimate", "calibrate", "client"),

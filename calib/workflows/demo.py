@@ -35,13 +35,14 @@ from pathlib import Path
 from typing import Any
 
 from calib.errors import DemoDirectoryError, ParameterError, RunNotFittedError
+from calib.inputs.files import FileKind
 from calib.store.engine import Store, begin_write, store_for
 from calib.store.estimates import EstimateRecord
 from calib.store.migrate import upgrade
 from calib.store.quotes import add_commodity
 from calib.workflows import compare as compare_out
 from calib.workflows.estimates import MIN_DAYS, estimate
-from calib.workflows.ingest import Kind, ingest_file
+from calib.workflows.ingest import ingest_file
 from calib.workflows.report import CAUTIONS
 from calib.workflows.run_compare import Selection, compare_runs
 from calib.workflows.run_report import write_report
@@ -266,7 +267,7 @@ def run_demo(
     with store_for(db_url) as store:
         upgrade(store.engine)
         _register(store, scenario)
-        order: tuple[Kind, ...] = ("futures", "rates", "options")  # options check both others
+        order: tuple[FileKind, ...] = ("futures", "rates", "options")  # options check both others
         for kind in order:
             report = ingest_file(store.sessions, paths[kind], kind, user=USER)
             progress(
