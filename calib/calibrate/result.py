@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import math
 from dataclasses import dataclass
 from typing import Any
 
@@ -180,7 +181,8 @@ class CalibrationResult:
         )
 
     def to_dict(self) -> dict[str, Any]:
-        """Plain values (lists, floats, strings) for JSON."""
+        """Plain values (lists, floats, strings) for JSON; a standard error that is not finite
+        (a parameter not identified) is ``None``."""
         return {
             "params": self.params.to_dict(),
             "buckets": [
@@ -190,7 +192,13 @@ class CalibrationResult:
                     "params": b.params.to_dict(),
                     "std_errors": None
                     if b.std_errors is None
-                    else dict(zip(("sigma_spot", "sigma_yield", "rho"), b.std_errors, strict=True)),
+                    else dict(
+                        zip(
+                            ("sigma_spot", "sigma_yield", "rho"),
+                            (_finite(v) for v in b.std_errors),
+                            strict=True,
+                        )
+                    ),
                     "yield_set_by": b.yield_set_by,
                 }
                 for b in self.buckets
@@ -228,8 +236,13 @@ class CalibrationResult:
             "anchor_fit_cost": self.anchor_fit_cost,
             "not_identified": list(self.not_identified),
             "not_identified_reason": self.not_identified_reason,
-            "residual_variance": self.residual_variance,
+            "residual_variance": _finite(self.residual_variance),
         }
+
+
+def _finite(x: float) -> float | None:
+    """``x``, or ``None`` where JSON has no number (a parameter not identified: ``inf``)."""
+    return x if math.isfinite(x) else None
 
 
 @dataclass(frozen=True, slots=True)

@@ -216,6 +216,15 @@ def _baw_critical(K: float, tau: float, r: float, vol: float) -> float:
     return s
 
 
+def _interpolate_root(interp: FloatArray, h: FloatArray, out: FloatArray) -> None:
+    """``out[a] = sqrt(max(interp[a] @ h, 0))``; node 0 (``h = 0``) is left out."""
+    for a in range(interp.shape[0]):
+        acc = 0.0
+        for j in range(1, h.size):
+            acc += interp[a, j] * h[j]
+        out[a] = math.sqrt(acc) if acc > 0.0 else 0.0
+
+
 def _sweep(
     bnd: FloatArray,
     h: FloatArray,
@@ -234,11 +243,7 @@ def _sweep(
     for i in range(1, n + 1):
         lb = math.log(bnd[i] / K)
         h[i] = lb * lb
-    for a in range(n * nl):
-        acc = 0.0
-        for j in range(1, n + 1):
-            acc += interp_b[a, j] * h[j]
-        root_h[a] = math.sqrt(acc) if acc > 0.0 else 0.0
+    _interpolate_root(interp_b, h, root_h)
     for i in range(1, n + 1):
         b = bnd[i]
         st = vol * sqrt_t * c[i]
@@ -310,9 +315,10 @@ def _put_boundary(
 
 
 def _work_size(tab: Tables) -> int:
-    """Scratch for :func:`_put_value`: the nodes twice, the fine quadrature's points twice."""
+    """Scratch for :func:`_put_value`: the nodes twice, the fine quadrature's points twice
+    and the premium's points."""
     n = tab[0].size - 1
-    return 2 * (n + 1) + 2 * n * tab[1].size
+    return 2 * (n + 1) + 2 * n * tab[1].size + tab[4].size
 
 
 def _put_value(
@@ -360,11 +366,10 @@ def _put_value(
     eep_delta = 0.0 if want_delta else np.nan
     log_sk = math.log(S / K)
     rt = r * T
+    roots = work[work.size - halfp.size :]  # ln(K / B(u)) at the premium's points
+    _interpolate_root(interp_p, h, roots)
     for k in range(halfp.size):
-        acc = 0.0
-        for j in range(1, n + 1):
-            acc += interp_p[k, j] * h[j]
-        root = math.sqrt(acc) if acc > 0.0 else 0.0  # ln(K / B(u))
+        root = roots[k]
         s_k = st * halfp[k]
         weight = wp[k] * halfp[k] * rt * math.exp(-rt * halfp[k] * halfp[k])
         dm = (log_sk + root) / s_k - 0.5 * s_k
@@ -382,6 +387,10 @@ def _put_value(
 _ncdf = numba.njit(cache=True, error_model="numpy")(_ncdf)
 _european_put = numba.njit(cache=True, error_model="numpy")(_european_put)
 _baw_critical = numba.njit(cache=True, error_model="numpy")(_baw_critical)
+# reassociating the sums lets them vectorise; the boundary changes by rounding only
+_interpolate_root = numba.njit(cache=True, fastmath={"reassoc", "contract"}, error_model="numpy")(
+    _interpolate_root
+)
 _sweep = numba.njit(cache=True, error_model="numpy")(_sweep)
 _weights = numba.njit(cache=True, error_model="numpy")(_weights)
 _work_size = numba.njit(cache=True, error_model="numpy")(_work_size)
