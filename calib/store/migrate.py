@@ -13,6 +13,8 @@ anything else goes through Alembic itself.
 from __future__ import annotations
 
 import re
+from collections.abc import Iterator
+from contextlib import contextmanager
 from dataclasses import dataclass
 from pathlib import Path
 from typing import TYPE_CHECKING
@@ -20,7 +22,12 @@ from typing import TYPE_CHECKING
 from sqlalchemy import Connection, Engine, text
 from sqlalchemy.exc import DBAPIError
 
-from calib.errors import SchemaTooNewError, StoreNotInitialisedError, StoreOutdatedError
+from calib.errors import (
+    SchemaTooNewError,
+    StoreNotInitialisedError,
+    StoreOutdatedError,
+    StoreUnavailableError,
+)
 from calib.store.engine import sqlite_file
 
 if TYPE_CHECKING:
@@ -125,7 +132,7 @@ def upgrade(engine: Engine, revision: str = "head") -> UpgradeResult:
     path = sqlite_file(engine.url)
     if path is not None:
         path.parent.mkdir(parents=True, exist_ok=True)
-    with engine.begin() as connection:
+    with _migrating(engine) as connection:
         before = current_revision(connection)
         if before is not None and not _known(before):
             raise SchemaTooNewError(before, head_revision())
@@ -135,11 +142,44 @@ def upgrade(engine: Engine, revision: str = "head") -> UpgradeResult:
     return UpgradeResult(before=before, after=after)
 
 
+@contextmanager
+def _migrating(engine: Engine) -> Iterator[Connection]:
+    """One transaction for a schema change; on SQLite with foreign keys enforced only at the end.
+
+    SQLite changes a table's constraints by rebuilding it (copy, drop, rename: Alembic's batch
+    mode), and with ``foreign_keys=ON`` dropping a table that other rows reference fails. The
+    procedure of the SQLite documentation ("Making Other Kinds Of Table Schema Changes",
+    lang_altertable.html) is followed: foreign keys off outside the transaction, the change,
+    ``PRAGMA foreign_key_check`` before the commit (a violation rolls everything back), foreign
+    keys on again.
+    """
+    with engine.connect() as connection:
+        if connection.dialect.name != "sqlite":
+            with connection.begin():
+                yield connection
+            return
+        raw = connection.connection.driver_connection
+        assert raw is not None
+        raw.execute("PRAGMA foreign_keys=OFF")  # no effect inside a transaction: set before it
+        try:
+            with connection.begin():
+                yield connection
+                broken = connection.exec_driver_sql("PRAGMA foreign_key_check").all()
+                if broken:
+                    raise StoreUnavailableError(
+                        engine.url.render_as_string(hide_password=True),
+                        f"the schema change would leave {len(broken)} rows with a broken"
+                        " foreign key; nothing was changed",
+                    )
+        finally:
+            raw.execute("PRAGMA foreign_keys=ON")
+
+
 def downgrade(engine: Engine, revision: str = "base") -> None:
     """Downgrade the database to ``revision`` (default: empty). For tests and repairs."""
     from alembic import command
 
-    with engine.begin() as connection:
+    with _migrating(engine) as connection:
         command.downgrade(alembic_config(connection), revision)
 
 
