@@ -599,3 +599,20 @@ class ApiTokenError(InputError):
     def __init__(self, source: str, reason: str) -> None:
         self.source = source
         super().__init__(self.TEMPLATE.format(source=source, reason=reason))
+
+
+# --- recut: the demo's folder ------------------------------------------------------------------
+
+
+class DemoFolderError(InputError):
+    """A ``calib demo --dir`` the demo did not make and that is not empty: nothing is written
+    or deleted there."""
+
+    TEMPLATE = (
+        "{path} is not empty and has no {marker} (it was not made by calib demo): choose a new "
+        "or empty --dir"
+    )
+
+    def __init__(self, path: str, marker: str) -> None:
+        self.path = path
+        super().__init__(self.TEMPLATE.format(path=path, marker=marker))

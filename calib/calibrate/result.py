@@ -8,55 +8,11 @@ from typing import Any
 from calib.calibrate.quotes import DroppedQuote
 from calib.calibrate.settings import CalibrationSettings
 from calib.model.twofactor import TwoFactorParams
+from calib.record.codec import encode
+from calib.record.fit import BucketVols, ConstraintReport
 from calib.types import FloatArray, IntArray
 
-
-@dataclass(frozen=True, slots=True)
-class BucketVols:
-    """Volatilities in force over calendar years ``[start, end)`` (forward mode: one per bucket)."""
-
-    start: float
-    end: float
-    params: TwoFactorParams
-
-
-@dataclass(frozen=True, slots=True)
-class ConstraintReport:
-    """One constraint at the solution.
-
-    Attributes
-    ----------
-    name : ``psd`` (``|rho| <= 1``), ``decay_bound``, ``yield_floor``, ``spot_cap`` or
-        ``rho_held``.
-    form : the constraint in words and symbols.
-    bucket : forward-mode bucket index, ``None`` for a constant fit.
-    slack : distance to the boundary in natural units (>= 0 when met): ``1 - |rho|``,
-        ``rho kappa s1 - s2``, ``s2 - q s2_hist``, ``cap - s1``; ``None`` for ``rho_held``.
-    binds : whether the constraint is active (slack within 1e-7, or rho held).
-    dual : the multiplier of the final convex sub-problem (objective per unit of the
-        constraint in variance terms), ``None`` where the mode has no conic solve.
-    refit_cost : objective saved by re-fitting without this constraint (in every bucket);
-        ``None`` when not computed (not binding, ``refit_costs`` off, or ``psd``).
-    """
-
-    name: str
-    form: str
-    bucket: int | None
-    slack: float | None
-    binds: bool
-    dual: float | None
-    refit_cost: float | None
-
-    def to_dict(self) -> dict[str, Any]:
-        return {
-            "name": self.name,
-            "form": self.form,
-            "bucket": self.bucket,
-            "slack": self.slack,
-            "binds": self.binds,
-            "dual": self.dual,
-            "refit_cost": self.refit_cost,
-        }
+__all__ = ["BucketVols", "CalibrationResult", "ConstraintReport", "FrontierPoint"]
 
 
 @dataclass(frozen=True, slots=True, eq=False)
@@ -118,39 +74,10 @@ class CalibrationResult:
         )
 
     def to_dict(self) -> dict[str, Any]:
-        """Plain values (lists, floats, strings) for JSON."""
-        return {
-            "params": self.params.to_dict(),
-            "buckets": [
-                {"start": b.start, "end": b.end, "params": b.params.to_dict()} for b in self.buckets
-            ],
-            "quotes": {
-                "index": self.quote_index.tolist(),
-                "label": list(self.labels),
-                "market_price": self.market_price.tolist(),
-                "model_price": self.model_price.tolist(),
-                "market_vol": self.market_vol.tolist(),
-                "model_vol": self.model_vol.tolist(),
-                "price_residual": self.price_residual.tolist(),
-                "vol_residual": self.vol_residual.tolist(),
-                "weight": self.weight.tolist(),
-            },
-            "objective": self.objective,
-            "fit": self.fit,
-            "rmse": self.rmse,
-            "max_error": self.max_error,
-            "constraints": [c.to_dict() for c in self.constraints],
-            "solver": self.solver,
-            "status": self.status,
-            "iterations": self.iterations,
-            "converged": self.converged,
-            "flags": list(self.flags),
-            "settings": self.settings.to_dict(),
-            "historical": self.historical.to_dict(),
-            "dropped": [
-                {"index": d.index, "label": d.label, "reason": d.reason} for d in self.dropped
-            ],
-        }
+        """Plain values (lists, floats, strings) for JSON: every field, by name
+        (:func:`calib.record.codec.encode`). What a run stores of it is
+        :class:`~calib.record.fit.FitRecord`."""
+        return encode(self)  # type: ignore[no-any-return]
 
 
 @dataclass(frozen=True, slots=True)

@@ -32,8 +32,8 @@ from calib.cli.common import (
     echo_json,
     open_store,
 )
+from calib.policy.settings import load_settings
 from calib.workflows import backfill as flow
-from calib.workflows.runs import load_settings
 
 EXIT_SOME_FAILED = 1
 FAILURES_LISTED = 20
@@ -133,7 +133,7 @@ def backfill_cmd(
                 commodity,
                 start.date(),
                 end.date(),
-                user=program.user,
+                by=program.user,
                 settings=settings,
                 estimate_id=estimate_id,
                 workers=workers,

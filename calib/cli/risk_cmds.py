@@ -19,11 +19,11 @@ from calib.cli.common import DbOption, JsonOption, echo_json, open_store
 from calib.cli.run_cmds import _progress
 from calib.errors import BandOptionError
 from calib.model.twofactor import PARAM_NAMES
-from calib.workflows import compare as compare_out
-from calib.workflows.compare import Band, Bands
+from calib.output import compare as compare_out
+from calib.output.compare import Band, Bands
+from calib.workflows.compare import Selection, compare_runs
 from calib.workflows.demo import QUICK_PLAN, DemoPlan, DemoSummary, run_demo
-from calib.workflows.run_compare import Selection, compare_runs
-from calib.workflows.run_report import write_report
+from calib.workflows.report import write_report
 
 DEFAULT_DEMO_DIR = Path("demo-out")
 """Where ``calib demo`` writes by default (under the working folder; git-ignored)."""
@@ -49,6 +49,8 @@ def report_cmd(
     futures curve and vol term structure, anchor frontier, constraints, gates, inputs)."""
     with open_store(db) as (store, _):
         result = write_report(store.sessions, run_id, out)
+    for note in result.warnings:  # one plain line each; the page shows them too
+        typer.echo(f"warning: {note}", err=True)
     if as_json:
         echo_json(result.to_dict())
     else:
@@ -135,7 +137,9 @@ def compare_cmd(
         written["csv"] = str(compare_out.write_csv(table, csv_file))
     if plot_file is not None:
         title = f"{commodity}: calibrated against historical ({selection.rule})"
-        written["plot"] = str(compare_out.plot(table, plot_file, title=title))
+        written["plot"] = str(
+            compare_out.plot(table, plot_file, title=title, span=(selection.start, selection.end))
+        )
     if as_json:
         echo_json(
             {

@@ -25,17 +25,20 @@ from calib.cli.common import (
     open_store,
 )
 from calib.model.twofactor import PARAM_NAMES
+from calib.policy.settings import load_settings
 from calib.store.estimates import EstimateRecord, list_estimates
 from calib.store.runs import (
     RunRecord,
     approved_history,
-    latest_approved,
     list_runs,
+    read_in_force,
     require_run,
     run_residuals,
 )
+from calib.workflows import approve as approve_flow
 from calib.workflows import estimates as estimate_flow
-from calib.workflows import runs as run_flow
+from calib.workflows import fit as fit_flow
+from calib.workflows import rerun as rerun_flow
 
 EXIT_FIT_FAILED = 1
 EXIT_RERUN_DIFFERS = 1
@@ -52,6 +55,12 @@ Commodity = Annotated[str, typer.Argument(help="Commodity code.", metavar="COMMO
 RunId = Annotated[int, typer.Argument(help="Run id.", metavar="RUN")]
 ByOpt = Annotated[str, typer.Option("--by", help="Who decides (recorded on the event).")]
 NoteOpt = Annotated[str, typer.Option("--note", help="Why (recorded on the event).")]
+CreatorOpt = Annotated[
+    str | None,
+    typer.Option(
+        "--by", help="Recorded as the run's creator; default $CALIB_USER, else the login name."
+    ),
+]
 
 
 def register(app: typer.Typer) -> None:
@@ -200,23 +209,23 @@ def _print_run(run: RunRecord) -> None:
         f"run {run.run_id}: {run.commodity} {run.trade_date}, {run.mode} mode, "
         f"estimate {run.estimate_id}: {run.status.upper()}"
     )
-    if run.params is None:
+    d = run.fit
+    if d is None:
         typer.echo(f"  fit failed: {run.failure_reason}")
         return
-    d = run.diagnostics
-    unit = "Black vol, decimal" if d["error_measure"] == "vol" else "premium, currency"
+    unit = "Black vol, decimal" if d.error_measure == "vol" else "premium, currency"
     typer.echo(
-        f"  fit: rmse {d['rmse']:.4g}, max error {d['max_error']:.4g} ({unit}); "
-        f"{d['n_quotes']} quotes, {len(d['dropped'])} dropped; {d['solver']} {d['status']}, "
-        f"{d['iterations']} iterations{'; flags ' + ', '.join(d['flags']) if d['flags'] else ''}"
+        f"  fit: rmse {d.rmse:.4g}, max error {d.max_error:.4g} ({unit}); "
+        f"{d.n_quotes} quotes, {len(d.dropped)} dropped; {d.solver} {d.status}, "
+        f"{d.iterations} iterations{'; flags ' + ', '.join(d.flags) if d.flags else ''}"
     )
-    typer.echo(f"  binding constraints: {', '.join(d['binding']) or 'none'}")
-    typer.echo("  " + _params_line(run.params.to_dict()))
+    typer.echo(f"  binding constraints: {', '.join(d.binding) or 'none'}")
+    typer.echo("  " + _params_line(d.params.to_dict()))
     if run.approved_at is not None:
         typer.echo(f"  approved {run.approved_at:%Y-%m-%d %H:%M:%S} by {run.approved_by}")
 
 
-def _print_fit(outcome: run_flow.FitOutcome) -> None:
+def _print_fit(outcome: fit_flow.FitOutcome) -> None:
     run = outcome.run
     _print_run(run)
     if run.params is None:
@@ -231,7 +240,7 @@ def _print_fit(outcome: run_flow.FitOutcome) -> None:
         for n in ("sigma_spot", "sigma_yield", "rho"):
             c = change[n]
             typer.echo(f"  {n:<12} {c['approved']:.6g} -> {c['new']:.6g}  ({c['change']:+.4g})")
-    _print_gates(outcome.gates)
+    _print_gates([g.to_dict() for g in outcome.gates])
     if outcome.auto_approved:
         typer.echo("every gate passed: approved")
 
@@ -246,6 +255,7 @@ def fit_cmd(
     auto_approve: Annotated[
         bool, typer.Option("--auto-approve", help="Approve if every gate passes.")
     ] = False,
+    by: CreatorOpt = None,
     db: DbOption = None,
     as_json: JsonOption = False,
 ) -> None:
@@ -253,13 +263,13 @@ def fit_cmd(
 
     Exit code 1 when the fit failed (stored as a rejected run with its reason).
     """
-    settings = run_flow.load_settings(settings_file, commodity)
+    settings = load_settings(settings_file, commodity)
     with open_store(db) as (store, program):
-        outcome = run_flow.fit_day(
+        outcome = fit_flow.fit_day(
             store.sessions,
             commodity,
             trade_date.date(),
-            user=program.user,
+            by=by or program.user,
             settings=settings,
             estimate_id=estimate_id,
             auto_approve=auto_approve,
@@ -277,7 +287,7 @@ def approve_cmd(
 ) -> None:
     """Approve a candidate run; the commodity's previous approved set becomes superseded."""
     with open_store(db) as (store, _):
-        result = run_flow.approve(store.sessions, run_id, by=by, note=note)
+        result = approve_flow.approve(store.sessions, run_id, by=by, note=note)
     if as_json:
         echo_json({**result.run.to_dict(), "superseded_run_id": result.superseded})
         return
@@ -291,7 +301,7 @@ def reject_cmd(
 ) -> None:
     """Reject a candidate run."""
     with open_store(db) as (store, _):
-        run = run_flow.reject(store.sessions, run_id, by=by, note=note)
+        run = approve_flow.reject(store.sessions, run_id, by=by, note=note)
     if as_json:
         echo_json(run.to_dict())
     else:
@@ -324,7 +334,7 @@ def runs_cmd(
     if not runs:
         typer.echo(f"{commodity}: no runs stored")
     for r in runs:
-        quality = f"rmse {r.diagnostics['rmse']:.3g}" if r.params is not None else "failed"
+        quality = f"rmse {r.fit.rmse:.3g}" if r.fit is not None else "failed"
         values = r.params.to_dict() if r.params is not None else {}
         typer.echo(
             f"{r.run_id:>5}  {r.trade_date}  {r.status:<10}  {quality:<12}  "
@@ -348,11 +358,11 @@ def show_cmd(run_id: RunId, db: DbOption = None, as_json: JsonOption = False) ->
         )
         return
     _print_run(run)
-    if run.params is not None:
-        _print_gates(list(run.diagnostics.get("gates", [])))
+    if run.fit is not None:
+        _print_gates([g.to_dict() for g in run.fit.gates])
     typer.echo("events:")
     for e in run.events:
-        typer.echo(f"  {e.at:%Y-%m-%d %H:%M:%S}  {e.to_status:<10} by {e.actor}: {e.note}")
+        typer.echo(f"  {e.at:%Y-%m-%d %H:%M:%S}  {e.to_status:<10} by {e.by}: {e.note}")
     if len(residuals):
         typer.echo("residuals (vol points, model - market):")
         for q, v in zip(residuals["quote_id"], residuals["vol_residual"], strict=True):
@@ -377,12 +387,13 @@ def latest_cmd(
     as_json: JsonOption = False,
 ) -> None:
     """The approved parameter set in force (exit code 2 if there is none)."""
-    with open_store(db) as (store, _), store.sessions.begin() as session:
+    with open_store(db) as (store, _):
         if history:
-            approvals = approved_history(session=session, commodity=commodity)
+            with store.sessions.begin() as session:
+                approvals = approved_history(session=session, commodity=commodity)
             run = None
         else:
-            run = latest_approved(session=session, commodity=commodity, as_of=as_utc(as_of))
+            run = read_in_force(store.sessions, commodity, as_of=as_utc(as_of))
     if history:
         if as_json:
             echo_json([a.to_dict() for a in approvals])
@@ -412,7 +423,7 @@ def rerun_cmd(run_id: RunId, db: DbOption = None, as_json: JsonOption = False) -
     Exit code 1 if the parameters differ.
     """
     with open_store(db) as (store, _):
-        result = run_flow.rerun(store.sessions, run_id)
+        result = rerun_flow.rerun(store.sessions, run_id)
     if as_json:
         echo_json(result.to_dict())
     elif result.identical:

@@ -1,0 +1,1 @@
+"""Output layer: what calib shows people (HTML pages, figures, tables, terminal text)."""
