@@ -9,7 +9,7 @@ PY     := $(VENV)/bin/python
 DEV    := $(VENV)/.stamp-dev
 APP    := $(VENV)/.stamp-app
 
-.PHONY: demo test lint typecheck unit bench clean
+.PHONY: demo test lint typecheck unit browser bench clean
 
 $(PY):
 	$(PYTHON) -m venv $(VENV)
@@ -38,8 +38,12 @@ unit: $(DEV)
 
 test: lint typecheck unit
 
+# the tests that drive Debian's Chromium (installed by .ci/run); screenshots in test-artefacts/
+browser: $(DEV)
+	$(PY) -m pytest -q tests/browser tests/workflows/test_report.py -k "browser or chromium"
+
 bench: $(DEV)
 	$(PY) -m bench
 
 clean:
-	rm -rf $(VENV) .mypy_cache .ruff_cache .pytest_cache .hypothesis
+	rm -rf $(VENV) .mypy_cache .ruff_cache .pytest_cache .hypothesis test-artefacts

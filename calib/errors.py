@@ -3,9 +3,17 @@
 User mistakes (bad files, bad settings, unknown names) are :class:`InputError` subclasses and
 are printed by the CLI as one clear line, never as a traceback. Numerical failures name the
 cause. Tests match on the messages with ``pytest.raises(..., match=...)``.
+
+An error with a message template is a dataclass: its fields are its constructor's arguments
+(in order) and its attributes, and its message is ``TEMPLATE`` filled with them
+(:class:`TemplatedError`). A class whose message needs a field worked out first overrides
+:meth:`TemplatedError.fill`.
 """
 
 from __future__ import annotations
+
+from dataclasses import dataclass, fields
+from typing import Any, ClassVar
 
 
 class CalibError(Exception):
@@ -16,6 +24,24 @@ class CalibWarning(UserWarning):
     """Base of every calib warning."""
 
 
+@dataclass(eq=False, repr=False)
+class TemplatedError(Exception):
+    """Mixin: the message is ``TEMPLATE`` formatted with the dataclass fields (see the module)."""
+
+    TEMPLATE: ClassVar[str] = ""
+
+    def fill(self) -> dict[str, Any]:
+        """The values ``TEMPLATE`` is formatted with; by default the fields as given."""
+        return {f.name: getattr(self, f.name) for f in fields(self)}
+
+    def __post_init__(self) -> None:
+        Exception.__init__(self, self.TEMPLATE.format(**self.fill()))
+
+    def __reduce__(self) -> tuple[Any, ...]:
+        # rebuilt from the fields (e.g. across a worker process), not from the message
+        return (type(self), tuple(getattr(self, f.name) for f in fields(self)))
+
+
 # --- user input -------------------------------------------------------------------------------
 
 
@@ -23,27 +49,23 @@ class InputError(CalibError):
     """A user mistake: bad file, bad option, bad value. Printed without a traceback."""
 
 
-class ParameterError(InputError, ValueError):
+@dataclass(eq=False, repr=False)
+class ParameterError(TemplatedError, InputError, ValueError):
     """A parameter value outside its domain (e.g. ``kappa <= 0``)."""
 
-    TEMPLATE = "{name} = {value!r} is invalid: {reason}"
-
-    def __init__(self, name: str, value: object, reason: str) -> None:
-        self.name = name
-        self.value = value
-        self.reason = reason
-        super().__init__(self.TEMPLATE.format(name=name, value=value, reason=reason))
+    TEMPLATE: ClassVar[str] = "{name} = {value!r} is invalid: {reason}"
+    name: str
+    value: object
+    reason: str
 
 
-class ImpliedVolError(InputError, ValueError):
+@dataclass(eq=False, repr=False)
+class ImpliedVolError(TemplatedError, InputError, ValueError):
     """A premium from which no implied volatility exists (outside the no-arbitrage bounds)."""
 
-    TEMPLATE = "no implied volatility for premium {premium!r}: {reason}"
-
-    def __init__(self, premium: float, reason: str) -> None:
-        self.premium = premium
-        self.reason = reason
-        super().__init__(self.TEMPLATE.format(premium=premium, reason=reason))
+    TEMPLATE: ClassVar[str] = "no implied volatility for premium {premium!r}: {reason}"
+    premium: float
+    reason: str
 
 
 # --- Black-76 implied volatility (numeric core) ---------------------------------------------
@@ -64,73 +86,65 @@ IMPLIED_VOL_REASONS: dict[str, str] = {
 # --- calibration ------------------------------------------------------------------------------
 
 
+@dataclass(eq=False, repr=False)
 class SettingError(ParameterError):
     """A calibration setting outside its domain (e.g. ``yield_floor = 1.5``)."""
 
 
-class QuoteError(InputError, ValueError):
+@dataclass(eq=False, repr=False)
+class QuoteError(TemplatedError, InputError, ValueError):
     """Option quotes that cannot be used as given (shapes, signs, missing fields)."""
 
-    TEMPLATE = "option quotes: {field} {reason}"
-
-    def __init__(self, field: str, reason: str) -> None:
-        self.field = field
-        self.reason = reason
-        super().__init__(self.TEMPLATE.format(field=field, reason=reason))
+    TEMPLATE: ClassVar[str] = "option quotes: {field} {reason}"
+    field: str
+    reason: str
 
 
-class TooFewQuotesError(InputError):
+@dataclass(eq=False, repr=False)
+class TooFewQuotesError(TemplatedError, InputError):
     """Fewer usable quotes than the calibration mode has free parameters."""
 
-    TEMPLATE = (
+    TEMPLATE: ClassVar[str] = (
         "only {usable} usable option quote(s) of {total}, {mode} mode needs at least {needed}"
         "{dropped}"
     )
+    usable: int
+    total: int
+    mode: str
+    needed: int
+    dropped: dict[str, int]
 
-    def __init__(
-        self, usable: int, total: int, mode: str, needed: int, dropped: dict[str, int]
-    ) -> None:
-        self.usable = usable
-        self.needed = needed
-        self.dropped = dict(dropped)
-        why = "; dropped: " + ", ".join(f"{r} ({k})" for r, k in sorted(dropped.items()))
-        super().__init__(
-            self.TEMPLATE.format(
-                usable=usable, total=total, mode=mode, needed=needed, dropped=why if dropped else ""
-            )
-        )
+    def fill(self) -> dict[str, Any]:
+        why = ", ".join(f"{r} ({k})" for r, k in sorted(self.dropped.items()))
+        return {**super().fill(), "dropped": f"; dropped: {why}" if self.dropped else ""}
 
 
-class InfeasibleSettingsError(InputError):
+@dataclass(eq=False, repr=False)
+class InfeasibleSettingsError(TemplatedError, InputError):
     """Constraints that no parameter set can meet together; says which and by how much."""
 
-    TEMPLATE = "calibration constraints conflict: {conflict}"
-
-    def __init__(self, conflict: str, shortfall: float) -> None:
-        self.conflict = conflict
-        self.shortfall = shortfall
-        super().__init__(self.TEMPLATE.format(conflict=conflict))
+    TEMPLATE: ClassVar[str] = "calibration constraints conflict: {conflict}"
+    conflict: str
+    shortfall: float
 
 
-class CalibrationShapeError(InputError, ValueError):
+@dataclass(eq=False, repr=False)
+class CalibrationShapeError(TemplatedError, InputError, ValueError):
     """Quotes that do not fit the shape a re-usable calibrator was built for."""
 
-    TEMPLATE = "calibrator built for {built}, these quotes need {needed}"
+    TEMPLATE: ClassVar[str] = "calibrator built for {built}, these quotes need {needed}"
+    built: str
+    needed: str
 
-    def __init__(self, built: str, needed: str) -> None:
-        super().__init__(self.TEMPLATE.format(built=built, needed=needed))
 
-
-class CalibrationSolverError(CalibError):
+@dataclass(eq=False, repr=False)
+class CalibrationSolverError(TemplatedError, CalibError):
     """The conic solver failed or returned no usable solution; names the solver and status."""
 
-    TEMPLATE = "solver {solver} returned {status}: {cause}"
-
-    def __init__(self, solver: str, status: str, cause: str) -> None:
-        self.solver = solver
-        self.status = status
-        self.cause = cause
-        super().__init__(self.TEMPLATE.format(solver=solver, status=status, cause=cause))
+    TEMPLATE: ClassVar[str] = "solver {solver} returned {status}: {cause}"
+    solver: str
+    status: str
+    cause: str
 
 
 class CalibrationInaccurateWarning(CalibWarning):
@@ -148,71 +162,69 @@ class CalibrationNotConvergedWarning(CalibWarning):
 # --- quote store and ingestion ----------------------------------------------------------------
 
 
-class StoreURLError(InputError):
+@dataclass(eq=False, repr=False)
+class StoreURLError(TemplatedError, InputError):
     """A database URL calib cannot use."""
 
-    TEMPLATE = "database URL {url!r} is not usable: {reason}"
-
-    def __init__(self, url: str, reason: str) -> None:
-        self.url = url
-        self.reason = reason
-        super().__init__(self.TEMPLATE.format(url=url, reason=reason))
+    TEMPLATE: ClassVar[str] = "database URL {url!r} is not usable: {reason}"
+    url: str
+    reason: str
 
 
-class StoreNotInitialisedError(InputError):
+@dataclass(eq=False, repr=False)
+class StoreNotInitialisedError(TemplatedError, InputError):
     """The database holds no calib schema yet."""
 
-    TEMPLATE = "database {url} has no calib schema: run `calib init` first"
-
-    def __init__(self, url: str) -> None:
-        self.url = url
-        super().__init__(self.TEMPLATE.format(url=url))
+    TEMPLATE: ClassVar[str] = "database {url} has no calib schema: run `calib init` first"
+    url: str
 
 
-class StoreOutdatedError(InputError):
+@dataclass(eq=False, repr=False)
+class StoreOutdatedError(TemplatedError, InputError):
     """The database is at an older schema revision than this program."""
 
-    TEMPLATE = "database schema is at revision {found}, this program needs {head}: run `calib init`"
+    TEMPLATE: ClassVar[str] = (
+        "database schema is at revision {found}, this program needs {head}: run `calib init`"
+    )
+    found: str
+    head: str
 
-    def __init__(self, found: str, head: str) -> None:
-        self.found = found
-        self.head = head
-        super().__init__(self.TEMPLATE.format(found=found, head=head))
 
-
-class SchemaTooNewError(InputError):
+@dataclass(eq=False, repr=False)
+class SchemaTooNewError(TemplatedError, InputError):
     """The database was migrated by a newer calib; this program refuses to touch it."""
 
-    TEMPLATE = (
+    TEMPLATE: ClassVar[str] = (
         "database schema is at revision {found}, unknown to this program (newest known: {head});"
         " it was written by a newer calib: upgrade calib, the database was not changed"
     )
-
-    def __init__(self, found: str, head: str) -> None:
-        self.found = found
-        self.head = head
-        super().__init__(self.TEMPLATE.format(found=found, head=head))
+    found: str
+    head: str
 
 
-class IngestFileError(InputError):
+@dataclass(eq=False, repr=False)
+class FileError(TemplatedError, InputError):
+    """A file refused as a whole, nothing stored from it: ``{file}: {reason}``."""
+
+    TEMPLATE: ClassVar[str] = "{file}: {reason}"
+    file: str
+    reason: str
+
+
+class IngestFileError(FileError):
     """A file refused as a whole (unreadable, wrong columns, unknown commodity); nothing stored."""
 
-    TEMPLATE = "{file}: {reason}"
 
-    def __init__(self, file: str, reason: str) -> None:
-        self.file = file
-        self.reason = reason
-        super().__init__(self.TEMPLATE.format(file=file, reason=reason))
-
-
-class UnknownCommodityError(InputError):
+@dataclass(eq=False, repr=False)
+class UnknownCommodityError(TemplatedError, InputError):
     """A commodity code that is not registered."""
 
-    TEMPLATE = "unknown commodity {codes}{hint}"
+    TEMPLATE: ClassVar[str] = "unknown commodity {codes}{hint}"
+    codes: list[str]
+    hint: str = ""
 
-    def __init__(self, codes: list[str], hint: str = "") -> None:
-        self.codes = codes
-        super().__init__(self.TEMPLATE.format(codes=", ".join(map(repr, codes)), hint=hint))
+    def fill(self) -> dict[str, Any]:
+        return {**super().fill(), "codes": ", ".join(map(repr, self.codes))}
 
 
 # File-level refusals (IngestFileError reasons).
@@ -237,8 +249,8 @@ ROW_NOT_KIND = "kind must be call or put: {value!r}"
 ROW_BAD_CODE = "commodity code must be 1-32 letters, digits, '.', '_' or '-': {value!r}"
 ROW_NOT_POSITIVE = "must be > 0: {value!r}"
 ROW_NEGATIVE = "must be >= 0: {value!r}"
-ROW_VOL_RANGE = "implied volatility must be in (0, {high}]: {value!r}"
-ROW_RATE_RANGE = "zero rate must be within +-{limit} (a decimal, not percent): {value!r}"
+ROW_VOL_RANGE = "implied volatility must be in (0, {high:g}]: {value!r}"
+ROW_RATE_RANGE = "zero rate must be within +-{limit:g} (a decimal, not percent): {value!r}"
 ROW_NO_PRICE = "needs a premium or an implied_vol"
 ROW_BEFORE_TRADE = "{value} is before the trade date {trade_date}"
 ROW_NOT_AFTER_TRADE = "{value} is not after the trade date {trade_date}"
@@ -258,15 +270,13 @@ ROW_CONFLICT = "same key as line(s) {lines} with different values"
 ROW_REPEAT = "repeats line {line}"
 
 
-class StoreUnavailableError(CalibError):
+@dataclass(eq=False, repr=False)
+class StoreUnavailableError(TemplatedError, CalibError):
     """The database cannot be reached or used (server down, file locked, disk full)."""
 
-    TEMPLATE = "database {url}: {detail}"
-
-    def __init__(self, url: str, detail: str) -> None:
-        self.url = url
-        self.detail = detail
-        super().__init__(self.TEMPLATE.format(url=url, detail=detail))
+    TEMPLATE: ClassVar[str] = "database {url}: {detail}"
+    url: str
+    detail: str
 
 
 # --- estimation (Kalman-filter maximum likelihood) ---------------------------------------------
@@ -276,106 +286,91 @@ class EstimationDataError(InputError, ValueError):
     """Curves the estimator cannot use; the message names the offending day, slot or size."""
 
 
-class CurveShapeError(EstimationDataError):
+@dataclass(eq=False, repr=False)
+class CurveShapeError(TemplatedError, EstimationDataError):
     """Inputs of inconsistent shapes, or dates that do not increase."""
 
-    TEMPLATE = "curves: {reason}"
-
-    def __init__(self, reason: str) -> None:
-        self.reason = reason
-        super().__init__(self.TEMPLATE.format(reason=reason))
+    TEMPLATE: ClassVar[str] = "curves: {reason}"
+    reason: str
 
 
-class TooFewDaysError(EstimationDataError):
+@dataclass(eq=False, repr=False)
+class TooFewDaysError(TemplatedError, EstimationDataError):
     """Fewer observation days than the estimate needs."""
 
-    TEMPLATE = "need at least {minimum} observation days, got {count}"
-
-    def __init__(self, count: int, minimum: int) -> None:
-        self.count = count
-        self.minimum = minimum
-        super().__init__(self.TEMPLATE.format(count=count, minimum=minimum))
+    TEMPLATE: ClassVar[str] = "need at least {minimum} observation days, got {count}"
+    count: int
+    minimum: int
 
 
-class TooFewContractsError(EstimationDataError):
+@dataclass(eq=False, repr=False)
+class TooFewContractsError(TemplatedError, EstimationDataError):
     """Fewer contract slots than the estimate needs."""
 
-    TEMPLATE = "need at least {minimum} contracts per day, got {count}"
-
-    def __init__(self, count: int, minimum: int) -> None:
-        self.count = count
-        self.minimum = minimum
-        super().__init__(self.TEMPLATE.format(count=count, minimum=minimum))
+    TEMPLATE: ClassVar[str] = "need at least {minimum} contracts per day, got {count}"
+    count: int
+    minimum: int
 
 
-class EmptySlotError(EstimationDataError):
+@dataclass(eq=False, repr=False)
+class EmptySlotError(TemplatedError, EstimationDataError):
     """A contract slot without a single price: its noise cannot be estimated."""
 
-    TEMPLATE = "contract slot {slot} has no price on any day"
-
-    def __init__(self, slot: int) -> None:
-        self.slot = slot
-        super().__init__(self.TEMPLATE.format(slot=slot))
+    TEMPLATE: ClassVar[str] = "contract slot {slot} has no price on any day"
+    slot: int
 
 
-class BadPriceError(EstimationDataError):
+@dataclass(eq=False, repr=False)
+class BadPriceError(TemplatedError, EstimationDataError):
     """A price that is not a positive finite number, or a maturity that is not ahead."""
 
-    TEMPLATE = "{what} {value!r} on day {day} ({date}), slot {slot}: {reason}"
-
-    def __init__(
-        self, what: str, value: float, day: int, date: object, slot: int, reason: str
-    ) -> None:
-        self.day = day
-        self.slot = slot
-        super().__init__(
-            self.TEMPLATE.format(
-                what=what, value=value, day=day, date=date, slot=slot, reason=reason
-            )
-        )
+    TEMPLATE: ClassVar[str] = "{what} {value!r} on day {day} ({date}), slot {slot}: {reason}"
+    what: str
+    value: float
+    day: int
+    date: object
+    slot: int
+    reason: str
 
 
-class FirstCurveError(EstimationDataError):
+@dataclass(eq=False, repr=False)
+class FirstCurveError(TemplatedError, EstimationDataError):
     """The first day cannot start the filter (it needs two prices of distinct maturity)."""
 
-    TEMPLATE = "the first day ({date}) needs at least two prices of distinct maturity, got {count}"
+    TEMPLATE: ClassVar[str] = (
+        "the first day ({date}) needs at least two prices of distinct maturity, got {count}"
+    )
+    date: object
+    count: int
 
-    def __init__(self, date: object, count: int) -> None:
-        self.count = count
-        super().__init__(self.TEMPLATE.format(date=date, count=count))
 
-
-class CurveGapError(EstimationDataError):
+@dataclass(eq=False, repr=False)
+class CurveGapError(TemplatedError, EstimationDataError):
     """Consecutive observation days further apart than the filter is allowed to bridge."""
 
-    TEMPLATE = (
+    TEMPLATE: ClassVar[str] = (
         "gap of {days:g} days between {start} and {end} exceeds the maximum of {maximum:g} days"
     )
+    days: float
+    start: object
+    end: object
+    maximum: float
 
-    def __init__(self, days: float, start: object, end: object, maximum: float) -> None:
-        self.days = days
-        self.maximum = maximum
-        super().__init__(self.TEMPLATE.format(days=days, start=start, end=end, maximum=maximum))
 
-
-class QuoteTableError(EstimationDataError):
+@dataclass(eq=False, repr=False)
+class QuoteTableError(TemplatedError, EstimationDataError):
     """A long futures table that cannot be turned into curves (duplicates, bad columns)."""
 
-    TEMPLATE = "futures table: {reason}"
-
-    def __init__(self, reason: str) -> None:
-        self.reason = reason
-        super().__init__(self.TEMPLATE.format(reason=reason))
+    TEMPLATE: ClassVar[str] = "futures table: {reason}"
+    reason: str
 
 
-class EstimationError(CalibError):
+@dataclass(eq=False, repr=False)
+class EstimationError(TemplatedError, CalibError):
     """Maximum likelihood failed outright (no start gave a finite likelihood)."""
 
-    TEMPLATE = "maximum likelihood failed: {reason}"
-
-    def __init__(self, reason: str) -> None:
-        self.reason = reason
-        super().__init__(self.TEMPLATE.format(reason=reason))
+    TEMPLATE: ClassVar[str] = "maximum likelihood failed: {reason}"
+    reason: str
 
 
 class EstimationWarning(CalibWarning):
@@ -385,125 +380,103 @@ class EstimationWarning(CalibWarning):
 # --- fit reports and compare over time (workflows) --------------------------------------------
 
 
-class ReportInputError(InputError, ValueError):
+@dataclass(eq=False, repr=False)
+class ReportInputError(TemplatedError, InputError, ValueError):
     """Report or compare inputs that do not hang together (lengths, empty series)."""
 
-    TEMPLATE = "cannot build the {what}: {reason}"
-
-    def __init__(self, what: str, reason: str) -> None:
-        self.what = what
-        self.reason = reason
-        super().__init__(self.TEMPLATE.format(what=what, reason=reason))
+    TEMPLATE: ClassVar[str] = "cannot build the {what}: {reason}"
+    what: str
+    reason: str
 
 
 # --- estimates, calibration runs and approvals (storage and workflows) -------------------------
 
 
-class UnknownRunError(InputError):
+@dataclass(eq=False, repr=False)
+class UnknownRunError(TemplatedError, InputError):
     """A calibration run id that is not stored."""
 
-    TEMPLATE = "no calibration run {run_id}"
-
-    def __init__(self, run_id: int) -> None:
-        self.run_id = run_id
-        super().__init__(self.TEMPLATE.format(run_id=run_id))
+    TEMPLATE: ClassVar[str] = "no calibration run {run_id}"
+    run_id: int
 
 
-class UnknownEstimateError(InputError):
+@dataclass(eq=False, repr=False)
+class UnknownEstimateError(TemplatedError, InputError):
     """A historical estimate id that is not stored, or belongs to another commodity."""
 
-    TEMPLATE = "no historical estimate {estimate_id}{detail}"
-
-    def __init__(self, estimate_id: int, detail: str = "") -> None:
-        self.estimate_id = estimate_id
-        super().__init__(self.TEMPLATE.format(estimate_id=estimate_id, detail=detail))
+    TEMPLATE: ClassVar[str] = "no historical estimate {estimate_id}{detail}"
+    estimate_id: int
+    detail: str = ""
 
 
-class NoEstimateError(InputError):
+@dataclass(eq=False, repr=False)
+class NoEstimateError(TemplatedError, InputError):
     """No converged historical estimate to hold the slow parameters at."""
 
-    TEMPLATE = (
+    TEMPLATE: ClassVar[str] = (
         "no converged historical estimate for {commodity}{unconverged}: run `calib estimate` or "
         "`calib estimates import`, or name one with --estimate"
     )
+    commodity: str
+    unconverged: list[int]
 
-    def __init__(self, commodity: str, unconverged: list[int]) -> None:
-        self.commodity = commodity
-        self.unconverged = list(unconverged)
-        extra = f" (not converged: {', '.join(map(str, unconverged))})" if unconverged else ""
-        super().__init__(self.TEMPLATE.format(commodity=commodity, unconverged=extra))
+    def fill(self) -> dict[str, Any]:
+        ids = ", ".join(map(str, self.unconverged))
+        return {**super().fill(), "unconverged": f" (not converged: {ids})" if ids else ""}
 
 
-class NotConvergedEstimateError(InputError):
+@dataclass(eq=False, repr=False)
+class NotConvergedEstimateError(TemplatedError, InputError):
     """An estimate named explicitly that did not converge (never used silently)."""
 
-    TEMPLATE = "historical estimate {estimate_id} did not converge ({message}); it is not used"
+    TEMPLATE: ClassVar[str] = (
+        "historical estimate {estimate_id} did not converge ({message}); it is not used"
+    )
+    estimate_id: int
+    message: str
 
-    def __init__(self, estimate_id: int, message: str) -> None:
-        self.estimate_id = estimate_id
-        super().__init__(self.TEMPLATE.format(estimate_id=estimate_id, message=message))
 
-
-class IllegalTransitionError(InputError):
+@dataclass(eq=False, repr=False)
+class IllegalTransitionError(TemplatedError, InputError):
     """A status change the run's state machine does not allow."""
 
-    TEMPLATE = "run {run_id} is {current}: it cannot become {wanted} (allowed: {allowed})"
+    TEMPLATE: ClassVar[str] = (
+        "run {run_id} is {current}: it cannot become {wanted} (allowed: {allowed})"
+    )
+    run_id: int
+    current: str
+    wanted: str
+    allowed: list[str]
 
-    def __init__(self, run_id: int, current: str, wanted: str, allowed: list[str]) -> None:
-        self.run_id = run_id
-        self.current = current
-        self.wanted = wanted
-        super().__init__(
-            self.TEMPLATE.format(
-                run_id=run_id,
-                current=current,
-                wanted=wanted,
-                allowed=", ".join(allowed) if allowed else "none, it is final",
-            )
-        )
+    def fill(self) -> dict[str, Any]:
+        allowed = ", ".join(self.allowed) if self.allowed else "none, it is final"
+        return {**super().fill(), "allowed": allowed}
 
 
-class EstimateFileError(InputError):
+class EstimateFileError(FileError):
     """An estimate file that cannot be imported; nothing is stored."""
 
-    TEMPLATE = "{file}: {reason}"
 
-    def __init__(self, file: str, reason: str) -> None:
-        self.file = file
-        self.reason = reason
-        super().__init__(self.TEMPLATE.format(file=file, reason=reason))
-
-
-class SettingsFileError(InputError):
+class SettingsFileError(FileError):
     """A settings file (TOML) that cannot be read or holds a bad value."""
 
-    TEMPLATE = "{file}: {reason}"
 
-    def __init__(self, file: str, reason: str) -> None:
-        self.file = file
-        self.reason = reason
-        super().__init__(self.TEMPLATE.format(file=file, reason=reason))
-
-
-class NoQuotesError(InputError):
+@dataclass(eq=False, repr=False)
+class NoQuotesError(TemplatedError, InputError):
     """Nothing stored to fit or estimate from (no run is stored)."""
 
-    TEMPLATE = "{commodity}: {what}"
-
-    def __init__(self, commodity: str, what: str) -> None:
-        self.commodity = commodity
-        self.what = what
-        super().__init__(self.TEMPLATE.format(commodity=commodity, what=what))
+    TEMPLATE: ClassVar[str] = "{commodity}: {what}"
+    commodity: str
+    what: str
 
 
-class InputsChangedError(CalibError):
+@dataclass(eq=False, repr=False)
+class InputsChangedError(TemplatedError, CalibError):
     """Rows a stored run was made from are no longer in the store as recorded."""
 
-    TEMPLATE = "run {run_id}: its stored inputs cannot be rebuilt: {reason}"
-
-    def __init__(self, run_id: int, reason: str) -> None:
-        self.run_id = run_id
-        super().__init__(self.TEMPLATE.format(run_id=run_id, reason=reason))
+    TEMPLATE: ClassVar[str] = "run {run_id}: its stored inputs cannot be rebuilt: {reason}"
+    run_id: int
+    reason: str
 
 
 ESTIMATE_FILE_NOT_JSON = "not a JSON object ({detail})"
@@ -520,15 +493,13 @@ class BackfillRangeError(InputError):
     """A backfill asked for an empty date range or no workers."""
 
 
-class SpreadRequestError(InputError):
+@dataclass(eq=False, repr=False)
+class SpreadRequestError(TemplatedError, InputError):
     """A spread option that cannot be priced from the store as asked (nothing is priced)."""
 
-    TEMPLATE = "{commodity}: {reason}"
-
-    def __init__(self, commodity: str, reason: str) -> None:
-        self.commodity = commodity
-        self.reason = reason
-        super().__init__(self.TEMPLATE.format(commodity=commodity, reason=reason))
+    TEMPLATE: ClassVar[str] = "{commodity}: {reason}"
+    commodity: str
+    reason: str
 
 
 SPREAD_NO_APPROVED = "no approved parameter set (fit and approve a run, or name one with --run)"
@@ -542,77 +513,169 @@ SPREAD_EXPIRY = "the expiry {expiry} must lie after {day} and not after the near
 # --- fit report, compare over stored runs, the demo (workflows) ------------------------------
 
 
-class RunNotFittedError(InputError):
+@dataclass(eq=False, repr=False)
+class RunNotFittedError(TemplatedError, InputError):
     """A run that failed has no fit to report or compare."""
 
-    TEMPLATE = "run {run_id} failed ({reason}): it has no fit to report"
-
-    def __init__(self, run_id: int, reason: str) -> None:
-        self.run_id = run_id
-        self.reason = reason
-        super().__init__(self.TEMPLATE.format(run_id=run_id, reason=reason))
+    TEMPLATE: ClassVar[str] = "run {run_id} failed ({reason}): it has no fit to report"
+    run_id: int
+    reason: str
 
 
-class BandOptionError(InputError):
+@dataclass(eq=False, repr=False)
+class BandOptionError(TemplatedError, InputError):
     """A ``--band-*`` option that is not ``LO,HI`` with two finite numbers, ``LO <= HI``."""
 
-    TEMPLATE = "{option} {value!r}: {reason} (give LO,HI, e.g. 0.8,1.25)"
-
-    def __init__(self, option: str, value: str, reason: str) -> None:
-        self.option = option
-        self.value = value
-        super().__init__(self.TEMPLATE.format(option=option, value=value, reason=reason))
+    TEMPLATE: ClassVar[str] = "{option} {value!r}: {reason} (give LO,HI, e.g. 0.8,1.25)"
+    option: str
+    value: str
+    reason: str
 
 
-class DemoDirectoryError(InputError):
+@dataclass(eq=False, repr=False)
+class DemoDirectoryError(TemplatedError, InputError):
     """The demo's directory holds a store the demo did not make; kept unless ``--fresh``."""
 
-    TEMPLATE = (
+    TEMPLATE: ClassVar[str] = (
         "{path} already exists and is not the demo's: pass --fresh to replace it, or choose "
         "another --dir"
     )
-
-    def __init__(self, path: str) -> None:
-        self.path = path
-        super().__init__(self.TEMPLATE.format(path=path))
+    path: str
 
 
 # --- serving: the pricers' client and the HTTP API ---------------------------------------------
 
 
-class NoApprovedSetError(InputError):
+@dataclass(eq=False, repr=False)
+class NoApprovedSetError(TemplatedError, InputError):
     """A commodity that had no approved parameter set at the time asked for."""
 
-    TEMPLATE = "{commodity}: no approved parameter set {when}"
-
-    def __init__(self, commodity: str, when: str) -> None:
-        self.commodity = commodity
-        super().__init__(self.TEMPLATE.format(commodity=commodity, when=when))
+    TEMPLATE: ClassVar[str] = "{commodity}: no approved parameter set {when}"
+    commodity: str
+    when: str
 
 
-class ApiTokenError(InputError):
+@dataclass(eq=False, repr=False)
+class ApiTokenError(TemplatedError, InputError):
     """An approval token for the HTTP API that cannot be used; the server does not start."""
 
-    TEMPLATE = "approval token {source}: {reason}"
-    MIN_LENGTH = 16
-
-    def __init__(self, source: str, reason: str) -> None:
-        self.source = source
-        super().__init__(self.TEMPLATE.format(source=source, reason=reason))
+    TEMPLATE: ClassVar[str] = "approval token {source}: {reason}"
+    MIN_LENGTH: ClassVar[int] = 16
+    source: str
+    reason: str
 
 
-# --- recut: the demo's folder ------------------------------------------------------------------
+# --- the as_of moment (CLI and HTTP API) -------------------------------------------------------
 
 
-class DemoFolderError(InputError):
+@dataclass(eq=False, repr=False)
+class AsOfError(TemplatedError, InputError, ValueError):
+    """An ``as_of`` that is not a wall-clock time calib reads (:mod:`calib.as_of`)."""
+
+    TEMPLATE: ClassVar[str] = "as of {value!r}: {reason}"
+    value: str
+    reason: str
+
+
+# --- rolling estimates, stability and price uncertainty (issue 15) -----------------------------
+
+
+@dataclass(eq=False, repr=False)
+class PeriodError(TemplatedError, InputError):
+    """A window length or step that is not a whole number of years, months, weeks or days."""
+
+    TEMPLATE: ClassVar[str] = (
+        "{option} {text!r}: expected a positive whole number and a unit y, m, w or d (2y, 1m)"
+    )
+    option: str
+    text: str
+
+
+@dataclass(eq=False, repr=False)
+class RollingRequestError(TemplatedError, InputError):
+    """A rolling re-estimation or stability request that cannot be served as asked."""
+
+    TEMPLATE: ClassVar[str] = "{commodity}: {reason}"
+    commodity: str
+    reason: str
+
+
+ROLLING_NO_WINDOWS = "no window end between {first} and {last} (--from after --to?)"
+ROLLING_ONLY_WITH = "{option} needs --rolling"
+STABILITY_NO_SERIES = (
+    "no rolling series stored (make one: calib estimate {commodity} --rolling ...)"
+)
+STABILITY_UNKNOWN_SERIES = "no rolling series {series_id} of this commodity"
+STABILITY_EMPTY = "rolling series {series_id} holds no estimate yet"
+UNCERTAINTY_NO_COVARIANCE = (
+    "estimate {estimate_id} has no stored covariance (imported, or made before covariances "
+    "were kept): re-estimate it to price its uncertainty"
+)
+
+
+class VanillaRequestError(SpreadRequestError):
+    """A vanilla option that cannot be priced from the store as asked (nothing is priced)."""
+
+
+VANILLA_EXPIRY = "the expiry {expiry} must lie after {day} and not after the delivery {future}"
+VANILLA_STRIKE = "the strike must be a positive number, got {strike}"
+
+
+# --- hedge studies (calib.hedge, workflows.hedge): block kept together for merges ----------------
+
+
+class HedgeRequestError(InputError):
+    """A hedge study that cannot run as asked (nothing is simulated or replayed)."""
+
+    TEMPLATE = "{commodity}: {reason}"
+
+    def __init__(self, commodity: str, reason: str) -> None:
+        self.commodity = commodity
+        self.reason = reason
+        super().__init__(self.TEMPLATE.format(commodity=commodity, reason=reason))
+
+
+HEDGE_OPTION_LEGS = (
+    "name the option's futures: --future D for a vanilla, or --near D1 --far D2 for a spread"
+)
+HEDGE_NO_SET = "no approved parameter set {when} (fit and approve a run, or name one with --run)"
+HEDGE_WORLD_FILE = "world file {path}: {reason}"
+HEDGE_WORLD_RUN = "world run {run_id} has no parameters (it failed)"
+HEDGE_STEPS = "--steps-per-year must be >= 1 and --paths >= 2 (got {steps} and {paths})"
+
+
+# --- American options on futures (numeric core) ---------------------------------------------
+
+AMERICAN_IMPLIED_VOL_REASONS: dict[str, str] = {
+    "BELOW_INTRINSIC": (
+        "the premium is below the undiscounted intrinsic value (an American option can be "
+        "exercised now)"
+    ),
+    "ABOVE_UPPER_BOUND": (
+        "the premium is at or above its upper bound (the futures price for a call, the strike "
+        "for a put)"
+    ),
+    "NON_POSITIVE_INPUT": IMPLIED_VOL_REASONS["NON_POSITIVE_INPUT"],
+    "NO_TIME_VALUE": (
+        "the premium equals the undiscounted intrinsic value, which every volatility up to the "
+        "one at which immediate exercise stops being optimal reproduces"
+    ),
+    "NON_FINITE_INPUT": IMPLIED_VOL_REASONS["NON_FINITE_INPUT"],
+}
+"""Reason phrases of :class:`ImpliedVolError` for American premiums, keyed like Black-76's."""
+
+
+# --- the demo's folder (issue 19) --------------------------------------------------------------
+
+
+@dataclass(eq=False, repr=False)
+class DemoFolderError(TemplatedError, InputError):
     """A ``calib demo --dir`` the demo did not make and that is not empty: nothing is written
     or deleted there."""
 
-    TEMPLATE = (
+    TEMPLATE: ClassVar[str] = (
         "{path} is not empty and has no {marker} (it was not made by calib demo): choose a new "
         "or empty --dir"
     )
-
-    def __init__(self, path: str, marker: str) -> None:
-        self.path = path
-        super().__init__(self.TEMPLATE.format(path=path, marker=marker))
+    path: str
+    marker: str

@@ -20,11 +20,12 @@ FORBIDDEN: dict[str, tuple[str, ...]] = {
     "output": ("store", *_ABOVE_STORE),
     "store": ("policy", "output", *_ABOVE_STORE),
     "workflows": ("cli", "api"),
+    "hedge": ("store", "estimate", "calibrate", "policy", "output", *_ABOVE_STORE),
 }
 """``record`` (the stored-fit contract and its JSON codec) sits just above ``model``;
 ``policy`` (settings file, gates) and ``output`` (what calib shows people) are pure: no
 database; workflows, the CLI and the API use them."""
-NUMERIC = ("model", "estimate", "calibrate")
+NUMERIC = ("model", "estimate", "calibrate", "hedge")
 PURE = ("record", "policy")
 """Packages that never touch the database (``policy`` reads its settings file, so files
 are allowed there)."""

@@ -44,6 +44,7 @@ from fastapi.responses import JSONResponse, Response
 from fastapi.security import HTTPAuthorizationCredentials, HTTPBearer
 
 from calib import __version__
+from calib.api.review import include_review
 from calib.api.schemas import (
     ApprovalBody,
     ApprovedBody,
@@ -208,6 +209,7 @@ def create_app(settings: Settings | None = None, *, token: str | None = None) ->
 
     if token is not None:
         _mount_approval(app, token)
+    include_review(app, settings, token)  # the morning review pages (calib.api.review)
     return app
 
 

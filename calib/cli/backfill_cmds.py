@@ -6,23 +6,13 @@ options); 2 a user mistake, nothing stored.
 
 from __future__ import annotations
 
+import time
+from collections.abc import Callable
 from contextlib import nullcontext
 from datetime import datetime
-from typing import Annotated
+from typing import TYPE_CHECKING, Annotated
 
 import typer
-from rich.console import Console
-from rich.progress import (
-    BarColumn,
-    MofNCompleteColumn,
-    Progress,
-    ProgressColumn,
-    Task,
-    TextColumn,
-    TimeElapsedColumn,
-    TimeRemainingColumn,
-)
-from rich.text import Text
 
 from calib.cli.common import (
     DbOption,
@@ -32,8 +22,11 @@ from calib.cli.common import (
     echo_json,
     open_store,
 )
-from calib.policy.settings import load_settings
-from calib.workflows import backfill as flow
+
+if TYPE_CHECKING:
+    from rich.progress import Progress
+
+    from calib.workflows import backfill as flow
 
 EXIT_SOME_FAILED = 1
 FAILURES_LISTED = 20
@@ -44,38 +37,55 @@ def register(app: typer.Typer) -> None:
     app.command("backfill")(backfill_cmd)
 
 
-class _Rate(ProgressColumn):
-    """Days stored per second."""
-
-    def render(self, task: Task) -> Text:
-        speed = task.finished_speed or task.speed
-        return Text("-- days/s" if speed is None else f"{speed:.1f} days/s")
+def rate_text(days: int, seconds: float) -> str:
+    """Days stored per second so far: the average since the start, never a burst estimate."""
+    return "-- days/s" if days < 1 or seconds <= 0 else f"{days / seconds:.1f} days/s"
 
 
 class _Bar:
-    """A progress bar on stderr: days done, rate, elapsed and remaining time."""
+    """A progress bar on stderr: days done, rate, elapsed and remaining time.
 
-    def __init__(self) -> None:
-        self.bar = Progress(
+    ``clock`` (seconds, monotonic) is the bar's time source; tests pass a fake one.
+    """
+
+    def __init__(self, clock: Callable[[], float] = time.monotonic) -> None:
+        from rich.console import Console
+        from rich.progress import (
+            BarColumn,
+            MofNCompleteColumn,
+            Progress,
+            TextColumn,
+            TimeElapsedColumn,
+            TimeRemainingColumn,
+        )
+
+        self.clock = clock
+        self.started = clock()
+        self.done = 0
+        self.bar: Progress = Progress(
             TextColumn("backfill"),
             BarColumn(),
             MofNCompleteColumn(),
-            _Rate(),
+            TextColumn("{task.fields[rate]}"),
             TimeElapsedColumn(),
             TextColumn("eta"),
             TimeRemainingColumn(),
             console=Console(stderr=True),
             transient=False,
+            get_time=clock,
         )
-        self.task = self.bar.add_task("backfill", total=None)
+        self.task = self.bar.add_task("backfill", total=None, rate=rate_text(0, 0.0))
 
     def start(self, total: int, skipped: int) -> None:
         if skipped:
             self.bar.console.print(f"{skipped} day(s) already fitted with these settings: skipped")
+        self.started = self.clock()
         self.bar.update(self.task, total=total)
 
     def advance(self, day: flow.BackfillDay) -> None:
-        self.bar.advance(self.task)
+        self.done += 1
+        rate = rate_text(self.done, self.clock() - self.started)
+        self.bar.update(self.task, advance=1, rate=rate)
 
 
 def _print_report(report: flow.BackfillReport) -> None:
@@ -124,6 +134,9 @@ def backfill_cmd(
     Days already fitted with the same estimate and settings are skipped, so an interrupted
     backfill resumes where it stopped. Exit code 1 if any day failed.
     """
+    from calib.workflows import backfill as flow
+    from calib.policy.settings import load_settings
+
     settings = load_settings(settings_file, commodity)
     with open_store(db) as (store, program):
         bar = None if as_json else _Bar()

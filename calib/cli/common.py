@@ -10,17 +10,18 @@ from __future__ import annotations
 import json
 from collections.abc import Iterator
 from contextlib import contextmanager
-from datetime import UTC, date, datetime
+from datetime import date, datetime
 from pathlib import Path
-from typing import Annotated, Any
+from typing import TYPE_CHECKING, Annotated, Any
 
 import typer
-from sqlalchemy.exc import OperationalError
 
-from calib.errors import StoreUnavailableError
+from calib.as_of import AS_OF_HELP, parse_as_of
+from calib.errors import AsOfError, StoreUnavailableError
 from calib.settings import Settings, get_settings
-from calib.store.engine import Store, store_for
-from calib.store.migrate import check_current
+
+if TYPE_CHECKING:
+    from calib.store.engine import Store
 
 DbOption = Annotated[
     str | None,
@@ -32,20 +33,36 @@ DbOption = Annotated[
     ),
 ]
 JsonOption = Annotated[bool, typer.Option("--json", help="Print the result as JSON.")]
-AS_OF_FORMATS = ["%Y-%m-%d", "%Y-%m-%dT%H:%M:%S", "%Y-%m-%dT%H:%M:%S%z"]
-"""Accepted forms of an ``--as-of`` time (UTC unless a zone is given)."""
 
 
-def as_utc(value: datetime | None) -> datetime | None:
-    """An ``--as-of`` time with its zone: naive times are taken as UTC."""
-    if value is not None and value.tzinfo is None:
-        return value.replace(tzinfo=UTC)
-    return value
+def _as_of(text: str) -> datetime:
+    try:
+        return parse_as_of(text)
+    except AsOfError as exc:  # typer names the option; the reason follows
+        raise typer.BadParameter(f"{exc.value!r}: {exc.reason}") from None
+
+
+AsOfOption = Annotated[
+    datetime | None,
+    typer.Option(
+        "--as-of",
+        metavar="TIME",
+        parser=_as_of,
+        help=f"{AS_OF_HELP}; default now.",
+        show_default=False,
+    ),
+]
+"""``--as-of TIME``: parsed by :func:`calib.as_of.parse_as_of` to a UTC datetime."""
 
 
 SettingsOption = Annotated[
     Path | None,
-    typer.Option("--settings", help="TOML: [calibration] and [gates] tables.", show_default=False),
+    typer.Option(
+        "--settings",
+        metavar="TOML",
+        help="Settings file (TOML) with [calibration] and [gates] tables.",
+        show_default=False,
+    ),
 ]
 EstimateOption = Annotated[
     int | None,
@@ -63,10 +80,16 @@ def open_store(db: str | None, *, check: bool = True) -> Iterator[tuple[Store, S
     (:func:`calib.store.migrate.check_current`). A database that cannot be reached raises
     :class:`~calib.errors.StoreUnavailableError` (one line, no traceback).
     """
+    from sqlalchemy.exc import OperationalError
+
+    from calib.store.engine import store_for
+
     settings = get_settings(db)
     with store_for(settings.db_url) as store:
         try:
             if check:
+                from calib.store.migrate import check_current
+
                 check_current(store.engine)
             yield store, settings
         except OperationalError as exc:

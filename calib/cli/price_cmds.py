@@ -7,18 +7,35 @@ after the near delivery, unknown run, ...), nothing priced.
 from __future__ import annotations
 
 from datetime import datetime
-from typing import Annotated, Literal
+from typing import TYPE_CHECKING, Annotated, Literal
 
 import typer
 
 from calib.cli.common import DbOption, JsonOption, echo_json, open_store
-from calib.workflows import pricing as flow
+from calib.cli.stability_cmds import (
+    DrawsOption,
+    PricingDayOption,
+    PricingRunOption,
+    SeriesOption,
+    UncertaintyOption,
+    print_uncertainty,
+    vanilla_cmd,
+    with_uncertainty,
+)
+
+if TYPE_CHECKING:
+    from calib.workflows import pricing as flow
 
 price_app = typer.Typer(
     name="price",
     help="Price options from the approved parameter set (or a named run).",
     no_args_is_help=True,
+    rich_markup_mode=None,
 )
+MC_PATHS = 200_000
+"""Default of ``--paths``: ``calib.workflows.pricing.MC_PATHS`` (a test keeps them equal)."""
+MC_SEED = 20310106
+"""Default of ``--seed``: ``calib.workflows.pricing.MC_SEED`` (a test keeps them equal)."""
 
 Day = Annotated[datetime, typer.Option(formats=["%Y-%m-%d"])]
 
@@ -26,6 +43,7 @@ Day = Annotated[datetime, typer.Option(formats=["%Y-%m-%d"])]
 def register(app: typer.Typer) -> None:
     """Add the ``price`` group to ``app``."""
     app.add_typer(price_app, name="price")
+    price_app.command("vanilla")(vanilla_cmd)
 
 
 def _print(result: flow.SpreadPrice) -> None:
@@ -75,28 +93,21 @@ def spread_cmd(
         Literal["call", "put"],
         typer.Option("--kind", help="call: max(S - K, 0); put: max(K - S, 0)."),
     ] = "call",
-    run_id: Annotated[
-        int | None,
-        typer.Option("--run", help="Run id (default: latest approved set).", show_default=False),
-    ] = None,
-    on: Annotated[
-        datetime | None,
-        typer.Option(
-            "--date",
-            formats=["%Y-%m-%d"],
-            help="Pricing day (default: the run's trade date).",
-            show_default=False,
-        ),
-    ] = None,
-    paths: Annotated[
-        int, typer.Option("--paths", min=4, help="Monte Carlo paths.")
-    ] = flow.MC_PATHS,
-    seed: Annotated[int, typer.Option("--seed", help="Monte Carlo seed.")] = flow.MC_SEED,
+    run_id: PricingRunOption = None,
+    on: PricingDayOption = None,
+    paths: Annotated[int, typer.Option("--paths", min=4, help="Monte Carlo paths.")] = MC_PATHS,
+    seed: Annotated[int, typer.Option("--seed", help="Monte Carlo seed.")] = MC_SEED,
+    uncertainty: UncertaintyOption = False,
+    draws: DrawsOption = 200,
+    series_id: SeriesOption = None,
     db: DbOption = None,
     as_json: JsonOption = False,
 ) -> None:
     """Price a calendar-spread option on F(far) - F(near): price, hedge ratios in both futures,
-    sensitivities to the calibrated volatilities, and the Kirk and Monte Carlo cross-checks."""
+    sensitivities to the calibrated volatilities, and the Kirk and Monte Carlo cross-checks.
+    With --uncertainty: the price's standard error from the historical estimate."""
+    from calib.workflows import pricing as flow
+
     with open_store(db) as (store, _):
         result = flow.price_spread(
             store.sessions,
@@ -111,7 +122,10 @@ def spread_cmd(
             mc_paths=paths,
             mc_seed=seed,
         )
+        extra = with_uncertainty(store.sessions, result, draws, series_id) if uncertainty else None
     if as_json:
-        echo_json(result.to_dict())
+        echo_json({**result.to_dict(), **({"uncertainty": extra.to_dict()} if extra else {})})
     else:
         _print(result)
+        if extra is not None:
+            print_uncertainty(extra)

@@ -11,19 +11,17 @@ import statistics
 import time
 from datetime import datetime
 from pathlib import Path
-from typing import Annotated
+from typing import TYPE_CHECKING, Annotated
 
 import typer
 
 from calib.cli.common import DbOption, JsonOption, echo_json, open_store
 from calib.cli.run_cmds import _progress
 from calib.errors import BandOptionError
-from calib.model.twofactor import PARAM_NAMES
-from calib.output import compare as compare_out
-from calib.output.compare import Band, Bands
-from calib.workflows.compare import Selection, compare_runs
-from calib.workflows.demo import QUICK_PLAN, DemoPlan, DemoSummary, run_demo
-from calib.workflows.report import write_report
+
+if TYPE_CHECKING:  # the workflows are imported by the commands that use them
+    from calib.output.compare import Band
+    from calib.workflows.demo import DemoPlan, DemoSummary
 
 DEFAULT_DEMO_DIR = Path("demo-out")
 """Where ``calib demo`` writes by default (under the working folder; git-ignored)."""
@@ -47,6 +45,8 @@ def report_cmd(
 ) -> None:
     """Write a run's fit report: an HTML page and PNG figures (smiles, residual heat map,
     futures curve and vol term structure, anchor frontier, constraints, gates, inputs)."""
+    from calib.workflows.report import write_report
+
     with open_store(db) as (store, _):
         result = write_report(store.sessions, run_id, out)
     for note in result.warnings:  # one plain line each; the page shows them too
@@ -68,6 +68,8 @@ def parse_band(option: str, value: str | None, default: Band) -> Band:
     BandOptionError
         Not two comma-separated finite numbers with ``LO <= HI``.
     """
+    from calib.output.compare import Band
+
     if value is None:
         return default
     parts = value.split(",")
@@ -123,6 +125,10 @@ def compare_cmd(
 
     By default the runs that were ever approved (superseded ones included); --all for every
     fitted run."""
+    from calib.output import compare as compare_out
+    from calib.output.compare import Bands
+    from calib.workflows.compare import Selection, compare_runs
+
     default = Bands()
     bands = Bands(
         sigma_spot=parse_band("--band-spot", band_spot, default.sigma_spot),
@@ -138,7 +144,9 @@ def compare_cmd(
     if plot_file is not None:
         title = f"{commodity}: calibrated against historical ({selection.rule})"
         written["plot"] = str(
-            compare_out.plot(table, plot_file, title=title, span=(selection.start, selection.end))
+            compare_out.plot(
+                table, plot_file, title=title, span=(selection.start, selection.end)
+            )
         )
     if as_json:
         echo_json(
@@ -184,6 +192,8 @@ def _finite(x: float) -> float | None:
 
 
 def _summary_lines(s: DemoSummary) -> list[str]:
+    from calib.model.twofactor import PARAM_NAMES
+
     db = f"--db {s.db_url}"
     e = s.estimate
     rmse = s.rmse_vol_points
@@ -255,6 +265,8 @@ def demo_cmd(
     """Run the whole job on an invented metal: generate three years of quotes, ingest,
     estimate on two years, fit, gate and approve each morning of the last quarter, compare,
     report, and say where everything is."""
+    from calib.workflows.demo import QUICK_PLAN, DemoPlan, run_demo
+
     plan: DemoPlan = QUICK_PLAN if quick else DemoPlan()
     summary = run_demo(directory, plan=plan, fresh=fresh, progress=_progress(time.monotonic()))
     if as_json:

@@ -10,36 +10,28 @@ from __future__ import annotations
 import time
 from datetime import datetime
 from pathlib import Path
-from typing import Annotated, Any, NoReturn
+from typing import TYPE_CHECKING, Annotated, Any, NoReturn
 
 import typer
 
 from calib.cli.common import (
-    AS_OF_FORMATS,
+    AsOfOption,
     DbOption,
     EstimateOption,
     JsonOption,
     SettingsOption,
-    as_utc,
     echo_json,
     open_store,
 )
-from calib.model.twofactor import PARAM_NAMES
-from calib.policy.settings import load_settings
-from calib.store.estimates import EstimateRecord, list_estimates
-from calib.store.runs import (
-    RunRecord,
-    approved_history,
-    list_runs,
-    read_in_force,
-    require_run,
-    run_residuals,
-)
-from calib.workflows import approve as approve_flow
-from calib.workflows import estimates as estimate_flow
-from calib.workflows import fit as fit_flow
-from calib.workflows import rerun as rerun_flow
 
+if TYPE_CHECKING:  # the store and the workflows are imported by the commands that use them
+    from calib.store.estimates import EstimateRecord
+    from calib.store.runs import RunRecord
+    from calib.workflows import estimates as estimate_flow
+    from calib.workflows import fit as fit_flow
+
+MIN_DAYS = 250
+"""Default of ``--min-days``: ``calib.workflows.estimates.MIN_DAYS`` (a test keeps them equal)."""
 EXIT_FIT_FAILED = 1
 EXIT_RERUN_DIFFERS = 1
 EXIT_NONE_APPROVED = 2
@@ -81,6 +73,8 @@ def _g(value: float | None, fmt: str = ".6g") -> str:
 
 
 def _params_line(values: dict[str, Any]) -> str:
+    from calib.model.twofactor import PARAM_NAMES
+
     return "  ".join(f"{n}={_g(values.get(n))}" for n in PARAM_NAMES)
 
 
@@ -88,6 +82,8 @@ def _params_line(values: dict[str, Any]) -> str:
 
 
 def _print_estimate(e: EstimateRecord) -> None:
+    from calib.model.twofactor import PARAM_NAMES
+
     flag = "converged" if e.converged else "NOT CONVERGED (never used by default)"
     typer.echo(
         f"estimate {e.estimate_id} of {e.commodity} ({e.source}), {e.window_start}..{e.window_end}"
@@ -122,11 +118,60 @@ def estimate_cmd(
     contracts: Annotated[int, typer.Option("--contracts", min=2, help="Contracts a day.")] = 5,
     min_days: Annotated[
         int, typer.Option("--min-days", min=2, help="Fewest trading days accepted.")
-    ] = estimate_flow.MIN_DAYS,
+    ] = MIN_DAYS,
+    rolling: Annotated[
+        str | None,
+        typer.Option(
+            "--rolling",
+            metavar="LENGTH",
+            help="Rolling series: one estimate per window of this length (2y, 18m) ending on "
+            "--from, --from + --step, .. --to.",
+            show_default=False,
+        ),
+    ] = None,
+    step: Annotated[
+        str | None,
+        typer.Option(
+            "--step",
+            metavar="STEP",
+            help="With --rolling: between window ends (1m).",
+            show_default=False,
+        ),
+    ] = None,
+    workers: Annotated[
+        int | None,
+        typer.Option(
+            "--workers",
+            min=1,
+            help="With --rolling: worker processes (default: cores).",
+            show_default=False,
+        ),
+    ] = None,
     db: DbOption = None,
     as_json: JsonOption = False,
 ) -> None:
-    """Estimate the model from stored futures (Kalman-filter maximum likelihood) and store it."""
+    """Estimate the model from stored futures (Kalman-filter maximum likelihood) and store it.
+
+    With --rolling: a rolling series (resumable: the same command again estimates only the
+    windows not stored yet); its estimates are never the morning fit's default."""
+    if rolling is not None or step is not None or workers is not None:
+        from calib.cli.stability_cmds import rolling_estimate
+
+        rolling_estimate(
+            commodity,
+            start.date(),
+            end.date(),
+            rolling,
+            step,
+            workers,
+            contracts=contracts,
+            min_days=min_days,
+            db=db,
+            as_json=as_json,
+        )
+        return
+    from calib.workflows import estimates as estimate_flow
+
     with open_store(db) as (store, settings):
         record = estimate_flow.estimate(
             store.sessions,
@@ -162,6 +207,9 @@ def estimates_cmd(
     """List a commodity's estimates (`calib estimates QLM`), or register one made elsewhere
     (`calib estimates import QLM FILE.json`: the seven parameter names plus window_start and
     window_end; marked imported)."""
+    from calib.store.estimates import list_estimates
+    from calib.workflows import estimates as estimate_flow
+
     if what == "import":
         if commodity is None or file is None:
             raise typer.BadParameter("usage: calib estimates import COMMODITY FILE.json")
@@ -263,6 +311,9 @@ def fit_cmd(
 
     Exit code 1 when the fit failed (stored as a rejected run with its reason).
     """
+    from calib.policy.settings import load_settings
+    from calib.workflows import fit as fit_flow
+
     settings = load_settings(settings_file, commodity)
     with open_store(db) as (store, program):
         outcome = fit_flow.fit_day(
@@ -286,6 +337,8 @@ def approve_cmd(
     run_id: RunId, by: ByOpt, note: NoteOpt, db: DbOption = None, as_json: JsonOption = False
 ) -> None:
     """Approve a candidate run; the commodity's previous approved set becomes superseded."""
+    from calib.workflows import approve as approve_flow
+
     with open_store(db) as (store, _):
         result = approve_flow.approve(store.sessions, run_id, by=by, note=note)
     if as_json:
@@ -300,6 +353,8 @@ def reject_cmd(
     run_id: RunId, by: ByOpt, note: NoteOpt, db: DbOption = None, as_json: JsonOption = False
 ) -> None:
     """Reject a candidate run."""
+    from calib.workflows import approve as approve_flow
+
     with open_store(db) as (store, _):
         run = approve_flow.reject(store.sessions, run_id, by=by, note=note)
     if as_json:
@@ -321,6 +376,8 @@ def runs_cmd(
     as_json: JsonOption = False,
 ) -> None:
     """List a commodity's runs, newest first, with their current status."""
+    from calib.store.runs import list_runs
+
     with open_store(db) as (store, _), store.sessions.begin() as session:
         runs = list_runs(
             session=session,
@@ -346,6 +403,8 @@ def runs_cmd(
 
 def show_cmd(run_id: RunId, db: DbOption = None, as_json: JsonOption = False) -> None:
     """Show a run: parameters, fit, gates, events and per-quote residuals."""
+    from calib.store.runs import require_run, run_residuals
+
     with open_store(db) as (store, _), store.sessions.begin() as session:
         run = require_run(session=session, run_id=run_id)
         residuals = run_residuals(session=session, run_id=run_id)
@@ -371,15 +430,7 @@ def show_cmd(run_id: RunId, db: DbOption = None, as_json: JsonOption = False) ->
 
 def latest_cmd(
     commodity: Commodity,
-    as_of: Annotated[
-        datetime | None,
-        typer.Option(
-            "--as-of",
-            formats=AS_OF_FORMATS,
-            help="The set in force at this time (UTC unless a zone is given); default now.",
-            show_default=False,
-        ),
-    ] = None,
+    as_of: AsOfOption = None,
     history: Annotated[
         bool, typer.Option("--history", help="Every approval, oldest first.")
     ] = False,
@@ -387,13 +438,15 @@ def latest_cmd(
     as_json: JsonOption = False,
 ) -> None:
     """The approved parameter set in force (exit code 2 if there is none)."""
+    from calib.store.runs import approved_history, read_in_force
+
     with open_store(db) as (store, _):
         if history:
             with store.sessions.begin() as session:
                 approvals = approved_history(session=session, commodity=commodity)
             run = None
         else:
-            run = read_in_force(store.sessions, commodity, as_of=as_utc(as_of))
+            run = read_in_force(store.sessions, commodity, as_of=as_of)
     if history:
         if as_json:
             echo_json([a.to_dict() for a in approvals])
@@ -408,7 +461,7 @@ def latest_cmd(
             )
         return
     if run is None:
-        when = "now" if as_of is None else f"at {as_utc(as_of)}"
+        when = "now" if as_of is None else f"at {as_of:%Y-%m-%d %H:%M:%S} UTC"
         typer.echo(f"error: {commodity}: no approved parameter set {when}", err=True)
         _exit(EXIT_NONE_APPROVED)
     if as_json:
@@ -422,6 +475,8 @@ def rerun_cmd(run_id: RunId, db: DbOption = None, as_json: JsonOption = False) -
 
     Exit code 1 if the parameters differ.
     """
+    from calib.workflows import rerun as rerun_flow
+
     with open_store(db) as (store, _):
         result = rerun_flow.rerun(store.sessions, run_id)
     if as_json:

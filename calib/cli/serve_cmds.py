@@ -52,7 +52,8 @@ def serve_cmd(
     ] = False,
     db: DbOption = None,
 ) -> None:
-    """Serve the approved parameter sets over HTTP (OpenAPI schema at /openapi.json)."""
+    """Serve the approved parameter sets over HTTP (OpenAPI schema at /openapi.json) and the
+    morning review pages at /."""
     import uvicorn
 
     with open_store(db) as (store, settings):  # refuse to start on a database not at head
@@ -64,6 +65,7 @@ def serve_cmd(
     os.environ["CALIB_DB"] = url  # the workers build the app from the environment
     approve = "on (bearer token)" if token else "off (no token configured)"
     typer.echo(f"calib API on http://{host}:{port} ({store.url}); approval {approve}", err=True)
+    typer.echo(f"review pages: open http://{host}:{port}/ in a browser", err=True)
     if not _is_loopback(host):
         typer.echo(f"caution: listening on {host}, beyond this machine", err=True)
         if token:

@@ -11,15 +11,16 @@ import math
 from datetime import datetime
 from enum import StrEnum
 from pathlib import Path
-from typing import Annotated, Any
+from typing import TYPE_CHECKING, Annotated, Any
 
 import typer
 
-from calib.cli.common import AS_OF_FORMATS, DbOption, JsonOption, as_utc, echo_json, open_store
+from calib.cli.common import AsOfOption, DbOption, JsonOption, echo_json, open_store
 from calib.errors import IngestFileError
-from calib.store.migrate import upgrade
-from calib.store.quotes import DayQuotes, load_day
-from calib.workflows.ingest import IngestReport, NewCommodity, ingest_file
+
+if TYPE_CHECKING:  # the store and the workflows are imported by the commands that use them
+    from calib.store.quotes import DayQuotes
+    from calib.workflows.ingest import IngestReport
 
 EXIT_ROWS_REJECTED = 1
 EXIT_FILE_REFUSED = 2
@@ -44,6 +45,8 @@ def register(app: typer.Typer) -> None:
 
 def init_cmd(db: DbOption = None, as_json: JsonOption = False) -> None:
     """Create the database, or upgrade it to this program's schema."""
+    from calib.store.migrate import upgrade
+
     with open_store(db, check=False) as (store, _):
         result = upgrade(store.engine)
     if as_json:
@@ -96,6 +99,8 @@ def ingest_cmd(
 
     Exit code 0: all rows accepted; 1: some rows quarantined; 2: a file refused as a whole.
     """
+    from calib.workflows.ingest import NewCommodity, ingest_file
+
     new = NewCommodity(unit=unit, currency=currency, calendar_rule=calendar) if create else None
     code = 0
     results: list[dict[str, Any]] = []
@@ -177,20 +182,13 @@ def quotes_cmd(
     trade_date: Annotated[
         datetime, typer.Option("--date", formats=["%Y-%m-%d"], help="Trading day (YYYY-MM-DD).")
     ],
-    as_of: Annotated[
-        datetime | None,
-        typer.Option(
-            "--as-of",
-            formats=AS_OF_FORMATS,
-            help="Show what was known at this time (UTC unless a zone is given); default now.",
-            show_default=False,
-        ),
-    ] = None,
+    as_of: AsOfOption = None,
     db: DbOption = None,
     as_json: JsonOption = False,
 ) -> None:
     """Show the futures, options and zero curve stored for a commodity on a day."""
-    as_of = as_utc(as_of)
+    from calib.store.quotes import load_day
+
     with open_store(db) as (store, _), store.sessions.begin() as session:
         day = load_day(
             session=session, commodity=commodity, trade_date=trade_date.date(), as_of=as_of

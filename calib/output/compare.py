@@ -24,6 +24,7 @@ from __future__ import annotations
 
 import csv
 import datetime as dt
+import io
 import math
 from collections.abc import Mapping, Sequence
 from dataclasses import dataclass, field
@@ -320,6 +321,15 @@ def plot(
     path.parent.mkdir(parents=True, exist_ok=True)
     figure(table, title=title, span=span).savefig(path, format="png", dpi=100)
     return path
+
+
+def plot_png(
+    table: CompareTable, *, title: str = "", span: tuple[dt.date, dt.date] | None = None
+) -> bytes:
+    """The figure of :func:`plot` as PNG bytes."""
+    buffer = io.BytesIO()
+    figure(table, title=title, span=span).savefig(buffer, format="png", dpi=100)
+    return buffer.getvalue()
 
 
 def _held(

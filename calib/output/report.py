@@ -23,6 +23,7 @@ from __future__ import annotations
 
 import datetime as dt
 import html
+import io
 import json
 import math
 from collections.abc import Mapping, Sequence
@@ -870,6 +871,20 @@ def _page(inp: ReportInputs, figs: Mapping[str, Path]) -> str:
     return "\n".join(parts) + "\n"
 
 
+def figure_names(inputs: ReportInputs) -> tuple[str, ...]:
+    """The figures the report of ``inputs`` has, in page order (no frontier without points)."""
+    return tuple(name for name, _ in FIGURES if name != "frontier" or inputs.frontier)
+
+
+def figure_png(inputs: ReportInputs, name: str) -> bytes:
+    """One figure of the report (a name of :func:`figure_names`) as PNG bytes."""
+    if name not in figure_names(inputs):
+        raise ReportInputError("report", f"no figure {name!r} in this report")
+    buffer = io.BytesIO()
+    _FIGURE_FUNCS[name](inputs).savefig(buffer, format="png")
+    return buffer.getvalue()
+
+
 def render_report(inputs: ReportInputs, out_dir: Path) -> ReportFiles:
     """Write the fit report of one run: ``out_dir/index.html`` and ``out_dir/fig_*.png``.
 
@@ -887,12 +902,9 @@ def render_report(inputs: ReportInputs, out_dir: Path) -> ReportFiles:
     out = Path(out_dir)
     out.mkdir(parents=True, exist_ok=True)
     figs: dict[str, Path] = {}
-    for name, _ in FIGURES:
-        if name == "frontier" and not inputs.frontier:
-            continue
-        fig = _FIGURE_FUNCS[name](inputs)
+    for name in figure_names(inputs):
         path = out / f"fig_{name}.png"
-        fig.savefig(path, format="png")
+        _FIGURE_FUNCS[name](inputs).savefig(path, format="png")
         figs[name] = path
     index = out / "index.html"
     index.write_text(_page(inputs, figs), encoding="utf-8")

@@ -3,7 +3,8 @@
 An estimate is inserted once with its states and never changed. The calibration holds its
 slow parameters at the newest *converged* estimate of the commodity (:func:`latest_estimate`)
 unless the user names another; an estimate that did not converge is stored (so the attempt is
-on record) but never picked by default.
+on record) but never picked by default, and neither is a window of a rolling series (it is one
+point of a stability study, see :mod:`calib.workflows.rolling`).
 """
 
 from __future__ import annotations
@@ -21,7 +22,7 @@ from sqlalchemy.orm import Session
 from calib.model.twofactor import PARAM_NAMES, TwoFactorParams
 from calib.store.models import Commodity
 from calib.store.quotes import DateArray, insert_columns, require_commodity
-from calib.store.run_models import EstimateState, HistoricalEstimate
+from calib.store.run_models import EstimateState, HistoricalEstimate, RollingSeries
 from calib.types import FloatArray
 
 STATE_COLUMNS = ("log_spot_filtered", "yield_filtered", "log_spot_smoothed", "yield_smoothed")
@@ -53,6 +54,9 @@ class EstimateRecord:
     inputs_sha256: str
     settings: Mapping[str, Any]
     code_version: str
+    series_id: int | None = None
+    covariance: tuple[tuple[float | None, ...], ...] | None = None
+    """Asymptotic covariance of ``(mu..rho, xi_1..)`` (``None`` where not stored)."""
 
     def to_dict(self) -> dict[str, Any]:
         """Plain values for JSON, the seven parameter names at the top level."""
@@ -77,6 +81,8 @@ class EstimateRecord:
             "created_at": self.created_at.isoformat(),
             "created_by": self.created_by,
             "code_version": self.code_version,
+            "series_id": self.series_id,
+            "covariance": None if self.covariance is None else [list(r) for r in self.covariance],
         }
 
 
@@ -102,6 +108,10 @@ def _record(row: HistoricalEstimate, code: str) -> EstimateRecord:
         inputs_sha256=row.inputs_sha256,
         settings=MappingProxyType(dict(row.settings)),
         code_version=row.code_version,
+        series_id=row.series_id,
+        covariance=None
+        if row.covariance is None
+        else tuple(tuple(None if v is None else float(v) for v in r) for r in row.covariance),
     )
 
 
@@ -140,6 +150,8 @@ def add_estimate(
     loglik: float | None = None,
     rate: float | None = None,
     states: StatesIn | None = None,
+    series_id: int | None = None,
+    covariance: Sequence[Sequence[float | None]] | None = None,
 ) -> int:
     """Insert an estimate (and its states, in bulk); returns its id."""
     row = HistoricalEstimate(
@@ -162,6 +174,8 @@ def add_estimate(
         inputs_sha256=inputs_sha256,
         settings=dict(settings),
         code_version=code_version,
+        series_id=series_id,
+        covariance=None if covariance is None else [list(r) for r in covariance],
         **params.to_dict(),
     )
     session.add(row)
@@ -204,9 +218,12 @@ def list_estimates(*, session: Session, commodity: str) -> list[EstimateRecord]:
 def latest_estimate(
     *, session: Session, commodity: str, converged_only: bool = True
 ) -> EstimateRecord | None:
-    """The newest estimate of ``commodity`` (by default the newest converged one), or ``None``."""
+    """The newest single estimate of ``commodity`` (by default the newest converged one), or
+    ``None``; the windows of rolling series are never picked here (only when named)."""
     cid = require_commodity(session=session, code=commodity).id
-    stmt = select(HistoricalEstimate).where(HistoricalEstimate.commodity_id == cid)
+    stmt = select(HistoricalEstimate).where(
+        HistoricalEstimate.commodity_id == cid, HistoricalEstimate.series_id.is_(None)
+    )
     if converged_only:
         stmt = stmt.where(HistoricalEstimate.converged.is_(True))
     row = session.scalars(stmt.order_by(HistoricalEstimate.id.desc()).limit(1)).one_or_none()
@@ -232,3 +249,121 @@ def estimate_states(*, session: Session, estimate_id: int) -> pd.DataFrame:
         .order_by(_states.c.trade_date)
     )
     return pd.DataFrame(session.execute(stmt).all(), columns=["trade_date", *STATE_COLUMNS])
+
+
+# --- rolling series ----------------------------------------------------------------------------
+
+
+@dataclass(frozen=True, slots=True)
+class SeriesRecord:
+    """A stored rolling series (read-only)."""
+
+    series_id: int
+    commodity: str
+    created_at: datetime
+    created_by: str
+    window_length: str
+    step: str
+    first_end: date
+    last_end: date
+    settings: Mapping[str, Any]
+    settings_sha256: str
+
+    def to_dict(self) -> dict[str, Any]:
+        return {
+            "series_id": self.series_id,
+            "commodity": self.commodity,
+            "window_length": self.window_length,
+            "step": self.step,
+            "first_end": self.first_end.isoformat(),
+            "last_end": self.last_end.isoformat(),
+            "settings": dict(self.settings),
+            "created_at": self.created_at.isoformat(),
+            "created_by": self.created_by,
+        }
+
+
+def _series(row: RollingSeries, code: str) -> SeriesRecord:
+    return SeriesRecord(
+        series_id=row.id,
+        commodity=code,
+        created_at=row.created_at,
+        created_by=row.created_by,
+        window_length=row.window_length,
+        step=row.step,
+        first_end=row.first_end,
+        last_end=row.last_end,
+        settings=MappingProxyType(dict(row.settings)),
+        settings_sha256=row.settings_sha256,
+    )
+
+
+def find_series(*, session: Session, commodity: str, settings_sha256: str) -> SeriesRecord | None:
+    """The commodity's series with these settings (their sha256), or ``None``."""
+    cid = require_commodity(session=session, code=commodity).id
+    stmt = select(RollingSeries).where(
+        RollingSeries.commodity_id == cid, RollingSeries.settings_sha256 == settings_sha256
+    )
+    row = session.scalars(stmt).one_or_none()
+    return None if row is None else _series(row, commodity)
+
+
+def add_series(
+    *,
+    session: Session,
+    commodity_id: int,
+    created_at: datetime,
+    created_by: str,
+    window_length: str,
+    step: str,
+    first_end: date,
+    last_end: date,
+    settings: Mapping[str, Any],
+    settings_sha256: str,
+) -> int:
+    """Insert a rolling series; returns its id."""
+    row = RollingSeries(
+        commodity_id=commodity_id,
+        created_at=created_at,
+        created_by=created_by,
+        window_length=window_length,
+        step=step,
+        first_end=first_end,
+        last_end=last_end,
+        settings=dict(settings),
+        settings_sha256=settings_sha256,
+    )
+    session.add(row)
+    session.flush()
+    return row.id
+
+
+def get_series(*, session: Session, series_id: int) -> SeriesRecord | None:
+    """The series ``series_id``, or ``None``."""
+    row = session.get(RollingSeries, series_id)
+    return None if row is None else _series(row, _code(session, row.commodity_id))
+
+
+def list_series(*, session: Session, commodity: str) -> list[SeriesRecord]:
+    """The commodity's rolling series, newest first."""
+    cid = require_commodity(session=session, code=commodity).id
+    stmt = (
+        select(RollingSeries)
+        .where(RollingSeries.commodity_id == cid)
+        .order_by(RollingSeries.id.desc())
+    )
+    return [_series(row, commodity) for row in session.scalars(stmt)]
+
+
+def series_estimates(*, session: Session, series_id: int) -> list[EstimateRecord]:
+    """The estimates of a series, by window end (then id)."""
+    row = session.get(RollingSeries, series_id)
+    if row is None:
+        return []
+    code = _code(session, row.commodity_id)
+    stmt = (
+        select(HistoricalEstimate)
+        .where(HistoricalEstimate.series_id == series_id)
+        .order_by(HistoricalEstimate.window_end, HistoricalEstimate.id)
+    )
+    return [_record(r, code) for r in session.scalars(stmt)]

@@ -18,13 +18,10 @@ import sqlite3
 from collections.abc import Mapping, Sequence
 from dataclasses import dataclass
 from datetime import date, datetime
-from typing import Any, cast
+from typing import TYPE_CHECKING, Any, cast
 
 import numpy as np
 import numpy.typing as npt
-import pandas as pd
-import pyarrow as pa
-import pyarrow.csv as pa_csv
 from sqlalchemy import ColumnElement, Select, Table, func, insert, select
 from sqlalchemy.orm import Session
 
@@ -39,6 +36,10 @@ from calib.store.models import (
     RateQuote,
 )
 from calib.types import BoolArray, FloatArray, IntArray, readonly
+
+if TYPE_CHECKING:  # imported where used: reading a run or the set in force needs neither
+    import pandas as pd
+    import pyarrow as pa
 
 DateArray = npt.NDArray[np.datetime64]
 """``datetime64[D]`` array of calendar dates."""
@@ -196,6 +197,11 @@ def require_commodity(*, session: Session, code: str) -> CommodityRecord:
     return found
 
 
+def list_commodities(*, session: Session) -> list[CommodityRecord]:
+    """Every registered commodity, by code."""
+    return [_record(row) for row in session.scalars(select(Commodity).order_by(Commodity.code))]
+
+
 def commodity_ids(*, session: Session, codes: Sequence[str]) -> dict[str, int]:
     """Ids of those of ``codes`` that are registered."""
     rows = session.execute(select(Commodity.code, Commodity.id).where(Commodity.code.in_(codes)))
@@ -261,6 +267,8 @@ QUOTE_TABLES: Mapping[str, Table] = {"futures": _futures, "options": _options, "
 
 def _sqlite_dates(values: DateArray) -> list[str]:
     """``YYYY-MM-DD`` text, as SQLAlchemy's SQLite ``Date`` stores it; one ``str`` per day."""
+    import pandas as pd
+
     codes, uniques = pd.factorize(np.asarray(values, dtype="datetime64[D]").astype(np.int64))
     text = np.array(np.datetime_as_string(uniques.astype("datetime64[D]"), unit="D"), dtype=object)
     return list(text[codes])
@@ -281,6 +289,8 @@ def _sqlite_values(values: Any, count: int) -> list[Any]:
 
 
 def _arrow_values(values: Any, count: int) -> pa.Array:
+    import pyarrow as pa
+
     """One column as an arrow array (dates as ``date32``, NaN as null)."""
     arr = np.full(count, values) if np.isscalar(values) else np.asarray(values)
     return pa.array(arr, from_pandas=arr.dtype.kind == "f")
@@ -315,6 +325,8 @@ def insert_columns(
     column_list = ", ".join(quote(name) for name in names)
     if dialect.name == "postgresql":
         import psycopg  # the postgres extra; only reached with a PostgreSQL engine
+        import pyarrow as pa
+        import pyarrow.csv as pa_csv
 
         # COPY in CSV form, written by arrow: ISO dates, shortest round-trip floats, empty = NULL
         text = io.BytesIO()
@@ -377,11 +389,15 @@ def _latest(
 
 
 def _frame(session: Session, stmt: Select[Any], columns: Sequence[str]) -> pd.DataFrame:
+    import pandas as pd
+
     rows = [tuple(row) for row in session.execute(stmt)]  # plain tuples: pandas reads them fast
     return pd.DataFrame(rows, columns=list(columns))
 
 
 def _to_days(series: pd.Series) -> DateArray:
+    import pandas as pd
+
     return np.asarray(pd.to_datetime(series).to_numpy().astype("datetime64[D]"))
 
 
@@ -632,6 +648,8 @@ def load_futures_history(
         _latest(_futures, FUTURES_KEY, where, as_of or utc_now()),
         [c.name for c in _futures.columns],
     )
+    import pandas as pd
+
     out = pd.DataFrame(
         {
             "trade_date": _to_days(frame["trade_date"]),

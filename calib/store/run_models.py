@@ -105,6 +105,31 @@ class HistoricalEstimate(Base):
     inputs_sha256: Mapped[str] = mapped_column(String(64))
     settings: Mapped[dict[str, Any]] = mapped_column(JSON)
     code_version: Mapped[str] = mapped_column(String(64))
+    series_id: Mapped[int | None] = mapped_column(ForeignKey("rolling_series.id"), index=True)
+    """The rolling series the estimate is one window of (NULL: a single estimate)."""
+    covariance: Mapped[list[list[float | None]] | None] = mapped_column(JSON)
+    """Asymptotic covariance of (``mu``.. ``rho``, ``xi_1``..), rows in that order (NULL if
+    unknown: imported, or stored before covariances were kept)."""
+
+
+class RollingSeries(Base):
+    """A rolling re-estimation: one estimate per window end, all with the same settings."""
+
+    __tablename__ = "rolling_series"
+    __table_args__ = (UniqueConstraint("commodity_id", "settings_sha256"),)
+
+    id: Mapped[int] = mapped_column(Integer, primary_key=True)
+    commodity_id: Mapped[int] = mapped_column(ForeignKey("commodities.id"))
+    created_at: Mapped[datetime] = mapped_column(UtcDateTime())
+    created_by: Mapped[str] = mapped_column(String(128))
+    window_length: Mapped[str] = mapped_column(String(16))
+    """Length of each window, e.g. ``2y``."""
+    step: Mapped[str] = mapped_column(String(16))
+    """Between consecutive window ends, e.g. ``1m``."""
+    first_end: Mapped[date] = mapped_column(Date)
+    last_end: Mapped[date] = mapped_column(Date)
+    settings: Mapped[dict[str, Any]] = mapped_column(JSON)
+    settings_sha256: Mapped[str] = mapped_column(String(64))
 
 
 class EstimateState(Base):

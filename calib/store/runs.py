@@ -22,10 +22,9 @@ from dataclasses import dataclass, field
 from datetime import UTC, date, datetime
 from pathlib import Path
 from types import MappingProxyType
-from typing import Any, cast
+from typing import TYPE_CHECKING, Any, cast
 
 import numpy as np
-import pandas as pd
 from sqlalchemy import Engine, Select, Table, and_, bindparam, exists, func, select
 from sqlalchemy.orm import Session, sessionmaker
 
@@ -53,6 +52,9 @@ from calib.store.quotes import (
 )
 from calib.store.run_models import CalibrationRun, RunEvent, RunResidual
 from calib.types import readonly
+
+if TYPE_CHECKING:
+    import pandas as pd
 
 TRANSITIONS: Mapping[str, frozenset[str]] = MappingProxyType(
     {
@@ -738,6 +740,8 @@ def approved_history(*, session: Session, commodity: str) -> list[ApprovalRecord
 
 def run_residuals(*, session: Session, run_id: int) -> pd.DataFrame:
     """The run's residuals: ``quote_id`` and :data:`RESIDUAL_COLUMNS`, by quote id."""
+    import pandas as pd
+
     stmt = (
         select(_residuals.c.quote_id, *[_residuals.c[c] for c in RESIDUAL_COLUMNS])
         .where(_residuals.c.run_id == run_id)
@@ -849,3 +853,17 @@ def run_keys(*, session: Session, commodity: str, start: date, end: date) -> lis
         .order_by(CalibrationRun.id)
     )
     return [RunKey(*row) for row in session.execute(stmt)]
+
+
+def newest_trade_date(*, session: Session, commodity: str) -> date | None:
+    """The latest trade date with a stored run of ``commodity`` (``None``: no run yet).
+
+    Raises
+    ------
+    UnknownCommodityError
+        ``commodity`` is not registered.
+    """
+    cid = require_commodity(session=session, code=commodity).id
+    stmt = select(func.max(CalibrationRun.trade_date)).where(CalibrationRun.commodity_id == cid)
+    found: date | None = session.scalars(stmt).one()
+    return found

@@ -9,25 +9,27 @@ the estimate's settings say so (``rate_source``).
 
 **Convergence.** An estimate that does not converge is stored with ``converged = False`` and
 its message, and is never picked by the calibration unless named (and then refused, see
-:func:`calib.workflows.runs.fit_day`).
+:func:`calib.workflows.fit.fit_day`).
 """
 
 from __future__ import annotations
 
 import json
 import math
-import warnings
 from collections.abc import Callable
+from dataclasses import dataclass
 from datetime import date
 from pathlib import Path
 from typing import Any
 
 import numpy as np
+import pandas as pd
 from sqlalchemy.orm import Session, sessionmaker
 
 from calib import errors as msg
-from calib.errors import EstimateFileError, EstimationWarning, NoQuotesError, ParameterError
-from calib.estimate import curves_from_quotes, fit
+from calib.errors import EstimateFileError, NoQuotesError, ParameterError
+from calib.estimate import Curves, curves_from_quotes
+from calib.estimate.rolling import FitSettings, WindowFit, WindowTask, fit_window
 from calib.model.twofactor import PARAM_NAMES, TwoFactorParams
 from calib.store.base import utc_now
 from calib.store.engine import begin_write
@@ -69,6 +71,121 @@ def window_rate(session: Session, start: date, end: date) -> tuple[float, str, l
     return float(np.mean(short)), how, rows
 
 
+@dataclass(frozen=True, slots=True, eq=False)
+class WindowInputs:
+    """One window's curves, rate, inputs (ids) and settings, as an estimate stores them."""
+
+    start: date
+    end: date
+    curves: Curves
+    rate: float
+    inputs: dict[str, Any]
+    settings: dict[str, Any]
+
+    def task(self, index: int = 0, *, check_cold: bool = False) -> WindowTask:
+        """The window as a worker's unit of work (plain arrays)."""
+        c = self.curves
+        return WindowTask(index, c.dates, c.tau, c.log_price, self.rate, check_cold)
+
+
+def window_inputs(
+    session: Session,
+    commodity: str,
+    table: pd.DataFrame,
+    start: date,
+    end: date,
+    *,
+    n_contracts: int,
+    min_days: int,
+) -> WindowInputs:
+    """The window ``start..end`` of the futures ``table`` (which may cover more days).
+
+    Raises
+    ------
+    NoQuotesError
+        No settlement in the window.
+    EstimationDataError
+        The settlements do not make curves (see :func:`calib.estimate.curves_from_quotes`).
+    """
+    days = table["trade_date"].to_numpy().astype("datetime64[D]")
+    keep = (days >= np.datetime64(start, "D")) & (days <= np.datetime64(end, "D"))
+    part = table[keep]
+    if part.empty:
+        raise NoQuotesError(commodity, f"no futures settlements stored in {start}..{end}")
+    rate, rate_source, rate_rows = window_rate(session, start, end)
+    curves = curves_from_quotes(
+        part["trade_date"].to_numpy(),
+        part["delivery"].to_numpy(),
+        part["settle"].to_numpy(),
+        n_contracts=n_contracts,
+        min_days_to_delivery=MIN_DAYS_TO_DELIVERY,
+    )
+    inputs = {
+        "batch_ids": sorted(set(part["batch_id"].tolist())),
+        "futures_rows": sorted(part["row_id"].tolist()),
+        "rate_rows": rate_rows,
+    }
+    settings: dict[str, Any] = {
+        "n_contracts": n_contracts,
+        "min_days": min_days,
+        "min_days_to_delivery": MIN_DAYS_TO_DELIVERY,
+        "rate_source": rate_source,
+        "start": start.isoformat(),
+        "end": end.isoformat(),
+    }
+    return WindowInputs(start, end, curves, rate, inputs, settings)
+
+
+def store_window(
+    session: Session,
+    *,
+    commodity_id: int,
+    user: str,
+    window: WindowInputs,
+    result: WindowFit,
+    series_id: int | None = None,
+    settings: dict[str, Any] | None = None,
+) -> int:
+    """Insert the estimate ``result`` of ``window`` with its states; returns its id."""
+    assert result.params is not None and result.noise_sd is not None
+    assert result.std_errors is not None and result.covariance is not None
+    assert result.filtered is not None and result.smoothed is not None
+    dates = np.asarray(window.curves.dates, dtype="datetime64[D]")
+    cov = [[_none_if_nan(float(v)) for v in row] for row in result.covariance]
+    return add_estimate(
+        session=session,
+        commodity_id=commodity_id,
+        created_at=utc_now(),
+        created_by=user,
+        source="kalman",
+        window_start=_day(dates[0]),
+        window_end=_day(dates[-1]),
+        params=result.params,
+        converged=result.converged,
+        message=result.message,
+        std_errors={k: _none_if_nan(v) for k, v in result.std_errors.items()},
+        noise_sd=result.noise_sd.tolist(),
+        inputs=window.inputs,
+        inputs_sha256=inputs_sha256(window.inputs),
+        settings={**window.settings, **(settings or {})},
+        code_version=code_version(),
+        n_contracts=result.n_contracts,
+        n_days=result.n_days,
+        n_obs=result.n_obs,
+        loglik=result.loglik,
+        rate=window.rate,
+        states=StatesIn(
+            trade_date=dates,
+            log_spot_filtered=result.filtered[:, 0],
+            yield_filtered=result.filtered[:, 1],
+            log_spot_smoothed=result.smoothed[:, 0],
+            yield_smoothed=result.smoothed[:, 1],
+        ),
+        series_id=series_id,
+        covariance=cov,
+    )
+
+
 def estimate(
     sessions: sessionmaker[Session],
     commodity: str,
@@ -83,7 +200,8 @@ def estimate(
     """Estimate the two-factor model from the stored futures of ``start..end`` and store it.
 
     The data are read in one transaction, the likelihood is maximised outside any
-    transaction, and the estimate and its states are written in a second one.
+    transaction (from the default starts: :func:`calib.estimate.rolling.fit_window`), and the
+    estimate and its states are written in a second one.
 
     Raises
     ------
@@ -98,69 +216,20 @@ def estimate(
     with sessions.begin() as session:
         cid = require_commodity(session=session, code=commodity).id
         table = load_futures_history(session=session, commodity=commodity, start=start, end=end)
-        rate, rate_source, rate_rows = window_rate(session, start, end)
-    if table.empty:
-        raise NoQuotesError(commodity, f"no futures settlements stored in {start}..{end}")
-    curves = curves_from_quotes(
-        table["trade_date"].to_numpy(),
-        table["delivery"].to_numpy(),
-        table["settle"].to_numpy(),
-        n_contracts=n_contracts,
-        min_days_to_delivery=MIN_DAYS_TO_DELIVERY,
-    )
+        window = window_inputs(
+            session, commodity, table, start, end, n_contracts=n_contracts, min_days=min_days
+        )
+    curves = window.curves
     progress(
         f"maximising the likelihood: {curves.n_days} days x {curves.n_slots} contracts, "
-        f"r = {rate:.4%}"
+        f"r = {window.rate:.4%}"
     )
-    with warnings.catch_warnings():
-        warnings.simplefilter("ignore", EstimationWarning)  # the flag is stored and printed
-        result = fit(curves, rate, min_days=min_days)
+    result = fit_window(window.task(), FitSettings(min_days=min_days), None)
     progress(f"storing the estimate ({result.message})")
-    states = result.states
-    inputs = {
-        "batch_ids": sorted(set(table["batch_id"].tolist())),
-        "futures_rows": sorted(table["row_id"].tolist()),
-        "rate_rows": rate_rows,
-    }
-    settings: dict[str, Any] = {
-        "n_contracts": n_contracts,
-        "min_days": min_days,
-        "min_days_to_delivery": MIN_DAYS_TO_DELIVERY,
-        "rate_source": rate_source,
-        "start": start.isoformat(),
-        "end": end.isoformat(),
-    }
     with sessions.begin() as session:
         begin_write(session)
-        estimate_id = add_estimate(
-            session=session,
-            commodity_id=cid,
-            created_at=utc_now(),
-            created_by=user,
-            source="kalman",
-            window_start=_day(result.window_start),
-            window_end=_day(result.window_end),
-            params=result.params,
-            converged=result.converged,
-            message=result.message,
-            std_errors={k: _none_if_nan(v) for k, v in result.std_errors.items()},
-            noise_sd=result.noise_sd.tolist(),
-            inputs=inputs,
-            inputs_sha256=inputs_sha256(inputs),
-            settings=settings,
-            code_version=code_version(),
-            n_contracts=result.n_contracts,
-            n_days=result.n_days,
-            n_obs=result.n_obs,
-            loglik=result.loglik,
-            rate=result.rate,
-            states=StatesIn(
-                trade_date=np.asarray(curves.dates, dtype="datetime64[D]"),
-                log_spot_filtered=states.filtered[:, 0],
-                yield_filtered=states.filtered[:, 1],
-                log_spot_smoothed=states.smoothed[:, 0],
-                yield_smoothed=states.smoothed[:, 1],
-            ),
+        estimate_id = store_window(
+            session, commodity_id=cid, user=user, window=window, result=result
         )
         record = get_estimate(session=session, estimate_id=estimate_id)
     assert record is not None

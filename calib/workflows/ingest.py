@@ -394,9 +394,12 @@ class _Rows:
         reasons = [reason] * idx.size if isinstance(reason, str) else list(reason(idx))
         self.reason[idx] = np.array(reasons, dtype=object)
 
-    def value_reason(self, name: str, template: str) -> Callable[[IntArray], Iterable[str]]:
+    def value_reason(
+        self, name: str, template: str, **fixed: object
+    ) -> Callable[[IntArray], Iterable[str]]:
+        """Per-row reasons: ``template`` filled with the row's raw ``value`` and ``fixed``."""
         text = self.text(name)
-        return lambda idx: (template.format(value=text[i]) for i in idx)
+        return lambda idx: (template.format(value=text[i], **fixed) for i in idx)
 
     # parsers: each refuses the rows it cannot parse and returns the parsed column
 
@@ -448,10 +451,8 @@ class _Rows:
         row_status = status[codes]
         self.reject(row_status == 1, name, msg.ROW_EMPTY)
         self.reject(row_status == 2, name, self.value_reason(name, msg.ROW_NOT_DATE))
-        out_of_range = msg.ROW_DATE_RANGE.replace("{low}", str(DATE_MIN)).replace(
-            "{high}", str(DATE_MAX)
-        )
-        self.reject(row_status == 3, name, self.value_reason(name, out_of_range))
+        out_of_range = self.value_reason(name, msg.ROW_DATE_RANGE, low=DATE_MIN, high=DATE_MAX)
+        self.reject(row_status == 3, name, out_of_range)
         return np.asarray(parsed[codes])
 
     def choice(
@@ -619,11 +620,10 @@ def _check_options(session: Session, rows: _Rows, cid: IntArray) -> _Checked:
     rows.reject(strike <= 0, "strike", rows.value_reason("strike", msg.ROW_NOT_POSITIVE))
     rows.reject(np.isnan(premium) & np.isnan(vol), "premium", msg.ROW_NO_PRICE)
     rows.reject(premium <= 0, "premium", rows.value_reason("premium", msg.ROW_NOT_POSITIVE))
-    vol_range = msg.ROW_VOL_RANGE.replace("{high}", f"{IMPLIED_VOL_MAX:g}")
     rows.reject(
         (vol <= 0) | (vol > IMPLIED_VOL_MAX),
         "implied_vol",
-        rows.value_reason("implied_vol", vol_range),
+        rows.value_reason("implied_vol", msg.ROW_VOL_RANGE, high=IMPLIED_VOL_MAX),
     )
     rows.reject(bid < 0, "bid", rows.value_reason("bid", msg.ROW_NEGATIVE))
     rows.reject(ask < 0, "ask", rows.value_reason("ask", msg.ROW_NEGATIVE))
@@ -720,8 +720,8 @@ def _check_rates(rows: _Rows) -> _Checked:
     trade = rows.date("trade_date")
     maturity = rows.date("maturity")
     rate = rows.number("zero_rate")
-    limit = msg.ROW_RATE_RANGE.replace("{limit}", f"{ZERO_RATE_LIMIT:g}")
-    rows.reject(np.abs(rate) > ZERO_RATE_LIMIT, "zero_rate", rows.value_reason("zero_rate", limit))
+    limit = rows.value_reason("zero_rate", msg.ROW_RATE_RANGE, limit=ZERO_RATE_LIMIT)
+    rows.reject(np.abs(rate) > ZERO_RATE_LIMIT, "zero_rate", limit)
     rows.reject(
         maturity <= trade,
         "maturity",

@@ -155,7 +155,7 @@ def run_vols(
     )
 
 
-def _choose_run(session: Session, commodity: str, run_id: int | None) -> RunRecord:
+def choose_run(session: Session, commodity: str, run_id: int | None) -> RunRecord:
     if run_id is None:
         found = latest_approved(session=session, commodity=commodity)
         if found is None:
@@ -210,7 +210,7 @@ def price_spread(
     UnknownCommodityError, UnknownRunError
     """
     with sessions.begin() as session:
-        run = _choose_run(session, commodity, run_id)
+        run = choose_run(session, commodity, run_id)
         day = on or run.trade_date
         quotes = load_day(session=session, commodity=commodity, trade_date=day)
     if not near < far:
