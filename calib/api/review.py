@@ -55,12 +55,12 @@ from calib.errors import (
     UnknownRunError,
 )
 from calib.model.twofactor import PARAM_NAMES
-from calib.settings import Settings
-from calib.store.engine import Store, make_store
-from calib.workflows import review as views
 from calib.output.compare import plot_png
 from calib.output.report import CAUTIONS, FIGURES, ReportInputs, figure_names, figure_png
+from calib.settings import Settings
+from calib.store.engine import Store, make_store
 from calib.workflows import approve as approve_flow
+from calib.workflows import review as views
 from calib.workflows.report import report_inputs
 
 CSP = (
@@ -295,7 +295,9 @@ def review_router(settings: Settings, token: str | None) -> APIRouter:
             summary="Reject a candidate run",
         )
         def reject(run_id: int, decision: ApproveRequest) -> JSONResponse:
-            record = approve_flow.reject(store().sessions, run_id, by=decision.by, note=decision.note)
+            record = approve_flow.reject(
+                store().sessions, run_id, by=decision.by, note=decision.note
+            )
             return JSONResponse(record.to_dict())
 
     return router

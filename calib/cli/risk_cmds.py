@@ -144,9 +144,7 @@ def compare_cmd(
     if plot_file is not None:
         title = f"{commodity}: calibrated against historical ({selection.rule})"
         written["plot"] = str(
-            compare_out.plot(
-                table, plot_file, title=title, span=(selection.start, selection.end)
-            )
+            compare_out.plot(table, plot_file, title=title, span=(selection.start, selection.end))
         )
     if as_json:
         echo_json(

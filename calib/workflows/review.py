@@ -24,6 +24,14 @@ from datetime import date, timedelta
 
 from sqlalchemy.orm import Session, sessionmaker
 
+from calib.output.compare import (
+    MEASURE_KIND,
+    QUANTITIES,
+    Band,
+    Bands,
+    CompareTable,
+    compare_series,
+)
 from calib.store.quotes import CommodityRecord, list_commodities, require_commodity
 from calib.store.runs import (
     ApprovalRecord,
@@ -33,14 +41,6 @@ from calib.store.runs import (
     list_runs,
     newest_trade_date,
     require_run,
-)
-from calib.output.compare import (
-    MEASURE_KIND,
-    QUANTITIES,
-    Band,
-    Bands,
-    CompareTable,
-    compare_series,
 )
 from calib.workflows.compare import Selection, compare_rows
 

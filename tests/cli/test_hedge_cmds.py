@@ -13,8 +13,8 @@ import pytest
 
 from calib.model import black76
 from calib.model.twofactor import total_variance
-from calib.store.engine import Store
 from calib.policy.settings import RunSettings
+from calib.store.engine import Store
 from calib.workflows.approve import approve
 from calib.workflows.fit import fit_day
 from tests.cli.test_store_cmds import run

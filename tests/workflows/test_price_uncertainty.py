@@ -18,8 +18,8 @@ from calib.model.twofactor import total_variance
 from calib.store.engine import Store
 from calib.store.quotes import load_day
 from calib.workflows.approve import approve
-from calib.workflows.fit import fit_day
 from calib.workflows.estimates import estimate
+from calib.workflows.fit import fit_day
 from calib.workflows.price_uncertainty import (
     price_vanilla,
     spread_uncertainty,
