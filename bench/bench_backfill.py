@@ -27,10 +27,10 @@ from calib.store.engine import make_store
 from calib.store.migrate import upgrade
 from calib.store.quotes import load_day, trade_dates
 from calib.workflows.backfill import backfill
+from calib.workflows.demo.scenario import ScenarioSpec, generate, write_csv
 from calib.workflows.estimates import import_estimate
 from calib.workflows.fit import attempt_fit
 from calib.workflows.ingest import NewCommodity, ingest_file
-from calib.workflows.scenario import ScenarioSpec, generate, write_csv
 
 N_DATES = 2_500
 WORKERS = 2

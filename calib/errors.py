@@ -532,17 +532,6 @@ class BandOptionError(TemplatedError, InputError):
     reason: str
 
 
-@dataclass(eq=False, repr=False)
-class DemoDirectoryError(TemplatedError, InputError):
-    """The demo's directory holds a store the demo did not make; kept unless ``--fresh``."""
-
-    TEMPLATE: ClassVar[str] = (
-        "{path} already exists and is not the demo's: pass --fresh to replace it, or choose "
-        "another --dir"
-    )
-    path: str
-
-
 # --- serving: the pricers' client and the HTTP API ---------------------------------------------
 
 

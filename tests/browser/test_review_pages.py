@@ -15,8 +15,8 @@ import pytest
 
 from calib.api.app import create_app
 from calib.client import Client
+from calib.output.report import FIGURES
 from calib.settings import Settings
-from calib.workflows.report import FIGURES
 from tests.browser.harness import chromium, new_page, screenshot
 from tests.browser.review_store import ReviewStore, build
 from tests.serving.test_api import serving

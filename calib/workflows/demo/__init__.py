@@ -1,7 +1,7 @@
 """The demo: the whole morning job on the invented scenario, in one call.
 
-:func:`run_demo` generates the scenario (:mod:`calib.workflows.scenario`, invented commodity
-and exchange), writes its CSV files into ``DIR/inputs``, creates a fresh SQLite store
+:func:`run_demo` generates the scenario (:mod:`calib.workflows.demo.scenario`, invented
+commodity and exchange), writes its CSV files into ``DIR/inputs``, creates a fresh SQLite store
 ``DIR/calib.sqlite``, registers the commodity, ingests futures, rates and options (in that
 order: the options' checks need the day's futures and zero curve), estimates the model on the
 first :attr:`DemoPlan.estimate_months` (Kalman-filter maximum likelihood), fits and gates each
@@ -42,11 +42,11 @@ from calib.store.estimates import EstimateRecord
 from calib.store.migrate import upgrade
 from calib.store.quotes import add_commodity
 from calib.workflows.compare import Selection, compare_runs
+from calib.workflows.demo.scenario import Scenario, ScenarioSpec, generate, write_csv
 from calib.workflows.estimates import MIN_DAYS, estimate
 from calib.workflows.fit import FitOutcome, fit_day
 from calib.workflows.ingest import Kind, ingest_file
 from calib.workflows.report import write_report
-from calib.workflows.scenario import Scenario, ScenarioSpec, generate, write_csv
 
 Progress = Callable[[str], None]
 
