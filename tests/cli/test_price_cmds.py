@@ -160,10 +160,10 @@ def test_forward_buckets_and_clear_errors(
     assert len(payload["vol_sensitivities"]["rho"]) == len(buckets) > 1
     vols = ForwardVols(
         kappa=fitted.run.params.kappa,  # type: ignore[union-attr]
-        edges=np.array([0.0] + [b["end"] for b in buckets]),
-        sigma_spot=np.array([b["params"]["sigma_spot"] for b in buckets]),
-        sigma_yield=np.array([b["params"]["sigma_yield"] for b in buckets]),
-        rho=np.array([b["params"]["rho"] for b in buckets]),
+        edges=np.array([0.0] + [b.end for b in buckets]),
+        sigma_spot=np.array([b.params.sigma_spot for b in buckets]),
+        sigma_yield=np.array([b.params.sigma_yield for b in buckets]),
+        rho=np.array([b.params.rho for b in buckets]),
     )
     option = SpreadOption(
         near=np.array([payload["t_near"]]),

@@ -103,6 +103,16 @@ def test_cli_client_and_api_agree_on_unusual_histories(
             api = answer.json()["run_id"] if answer.status_code == 200 else None
             seen = {"cli": by_cli(when), "client": by_client(client, when), "api": api}
             assert seen == dict.fromkeys(seen, run_id), when
+        # one set of names for the approval: the CLI's JSON and the API's bodies agree
+        _, out, _ = run_cli(capsys, monkeypatch, "latest", CODE, "--json", "--db", db_url)
+        shown, served = json.loads(out), http.get(LATEST).json()
+        for key in ("approval_id", "approval_note", "approved_by", "approved_at"):
+            assert shown[key] == served[key], key
+        _, out, _ = run_cli(
+            capsys, monkeypatch, "latest", CODE, "--history", "--json", "--db", db_url
+        )
+        assert json.loads(out) == http.get(f"/v1/commodities/{CODE}/history").json()
+        assert "note" not in served and "note" not in json.loads(out)[0]
 
 
 def test_the_set_in_force_at_a_past_moment_never_changes(store: Store, db_url: str) -> None:
@@ -130,3 +140,15 @@ def test_the_set_in_force_at_a_past_moment_never_changes(store: Store, db_url: s
         after = client.latest(CODE, as_of=moment).run_id
     assert during_store is not None
     assert during_client == during_store.run_id == after == second
+
+
+def test_a_bad_as_of_over_http_is_one_line_naming_the_field(store: Store, db_url: str) -> None:
+    commodity(store)
+    with serving(create_app(Settings(db_url=db_url))) as http:
+        for bad in ("yesterday", "2033-13-40T00:00:00Z"):
+            answer = http.get(LATEST, params={"as_of": bad})
+            assert answer.status_code == 422
+            detail = answer.json()["detail"]
+            assert isinstance(detail, str) and "\n" not in detail, detail
+            assert detail.startswith("as_of: ") and "ISO time" in detail
+            assert bad not in detail  # the value is not echoed

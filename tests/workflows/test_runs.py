@@ -65,7 +65,7 @@ def test_fit_gates_approve_supersede_and_rerun(store: Store, loaded: Loaded) -> 
     assert first.run.fit is not None and len(residuals) == first.run.fit.n_quotes > 0
     # the gate value is the stored residuals' RMSE in vol points
     rmse = 100 * float((residuals["vol_residual"] ** 2).mean() ** 0.5)
-    assert first.gates[2]["value"] == pytest.approx(rmse, rel=1e-12)
+    assert first.gates[2].value == pytest.approx(rmse, rel=1e-12)
 
     approval = approve(store.sessions, first.run.run_id, by="risk", note="looks fine")
     assert approval.superseded is None and approval.run.approved_by == "risk"
