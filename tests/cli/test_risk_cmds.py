@@ -138,7 +138,9 @@ def test_a_solver_warning_reaches_the_user_as_one_plain_line(
     def inaccurate_frontier(*args: Any, **kwargs: Any) -> Any:
         warnings.warn(
             CalibrationInaccurateWarning(
-                solver="CLARABEL", status="optimal_inaccurate", iteration=2
+                CalibrationInaccurateWarning.TEMPLATE.format(
+                    solver="CLARABEL", status="optimal_inaccurate", iteration=2
+                )
             ),
             stacklevel=1,
         )
@@ -260,7 +262,7 @@ def test_compare_selects_runs_and_flags_days_outside_the_band(
     rows = _rows(tmp_path / "a.csv")
     # default: every run ever approved, superseded ones included, in trade-date order
     approved = sorted((r["trade_date"], r["run_id"]) for r in demo.runs if _ever_approved(r))
-    assert [(r["trade_date"], r["run_id"]) for r in rows] == approved  # ids are integers
+    assert [(r["trade_date"], int(r["run_id"])) for r in rows] == approved
     assert {r["status"] for r in rows} == {"approved", "superseded"}
     # the historical side is the estimate each run held fixed (the demo's only one)
     assert {float(r["sigma_spot_hist"]) for r in rows} == {demo.summary["estimate"]["sigma_spot"]}
@@ -293,6 +295,8 @@ def test_compare_selects_runs_and_flags_days_outside_the_band(
     code, out, _ = run(capsys, monkeypatch, *base, "--json", "--band-yield", "0.99,1.01")
     payload = json.loads(out)
     assert len(payload["rows"]) == len(rows) and payload["runs"] == "runs ever approved"
+    # run ids are integers in every JSON output (issue 12, defect 5)
+    assert [r["run_id"] for r in payload["rows"]] == [int(r["run_id"]) for r in rows]
     flagged = [r for r in payload["rows"] if "sigma_yield" in r["flags"]]
     for r in payload["rows"]:
         outside = not 0.99 <= r["sigma_yield"] / r["sigma_yield_hist"] <= 1.01

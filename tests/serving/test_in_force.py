@@ -104,8 +104,10 @@ def test_cli_client_and_api_agree_on_unusual_histories(
             seen = {"cli": by_cli(when), "client": by_client(client, when), "api": api}
             assert seen == dict.fromkeys(seen, run_id), when
         # one set of names for the approval: the CLI's JSON and the API's bodies agree
-        _, out, _ = run_cli(capsys, monkeypatch, "latest", CODE, "--json", "--db", db_url)
-        shown, served = json.loads(out), http.get(LATEST).json()
+        late = (t5 + timedelta(days=1)).isoformat()
+        args = ("latest", CODE, "--as-of", late, "--json", "--db", db_url)
+        _, out, _ = run_cli(capsys, monkeypatch, *args)
+        shown, served = json.loads(out), http.get(LATEST, params={"as_of": late}).json()
         for key in ("approval_id", "approval_note", "approved_by", "approved_at"):
             assert shown[key] == served[key], key
         _, out, _ = run_cli(
