@@ -6,13 +6,21 @@ calib's ``ingest_file`` (read CSV, validate every rule, store in one transaction
 SQLite file, and the peer: the sqlite3 module's ``executemany`` of the same rows, already as
 tuples, into a table of the same shape, with no reading and no validation (the ceiling). If
 ``CALIB_TEST_PG_URL`` is set, calib's figure on PostgreSQL too (in a throw-away schema).
+
+Memory: the same year with 180 strikes a side (about 2.07 million option rows, a 120 MB CSV)
+ingested in a fresh process, whose peak resident memory is printed with its rows/s (wall and
+CPU time: the machine may be shared); the peer is ``pandas.read_csv`` of the same file in a
+fresh process (reading only). ``CALIB_BENCH_LARGE=0`` skips this part.
 """
 
 from __future__ import annotations
 
 import csv
 import os
+import resource
 import sqlite3
+import subprocess
+import sys
 import tempfile
 import time
 import uuid
@@ -48,7 +56,9 @@ def _month(d: date, ahead: int) -> date:
     return date(d.year + m // 12, m % 12 + 1, 1)
 
 
-def write_year(folder: Path, seed: int = 7) -> tuple[Path, Path, Path, list[tuple[object, ...]]]:
+def write_year(
+    folder: Path, seed: int = 7, strikes: int = N_STRIKES
+) -> tuple[Path, Path, Path, list[tuple[object, ...]]]:
     """Write futures, rates and options CSV files for one invented year; also the option rows."""
     rng = np.random.default_rng(seed)
     days = _weekdays(date(2031, 1, 6), N_DAYS)
@@ -70,13 +80,13 @@ def write_year(folder: Path, seed: int = 7) -> tuple[Path, Path, Path, list[tupl
             f = round(float(f), 4)
             expiry = d - timedelta(days=5)
             t = (expiry - day).days / 365.0
-            strikes = np.round(f * np.linspace(0.6, 1.4, N_STRIKES), 2)
+            grid = np.round(f * np.linspace(0.6, 1.4, strikes), 2)
             for is_call in (True, False):
-                prem = price(f, strikes, t, rate, 0.35, "call" if is_call else "put")
+                prem = price(f, grid, t, rate, 0.35, "call" if is_call else "put")
                 kind = "call" if is_call else "put"
                 opt_rows += [
                     (day, COMMODITY, d, expiry, kind, float(k), round(float(p), 6))
-                    for k, p in zip(strikes, prem, strict=True)
+                    for k, p in zip(grid, prem, strict=True)
                     if p > 1e-6
                 ]
     paths = (folder / "futures.csv", folder / "rates.csv", folder / "options.csv")
@@ -133,6 +143,71 @@ def _peer(path: Path, rows: list[tuple[object, ...]]) -> float:
     return elapsed
 
 
+LARGE_STRIKES = 180
+"""Strikes a side in the memory run: about 2.07 million option rows."""
+
+
+def _peak_mb() -> float:
+    return resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024  # kilobytes on Linux
+
+
+def _child(task: str, folder: Path) -> None:
+    """Run in a fresh process: ingest the large options file (or read it with pandas)."""
+    options = folder / "options.csv"
+    if task == "peer":
+        import pandas as pd
+
+        start = time.perf_counter()
+        count = len(pd.read_csv(options))
+        print(f"{count} {time.perf_counter() - start} 0 {_peak_mb()}")
+        return
+    store = make_store(f"sqlite:///{folder / 'large.sqlite'}")
+    try:
+        before = resource.getrusage(resource.RUSAGE_SELF)
+        start = time.perf_counter()
+        report = ingest_file(store.sessions, options, "options", user="bench")
+        wall = time.perf_counter() - start
+        after = resource.getrusage(resource.RUSAGE_SELF)
+    finally:
+        store.engine.dispose()
+    assert report.rows_rejected == 0, report.problems[:3]
+    cpu = after.ru_utime + after.ru_stime - before.ru_utime - before.ru_stime
+    print(f"{report.rows_accepted} {wall} {cpu} {_peak_mb()}")
+
+
+def _run_child(task: str, folder: Path) -> tuple[int, float, float, float]:
+    out = subprocess.run(
+        [sys.executable, "-m", "bench.bench_ingest", task, str(folder)],
+        check=True,
+        capture_output=True,
+        text=True,
+    ).stdout.split()
+    return int(out[0]), float(out[1]), float(out[2]), float(out[3])
+
+
+def _memory() -> None:
+    with tempfile.TemporaryDirectory() as tmp:
+        folder = Path(tmp)
+        futures, rates, options, _ = write_year(folder, strikes=LARGE_STRIKES)
+        size = options.stat().st_size / 2**20
+        store = make_store(f"sqlite:///{folder / 'large.sqlite'}")
+        try:
+            upgrade(store.engine)
+            ingest_file(store.sessions, futures, "futures", user="bench", create=NewCommodity())
+            ingest_file(store.sessions, rates, "rates", user="bench")
+        finally:
+            store.engine.dispose()
+        count, wall, cpu, peak = _run_child("child", folder)
+        _, _, _, peer = _run_child("peer", folder)
+        print(f"large file: {count:,} option rows, {size:.0f} MB CSV")
+        print(
+            f"calib ingest, SQLite, fresh process: peak RSS {peak:,.0f} MB; "
+            f"{count / wall:,.0f} rows/s wall, {count / cpu:,.0f} rows/s CPU"
+        )
+        print(f"peer: pandas.read_csv of the file, fresh process: peak RSS {peer:,.0f} MB")
+        print(f"ratio calib / peer (peak RSS): {peak / peer:.2f}")
+
+
 def main() -> None:
     """Print calib's and the peer's option rows per second on SQLite, the ratio, and PostgreSQL."""
     with tempfile.TemporaryDirectory() as tmp:
@@ -166,3 +241,9 @@ def main() -> None:
                 admin.dispose()
         else:
             print("PostgreSQL: skipped (CALIB_TEST_PG_URL not set)")
+    if os.environ.get("CALIB_BENCH_LARGE", "1") != "0":
+        _memory()
+
+
+if __name__ == "__main__":  # a fresh process of the memory run
+    _child(sys.argv[1], Path(sys.argv[2]))

@@ -631,6 +631,10 @@ HEDGE_NO_SET = "no approved parameter set {when} (fit and approve a run, or name
 HEDGE_WORLD_FILE = "world file {path}: {reason}"
 HEDGE_WORLD_RUN = "world run {run_id} has no parameters (it failed)"
 HEDGE_STEPS = "--steps-per-year must be >= 1 and --paths >= 2 (got {steps} and {paths})"
+HEDGE_REPLAY_START = "cannot sell on {day}: {reason}"
+HEDGE_REPLAY_END = "the option expires on {expiry}, after the last stored settlement ({last})"
+HEDGE_REPLAY_SETS = 'sets must be "in-force" or "by-trade-date", not {value!r}'
+HEDGE_MORNING = "--morning must be a time HH:MM (UTC), not {value!r}"
 
 
 # --- American options on futures (numeric core) ---------------------------------------------
@@ -652,6 +656,73 @@ AMERICAN_IMPLIED_VOL_REASONS: dict[str, str] = {
     "NON_FINITE_INPUT": IMPLIED_VOL_REASONS["NON_FINITE_INPUT"],
 }
 """Reason phrases of :class:`ImpliedVolError` for American premiums, keyed like Black-76's."""
+
+
+# --- quote files: limits, plausibility, store text limits (ingest) -----------------------------
+
+FILE_TOO_MANY_COLUMNS = "the header has {found} columns; at most {limit} are read"
+FILE_HEADER_TOO_LONG = (
+    "the header line is longer than {limit} bytes; at most {columns} columns are read"
+)
+FILE_NO_ROWS = "no rows after the header"
+NOTE_NO_CURVE = (
+    "no zero curve stored for {count} trade date(s) ({days}): premiums checked with r = 0;"
+    " ingest a day's rates before its options"
+)
+HINT_KNOWN = " (known: {known})"
+ROW_NUL = "contains a NUL character"
+ROW_LINE_TOO_LONG = "line of {found} characters; at most {limit} are read"
+ROW_UNBALANCED_QUOTE = "unbalanced quote: {count} quote character(s) on the line"
+ROW_BEYOND_HORIZON = "{value} is more than {years} years after the trade date {trade_date}"
+ROW_PRICE_RANGE = "must be within {low:g}..{high:g}: {value!r}"
+ROW_TOO_HIGH = "must be at most {high:g}: {value!r}"
+ROW_VOL_LOW = "implied volatility below {low:g}: {value!r}"
+ROW_STRIKE_RATIO = (
+    "strike {strike:.10g} is beyond x{limit:g} of the future's settlement {forward:.10g}"
+)
+ROW_PREMIUM_TINY = "premium {premium:.10g} is below {ratio:g} of max(F, K)"
+ROW_UNKNOWN_COMMODITY = "unknown commodity {value!r}; known: {known}"
+ROW_DAY_MOVE = (
+    "{name} {value:.10g} is x{ratio:.4g} the previous {previous:.10g} of {day},"
+    " beyond the day-on-day band (x{limit:g} either way)"
+)
+
+
+@dataclass(eq=False, repr=False)
+class TextTooLongError(TemplatedError, InputError):
+    """A text value longer than the store keeps (the same limit on every engine)."""
+
+    TEMPLATE: ClassVar[str] = "{what} is {found} characters long; at most {limit} are stored"
+    what: str
+    found: int
+    limit: int
+
+
+# --- calibration: robustness (the fit's own block) -----------------------------------------------
+
+
+@dataclass(eq=False, repr=False)
+class CalibrationNumericalError(TemplatedError, CalibError):
+    """A numerical failure inside a fit (overflow, division by zero, a singular system)."""
+
+    TEMPLATE: ClassVar[str] = "calibration failed numerically: {reason}"
+    reason: str
+
+
+class CalibrationNotIdentifiedWarning(CalibWarning):
+    """The quotes do not identify a fitted parameter; the result carries the flag too."""
+
+    TEMPLATE = "the quotes do not identify {what}: {reason}"
+
+
+CALIBRATION_ERRORS: tuple[type[CalibError], ...] = (
+    TooFewQuotesError,
+    InfeasibleSettingsError,
+    QuoteError,
+    CalibrationSolverError,
+    CalibrationNumericalError,
+)
+"""What a fit raises for a day it cannot fit: each is stored as a rejected run with its reason."""
 
 
 # --- the demo's folder (issue 19) --------------------------------------------------------------

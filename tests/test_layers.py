@@ -19,6 +19,7 @@ FORBIDDEN: dict[str, tuple[str, ...]] = {
     "policy": ("store", "output", *_ABOVE_STORE),
     "output": ("store", *_ABOVE_STORE),
     "store": ("policy", "output", *_ABOVE_STORE),
+    "inputs": ("store", "estimate", "calibrate", "policy", "output", *_ABOVE_STORE),
     "workflows": ("cli", "api"),
     "hedge": ("store", "estimate", "calibrate", "policy", "output", *_ABOVE_STORE),
 }

@@ -13,6 +13,11 @@ the duals of the last sub-problem are its multipliers. The sub-problem's objecti
 ``J`` at the linearisation point, so ``J - (its optimum)`` is the decrease it predicts; the
 iteration stops once that is below the solver's resolution (``solver_tol / scale``, the gap
 tolerance of the scaled sub-problem), or the step vanishes.
+
+The constraints are the objects of :mod:`calib.calibrate.constraints`; the fit, the held
+scan, the re-fits and the reports all read them. A numerical failure inside a fit (an
+overflow, a division by zero, a singular system, a non-finite result) is raised as
+:class:`~calib.errors.CalibrationNumericalError` with its reason, never as a bare Python error.
 """
 
 from __future__ import annotations
@@ -25,34 +30,50 @@ from dataclasses import replace
 import numpy as np
 
 from calib.calibrate import held
+from calib.calibrate.constraints import (
+    BIND_TOL,
+    SCAN_VAR_TOL,
+    Constraint,
+    Limits,
+    active,
+    check_feasible,
+    variance_tolerance,
+)
 from calib.calibrate.objective import errors, fit_term
-from calib.calibrate.problem import SOLVER, ConvexStep
+from calib.calibrate.penalties import Anchor
+from calib.calibrate.problem import SOLVER, ConvexStep, Solved, huber_capacity
 from calib.calibrate.quotes import FitData, OptionQuotes, prepare
 from calib.calibrate.result import BucketVols, CalibrationResult, ConstraintReport, FrontierPoint
 from calib.calibrate.settings import CalibrationSettings
+from calib.calibrate.uncertainty import (
+    Uncertainty,
+    profile_curvature,
+    standard_errors,
+    theta_jacobian,
+)
 from calib.errors import (
+    CALIBRATION_ERRORS,
     CalibrationNotConvergedWarning,
+    CalibrationNotIdentifiedWarning,
+    CalibrationNumericalError,
     CalibrationShapeError,
+    CalibWarning,
     InfeasibleSettingsError,
+    ParameterError,
     TooFewQuotesError,
 )
 from calib.model import black76
 from calib.model.twofactor import TwoFactorParams, bucket_coefficients, variance_coefficients
 from calib.types import FloatArray
 
-BIND_TOL = 1e-7  # slack (vol units) below which a constraint counts as binding
+__all__ = ["BIND_TOL", "Calibrator", "bucket_edges", "check_feasible", "fit", "frontier"]
+
 _BACKTRACKS = 30
 _MIN_OBJECTIVE = 1e-12  # sub-problem scale limit: rows at most 1e6 times the data
 _EXACT = 1e-20  # RMS error 1e-10 (per unit forward, or vol): below any quote precision; stop
 _MIN_QUOTES = {"constant": 3, "held_rho": 2, "forward": 3}
-
-FORMS = {
-    "psd": "|rho| <= 1  ([[P, C], [C, Q]] >= 0)",
-    "decay_bound": "sigma_yield <= rho kappa sigma_spot  (Q <= kappa C)",
-    "yield_floor": "sigma_yield >= q sigma_yield_hist",
-    "spot_cap": "sigma_spot <= sigma_spot_cap",
-    "rho_held": "rho = rho_hist",
-}
+_NUMERICAL = (ArithmeticError, np.linalg.LinAlgError, ParameterError)
+"""Python and numpy failures that mean numerical trouble inside a fit."""
 
 
 def _scale(J: float) -> float:
@@ -66,46 +87,11 @@ def bucket_edges(expiry: FloatArray) -> FloatArray:
     Expiries equal to 12 decimals share an edge; the last edge is the latest expiry itself
     (not its rounded value), so every option ends inside the buckets.
     """
+    if expiry.size == 0:  # no usable quote: no bucket (the fit refuses the day)
+        return np.zeros(1)
     edges = np.concatenate(([0.0], np.unique(np.round(expiry, 12))))
     edges[-1] = max(edges[-1], float(np.max(expiry)))
     return edges
-
-
-def check_feasible(settings: CalibrationSettings, historical: TwoFactorParams) -> None:
-    """Raise :class:`InfeasibleSettingsError` when the constraints cannot hold together.
-
-    Notes
-    -----
-    The floor asks ``s2 >= q s2_hist``; the decay bound allows at most
-    ``s2 <= rho kappa s1 <= rho_max kappa cap`` (``rho_max = 1``, or ``rho_hist`` when held);
-    held rho without the decay bound still limits ``s2 <= max_vol_ratio cap`` in the scan.
-    Without a floor (or with ``s2_hist = 0``) the origin-side point ``s2 = 0`` is feasible.
-    """
-    s = settings
-    floor = s.yield_floor * historical.sigma_yield
-    if floor <= 0.0:
-        return
-    cap = math.inf if s.sigma_spot_cap is None else s.sigma_spot_cap
-    cap_text = "no cap" if s.sigma_spot_cap is None else f"sigma_spot_cap {cap:.6g}"
-    if s.decay_bound:
-        rho = historical.rho if s.mode == "held_rho" else 1.0
-        top = 0.0 if rho <= 0.0 else historical.kappa * rho * cap
-        if floor > top:
-            rho_text = f"rho held at {rho:.6g}" if s.mode == "held_rho" else "rho <= 1"
-            raise InfeasibleSettingsError(
-                f"yield_floor sigma_yield >= {floor:.6g} (q {s.yield_floor:g} x historical "
-                f"{historical.sigma_yield:.6g}) vs decay_bound sigma_yield <= rho kappa "
-                f"sigma_spot <= {top:.6g} ({rho_text}, kappa {historical.kappa:.6g}, "
-                f"{cap_text}): short by {floor - top:.6g}",
-                floor - top,
-            )
-    elif s.mode == "held_rho" and floor > s.max_vol_ratio * cap:
-        top = s.max_vol_ratio * cap
-        raise InfeasibleSettingsError(
-            f"yield_floor sigma_yield >= {floor:.6g} vs max_vol_ratio {s.max_vol_ratio:g} x "
-            f"{cap_text}: sigma_yield <= {top:.6g}, short by {floor - top:.6g}",
-            floor - top,
-        )
 
 
 class Calibrator:
@@ -115,7 +101,8 @@ class Calibrator:
     ----------
     settings : the calibration settings (their constraint switches fix the structure).
     n_buckets : forward mode: the number of expiry buckets of every day it will see (any
-        number of quotes: they enter the conic problem through a ``3K x 3K`` QR factor).
+        number of quotes: they enter the conic problem through a ``3K x 3K`` QR factor, or
+        with the Huber loss through rows padded to a power of two).
 
     Examples
     --------
@@ -127,17 +114,24 @@ class Calibrator:
     def __init__(self, settings: CalibrationSettings, n_buckets: int = 1) -> None:
         self.settings = settings
         self.n_buckets = int(n_buckets) if settings.mode == "forward" else 1
+        self.families: tuple[Constraint, ...] = active(settings)
         self._without: dict[CalibrationSettings, Calibrator] = {}
         """The re-fits' calibrators (one constraint off), built at their first use."""
+        self._steps: dict[int | None, ConvexStep] = {}
         self.step: ConvexStep | None = None
-        if settings.mode != "held_rho":
-            self.step = ConvexStep(
+        if settings.mode != "held_rho" and settings.loss == "squares":
+            self.step = self._step_for(None)
+
+    def _step_for(self, huber_rows: int | None) -> ConvexStep:
+        step = self._steps.get(huber_rows)
+        if step is None:
+            step = self._steps[huber_rows] = ConvexStep(
                 self.n_buckets,
-                decay_bound=settings.decay_bound,
-                floor=settings.yield_floor > 0.0,
-                cap=settings.sigma_spot_cap is not None,
-                solver_tol=settings.solver_tol,
+                self.families,
+                solver_tol=self.settings.solver_tol,
+                huber_rows=huber_rows,
             )
+        return step
 
     def fit(
         self,
@@ -146,15 +140,23 @@ class Calibrator:
         *,
         anchor_weight: float | None = None,
     ) -> CalibrationResult:
-        """Fit one day's quotes; ``anchor_weight`` overrides the setting (the frontier's knob)."""
+        """Fit one day's quotes; ``anchor_weight`` overrides the setting (the frontier's knob).
+
+        Raises the errors of :func:`fit`; a numerical failure is a
+        :class:`~calib.errors.CalibrationNumericalError` with its reason.
+        """
         s = self.settings
         if anchor_weight is not None:
             s = replace(s, anchor_weight=anchor_weight)
-        check_feasible(s, historical)
-        data = prepare(quotes, s)
-        result = self._fit_data(data, quotes, historical, s)
-        if s.refit_costs:
-            result = self._with_refit_costs(result, data, quotes, historical)
+        try:
+            lim = check_feasible(s, historical)
+            with np.errstate(over="ignore", under="ignore"):
+                data = prepare(quotes, s)
+                result = self._fit_data(data, quotes, historical, s, lim)
+                if s.refit_costs:
+                    result = self._with_refit_costs(result, data, quotes, historical)
+        except _NUMERICAL as exc:
+            raise CalibrationNumericalError(f"{type(exc).__name__}: {exc}") from exc
         return result
 
     def _fit_data(
@@ -163,16 +165,38 @@ class Calibrator:
         quotes: OptionQuotes,
         hist: TwoFactorParams,
         s: CalibrationSettings,
+        lim: Limits,
     ) -> CalibrationResult:
         needed = _MIN_QUOTES[s.mode]
         if data.n < needed:
             counts: dict[str, int] = {}
             for d in data.dropped:
-                counts[d.reason] = counts.get(d.reason, 0) + 1
+                reason = d.reason.split(":")[0] if d.reason.startswith("screened") else d.reason
+                counts[reason] = counts.get(reason, 0) + 1
             raise TooFewQuotesError(data.n, len(quotes), s.mode, needed, counts)
         if s.mode == "held_rho":
-            return self._fit_held(data, hist, s, quotes)
-        return self._fit_convex(data, hist, s, quotes)
+            result = self._fit_held(data, hist, s, quotes, lim)
+        else:
+            result = self._fit_convex(data, hist, s, quotes, lim)
+        if not (
+            math.isfinite(result.objective)
+            and np.all(np.isfinite(result.model_vol))
+            and np.all(np.isfinite(result.model_price))
+        ):
+            raise CalibrationNumericalError(
+                f"the fit's objective or model prices are not finite (objective "
+                f"{result.objective!r})"
+            )
+        if result.not_identified:
+            warnings.warn(
+                CalibrationNotIdentifiedWarning(
+                    CalibrationNotIdentifiedWarning.TEMPLATE.format(
+                        what=", ".join(result.not_identified), reason=result.not_identified_reason
+                    )
+                ),
+                stacklevel=3,
+            )
+        return result
 
     def _with_refit_costs(
         self,
@@ -186,27 +210,50 @@ class Calibrator:
         Each re-fit is what :func:`fit` with that constraint off would give: its own
         :class:`Calibrator` (kept for the next day, as this one is), the same prepared
         quotes (the filters and weights do not depend on the constraints), the same checks.
+        A family without a switch (``psd``, the held scan's ranges), or whose re-fit cannot
+        run (e.g. too few quotes for the mode without the held correlation), gets no cost and
+        a ``refit_note`` saying why; the fit itself stands.
         """
         s = result.settings
         costs: dict[str, float] = {}
-        for name in sorted({c.name for c in result.constraints if c.binds and c.name != "psd"}):
-            off = replace(s, refit_costs=False)
-            if name == "rho_held":
-                off = replace(off, mode="constant")
-            elif name == "decay_bound":
-                off = replace(off, decay_bound=False)
-            elif name == "yield_floor":
-                off = replace(off, yield_floor=0.0)
-            else:
-                off = replace(off, sigma_spot_cap=None)
+        notes: dict[str, str] = {}
+
+        def refit(off: CalibrationSettings) -> CalibrationResult:
+            off = replace(off, refit_costs=False)
             other = self._without.get(off)
             if other is None:
                 # the same data, so forward mode has this calibrator's buckets
                 other = self._without[off] = Calibrator(off, self.n_buckets)
-            check_feasible(off, hist)
-            costs[name] = result.objective - other._fit_data(data, quotes, hist, off).objective
-        reports = tuple(replace(c, refit_cost=costs.get(c.name)) for c in result.constraints)
-        return replace(result, constraints=reports)
+            with warnings.catch_warnings():
+                # the re-fit's own cautions are not the fit's
+                warnings.simplefilter("ignore", CalibWarning)
+                lim = check_feasible(off, hist)
+                return other._fit_data(data, quotes, hist, off, lim)
+
+        for family in self.families:
+            if not any(c.binds and c.name == family.name for c in result.constraints):
+                continue
+            off = family.without(s)
+            if off is None or family.name == "psd":
+                notes[family.name] = "not available: the constraint has no switch"
+                continue
+            try:
+                costs[family.name] = result.objective - refit(off).objective
+            except CALIBRATION_ERRORS as exc:
+                notes[family.name] = f"not available: {exc}"
+        anchor_cost = None
+        if s.anchor_weight > 0.0:
+            try:
+                anchor_cost = result.fit - refit(replace(s, anchor_weight=0.0)).fit
+            except CALIBRATION_ERRORS:
+                anchor_cost = None
+        reports = tuple(
+            replace(
+                c, refit_cost=costs.get(c.name), refit_note=notes.get(c.name) if c.binds else None
+            )
+            for c in result.constraints
+        )
+        return replace(result, constraints=reports, anchor_fit_cost=anchor_cost)
 
     # --- constant and forward modes: Gauss-Newton over the convex sub-problem ----------------
 
@@ -216,8 +263,8 @@ class Calibrator:
         hist: TwoFactorParams,
         s: CalibrationSettings,
         quotes: OptionQuotes,
+        lim: Limits,
     ) -> CalibrationResult:
-        assert self.step is not None
         K = self.n_buckets
         if s.mode == "forward":
             edges = bucket_edges(data.expiry)
@@ -230,26 +277,31 @@ class Calibrator:
                 z[:, None] for z in variance_coefficients(data.expiry, data.maturity, hist.kappa)
             )
         A = np.hstack([a, b, -2.0 * c])
-        step = self.step
+        step = self._step_for(None)
         s2h = hist.sigma_yield
-        step.set_day(
-            kappa=hist.kappa,
-            floor=(s.yield_floor * s2h) ** 2,
-            cap=(s.sigma_spot_cap or 0.0) ** 2,
-            anchor_weight=s.anchor_weight,
-            s2_hist=s2h,
-            smoothness=s.smoothness,
-        )
-        root_w = np.sqrt(data.weight)
+        anchor = Anchor(s.anchor_weight * anchor_scale(data, A, hist, s.error_measure), s2h, K)
+        step.set_day(lim, anchor, s.smoothness)
+        w, d = data.weight, data.threshold
+        huber_step = None
+        if d is not None:
+            huber_step = self._step_for(huber_capacity(data.n))
+            huber_step.set_day(lim, anchor, s.smoothness)
 
-        def penalties(x: FloatArray) -> float:
-            Q = np.maximum(x[K : 2 * K], 0.0)
-            dev = np.sqrt(Q) - s2h
-            smooth = float(np.sum(np.diff(x.reshape(3, K), axis=1) ** 2)) if K > 1 else 0.0
-            return float(s.anchor_weight * np.mean(dev * dev) + s.smoothness * smooth)
+        def sub_solve(
+            G: FloatArray, t: FloatArray, it: int, scale: float
+        ) -> tuple[Solved, bool, float, float]:
+            """The sub-problem; with Huber, its squared-loss solution when every linearised
+            residual stays within its threshold (where the two losses and their slopes agree,
+            so it is the Huber optimum too), else the conic Huber solve."""
+            used = step
+            solved, inaccurate = step.solve(G, t, w, None, it, scale)
+            if d is not None and huber_step is not None and np.any(np.abs(G @ solved.x - t) > d):
+                used = huber_step
+                solved, inaccurate = huber_step.solve(G, t, w, d, it, scale)
+            return solved, inaccurate, used.solver_tol, used.feasibility(solved.status)
 
         def total(x: FloatArray) -> float:
-            return float(fit_term(data, A @ x, s.error_measure)) + penalties(x)
+            return float(fit_term(data, A @ x, s.error_measure)) + step.penalties(x)
 
         V_mkt = data.vol**2 * data.expiry
         _, g = errors(data, V_mkt, s.error_measure)
@@ -260,11 +312,14 @@ class Calibrator:
                 np.full(K, hist.rho * hist.sigma_spot * s2h),
             ]
         )
-        rows = root_w[:, None] * g[:, None] * A
-        solved, inaccurate = step.solve(rows, root_w * g * V_mkt, 0, _scale(total(x_hist)))
+        solved, inaccurate, tol, feas = sub_solve(
+            g[:, None] * A, g * V_mkt, 0, _scale(total(x_hist))
+        )
+        x_feas = feas  # the feasibility precision of the solve the solution comes from
         x = solved.x
         J = total(x)
-        flags: set[str] = {"inaccurate"} if inaccurate else set()
+        n_inaccurate = int(inaccurate)
+        last_inaccurate, last_iteration = inaccurate, 0
         converged, it, move = False, 0, math.inf
         for it in range(1, s.max_iterations + 1):
             if J <= _EXACT:
@@ -272,35 +327,42 @@ class Calibrator:
                 break
             V = A @ x
             e, g = errors(data, V, s.error_measure)
-            rows = root_w[:, None] * g[:, None] * A
-            target = root_w * (g * V - e)
+            G = g[:, None] * A
+            target = g * V - e
             scale = _scale(J)
-            solved, inaccurate = step.solve(rows, target, it, scale)
-            if inaccurate:
-                flags.add("inaccurate")
-            model = float(np.sum((rows @ solved.x - target) ** 2)) + penalties(solved.x)
-            if J - model <= s.solver_tol / scale:
+            solved, inaccurate, tol, feas = sub_solve(G, target, it, scale)
+            n_inaccurate += int(inaccurate)
+            model = step.model(G, target, w, d, solved.x)
+            if J - model <= tol / scale:
                 # the sub-problem (equal to J at x) predicts no decrease the solver resolves:
                 # x is a KKT point to solver precision; take its answer only if no worse
                 J_new = total(solved.x)
                 if J_new <= J:
                     x, J = solved.x, J_new
+                    last_inaccurate, last_iteration, x_feas = inaccurate, it, feas
                 converged = True
                 break
-            d = solved.x - x
+            dx = solved.x - x
             tau, J_new = 1.0, total(solved.x)
             for _ in range(_BACKTRACKS):
                 if J_new <= J:
                     break
                 tau *= 0.5
-                J_new = total(x + tau * d)
+                J_new = total(x + tau * dx)
             decrease, move = 0.0, 0.0
             if J_new <= J:
-                decrease, move = J - J_new, tau * float(np.max(np.abs(d)))
-                x, J = x + tau * d, J_new
+                decrease, move = J - J_new, tau * float(np.max(np.abs(dx)))
+                x, J = x + tau * dx, J_new
+                last_inaccurate, last_iteration = inaccurate, it
+                x_feas = feas if tau == 1.0 else max(feas, x_feas)  # between two feasible points
             if move <= s.step_tol or decrease == 0.0:
                 converged = True  # the step vanished, or none decreases J at solver precision
                 break
+        flags: set[str] = set()
+        if last_inaccurate:
+            # the solution comes from (a step towards) an inaccurate solve: flag and warn
+            flags.add("inaccurate")
+            step.warn_inaccurate(solved.status, last_iteration)
         if not converged:
             flags.add("not_converged")
             warnings.warn(
@@ -309,27 +371,26 @@ class Calibrator:
                 ),
                 stacklevel=3,
             )
+        if not np.all(np.isfinite(x)):
+            raise CalibrationNumericalError("the Gauss-Newton iterate is not finite")
         P, Q, C = x[:K], np.maximum(x[K : 2 * K], 0.0), x[2 * K :]
         s1, s2 = np.sqrt(np.maximum(P, 0.0)), np.sqrt(Q)
         with np.errstate(divide="ignore", invalid="ignore"):
             rho = np.where(s1 * s2 > 0.0, C / (s1 * s2), 0.0)
         rho = np.clip(rho, -1.0, 1.0)  # |rho| may exceed 1 by the solver tolerance only
-        buckets = tuple(
-            BucketVols(
-                float(edges[k]),
-                float(edges[k + 1]),
-                hist.with_vols(float(s1[k]), float(s2[k]), float(rho[k])),
-            )
-            for k in range(K)
-        )
-        reports = _constraint_reports(buckets, hist, s, solved.duals, s.mode == "forward")
+        params = [hist.with_vols(float(s1[k]), float(s2[k]), float(rho[k])) for k in range(K)]
+        var_tol = variance_tolerance(x_feas, x)
+        reports = self._reports(params, lim, solved.duals, var_tol)
+        V = A @ x
         return _result(
             data,
             quotes,
             hist,
             s,
-            buckets,
-            A @ x,
+            edges,
+            params,
+            V,
+            A,
             J,
             reports,
             SOLVER,
@@ -337,7 +398,44 @@ class Calibrator:
             it,
             converged,
             flags,
+            n_inaccurate - int(last_inaccurate),
+            var_tol,
+            anchor,
         )
+
+    def _reports(
+        self,
+        params: list[TwoFactorParams],
+        lim: Limits,
+        duals: dict[str, FloatArray] | None,
+        var_tol: float,
+    ) -> tuple[ConstraintReport, ...]:
+        """Every active family at the solution, bucket by bucket (the held rho once)."""
+        per_bucket = self.settings.mode == "forward"
+        out: list[ConstraintReport] = []
+        for k, p in enumerate(params):
+            for c in self.families:
+                slack = c.slack(p, lim)
+                if slack is None:
+                    continue
+                tol = c.tolerance(p, lim, var_tol)
+                dual = None if duals is None or c.name not in duals else float(duals[c.name][k])
+                out.append(
+                    ConstraintReport(
+                        c.name,
+                        c.form,
+                        k if per_bucket else None,
+                        slack,
+                        slack <= max(BIND_TOL, tol),
+                        dual,
+                        None,
+                        tol,
+                    )
+                )
+        for c in self.families:
+            if c.slack(params[0], lim) is None:
+                out.append(ConstraintReport(c.name, c.form, None, None, True, None, None))
+        return tuple(out)
 
     # --- correlation held: the ratio scan ------------------------------------------------------
 
@@ -347,10 +445,13 @@ class Calibrator:
         hist: TwoFactorParams,
         s: CalibrationSettings,
         quotes: OptionQuotes,
+        lim: Limits,
     ) -> CalibrationResult:
         a, b, c = variance_coefficients(data.expiry, data.maturity, hist.kappa)
-        cap = s.sigma_spot_cap if s.sigma_spot_cap is not None else held.SPOT_VOL_LIMIT
-        ratio_max = max(hist.kappa * hist.rho, 0.0) if s.decay_bound else s.max_vol_ratio
+        A = np.stack([a, b, -2.0 * c], axis=1)
+        anchor = Anchor(
+            s.anchor_weight * anchor_scale(data, A, hist, s.error_measure), hist.sigma_yield, 1
+        )
         problem = held.HeldProblem(
             data=data,
             a=a,
@@ -358,15 +459,22 @@ class Calibrator:
             c=c,
             rho=hist.rho,
             measure=s.error_measure,
-            anchor=s.anchor_weight,
-            s2_hist=hist.sigma_yield,
-            floor=(s.yield_floor * hist.sigma_yield) ** 2,
-            P_max=cap * cap,
-            ratio_max=ratio_max,
+            anchor=anchor,
+            floor=lim.floor * lim.floor,
+            P_max=lim.cap * lim.cap,
+            ratio_max=lim.ratio_top,
             step_tol=s.step_tol,
             max_iterations=s.max_iterations,
         )
         best = held.scan(problem, s.ratio_grid)
+        if not (math.isfinite(best.objective) and math.isfinite(best.P)):
+            # check_feasible uses the scan's own bounds, so this is numerical trouble
+            raise InfeasibleSettingsError(
+                f"the held-correlation scan found no feasible ratio sigma_yield / sigma_spot in "
+                f"[0, {lim.ratio_top:.6g}] with sigma_spot <= {lim.cap:.6g} and sigma_yield >= "
+                f"{lim.floor:.6g}",
+                math.nan,
+            )
         flags: set[str] = set()
         if not best.converged:
             flags.add("not_converged")
@@ -379,18 +487,20 @@ class Calibrator:
                 stacklevel=3,
             )
         s1 = math.sqrt(best.P)
-        params = hist.with_vols(s1, best.ratio * s1, hist.rho)
-        edges = (0.0, float(data.expiry.max()))
-        buckets = (BucketVols(edges[0], edges[1], params),)
-        reports = _constraint_reports(buckets, hist, s, None, False)
+        params = [hist.with_vols(s1, best.ratio * s1, hist.rho)]
+        edges = np.array([0.0, float(data.expiry.max())])
+        var_tol = SCAN_VAR_TOL * max(best.P, 1.0)
+        reports = self._reports(params, lim, None, var_tol)
         V = best.P * (a + b * best.ratio**2 - 2.0 * c * hist.rho * best.ratio)
         return _result(
             data,
             quotes,
             hist,
             s,
-            buckets,
+            edges,
+            params,
             V,
+            A,
             best.objective,
             reports,
             "scan",
@@ -398,45 +508,70 @@ class Calibrator:
             best.iterations,
             best.converged,
             flags,
+            0,
+            var_tol,
+            anchor,
         )
 
 
-def _constraint_reports(
-    buckets: tuple[BucketVols, ...],
-    hist: TwoFactorParams,
-    s: CalibrationSettings,
-    duals: dict[str, FloatArray] | None,
-    per_bucket: bool,
-) -> tuple[ConstraintReport, ...]:
-    out: list[ConstraintReport] = []
-    floor = s.yield_floor * hist.sigma_yield
-    for k, bucket in enumerate(buckets):
-        p = bucket.params
-        slacks: dict[str, float] = {}
-        if s.mode != "held_rho":
-            slacks["psd"] = 1.0 - abs(p.rho)
-        if s.decay_bound:
-            slacks["decay_bound"] = p.rho * p.kappa * p.sigma_spot - p.sigma_yield
-        if s.yield_floor > 0.0:
-            slacks["yield_floor"] = p.sigma_yield - floor
-        if s.sigma_spot_cap is not None:
-            slacks["spot_cap"] = s.sigma_spot_cap - p.sigma_spot
-        for name, slack in slacks.items():
-            dual = None if duals is None else float(duals[name][k])
-            out.append(
-                ConstraintReport(
-                    name,
-                    FORMS[name],
-                    k if per_bucket else None,
-                    slack,
-                    slack <= BIND_TOL,
-                    dual,
-                    None,
-                )
-            )
-    if s.mode == "held_rho":
-        out.append(ConstraintReport("rho_held", FORMS["rho_held"], None, None, True, None, None))
-    return tuple(out)
+def anchor_scale(data: FitData, A: FloatArray, hist: TwoFactorParams, measure: str) -> float:
+    """The factor of ``anchor_weight`` in the error measure ``measure`` (1 in price).
+
+    Notes
+    -----
+    ``anchor_weight`` is stated against the price measure. The anchor pulls ``sigma_yield``
+    against the fit term's curvature along ``sigma_yield`` once ``sigma_spot`` and ``rho``
+    have adjusted (the profile curvature ``1 / (u' H^+ u)``, ``H = J' W J`` the Gauss-Newton
+    information at the historical set and the market's variances, ``u`` the direction of
+    ``sigma_yield`` in every bucket). In the vol measure the weight is multiplied by the ratio
+    of that curvature in vol to that in price (about ``1 / sum_i w_i nu_i^2``, ``nu_i`` the
+    vega per unit mean forward), so the same ``anchor_weight`` moves ``sigma_yield`` by about
+    as much in either measure.
+    """
+    if measure == "price":
+        return 1.0
+    K = A.shape[1] // 3
+    theta = np.tile([hist.sigma_spot, hist.sigma_yield, hist.rho], (K, 1))
+    AT = A @ theta_jacobian(theta)
+    u = np.tile([0.0, 1.0, 0.0], K)
+    V_mkt = data.vol**2 * data.expiry
+    curvature = {}
+    for m in ("price", "vol"):
+        _, g = errors(data, V_mkt, m)
+        curvature[m] = profile_curvature(g[:, None] * AT, data.weight, u)
+    ratio = curvature["vol"] / curvature["price"]
+    return ratio if math.isfinite(ratio) and ratio > 0.0 else 1.0
+
+
+def _fixed_directions(
+    params: list[TwoFactorParams], reports: tuple[ConstraintReport, ...], lim: Limits
+) -> FloatArray:
+    """Gradients in ``theta = (s1, s2, rho)_k`` of the binding constraints (and held rho)."""
+    K = len(params)
+    rows: list[FloatArray] = []
+
+    def row(k: int, grad: tuple[float, float, float]) -> None:
+        r = np.zeros(3 * K)
+        r[3 * k : 3 * k + 3] = grad
+        rows.append(r)
+
+    for c in reports:
+        if not c.binds:
+            continue
+        ks = range(K) if c.bucket is None else (c.bucket,)
+        for k in ks:
+            p = params[k]
+            if c.name == "decay_bound":
+                row(k, (-p.rho * lim.kappa, 1.0, -lim.kappa * p.sigma_spot))
+            elif c.name == "yield_floor":
+                row(k, (0.0, 1.0, 0.0))
+            elif c.name in ("sigma_spot_cap", "spot_limit"):
+                row(k, (1.0, 0.0, 0.0))
+            elif c.name in ("psd", "held_rho"):
+                row(k, (0.0, 0.0, 1.0))
+            elif c.name == "ratio_limit":
+                row(k, (-lim.ratio_max, 1.0, 0.0))
+    return np.array(rows) if rows else np.zeros((0, 3 * K))
 
 
 def _result(
@@ -444,8 +579,10 @@ def _result(
     quotes: OptionQuotes,
     hist: TwoFactorParams,
     s: CalibrationSettings,
-    buckets: tuple[BucketVols, ...],
+    edges: FloatArray,
+    params: list[TwoFactorParams],
     V: FloatArray,
+    A: FloatArray,
     objective: float,
     reports: tuple[ConstraintReport, ...],
     solver: str,
@@ -453,15 +590,30 @@ def _result(
     iterations: int,
     converged: bool,
     flags: set[str],
+    inaccurate_steps: int,
+    var_tol: float,
+    anchor: Anchor,
 ) -> CalibrationResult:
     std = np.sqrt(np.maximum(V, 0.0))
     model_price = data.discount * black76.undiscounted_price(
-        data.forward, data.strike, std, data.call
+        data.forward, data.strike, std, data.is_call
     )
     model_vol = std / np.sqrt(data.expiry)
     price_res = model_price - data.price
     vol_res = model_vol - data.vol
     err = price_res if s.error_measure == "price" else vol_res
+    K = len(params)
+    unc = _uncertainty(data, s, params, V, A, reports, anchor, hist)
+    buckets = tuple(
+        BucketVols(
+            float(edges[k]),
+            float(edges[k + 1]),
+            params[k],
+            unc.std_errors[k],
+            unc.yield_set_by[k],
+        )
+        for k in range(K)
+    )
 
     def ro(x: FloatArray) -> FloatArray:
         y = np.array(x, dtype=np.float64)
@@ -470,6 +622,7 @@ def _result(
 
     index = data.index.copy()
     index.setflags(write=False)
+    Q = np.array([p.sigma_yield**2 for p in params])
     return CalibrationResult(
         params=buckets[0].params,
         buckets=buckets,
@@ -495,6 +648,44 @@ def _result(
         settings=s,
         historical=hist,
         dropped=data.dropped,
+        inaccurate_steps=int(inaccurate_steps),
+        solver_precision=float(var_tol),
+        anchor_scale=float(anchor.weight / s.anchor_weight) if s.anchor_weight > 0.0 else 1.0,
+        anchor_penalty=float(anchor.value(Q)),
+        not_identified=unc.not_identified,
+        not_identified_reason=unc.reason,
+        residual_variance=float(unc.residual_variance),
+    )
+
+
+def _uncertainty(
+    data: FitData,
+    s: CalibrationSettings,
+    params: list[TwoFactorParams],
+    V: FloatArray,
+    A: FloatArray,
+    reports: tuple[ConstraintReport, ...],
+    anchor: Anchor,
+    hist: TwoFactorParams,
+) -> Uncertainty:
+    K = len(params)
+    lim = Limits.of(s, hist)
+    e, g = errors(data, V, s.error_measure)
+    inlier = np.ones_like(e)
+    if data.threshold is not None:
+        inlier = np.asarray(np.abs(e) <= data.threshold, dtype=np.float64)
+    theta = np.array([[p.sigma_spot, p.sigma_yield, p.rho] for p in params])
+    return standard_errors(
+        J_V=g,
+        A=A,
+        theta=theta,
+        e=e,
+        weight=data.weight,
+        inlier=inlier,
+        anchor_curvature=anchor.weight / K,
+        smoothness=s.smoothness if s.mode == "forward" else 0.0,
+        fixed=_fixed_directions(params, reports, lim),
+        per_bucket=s.mode == "forward",
     )
 
 
@@ -513,10 +704,14 @@ def fit(
     InfeasibleSettingsError : the constraints conflict (which, and by how much).
     TooFewQuotesError : the filters left fewer quotes than the mode has parameters.
     CalibrationSolverError : the conic solver failed.
+    CalibrationNumericalError : a numerical failure (overflow, a singular system, ...).
+
+    Every one of these is in :data:`calib.errors.CALIBRATION_ERRORS`.
 
     Warns
     -----
     CalibrationInaccurateWarning, CalibrationNotConvergedWarning : flagged on the result too.
+    CalibrationNotIdentifiedWarning : ``not_identified`` on the result names the parameters.
     """
     s = settings if settings is not None else CalibrationSettings()
     return _calibrator_for(quotes, s).fit(quotes, historical)
@@ -525,7 +720,11 @@ def fit(
 def _calibrator_for(quotes: OptionQuotes, s: CalibrationSettings) -> Calibrator:
     n_buckets = 1
     if s.mode == "forward":
-        n_buckets = bucket_edges(prepare(quotes, s).expiry).size - 1
+        try:
+            with np.errstate(over="ignore", under="ignore"):
+                n_buckets = bucket_edges(prepare(quotes, s).expiry).size - 1
+        except _NUMERICAL as exc:
+            raise CalibrationNumericalError(f"{type(exc).__name__}: {exc}") from exc
     return Calibrator(s, max(n_buckets, 1))
 
 

@@ -3,7 +3,8 @@
 For a fixed ratio ``r`` every total variance is linear in ``P = s1^2``:
 ``V_i = P u_i(r)`` with ``u_i(r) = a_i + b_i r^2 - 2 c_i rho r``, and the constraints become
 bounds (``P >= floor / r^2``, ``P <= cap^2``; the decay bound ``Q <= kappa C`` is
-``r <= kappa rho``, the end of the scan).
+``r <= kappa rho``, the end of the scan). The bounds are those of
+:class:`calib.calibrate.constraints.Limits`.
 """
 
 from __future__ import annotations
@@ -14,10 +15,10 @@ import numpy as np
 from scipy.optimize import minimize_scalar
 
 from calib.calibrate.objective import errors, fit_term
+from calib.calibrate.penalties import Anchor, loss_weights
 from calib.calibrate.quotes import FitData
 from calib.types import FloatArray
 
-SPOT_VOL_LIMIT = 10.0  # bound on sigma_spot for the scan when no cap is set (1000 % a year)
 _REFINED_MINIMA = 3  # grid local minima refined by bounded Brent
 _BACKTRACKS = 30
 
@@ -43,8 +44,7 @@ class HeldProblem:
     c: FloatArray
     rho: float
     measure: str
-    anchor: float  # w
-    s2_hist: float
+    anchor: Anchor
     floor: float  # (q s2_hist)^2, 0 when off
     P_max: float
     ratio_max: float
@@ -54,8 +54,9 @@ class HeldProblem:
     def objective(self, P: FloatArray, r: FloatArray) -> FloatArray:
         """Fit term plus anchor at ``(P, r)`` (broadcast over scan points)."""
         V = P[..., None] * self._u(r)
-        dev = r * np.sqrt(P) - self.s2_hist
-        return np.asarray(fit_term(self.data, V, self.measure) + self.anchor * dev * dev)
+        return np.asarray(
+            fit_term(self.data, V, self.measure) + self.anchor.value((r * r * P)[..., None])
+        )
 
     def _u(self, r: FloatArray) -> FloatArray:
         r_ = r[..., None]
@@ -68,7 +69,9 @@ class HeldProblem:
         -----
         Linearised at ``P0`` the errors are ``h_i P - y_i`` (``h = u de/dV``,
         ``y = h P0 - e``); with ``A = sum w h^2``, ``B = sum w h y`` the step minimises the
-        convex ``A P^2 - 2 B P + w (r^2 P - 2 r s2_hist sqrt P)`` over the bounds. Its
+        convex ``A P^2 - 2 B P + lin r^2 P - root r sqrt P`` (the anchor's form at
+        ``Q = r^2 P``) over the bounds. With the Huber loss ``w`` carries the re-weighting
+        factors of :func:`~calib.calibrate.penalties.loss_weights` at ``P0``. Its
         stationary point in ``s = sqrt P`` is the unique positive root of
         ``2A s^3 + (w r^2 - 2B) s - w r s2_hist`` (one sign change), found by Newton from the
         right where the cubic is convex and increasing; clipping to the bounds is then exact.
@@ -82,14 +85,17 @@ class HeldProblem:
         # first step linearised at the market point, where the errors vanish: e ~ g (u P - V_mkt)
         V_mkt = self.data.vol**2 * self.data.expiry
         _, g_mkt = errors(self.data, V_mkt, self.measure)
-        P = np.clip(self._step(u * g_mkt, V_mkt * g_mkt, r), lo, self.P_max)
+        w0 = np.broadcast_to(self.data.weight, u.shape)
+        P = np.clip(self._step(u * g_mkt, V_mkt * g_mkt, r, w0), lo, self.P_max)
         J = self.objective(P, r)
         converged, it = False, 0
         while it < self.max_iterations:
             it += 1
             e, g = errors(self.data, P[..., None] * u, self.measure)
             h = g * u
-            target = np.clip(self._step(h, h * P[..., None] - e, r), lo, self.P_max)
+            # Huber: iteratively re-weighted squares (the factors majorise the loss at P)
+            w = self.data.weight * loss_weights(e, self.data.threshold)
+            target = np.clip(self._step(h, h * P[..., None] - e, r, w), lo, self.P_max)
             d = target - P
             tau = np.ones_like(P)
             J_new = self.objective(P + d, r)
@@ -107,12 +113,11 @@ class HeldProblem:
                 break
         return P, np.where(feasible, J, np.inf), it, converged
 
-    def _step(self, h: FloatArray, y: FloatArray, r: FloatArray) -> FloatArray:
-        w = self.data.weight
+    def _step(self, h: FloatArray, y: FloatArray, r: FloatArray, w: FloatArray) -> FloatArray:
         A = np.sum(w * h * h, axis=-1)
         B = np.sum(w * h * y, axis=-1)
-        beta = self.anchor * r * r - 2.0 * B
-        gamma = self.anchor * r * self.s2_hist
+        beta = self.anchor.lin * r * r - 2.0 * B
+        gamma = 0.5 * self.anchor.root * r
         A = np.maximum(A, 1e-300)
         s = 1.01 * np.maximum.reduce(
             [np.ones_like(A), np.sqrt(np.abs(beta) / A), np.cbrt(gamma / A)]

@@ -1,9 +1,10 @@
-"""The fit error of model total variances, and its derivative, in price or vol points."""
+"""The fit error of model total variances, its derivative, and the fit term (its loss)."""
 
 from __future__ import annotations
 
 import numpy as np
 
+from calib.calibrate.penalties import loss_value
 from calib.calibrate.quotes import FitData
 from calib.model import black76
 from calib.types import FloatArray
@@ -29,13 +30,13 @@ def errors(data: FitData, V: FloatArray, measure: str) -> tuple[FloatArray, Floa
         root_t = np.sqrt(data.expiry)
         return std / root_t - data.vol, 0.5 / (std * root_t)
     F, K, D = data.forward, data.strike, data.discount
-    model = D * black76.undiscounted_price(F, K, std, data.call)
+    model = D * black76.undiscounted_price(F, K, std, data.is_call)
     d1 = np.log(F / K) / std + 0.5 * std
     slope = D * F * _INV_SQRT_2PI * np.exp(-0.5 * d1 * d1) / (2.0 * std)
     return (model - data.price) / data.scale, slope / data.scale
 
 
 def fit_term(data: FitData, V: FloatArray, measure: str) -> FloatArray:
-    """Weighted mean square error ``sum_i w_i e_i^2`` (weights sum to one)."""
+    """``sum_i w_i L(e_i)`` (weights sum to one): the weighted mean square error, or Huber."""
     e, _ = errors(data, V, measure)
-    return np.asarray(np.sum(data.weight * e * e, axis=-1))
+    return loss_value(e, data.weight, data.threshold)

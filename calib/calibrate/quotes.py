@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import math
 from dataclasses import dataclass
 from typing import Any
 
@@ -9,7 +10,7 @@ import numpy as np
 import numpy.typing as npt
 
 from calib.calibrate.settings import CalibrationSettings
-from calib.errors import IMPLIED_VOL_REASONS, QuoteError
+from calib.errors import IMPLIED_VOL_REASONS, CalibrationNumericalError, QuoteError
 from calib.model import black76
 from calib.types import ArrayLike, BoolArray, FloatArray, IntArray, readonly
 
@@ -147,6 +148,27 @@ class OptionQuotes:
     def __len__(self) -> int:
         return int(self.expiry.shape[0])
 
+    def take(self, index: ArrayLike) -> OptionQuotes:
+        """The quotes at positions ``index`` (in that order, repeats allowed), as a new day."""
+        i = np.asarray(index, dtype=np.int64)
+
+        def pick(x: FloatArray | None) -> FloatArray | None:
+            return None if x is None else x[i]
+
+        return OptionQuotes(
+            expiry=self.expiry[i],
+            maturity=self.maturity[i],
+            is_call=self.is_call[i],
+            strike=self.strike[i],
+            forward=self.forward[i],
+            discount=self.discount[i],
+            premium=pick(self.premium),
+            implied_vol=pick(self.implied_vol),
+            bid=pick(self.bid),
+            ask=pick(self.ask),
+            labels=None if self.labels is None else tuple(self.labels[j] for j in i.tolist()),
+        )
+
     @property
     def rate(self) -> FloatArray:
         """Continuously compounded rate implied by the discount factor, ``-ln D / T``."""
@@ -173,7 +195,7 @@ class FitData:
     index: IntArray
     expiry: FloatArray
     maturity: FloatArray
-    call: BoolArray
+    is_call: BoolArray
     strike: FloatArray
     forward: FloatArray
     discount: FloatArray
@@ -182,6 +204,10 @@ class FitData:
     weight: FloatArray
     scale: float
     dropped: tuple[DroppedQuote, ...]
+    vega: FloatArray
+    """Market vega per unit of ``scale``: the price error of one unit of volatility."""
+    threshold: FloatArray | None
+    """Huber thresholds per quote in the error measure's units (``None``: squared loss)."""
 
     @property
     def n(self) -> int:
@@ -199,40 +225,56 @@ def prepare(quotes: OptionQuotes, settings: CalibrationSettings) -> FitData:
     Notes
     -----
     Filters, in order (a quote gets the first reason that applies): implied volatility
-    unavailable, fewer than ``min_days_to_expiry`` days to expiry, strike/forward outside the
-    moneyness band, market vega per unit forward ``D n(d1) sqrt(T)`` below ``min_vega``, and
-    (spread weighting) no positive bid-ask spread. Weights: ``1``, ``vega / F`` or
-    ``1 / spread^2`` with the spread in the error measure's units (price spread over the mean
-    forward, or over vega for vol), normalised to sum to one.
+    unavailable, values not representable (a price, vega or weight that is not finite, e.g.
+    a futures price near the float64 limit), fewer than ``min_days_to_expiry`` days to expiry,
+    strike/forward outside the moneyness band, market vega per unit forward
+    ``D n(d1) sqrt(T)`` below ``min_vega``, (spread weighting) no positive bid-ask spread, and
+    last the smile screen (:func:`screen`, when ``screen_vol_points > 0``). Weights: ``1``,
+    ``vega / F`` or ``1 / spread^2`` with the spread in the error measure's units (price
+    spread over the mean forward, or over vega for vol), normalised to sum to one.
+
+    Huber thresholds: ``huber_threshold`` vol points, times ``nu_i`` in the price measure.
     """
+    try:
+        return _prepare(quotes, settings)
+    except ArithmeticError as exc:  # a numerical failure in the pricer: the day's refusal
+        raise CalibrationNumericalError(f"{type(exc).__name__}: {exc}") from exc
+
+
+def _prepare(quotes: OptionQuotes, settings: CalibrationSettings) -> FitData:
     q = quotes
     r = q.rate
-    if q.implied_vol is not None:
-        vol = np.asarray(q.implied_vol, dtype=np.float64)
-        premium = black76.price(q.forward, q.strike, q.expiry, r, vol, q.is_call)
-        reasons = np.full(len(q), "", dtype=object)
-    else:
-        premium = np.asarray(q.premium, dtype=np.float64)
-        vol, codes = black76.implied_vol_detail(
-            premium, q.forward, q.strike, q.expiry, r, q.is_call
-        )
-        ok_vol = codes == black76.ImpliedVolCode.OK
-        reasons = np.array(
-            [
-                ""
-                if ok
-                else "no implied volatility: "
-                + IMPLIED_VOL_REASONS[black76.ImpliedVolCode(int(c)).name]
-                for ok, c in zip(ok_vol, codes, strict=True)
-            ],
-            dtype=object,
-        )
-    g = black76.greeks(q.forward, q.strike, q.expiry, r, np.nan_to_num(vol), q.is_call)
-    vega_f = g["vega"] / q.forward
+    with np.errstate(all="ignore"):
+        if q.implied_vol is not None:
+            vol = np.asarray(q.implied_vol, dtype=np.float64)
+            premium = black76.price(q.forward, q.strike, q.expiry, r, vol, q.is_call)
+            reasons = np.full(len(q), "", dtype=object)
+        else:
+            premium = np.asarray(q.premium, dtype=np.float64)
+            vol, codes = black76.implied_vol_detail(
+                premium, q.forward, q.strike, q.expiry, r, q.is_call
+            )
+            ok_vol = codes == black76.ImpliedVolCode.OK
+            reasons = np.array(
+                [
+                    ""
+                    if ok
+                    else "no implied volatility: "
+                    + IMPLIED_VOL_REASONS[black76.ImpliedVolCode(int(c)).name]
+                    for ok, c in zip(ok_vol, codes, strict=True)
+                ],
+                dtype=object,
+            )
+        g = black76.greeks(q.forward, q.strike, q.expiry, r, np.nan_to_num(vol), q.is_call)
+        vega_f = g["vega"] / q.forward
+        m = q.strike / q.forward
     days = q.expiry * DAYS_PER_YEAR
-    m = q.strike / q.forward
     lo, hi = settings.moneyness_band
+    representable = (
+        np.isfinite(premium) & np.isfinite(vega_f) & np.isfinite(g["vega"]) & np.isfinite(m)
+    )
     checks: list[tuple[BoolArray, str]] = [
+        (~representable, "values not representable in float64 (price or vega overflows)"),
         (
             days < settings.min_days_to_expiry,
             f"under {settings.min_days_to_expiry:g} days to expiry",
@@ -248,26 +290,50 @@ def prepare(quotes: OptionQuotes, settings: CalibrationSettings) -> FitData:
         checks.append((spread <= 0.0, "no positive bid-ask spread"))
     for bad, why in checks:
         reasons = np.where((reasons == "") & bad, why, reasons)
+    if settings.screen_vol_points > 0.0:
+        kept = np.flatnonzero(reasons == "")
+        far = screen(vol[kept], q.strike[kept] / q.forward[kept], q.expiry[kept])
+        limit = settings.screen_vol_points / 100.0
+        for j in np.flatnonzero(far[0] > limit):
+            i = kept[j]
+            reasons[i] = (
+                f"{SCREENED}: implied vol {100 * vol[i]:.4g} is {100 * far[0][j]:.3g} vol points "
+                f"from the smile of its neighbours ({100 * far[1][j]:.4g}); limit "
+                f"{settings.screen_vol_points:g}"
+            )
     keep = reasons == ""
     idx = np.flatnonzero(keep).astype(np.int64)
     dropped = tuple(
         DroppedQuote(int(i), q.label(int(i)), str(reasons[i])) for i in np.flatnonzero(~keep)
     )
     scale = float(np.mean(q.forward[idx])) if idx.size else 1.0
-    if settings.weighting == "equal":
-        w = np.ones(idx.size)
-    elif settings.weighting == "vega":
-        w = vega_f[idx]
-    else:
-        assert spread is not None
-        s = spread[idx] / (scale if settings.error_measure == "price" else g["vega"][idx])
-        w = 1.0 / (s * s)
-    w = w / w.sum() if idx.size else w
+    with np.errstate(all="ignore"):
+        if settings.weighting == "equal":
+            w = np.ones(idx.size)
+        elif settings.weighting == "vega":
+            w = vega_f[idx]
+        else:
+            assert spread is not None
+            s = spread[idx] / (scale if settings.error_measure == "price" else g["vega"][idx])
+            w = 1.0 / (s * s)
+        w = w / w.sum() if idx.size else w
+        nu = np.asarray(g["vega"][idx] / scale, dtype=np.float64)
+    if not (np.all(np.isfinite(w)) and np.all(np.isfinite(nu)) and math.isfinite(scale)):
+        raise CalibrationNumericalError(
+            "weights or vegas of the usable quotes are not finite (prices far outside float64 "
+            "range relative to each other)"
+        )
+    vol_measure = settings.error_measure == "vol"
+    threshold = None
+    if settings.loss == "huber":
+        d = settings.huber_threshold / 100.0
+        threshold = np.full(idx.size, d) if vol_measure else d * nu
+        threshold = np.maximum(threshold, 1e-300)
     return FitData(
         index=idx,
         expiry=q.expiry[idx],
         maturity=q.maturity[idx],
-        call=q.is_call[idx],
+        is_call=q.is_call[idx],
         strike=q.strike[idx],
         forward=q.forward[idx],
         discount=q.discount[idx],
@@ -276,4 +342,44 @@ def prepare(quotes: OptionQuotes, settings: CalibrationSettings) -> FitData:
         weight=np.asarray(w, dtype=np.float64),
         scale=scale,
         dropped=dropped,
+        vega=nu,
+        threshold=threshold,
     )
+
+
+SCREENED = "screened"
+"""First word of the reason of a quote the smile screen set aside."""
+
+SCREEN_NEIGHBOURS = 4
+"""Quotes a screened quote is compared with (the nearest by the distance of :func:`screen`)."""
+_OTHER_EXPIRY = 1.0  # distance added for a neighbour at another expiry (moneyness units)
+
+
+def screen(
+    vol: FloatArray, moneyness: FloatArray, expiry: FloatArray
+) -> tuple[FloatArray, FloatArray]:
+    """Distance of each implied vol from the day's own smile, and the smile's value there.
+
+    Notes
+    -----
+    The smile at a quote is the median implied vol of its :data:`SCREEN_NEIGHBOURS` nearest
+    other quotes, nearness measured in standardised log-moneyness ``ln(K/F) / sqrt(T)``, plus
+    ``1 + |ln T_i - ln T_j|`` for a quote of another expiry (so neighbours come from the same
+    expiry when it has enough, else from the nearest expiries). The median ignores one bad
+    neighbour among four, so one bad quote cannot hide itself or condemn a good one. The
+    distance is ``|vol_i - median|``, in volatility (decimal) units.
+    """
+    n = vol.size
+    if n < 2:
+        return np.zeros(n), np.asarray(vol, dtype=np.float64)
+    k = np.log(moneyness) / np.sqrt(expiry)
+    lt = np.log(expiry)
+    same = np.abs(expiry[:, None] - expiry[None, :]) <= 1e-12
+    dist = np.abs(k[:, None] - k[None, :]) + np.where(
+        same, 0.0, _OTHER_EXPIRY + np.abs(lt[:, None] - lt[None, :])
+    )
+    np.fill_diagonal(dist, np.inf)
+    m = min(SCREEN_NEIGHBOURS, n - 1)
+    nearest = np.argpartition(dist, m - 1, axis=1)[:, :m]
+    smile = np.median(vol[nearest], axis=1)
+    return np.abs(vol - smile), smile

@@ -5,7 +5,7 @@ from __future__ import annotations
 from dataclasses import dataclass
 from typing import Any
 
-from calib.calibrate.quotes import DroppedQuote
+from calib.calibrate.quotes import SCREENED, DroppedQuote
 from calib.calibrate.settings import CalibrationSettings
 from calib.model.twofactor import TwoFactorParams
 from calib.record.codec import encode
@@ -31,12 +31,26 @@ class CalibrationResult:
     fit : its first term, the weighted mean square error ``sum_i w_i e_i^2``.
     rmse, max_error : unweighted root mean square and largest absolute error in the settings'
         error measure (price in currency, vol in decimal).
-    constraints : every constraint with slack, binding, dual and re-fit cost.
-    solver, status : the conic solver and cvxpy status of the final solve
-        (``"scan"``/``"optimal"`` for the held-rho scan).
+    constraints : every constraint the solver used, with slack, tolerance, binding, dual and
+        re-fit cost.
+    solver, status : the conic solver and cvxpy status of the final solve, the one the
+        returned solution comes from (``"scan"``/``"optimal"`` for the held-rho scan).
     iterations : Gauss-Newton iterations (held-rho mode: at the optimal ratio).
-    converged : Gauss-Newton met ``step_tol``; ``flags`` lists every caution
-        (``"inaccurate"``, ``"not_converged"``).
+    converged : Gauss-Newton met ``step_tol``; ``flags`` lists the cautions on the final
+        solution (``"inaccurate"``: the final solve stopped short of its tolerances;
+        ``"not_converged"``).
+    inaccurate_steps : earlier Gauss-Newton sub-solves flagged inaccurate (their steps were
+        checked against the true objective, so they do not taint the final solution).
+    solver_precision : the feasibility resolution of the final solve in variance units (the
+        constraints' ``tolerance`` derive from it).
+    anchor_scale : the factor of ``anchor_weight`` for the error measure (1 in price).
+    anchor_penalty : the anchor term at the solution.
+    anchor_fit_cost : the fit term's increase caused by the anchor (this fit's ``fit`` minus
+        that of the same fit with ``anchor_weight = 0``), with the re-fit costs; ``None`` when
+        not computed (no anchor, ``refit_costs`` off, or that re-fit cannot run).
+    not_identified : parameters the quotes do not identify (warned), ``not_identified_reason``
+        says why; the buckets carry the standard errors.
+    residual_variance : ``sum_i w_i e_i^2 / (n - p)``, the scale of the standard errors.
     """
 
     params: TwoFactorParams
@@ -63,6 +77,29 @@ class CalibrationResult:
     settings: CalibrationSettings
     historical: TwoFactorParams
     dropped: tuple[DroppedQuote, ...]
+    inaccurate_steps: int = 0
+    solver_precision: float = 0.0
+    anchor_scale: float = 1.0
+    anchor_penalty: float = 0.0
+    anchor_fit_cost: float | None = None
+    not_identified: tuple[str, ...] = ()
+    not_identified_reason: str = ""
+    residual_variance: float = float("nan")
+
+    @property
+    def final_optimal(self) -> bool:
+        """The final solution is optimal to the solver's precision and Gauss-Newton converged."""
+        return self.status == "optimal" and "inaccurate" not in self.flags and self.converged
+
+    @property
+    def constraints_met(self) -> bool:
+        """Every listed constraint holds within its tolerance."""
+        return all(c.met for c in self.constraints)
+
+    @property
+    def screened(self) -> tuple[DroppedQuote, ...]:
+        """The quotes the smile screen set aside (also in ``dropped``)."""
+        return tuple(d for d in self.dropped if d.reason.startswith(SCREENED))
 
     @property
     def binding(self) -> tuple[str, ...]:

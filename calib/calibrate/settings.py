@@ -15,10 +15,12 @@ from calib.errors import SettingError
 Mode = Literal["constant", "held_rho", "forward"]
 Weighting = Literal["equal", "vega", "spread"]
 ErrorMeasure = Literal["price", "vol"]
+Loss = Literal["squares", "huber"]
 
 MODES: tuple[str, ...] = get_args(Mode)
 WEIGHTINGS: tuple[str, ...] = get_args(Weighting)
 ERROR_MEASURES: tuple[str, ...] = get_args(ErrorMeasure)
+LOSSES: tuple[str, ...] = get_args(Loss)
 
 
 @dataclass(frozen=True, slots=True)
@@ -32,8 +34,10 @@ class CalibrationSettings:
     decay_bound : impose ``sigma_yield <= rho kappa sigma_spot`` (futures volatility falls
         with maturity), per bucket in forward mode.
     yield_floor : ``q``: impose ``sigma_yield >= q * sigma_yield_hist``; ``0`` switches it off.
-    anchor_weight : ``w`` of the penalty ``w (sigma_yield - sigma_yield_hist)^2`` (averaged over
-        the buckets in forward mode); ``0`` switches it off.
+    anchor_weight : ``w`` of the penalty ``w m (sigma_yield - sigma_yield_hist)^2`` (averaged
+        over the buckets in forward mode); ``0`` switches it off. ``m`` is ``1`` in the price
+        error measure and ``1 / sum_i w_i nu_i^2`` in the vol measure (``nu_i`` the market vega
+        per unit mean forward), so the weight pulls equally in either measure.
     smoothness : weight of ``sum_k |x_{k+1} - x_k|^2`` over neighbouring buckets'
         ``x_k = (P_k, Q_k, C_k)`` (forward mode only).
     sigma_spot_cap : optional upper bound on ``sigma_spot`` (per bucket).
@@ -41,6 +45,14 @@ class CalibrationSettings:
         residual divided by its bid-ask spread in the error measure's units).
     error_measure : ``"price"`` (premium per unit of the mean forward) or ``"vol"`` (Black
         volatility, decimal: 0.01 is one vol point).
+    loss : ``"squares"`` (weighted least squares) or ``"huber"`` (squares up to
+        ``huber_threshold``, linear beyond: one bad quote pulls with a bounded force; the
+        problem stays conic).
+    huber_threshold : the Huber threshold in vol points (in the price measure: times each
+        quote's vega per unit mean forward).
+    screen_vol_points : set aside, before the fit, quotes whose implied vol is more than this
+        many vol points from the median of their nearest neighbours on the day's own smile
+        (:func:`calib.calibrate.quotes.screen`); ``0`` switches the screen off.
     moneyness_band : keep quotes with ``lo <= strike / forward <= hi``.
     min_vega : keep quotes with market vega per unit forward ``D n(d1) sqrt(T) >= min_vega``.
     min_days_to_expiry : keep quotes expiring at least this many days (ACT/365) ahead.
@@ -66,6 +78,9 @@ class CalibrationSettings:
     sigma_spot_cap: float | None = None
     weighting: Weighting = "vega"
     error_measure: ErrorMeasure = "price"
+    loss: Loss = "squares"
+    huber_threshold: float = 2.0
+    screen_vol_points: float = 0.0
     moneyness_band: tuple[float, float] = (0.5, 2.0)
     min_vega: float = 1e-3
     min_days_to_expiry: float = 7.0
@@ -80,6 +95,9 @@ class CalibrationSettings:
         _choice("mode", self.mode, MODES)
         _choice("weighting", self.weighting, WEIGHTINGS)
         _choice("error_measure", self.error_measure, ERROR_MEASURES)
+        _choice("loss", self.loss, LOSSES)
+        _real("huber_threshold", self.huber_threshold, lo=0.0, open_lo=True)
+        _real("screen_vol_points", self.screen_vol_points, lo=0.0)
         for name in ("decay_bound", "refit_costs"):
             if not isinstance(getattr(self, name), bool):
                 raise SettingError(name, getattr(self, name), "must be true or false")

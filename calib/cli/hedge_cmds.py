@@ -1,4 +1,5 @@
-"""Hedge studies: ``calib hedge sim COMMODITY ...`` (model-world simulation).
+"""Hedge studies: ``calib hedge sim`` (model-world simulation) and ``calib hedge replay``
+(stored history).
 
 Exit codes: 0 done; 2 a user mistake (no set in force, a leg not quoted on the start day, a
 bad world file, ...), nothing simulated.
@@ -6,13 +7,16 @@ bad world file, ...), nothing simulated.
 
 from __future__ import annotations
 
-from datetime import datetime
+from datetime import date, datetime
 from pathlib import Path
-from typing import Annotated, Literal
+from typing import TYPE_CHECKING, Annotated, Literal
 
 import typer
 
 from calib.cli.common import AsOfOption, DbOption, JsonOption, echo_json, open_store
+
+if TYPE_CHECKING:
+    from calib.workflows.hedge import Trade
 
 hedge_app = typer.Typer(
     name="hedge",
@@ -23,6 +27,35 @@ hedge_app = typer.Typer(
 _DAY = ["%Y-%m-%d"]
 
 
+Commodity = Annotated[str, typer.Argument(help="Commodity code.")]
+Expiry = Annotated[datetime, typer.Option("--expiry", formats=_DAY, help="Option expiry.")]
+Strike = Annotated[float, typer.Option("--strike", help="Strike (of far - near for a spread).")]
+Future = Annotated[
+    datetime | None, typer.Option("--future", formats=_DAY, help="Vanilla: its future's delivery.")
+]
+Near = Annotated[
+    datetime | None, typer.Option("--near", formats=_DAY, help="Spread: near delivery.")
+]
+Far = Annotated[datetime | None, typer.Option("--far", formats=_DAY, help="Spread: far delivery.")]
+KindOpt = Annotated[Literal["call", "put"], typer.Option("--kind", help="call or put.")]
+
+
+def _trade(
+    expiry: datetime,
+    strike: float,
+    kind: Literal["call", "put"],
+    future: datetime | None,
+    near: datetime | None,
+    far: datetime | None,
+) -> Trade:
+    from calib.workflows.hedge import Trade
+
+    def day(x: datetime | None) -> date | None:
+        return None if x is None else x.date()
+
+    return Trade(expiry.date(), strike, kind, day(future), day(near), day(far))
+
+
 def register(app: typer.Typer) -> None:
     """Add the ``hedge`` group to ``app``."""
     app.add_typer(hedge_app, name="hedge")
@@ -30,20 +63,13 @@ def register(app: typer.Typer) -> None:
 
 @hedge_app.command("sim")
 def sim_cmd(
-    commodity: Annotated[str, typer.Argument(help="Commodity code.")],
-    expiry: Annotated[datetime, typer.Option("--expiry", formats=_DAY, help="Option expiry.")],
-    strike: Annotated[float, typer.Option("--strike", help="Strike (of far - near for a spread).")],
-    future: Annotated[
-        datetime | None,
-        typer.Option("--future", formats=_DAY, help="Vanilla: delivery of its future."),
-    ] = None,
-    near: Annotated[
-        datetime | None, typer.Option("--near", formats=_DAY, help="Spread: near delivery.")
-    ] = None,
-    far: Annotated[
-        datetime | None, typer.Option("--far", formats=_DAY, help="Spread: far delivery.")
-    ] = None,
-    kind: Annotated[Literal["call", "put"], typer.Option("--kind", help="call or put.")] = "call",
+    commodity: Commodity,
+    expiry: Expiry,
+    strike: Strike,
+    future: Future = None,
+    near: Near = None,
+    far: Far = None,
+    kind: KindOpt = "call",
     run_id: Annotated[
         int | None,
         typer.Option(
@@ -90,14 +116,7 @@ def sim_cmd(
     the model's own world (or one moved by other parameters: --world)."""
     from calib.workflows import hedge as flow
 
-    trade = flow.Trade(
-        expiry=expiry.date(),
-        strike=strike,
-        kind=kind,
-        future=None if future is None else future.date(),
-        near=None if near is None else near.date(),
-        far=None if far is None else far.date(),
-    )
+    trade = _trade(expiry, strike, kind, future, near, far)
     with open_store(db) as (store, _):
         result = flow.simulate(
             store.sessions,
@@ -116,6 +135,66 @@ def sim_cmd(
         written.append(str(flow.plot_histogram(result, png)))
     if csv_path is not None:
         written.append(str(flow.write_paths_csv(result, csv_path)))
+    if as_json:
+        echo_json(result.to_dict())
+    else:
+        typer.echo(result.summary())
+        for path in written:
+            typer.echo(f"  wrote {path}")
+
+
+@hedge_app.command("replay")
+def replay_cmd(
+    commodity: Commodity,
+    start: Annotated[
+        datetime, typer.Option("--start", formats=_DAY, help="Day the option is sold.")
+    ],
+    expiry: Expiry,
+    strike: Strike,
+    future: Future = None,
+    near: Near = None,
+    far: Far = None,
+    kind: KindOpt = "call",
+    sets: Annotated[
+        Literal["in-force", "by-trade-date"],
+        typer.Option(
+            "--sets",
+            help="in-force: the approved set in force each morning by the approval log; "
+            "by-trade-date: the newest approved run fitted on an earlier day (backfills).",
+        ),
+    ] = "in-force",
+    morning: Annotated[
+        str, typer.Option("--morning", metavar="HH:MM", help="The morning's time (UTC).")
+    ] = "07:00",
+    png: Annotated[
+        Path | None, typer.Option("--png", help="Write the P&L path here.", show_default=False)
+    ] = None,
+    csv_path: Annotated[
+        Path | None, typer.Option("--csv", help="Write one row a day.", show_default=False)
+    ] = None,
+    db: DbOption = None,
+    as_json: JsonOption = False,
+) -> None:
+    """Replay a sold option hedged in its futures on the stored history: each day's set and
+    settlements, gaps carried and reported, settled at expiry on the stored settlements."""
+    from calib.workflows import hedge as flow
+
+    trade = _trade(expiry, strike, kind, future, near, far)
+    try:
+        at = datetime.strptime(morning, "%H:%M").time()
+    except ValueError:
+        from calib.errors import HEDGE_MORNING, HedgeRequestError
+
+        raise HedgeRequestError(commodity, HEDGE_MORNING.format(value=morning)) from None
+    with open_store(db) as (store, _):
+        result = flow.replay(
+            store.sessions, commodity, trade, start=start.date(), sets=sets, morning=at
+        )
+    written = []
+    if png is not None:
+        written.append(str(flow.plot_replay(result, png)))
+    if csv_path is not None:
+        written.append(str(flow.write_replay_csv(result, csv_path)))
     if as_json:
         echo_json(result.to_dict())
     else:

@@ -22,6 +22,7 @@ from calib.cli.stability_cmds import (
     vanilla_cmd,
     with_uncertainty,
 )
+from calib.output import text
 
 if TYPE_CHECKING:
     from calib.workflows import pricing as flow
@@ -64,13 +65,7 @@ def _print(result: flow.SpreadPrice) -> None:
     typer.echo(f"  price        {r.price:.6f}   (exact, {r.nodes} Gauss-Hermite nodes)")
     typer.echo(f"  delta near   {r.delta_near:+.6f}   futures per option")
     typer.echo(f"  delta far    {r.delta_far:+.6f}   futures per option")
-    for name, value in r.vol_sensitivities.items():
-        text = (
-            f"{value:+.6g}"
-            if isinstance(value, float)
-            else "[" + ", ".join(f"{v:+.4g}" for v in value) + "]"
-        )
-        typer.echo(f"  d/d {name:<11} {text}")
+    typer.echo("\n".join(text.sensitivity_lines(r.vol_sensitivities)))
     kirk = f"{r.kirk:.6f}   (diff {r.kirk - r.price:+.2e})" if r.kirk is not None else r.kirk_note
     typer.echo(f"  Kirk         {kirk}")
     z = (r.mc - r.price) / r.mc_stderr if r.mc_stderr > 0 else 0.0

@@ -18,11 +18,14 @@ import typer
 from calib.cli.common import DbOption, JsonOption, echo_json, open_store
 from calib.cli.run_cmds import _progress
 from calib.errors import BandOptionError
+from calib.output import text
 
 if TYPE_CHECKING:  # the workflows are imported by the commands that use them
     from calib.output.compare import Band
     from calib.workflows.demo import DemoPlan, DemoSummary
 
+EXIT_FLAGGED = 1
+"""``compare --fail-on-flag``: at least one day outside its band."""
 DEFAULT_DEMO_DIR = Path("demo-out")
 """Where ``calib demo`` writes by default (under the working folder; git-ignored)."""
 
@@ -117,6 +120,12 @@ def compare_cmd(
         Path | None,
         typer.Option("--plot", help="Also draw the series (PNG).", show_default=False),
     ] = None,
+    fail_on_flag: Annotated[
+        bool,
+        typer.Option(
+            "--fail-on-flag", help=f"Exit {EXIT_FLAGGED} if any day is flagged (for schedulers)."
+        ),
+    ] = False,
     db: DbOption = None,
     as_json: JsonOption = False,
 ) -> None:
@@ -124,7 +133,8 @@ def compare_cmd(
     volatility ratios and correlation difference, days outside a band flagged (*).
 
     By default the runs that were ever approved (superseded ones included); --all for every
-    fitted run."""
+    fitted run. Exit code 1 with --fail-on-flag when a day is flagged (the table is printed
+    first)."""
     from calib.output import compare as compare_out
     from calib.output.compare import Bands
     from calib.workflows.compare import Selection, compare_runs
@@ -175,11 +185,15 @@ def compare_cmd(
                 "files": written,
             }
         )
-        return
-    typer.echo(f"{commodity} {selection.start}..{selection.end}, {selection.rule}")
-    typer.echo(compare_out.format_table(table))
-    for what, path in written.items():
-        typer.echo(f"{what}: {path}")
+    else:
+        typer.echo(f"{commodity} {selection.start}..{selection.end}, {selection.rule}")
+        typer.echo(compare_out.format_table(table))
+        for what, path in written.items():
+            typer.echo(f"{what}: {path}")
+    flagged = int(table.any_flag.sum())
+    if fail_on_flag and flagged:
+        typer.echo(f"{flagged} day(s) flagged: exit {EXIT_FLAGGED}", err=True)
+        raise SystemExit(EXIT_FLAGGED)
 
 
 def _finite(x: float) -> float | None:
@@ -245,7 +259,7 @@ def _summary_lines(s: DemoSummary) -> list[str]:
         f"  calib quotes QLM --date {last} {db}",
         f"  calib estimates QLM {db}",
         "",
-        f"Caution. {s.cautions}",
+        f"Caution. {text.DEMO_CAUTION}",
     ]
     return lines
 

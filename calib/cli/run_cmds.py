@@ -10,7 +10,7 @@ from __future__ import annotations
 import time
 from datetime import datetime
 from pathlib import Path
-from typing import TYPE_CHECKING, Annotated, Any, NoReturn
+from typing import TYPE_CHECKING, Annotated, Any, NoReturn, cast
 
 import typer
 
@@ -23,10 +23,9 @@ from calib.cli.common import (
     echo_json,
     open_store,
 )
+from calib.output import text
 
 if TYPE_CHECKING:  # the store and the workflows are imported by the commands that use them
-    from calib.store.estimates import EstimateRecord
-    from calib.store.runs import RunRecord
     from calib.workflows import estimates as estimate_flow
     from calib.workflows import fit as fit_flow
 
@@ -35,6 +34,8 @@ MIN_DAYS = 250
 EXIT_FIT_FAILED = 1
 EXIT_RERUN_DIFFERS = 1
 EXIT_NONE_APPROVED = 2
+EXIT_NOT_APPROVED = 3
+"""``fit --auto-approve``: a gate failed, the run stays a candidate (the verdict line says why)."""
 
 
 def _exit(code: int) -> NoReturn:
@@ -68,38 +69,11 @@ def register(app: typer.Typer) -> None:
     app.command("rerun")(rerun_cmd)
 
 
-def _g(value: float | None, fmt: str = ".6g") -> str:
-    return "-" if value is None else format(value, fmt)
-
-
-def _params_line(values: dict[str, Any]) -> str:
-    from calib.model.twofactor import PARAM_NAMES
-
-    return "  ".join(f"{n}={_g(values.get(n))}" for n in PARAM_NAMES)
+def _echo(lines: list[str]) -> None:
+    typer.echo("\n".join(lines))
 
 
 # --- estimates ---------------------------------------------------------------------------------
-
-
-def _print_estimate(e: EstimateRecord) -> None:
-    from calib.model.twofactor import PARAM_NAMES
-
-    flag = "converged" if e.converged else "NOT CONVERGED (never used by default)"
-    typer.echo(
-        f"estimate {e.estimate_id} of {e.commodity} ({e.source}), {e.window_start}..{e.window_end}"
-        f": {flag}"
-    )
-    if e.n_days is not None:
-        typer.echo(
-            f"  {e.n_days} days x {e.n_contracts} contracts, {e.n_obs} prices, "
-            f"log-likelihood {_g(e.loglik, '.6f')}, r = {_g(e.rate, '.4%')}"
-        )
-    typer.echo(f"  {e.message}")
-    for n in PARAM_NAMES:
-        se = e.std_errors.get(n)
-        typer.echo(f"  {n:<12} {getattr(e.params, n):>12.6g}   s.e. {_g(se)}")
-    if e.noise_sd:
-        typer.echo("  noise sd     " + "  ".join(f"{x:.4g}" for x in e.noise_sd))
 
 
 def _progress(started: float) -> estimate_flow.Progress:
@@ -186,7 +160,7 @@ def estimate_cmd(
     if as_json:
         echo_json(record.to_dict())
     else:
-        _print_estimate(record)
+        _echo(text.estimate_lines(record))
 
 
 def estimates_cmd(
@@ -220,7 +194,7 @@ def estimates_cmd(
         if as_json:
             echo_json(record.to_dict())
         else:
-            _print_estimate(record)
+            _echo(text.estimate_lines(record))
         return
     if commodity is not None:
         raise typer.BadParameter(f"unexpected argument {commodity!r} (did you mean `import`?)")
@@ -229,68 +203,31 @@ def estimates_cmd(
     if as_json:
         echo_json([r.to_dict() for r in records])
         return
-    if not records:
-        typer.echo(f"{what}: no estimates stored")
-    for r in records:
-        typer.echo(
-            f"{r.estimate_id:>5}  {r.source:<8}  {r.window_start}..{r.window_end}  "
-            f"{'converged' if r.converged else 'NOT converged':<13}  "
-            f"{r.created_at:%Y-%m-%d %H:%M} {r.created_by:<10}  {_params_line(r.params.to_dict())}"
-        )
+    _echo(text.estimates_table(records) if records else [f"{what}: no estimates stored"])
 
 
 # --- runs --------------------------------------------------------------------------------------
 
 
-def _print_gates(gates: list[dict[str, Any]]) -> None:
-    typer.echo("gates:")
-    for g in gates:
-        value = g["value"] if isinstance(g["value"], str) else _g(g["value"], ".4g")
-        limit = g["limit"] if isinstance(g["limit"], str) else _g(g["limit"], ".4g")
-        mark = "pass" if g["passed"] else "FAIL"
-        detail = f"  ({g['detail']})" if g["detail"] else ""
-        typer.echo(f"  {mark}  {g['name']:<17} {value:>22}   limit {limit}{detail}")
-
-
-def _print_run(run: RunRecord) -> None:
-    typer.echo(
-        f"run {run.run_id}: {run.commodity} {run.trade_date}, {run.mode} mode, "
-        f"estimate {run.estimate_id}: {run.status.upper()}"
-    )
-    d = run.fit
-    if d is None:
-        typer.echo(f"  fit failed: {run.failure_reason}")
-        return
-    unit = "Black vol, decimal" if d.error_measure == "vol" else "premium, currency"
-    typer.echo(
-        f"  fit: rmse {d.rmse:.4g}, max error {d.max_error:.4g} ({unit}); "
-        f"{d.n_quotes} quotes, {len(d.dropped)} dropped; {d.solver} {d.status}, "
-        f"{d.iterations} iterations{'; flags ' + ', '.join(d.flags) if d.flags else ''}"
-    )
-    typer.echo(f"  binding constraints: {', '.join(d.binding) or 'none'}")
-    typer.echo("  " + _params_line(d.params.to_dict()))
-    if run.approved_at is not None:
-        typer.echo(f"  approved {run.approved_at:%Y-%m-%d %H:%M:%S} by {run.approved_by}")
-
-
-def _print_fit(outcome: fit_flow.FitOutcome) -> None:
+def _fit_lines(outcome: fit_flow.FitOutcome, auto_approve: bool) -> list[str]:
     run = outcome.run
-    _print_run(run)
+    lines = text.run_lines(run)
     if run.params is None:
-        typer.echo("  status rejected; the approved set is unchanged")
-        return
+        return [*lines, "  status rejected; the approved set is unchanged"]
     change = outcome.change()
     if change is None:
-        typer.echo("change: no approved set yet")
+        lines.append("change: no approved set yet")
     else:
         assert outcome.previous is not None
-        typer.echo(f"change against approved run {outcome.previous.run_id}:")
-        for n in ("sigma_spot", "sigma_yield", "rho"):
+        lines.append(f"change against approved run {outcome.previous.run_id}:")
+        for n in text.VOLS:
             c = change[n]
-            typer.echo(f"  {n:<12} {c['approved']:.6g} -> {c['new']:.6g}  ({c['change']:+.4g})")
-    _print_gates([g.to_dict() for g in outcome.gates])
-    if outcome.auto_approved:
-        typer.echo("every gate passed: approved")
+            lines.append(f"  {n:<12} {c['approved']:.6g} -> {c['new']:.6g}  ({c['change']:+.4g})")
+    gates = (text.fit_of(run) or {}).get("gates", [])
+    lines += text.gate_lines(gates)
+    if auto_approve:
+        lines.append(text.verdict_line(gates, outcome.auto_approved))
+    return lines
 
 
 def fit_cmd(
@@ -301,7 +238,11 @@ def fit_cmd(
     settings_file: SettingsOption = None,
     estimate_id: EstimateOption = None,
     auto_approve: Annotated[
-        bool, typer.Option("--auto-approve", help="Approve if every gate passes.")
+        bool,
+        typer.Option(
+            "--auto-approve",
+            help="Approve if every gate passes; else say which failed and exit 3.",
+        ),
     ] = False,
     by: CreatorOpt = None,
     db: DbOption = None,
@@ -309,7 +250,8 @@ def fit_cmd(
 ) -> None:
     """Calibrate the volatilities to a day's option quotes and store the run as a candidate.
 
-    Exit code 1 when the fit failed (stored as a rejected run with its reason).
+    Exit code 1 when the fit failed (stored as a rejected run with its reason); 3 when
+    --auto-approve found a failed gate (the run stays a candidate; the verdict line says why).
     """
     from calib.policy.settings import load_settings
     from calib.workflows import fit as fit_flow
@@ -328,9 +270,11 @@ def fit_cmd(
     if as_json:
         echo_json(outcome.to_dict())
     else:
-        _print_fit(outcome)
+        _echo(_fit_lines(outcome, auto_approve))
     if outcome.run.outcome == "failed":
         _exit(EXIT_FIT_FAILED)
+    if auto_approve and not outcome.auto_approved:
+        _exit(EXIT_NOT_APPROVED)
 
 
 def approve_cmd(
@@ -388,44 +332,34 @@ def runs_cmd(
     if as_json:
         echo_json([r.to_dict() for r in runs])
         return
-    if not runs:
-        typer.echo(f"{commodity}: no runs stored")
-    for r in runs:
-        quality = f"rmse {r.fit.rmse:.3g}" if r.fit is not None else "failed"
-        values = r.params.to_dict() if r.params is not None else {}
-        typer.echo(
-            f"{r.run_id:>5}  {r.trade_date}  {r.status:<10}  {quality:<12}  "
-            + "  ".join(
-                f"{n}={_g(values.get(n), '.4g')}" for n in ("sigma_spot", "sigma_yield", "rho")
-            )
-        )
+    _echo(text.runs_table(runs) if runs else [f"{commodity}: no runs stored"])
 
 
 def show_cmd(run_id: RunId, db: DbOption = None, as_json: JsonOption = False) -> None:
     """Show a run: parameters, fit, gates, events and per-quote residuals."""
-    from calib.store.runs import require_run, run_residuals
+    from calib.store.runs import require_run, run_quotes, run_residuals
 
     with open_store(db) as (store, _), store.sessions.begin() as session:
         run = require_run(session=session, run_id=run_id)
-        residuals = run_residuals(session=session, run_id=run_id)
+        frame = run_residuals(session=session, run_id=run_id)
+        residuals = cast("list[dict[str, Any]]", frame.to_dict(orient="records"))
+        chain = run_quotes(session=session, run=run).options if residuals else None
+    contracts = {} if chain is None else text.option_contracts(chain)
+    rows = [{**r, **contracts.get(int(r["quote_id"]), text.NO_CONTRACT)} for r in residuals]
     if as_json:
-        echo_json(
-            {
-                **run.to_dict(with_inputs=True),
-                "residuals": residuals.to_dict(orient="records"),
-            }
-        )
+        echo_json({**run.to_dict(with_inputs=True), "residuals": rows})
         return
-    _print_run(run)
-    if run.fit is not None:
-        _print_gates([g.to_dict() for g in run.fit.gates])
-    typer.echo("events:")
-    for e in run.events:
-        typer.echo(f"  {e.at:%Y-%m-%d %H:%M:%S}  {e.to_status:<10} by {e.by}: {e.note}")
-    if len(residuals):
-        typer.echo("residuals (vol points, model - market):")
-        for q, v in zip(residuals["quote_id"], residuals["vol_residual"], strict=True):
-            typer.echo(f"  quote {q:>7}  {100 * v:+.3f}")
+    lines = text.run_lines(run)
+    fit = text.fit_of(run)
+    if fit is not None:
+        lines += text.gate_lines(fit.get("gates", []))
+    lines.append("events:")
+    lines += [
+        f"  {e.at:%Y-%m-%d %H:%M:%S}  {e.to_status:<10} by {e.by}: {e.note}" for e in run.events
+    ]
+    if residuals:
+        lines += text.residual_table(residuals, contracts)
+    _echo(lines)
 
 
 def latest_cmd(
@@ -451,14 +385,7 @@ def latest_cmd(
         if as_json:
             echo_json([a.to_dict() for a in approvals])
             return
-        for a in approvals:
-            until = (
-                "in force" if a.superseded_at is None else f"until {a.superseded_at:%Y-%m-%d %H:%M}"
-            )
-            typer.echo(
-                f"run {a.run_id:>5}  {a.trade_date}  approved {a.approved_at:%Y-%m-%d %H:%M} by "
-                f"{a.approved_by} ({until})  {_params_line(a.params.to_dict())}"
-            )
+        _echo(text.history_table(approvals) if approvals else [f"{commodity}: no approvals"])
         return
     if run is None:
         when = "now" if as_of is None else f"at {as_of:%Y-%m-%d %H:%M:%S} UTC"
@@ -467,7 +394,9 @@ def latest_cmd(
     if as_json:
         echo_json(run.to_dict())
     else:
-        _print_run(run)
+        when = "now" if as_of is None else f"at {as_of:%Y-%m-%d %H:%M:%S} UTC"
+        typer.echo(f"{commodity}: set in force {when} (trade date {run.trade_date})")
+        _echo(text.run_lines(run))
 
 
 def rerun_cmd(run_id: RunId, db: DbOption = None, as_json: JsonOption = False) -> None:

@@ -1,8 +1,11 @@
 """``calib init``, ``calib ingest`` and ``calib quotes``: the quote store's commands.
 
 Exit codes of ``calib ingest``: 0 every row of every file accepted (or the file was already
-loaded); 1 some rows were quarantined, the others landed; 2 a file was refused as a whole
-(unreadable, missing columns, unknown commodity, or ``--strict`` with a bad row).
+loaded with every row accepted); 1 some rows were quarantined, the others landed (also when the
+file was already loaded and its first ingest quarantined rows), or options came before their
+day's zero curve (checked with r = 0, said in a note); 2 a file was refused as a whole
+(unreadable, no rows, missing columns, unknown commodity in a futures file, or ``--strict``
+with a bad row).
 """
 
 from __future__ import annotations
@@ -62,7 +65,12 @@ def init_cmd(db: DbOption = None, as_json: JsonOption = False) -> None:
 
 def _print_report(report: IngestReport) -> None:
     if report.status == "duplicate":
-        typer.echo(f"{report.file}: already loaded as batch {report.batch_id}, nothing done")
+        held = (
+            f" ({report.rows_quarantined} row(s) of it are in quarantine)"
+            if report.rows_quarantined
+            else ""
+        )
+        typer.echo(f"{report.file}: already loaded as batch {report.batch_id}{held}, nothing done")
         return
     verb = "refused (--strict)" if report.status == "rejected" else "loaded"
     typer.echo(
@@ -74,8 +82,8 @@ def _print_report(report: IngestReport) -> None:
     for problem in report.problems[:SHOWN_PROBLEMS]:
         typer.echo(f"  {report.file}:{problem.line}: {problem.field}: {problem.reason}")
     shown = min(len(report.problems), SHOWN_PROBLEMS)
-    if report.rows_rejected > shown and report.problems:
-        typer.echo(f"  ... {report.rows_rejected - shown} more (see the quarantine)")
+    if report.rows_quarantined > shown:
+        typer.echo(f"  ... {report.rows_quarantined - shown} more (see the quarantine)")
     for note in report.notes:
         typer.echo(f"  note: {note}")
 
@@ -92,23 +100,54 @@ def ingest_cmd(
     unit: Annotated[str, typer.Option(help="Unit of a commodity registered by --create.")] = "unit",
     currency: Annotated[str, typer.Option(help="Its quote currency.")] = "USD",
     calendar: Annotated[str, typer.Option(help="Its contract calendar rule.")] = "monthly",
+    settle_band: Annotated[
+        float | None,
+        typer.Option(
+            help="Day-on-day band of a futures settlement: at most this factor either way"
+            " (default 2).",
+            show_default=False,
+        ),
+    ] = None,
+    vol_band: Annotated[
+        float | None,
+        typer.Option(
+            help="Day-on-day band of an implied volatility, a factor either way (default 3).",
+            show_default=False,
+        ),
+    ] = None,
     db: DbOption = None,
     as_json: JsonOption = False,
 ) -> None:
     """Validate and store quote files; bad rows are quarantined with their reasons.
 
-    Exit code 0: all rows accepted; 1: some rows quarantined; 2: a file refused as a whole.
+    Exit code 0: all rows accepted; 1: some rows quarantined (now, or when the same file was
+    first loaded), or options before their day's zero curve; 2: a file refused as a whole.
     """
+    from calib.inputs.rules import Bands
     from calib.workflows.ingest import NewCommodity, ingest_file
 
     new = NewCommodity(unit=unit, currency=currency, calendar_rule=calendar) if create else None
+    usual = Bands()
+    try:
+        bands = Bands(
+            settle_move=usual.settle_move if settle_band is None else settle_band,
+            vol_move=usual.vol_move if vol_band is None else vol_band,
+        )
+    except ValueError as exc:
+        raise typer.BadParameter(str(exc)) from None
     code = 0
     results: list[dict[str, Any]] = []
     with open_store(db) as (store, settings):
         for path in files:
             try:
                 report = ingest_file(
-                    store.sessions, path, kind.value, user=settings.user, strict=strict, create=new
+                    store.sessions,
+                    path,
+                    kind.value,
+                    user=settings.user,
+                    strict=strict,
+                    create=new,
+                    bands=bands,
                 )
             except IngestFileError as exc:
                 code = EXIT_FILE_REFUSED
@@ -118,7 +157,9 @@ def ingest_cmd(
                 continue
             if report.status == "rejected":
                 code = EXIT_FILE_REFUSED
-            elif report.status == "loaded" and report.rows_rejected:
+            elif report.rows_quarantined or report.curve_missing:
+                # rows quarantined now or before (a duplicate says it again), or options
+                # checked with r = 0 because their day's zero curve came later
                 code = max(code, EXIT_ROWS_REJECTED)
             results.append(report.to_dict())
             if not as_json:

@@ -11,8 +11,9 @@ Notes
 **Warm starts.** Consecutive windows share most of their days, so the previous window's
 optimum is close to the next one's: one start run to convergence replaces the global stage's
 several (:func:`calib.estimate.mle.default_starts`). The first window of a chunk starts cold
-unless the caller hands it the previous optimum. A warm fit that does not converge is redone
-cold.
+unless the caller hands it a start (:func:`estimate_windows` hands every chunk the optimum
+of the series' first window, so only that one starts cold). A warm fit that does not converge
+is redone cold.
 
 **Cold check.** On the windows marked ``check_cold`` the estimate is also made from the
 default starts. When the two log-likelihoods differ by more than :data:`LOCAL_OPTIMUM_TOL`
@@ -24,6 +25,7 @@ from __future__ import annotations
 import math
 import re
 import warnings
+from collections.abc import Iterator, Sequence
 from dataclasses import dataclass
 from datetime import date, timedelta
 from typing import Any, Literal
@@ -32,6 +34,7 @@ import numpy as np
 
 from calib.errors import EstimationDataError, EstimationError, EstimationWarning, PeriodError
 from calib.estimate.curves import Curves
+from calib.estimate.executor import Executor
 from calib.estimate.mle import Estimate, fit
 from calib.model.twofactor import TwoFactorParams
 from calib.types import FloatArray
@@ -252,3 +255,32 @@ def fit_chunk(task: ChunkTask) -> list[WindowFit]:
         if result.params is not None and result.noise_sd is not None and result.converged:
             warm = (result.params, result.noise_sd)
     return out
+
+
+def estimate_windows(
+    windows: Sequence[WindowTask],
+    settings: FitSettings,
+    executor: Executor,
+    *,
+    chunk: int,
+    warm: tuple[TwoFactorParams, FloatArray] | None = None,
+) -> Iterator[list[WindowFit]]:
+    """Estimate consecutive windows; yields each chunk's results in window order.
+
+    Without ``warm``, the first window is estimated cold in this process and its optimum
+    starts the first window of every chunk (parameters move slowly along a series, so even a
+    distant window's optimum is a better start than the default ones; a warm fit that does
+    not converge is redone cold). The chunks then run on ``executor``.
+    """
+    rest = list(windows)
+    if warm is None and rest:
+        first = fit_chunk(ChunkTask((rest.pop(0),), settings))
+        yield first
+        (seed,) = first
+        if seed.params is not None and seed.noise_sd is not None and seed.converged:
+            warm = (seed.params, seed.noise_sd)
+    size = max(1, chunk)
+    tasks = [
+        ChunkTask(tuple(rest[i : i + size]), settings, warm) for i in range(0, len(rest), size)
+    ]
+    yield from executor.map(fit_chunk, tasks)

@@ -40,10 +40,10 @@ The boundary is held as :math:`H(\\sqrt\\tau) = \\ln(B/K)^2` on the Chebyshev ex
 is taken over :math:`z = \\sqrt{\\tau - u}` by Gauss-Legendre. Because the nodes, the quadrature
 abscissae and hence the interpolation weights scale with :math:`\\sqrt T` alone, the
 interpolation is one fixed matrix computed at import. The start is the Barone-Adesi and Whaley
-(1987) critical price at each node; a fixed number of sweeps updates every node from the
-previous boundary (Jacobi). A fixed discretisation and sweep count make the premium a smooth
-function of its inputs, which the finite-difference vega and the implied-volatility solver
-rely on.
+(1987) critical price at each node; a fixed number of sweeps (coarse quadrature first, then
+fine) updates every node from the previous boundary (Jacobi). A fixed discretisation and
+sweep count make the premium a smooth function of its inputs, which the finite-difference vega
+and the implied-volatility solver rely on.
 
 Two guards keep the bounds exact where the few sweeps leave the boundary off: at rates near
 zero the start lies far above the boundary, so in the exercise region the premium is the
@@ -73,18 +73,28 @@ __all__ = [
 ]
 
 # --- the discretisation ---------------------------------------------------------------------
-# Chosen against QuantLib's QdFpAmericanEngine (high-precision scheme) on 1,200 seeded options
-# over F/K 0.5-2, T 1 day-5 years, vol 0.05-1.5, r 0-10 %: the largest error was a quarter of
-# the tolerance (1e-6 relative or 1e-8 F); fewer sweeps or price points lose that margin on
-# long-dated low-volatility options.
+# Chosen against QuantLib's QdFpAmericanEngine (high-precision scheme) on 1,650 seeded options
+# over F/K 0.5-2, T 1 day-5 years, vol 0.05-1.5, r 0-10 % (the test's domain): the largest
+# error is 0.34 of the tolerance (1e-6 relative or 1e-8 F; 0.27 with 8 coarse points and 48
+# price points, at about 1.25x the time). Measured there and lost: one fine sweep (3.6-3.8 of
+# the tolerance), two coarse sweeps (0.59), 14 or 12 fine points (0.51, 0.78), 9 intervals
+# (0.56), 32 or 24 price points (1.0, 3.4), fewer start Newton steps (0.48 with 2, 1.4 with 1),
+# and a Jacobi-Newton step on each node (the node's own derivative of FP-A, with or without its
+# integral terms: 12-220, it overshoots at expiries of days).
 
 N_INTERVALS = 10
 """Chebyshev extrema ``0..n`` on ``[0, sqrt(T)]`` hold the boundary."""
 N_BOUNDARY_QUAD = 16
 """Gauss-Legendre points per boundary integral."""
-N_SWEEPS = 5
-"""Fixed-point sweeps over all nodes (each sweep uses the previous boundary: Jacobi)."""
-N_PRICE_QUAD = 48
+N_START_NEWTON = 3
+"""Newton steps on Barone-Adesi and Whaley's critical price for the start."""
+N_COARSE_QUAD = 4
+"""Gauss-Legendre points per boundary integral in the first, coarse sweeps."""
+N_COARSE_SWEEPS = 3
+"""Coarse fixed-point sweeps over all nodes (each uses the previous boundary: Jacobi)."""
+N_SWEEPS = 2
+"""Fine sweeps after them."""
+N_PRICE_QUAD = 40
 """Gauss-Legendre points for the early-exercise premium (its integrand is steep for
 out-of-the-money options at low volatility)."""
 
@@ -116,11 +126,23 @@ def _chebyshev_weights(x: FloatArray, n: int) -> FloatArray:
     return out
 
 
-Tables = tuple[FloatArray, FloatArray, FloatArray, FloatArray, FloatArray, FloatArray, FloatArray]
-"""``(c, half, w, interp_b, halfp, wp, interp_p)`` from :func:`_tables`."""
+Tables = tuple[
+    FloatArray,
+    FloatArray,
+    FloatArray,
+    FloatArray,
+    FloatArray,
+    FloatArray,
+    FloatArray,
+    FloatArray,
+    FloatArray,
+    FloatArray,
+]
+"""``(c, half, w, interp_b, halfp, wp, interp_p, half_c, w_c, interp_c)`` from :func:`_tables`:
+the nodes, the fine boundary quadrature, the premium's quadrature, the coarse quadrature."""
 
 
-def _tables(n: int, n_quad: int, p: int) -> Tables:
+def _tables(n: int, n_quad: int, p: int, n_coarse: int) -> Tables:
     """Nodes, quadrature and interpolation weights, all in units of ``sqrt(T)``.
 
     Node ``i`` sits at ``sqrt(tau_i) = c_i sqrt(T)``; its integral over ``u in [0, tau_i]`` is
@@ -131,17 +153,22 @@ def _tables(n: int, n_quad: int, p: int) -> Tables:
     """
     j = np.arange(n + 1)
     c = 0.5 * (1.0 - np.cos(j * np.pi / n))
-    y, w = np.polynomial.legendre.leggauss(n_quad)
-    half = 0.5 * (1.0 + y)
-    root_u = (c[1:, None] * np.sqrt(1.0 - half * half)[None, :]).reshape(-1)
-    interp_b = _chebyshev_weights(root_u, n)
+
+    def boundary_quadrature(m: int) -> tuple[FloatArray, FloatArray, FloatArray]:
+        y, w = np.polynomial.legendre.leggauss(m)
+        half = 0.5 * (1.0 + y)
+        root_u = (c[1:, None] * np.sqrt(1.0 - half * half)[None, :]).reshape(-1)
+        return half, w, _chebyshev_weights(root_u, n)
+
+    half, w, interp_b = boundary_quadrature(n_quad)
+    half_c, w_c, interp_c = boundary_quadrature(n_coarse)
     yp, wp = np.polynomial.legendre.leggauss(p)
     halfp = 0.5 * (1.0 + yp)
     interp_p = _chebyshev_weights(np.sqrt(1.0 - halfp * halfp), n)
-    return c, half, w, interp_b, halfp, wp, interp_p
+    return c, half, w, interp_b, halfp, wp, interp_p, half_c, w_c, interp_c
 
 
-_TABLES = _tables(N_INTERVALS, N_BOUNDARY_QUAD, N_PRICE_QUAD)
+_TABLES = _tables(N_INTERVALS, N_BOUNDARY_QUAD, N_PRICE_QUAD, N_COARSE_QUAD)
 
 _SQRT_HALF = math.sqrt(0.5)
 _NEGLIGIBLE_RT = 1e-12  # at or below this r T the early-exercise premium (< r T K) is negligible
@@ -171,10 +198,11 @@ def _baw_critical(K: float, tau: float, r: float, vol: float) -> float:
     st = vol * math.sqrt(tau)
     s = s_inf + (K - s_inf) * math.exp(-2.0 * st * K / (K - s_inf))
     disc = math.exp(-r * tau)
-    for _ in range(3):
+    for _ in range(N_START_NEWTON):
         d1 = math.log(s / K) / st + 0.5 * st
         nd = _ncdf(-d1)
-        g = K - s - _european_put(s, K, tau, r, vol) + (1.0 - disc * nd) * s / q1
+        euro = disc * (K * _ncdf(st - d1) - s * nd)  # the European put at s
+        g = K - s - euro + (1.0 - disc * nd) * s / q1
         dg = (
             -1.0
             + disc * nd
@@ -188,6 +216,65 @@ def _baw_critical(K: float, tau: float, r: float, vol: float) -> float:
     return s
 
 
+def _interpolate_root(interp: FloatArray, h: FloatArray, out: FloatArray) -> None:
+    """``out[a] = sqrt(max(interp[a] @ h, 0))``; node 0 (``h = 0``) is left out."""
+    for a in range(interp.shape[0]):
+        acc = 0.0
+        for j in range(1, h.size):
+            acc += interp[a, j] * h[j]
+        out[a] = math.sqrt(acc) if acc > 0.0 else 0.0
+
+
+def _sweep(
+    bnd: FloatArray,
+    h: FloatArray,
+    K: float,
+    vol: float,
+    sqrt_t: float,
+    c: FloatArray,
+    half: FloatArray,
+    interp_b: FloatArray,
+    ert: FloatArray,
+    root_h: FloatArray,
+) -> None:
+    """One Jacobi sweep of ALO (2016) FP-A at ``q = r`` over nodes ``1..n``."""
+    n = c.size - 1
+    nl = half.size
+    for i in range(1, n + 1):
+        lb = math.log(bnd[i] / K)
+        h[i] = lb * lb
+    _interpolate_root(interp_b, h, root_h)
+    for i in range(1, n + 1):
+        b = bnd[i]
+        st = vol * sqrt_t * c[i]
+        dm = math.log(b / K) / st - 0.5 * st
+        root_hi = math.sqrt(h[i])
+        pdf = _INV_SQRT_2PI * math.exp(-0.5 * dm * dm) / st
+        num = pdf
+        den = pdf * K / b + _ncdf(dm + st)
+        for k in range(nl):
+            a = (i - 1) * nl + k
+            s_k = st * half[k]
+            lr = root_h[a] - root_hi  # ln(B(tau) / B(u))
+            dm = lr / s_k - 0.5 * s_k
+            pdf = _INV_SQRT_2PI * math.exp(-0.5 * dm * dm) / s_k
+            num += ert[a] * pdf
+            den += ert[a] * (pdf * math.exp(-lr) + _ncdf(dm + s_k))
+        bnd[i] = K * num / den
+
+
+def _weights(
+    T: float, r: float, c: FloatArray, half: FloatArray, w: FloatArray, ert: FloatArray
+) -> None:
+    """``r e^{r u}`` times the Gauss-Legendre weight and the Jacobian, per node and point."""
+    nl = half.size
+    for i in range(1, c.size):
+        tau = T * c[i] * c[i]
+        for k in range(nl):
+            u = tau * (1.0 - half[k] * half[k])
+            ert[(i - 1) * nl + k] = r * math.exp(r * u) * w[k] * tau * half[k]
+
+
 def _put_boundary(
     K: float,
     T: float,
@@ -195,51 +282,43 @@ def _put_boundary(
     vol: float,
     h: FloatArray,
     tab: Tables,
+    work: FloatArray,
 ) -> None:
-    """Fill ``h[j] = ln(B(tau_j) / K)^2`` at the nodes (``r > 0``, ``vol > 0``, ``T > 0``)."""
-    c, half, w, interp_b = tab[0], tab[1], tab[2], tab[3]
+    """Fill ``h[j] = ln(B(tau_j) / K)^2`` at the nodes (``r > 0``, ``vol > 0``, ``T > 0``).
+
+    ``work``: scratch of at least :func:`_work_size` elements.
+
+    The first sweeps use the coarse quadrature (they only bring the start near the boundary),
+    the last ones the fine one.
+    """
+    c = tab[0]
     n = c.size - 1
-    nl = w.size
     sqrt_t = math.sqrt(T)
-    bnd = np.empty(n + 1)
-    root_h = np.empty(n * nl)
-    ert = np.empty(n * nl)  # r e^{r u} times the Gauss-Legendre weight and the Jacobian
-    h[0] = 0.0
+    m = n * tab[1].size  # the fine quadrature's points, the most of any sweep
+    bnd = work[: n + 1]
+    ert = work[n + 1 : n + 1 + m]
+    root_h = work[n + 1 + m : n + 1 + 2 * m]
     for i in range(1, n + 1):
-        tau = T * c[i] * c[i]
-        bnd[i] = _baw_critical(K, tau, r, vol)
-        for k in range(nl):
-            u = tau * (1.0 - half[k] * half[k])
-            ert[(i - 1) * nl + k] = r * math.exp(r * u) * w[k] * tau * half[k]
+        bnd[i] = _baw_critical(K, T * c[i] * c[i], r, vol)
+    h[0] = 0.0
+    half, w, interp_b = tab[7], tab[8], tab[9]
+    _weights(T, r, c, half, w, ert)
+    for _ in range(N_COARSE_SWEEPS):
+        _sweep(bnd, h, K, vol, sqrt_t, c, half, interp_b, ert, root_h)
+    half, w, interp_b = tab[1], tab[2], tab[3]
+    _weights(T, r, c, half, w, ert)
     for _ in range(N_SWEEPS):
-        for i in range(1, n + 1):
-            lb = math.log(bnd[i] / K)
-            h[i] = lb * lb
-        for a in range(n * nl):
-            acc = 0.0
-            for j in range(1, n + 1):
-                acc += interp_b[a, j] * h[j]
-            root_h[a] = math.sqrt(acc) if acc > 0.0 else 0.0
-        for i in range(1, n + 1):
-            b = bnd[i]
-            st = vol * sqrt_t * c[i]
-            dm = math.log(b / K) / st - 0.5 * st
-            root_hi = math.sqrt(h[i])
-            pdf = _INV_SQRT_2PI * math.exp(-0.5 * dm * dm) / st
-            num = pdf
-            den = pdf * K / b + _ncdf(dm + st)
-            for k in range(nl):
-                a = (i - 1) * nl + k
-                s_k = st * half[k]
-                lr = root_h[a] - root_hi  # ln(B(tau) / B(u))
-                dm = lr / s_k - 0.5 * s_k
-                pdf = _INV_SQRT_2PI * math.exp(-0.5 * dm * dm) / s_k
-                num += ert[a] * pdf
-                den += ert[a] * (pdf * math.exp(-lr) + _ncdf(dm + s_k))
-            bnd[i] = K * num / den  # ALO (2016) FP-A at q = r
+        _sweep(bnd, h, K, vol, sqrt_t, c, half, interp_b, ert, root_h)
     for i in range(1, n + 1):
         lb = math.log(bnd[i] / K)
         h[i] = lb * lb
+
+
+def _work_size(tab: Tables) -> int:
+    """Scratch for :func:`_put_value`: the nodes twice, the fine quadrature's points twice
+    and the premium's points."""
+    n = tab[0].size - 1
+    return 2 * (n + 1) + 2 * n * tab[1].size + tab[4].size
 
 
 def _put_value(
@@ -249,8 +328,14 @@ def _put_value(
     r: float,
     vol: float,
     tab: Tables,
+    want_delta: bool,
+    work: FloatArray,
 ) -> tuple[float, float]:
-    """American put premium and its delta in ``S`` for finite ``S, K, T > 0``."""
+    """American put premium and its delta in ``S`` for finite ``S, K, T > 0``.
+
+    Without ``want_delta`` the delta returned is NaN wherever the boundary is solved (the
+    premium alone skips a third of the premium integral's transcendental functions).
+    """
     c, halfp, wp, interp_p = tab[0], tab[4], tab[5], tab[6]
     intrinsic = max(K - S, 0.0)
     if T <= 0.0:
@@ -268,8 +353,8 @@ def _put_value(
     if r * T <= _NEGLIGIBLE_RT:
         return euro, euro_delta
     n = c.size - 1
-    h = np.empty(n + 1)
-    _put_boundary(K, T, r, vol, h, tab)
+    h = work[: n + 1]
+    _put_boundary(K, T, r, vol, h, tab, work[n + 1 :])
     boundary = K * math.exp(-math.sqrt(h[n]))
     if boundary >= S:
         # exercise now; at rates near zero the few sweeps leave the boundary too high (the
@@ -278,19 +363,21 @@ def _put_value(
             return euro, euro_delta
         return intrinsic, -1.0
     eep = 0.0
-    eep_delta = 0.0
+    eep_delta = 0.0 if want_delta else np.nan
+    log_sk = math.log(S / K)
+    rt = r * T
+    roots = work[work.size - halfp.size :]  # ln(K / B(u)) at the premium's points
+    _interpolate_root(interp_p, h, roots)
     for k in range(halfp.size):
-        acc = 0.0
-        for j in range(1, n + 1):
-            acc += interp_p[k, j] * h[j]
-        bu = K * math.exp(-math.sqrt(acc)) if acc > 0.0 else K
+        root = roots[k]
         s_k = st * halfp[k]
-        weight = wp[k] * T * halfp[k] * r * math.exp(-r * T * halfp[k] * halfp[k])
-        dm = math.log(S / bu) / s_k - 0.5 * s_k
+        weight = wp[k] * halfp[k] * rt * math.exp(-rt * halfp[k] * halfp[k])
+        dm = (log_sk + root) / s_k - 0.5 * s_k
         n_plus = _ncdf(-dm - s_k)
         eep += weight * (K * _ncdf(-dm) - S * n_plus)
-        pdf = _INV_SQRT_2PI * math.exp(-0.5 * dm * dm)
-        eep_delta += weight * (pdf * (bu - K) / (S * s_k) - n_plus)
+        if want_delta:
+            pdf = _INV_SQRT_2PI * math.exp(-0.5 * dm * dm)
+            eep_delta += weight * (pdf * K * math.expm1(-root) / (S * s_k) - n_plus)
     value = euro + eep
     if value < intrinsic:  # within the discretisation error of the boundary, just above it
         return intrinsic, -1.0
@@ -300,6 +387,13 @@ def _put_value(
 _ncdf = numba.njit(cache=True, error_model="numpy")(_ncdf)
 _european_put = numba.njit(cache=True, error_model="numpy")(_european_put)
 _baw_critical = numba.njit(cache=True, error_model="numpy")(_baw_critical)
+# reassociating the sums lets them vectorise; the boundary changes by rounding only
+_interpolate_root = numba.njit(cache=True, fastmath={"reassoc", "contract"}, error_model="numpy")(
+    _interpolate_root
+)
+_sweep = numba.njit(cache=True, error_model="numpy")(_sweep)
+_weights = numba.njit(cache=True, error_model="numpy")(_weights)
+_work_size = numba.njit(cache=True, error_model="numpy")(_work_size)
 _put_boundary = numba.njit(cache=True, error_model="numpy")(_put_boundary)
 _put_value = numba.njit(cache=True, error_model="numpy")(_put_value)
 
@@ -315,7 +409,9 @@ def _value_loop(
     value: FloatArray,
     delta: FloatArray,
     tab: Tables,
+    want_delta: bool,
 ) -> None:
+    work = np.empty(_work_size(tab))
     for i in range(F.size):
         f, k, t, rr, v = F[i], K[i], T[i], r[i], vol[i]
         if not valid[i]:
@@ -323,11 +419,11 @@ def _value_loop(
             delta[i] = np.nan
             continue
         if call[i]:  # C(F, K) = P(K, F); dC/dF = (P - K dP/dS) / F by homogeneity
-            p, dp = _put_value(k, f, t, rr, v, tab)
+            p, dp = _put_value(k, f, t, rr, v, tab, want_delta, work)
             value[i] = p
             delta[i] = (p - k * dp) / f
         else:
-            p, dp = _put_value(f, k, t, rr, v, tab)
+            p, dp = _put_value(f, k, t, rr, v, tab, want_delta, work)
             value[i] = p
             delta[i] = dp
 
@@ -353,7 +449,9 @@ def _values(
     r: ArrayLike,
     vol: ArrayLike,
     kind: Kind | ArrayLike,
+    want_delta: bool = True,
 ) -> tuple[FloatArray, FloatArray]:
+    """Premiums and (with ``want_delta``, else NaN where the boundary is solved) deltas."""
     shape, call, flat = _flat(kind, F, K, T, r, vol)
     F_, K_, T_, r_, vol_ = flat
     with np.errstate(invalid="ignore"):
@@ -361,7 +459,7 @@ def _values(
         valid &= vol_ >= 0.0
     value = np.empty(flat[0].size)
     delta = np.empty(flat[0].size)
-    _VALUE_KERNEL(*flat, call, valid, value, delta, _TABLES)
+    _VALUE_KERNEL(*flat, call, valid, value, delta, _TABLES, want_delta)
     euro = valid & (r_ * T_ <= _NEGLIGIBLE_RT) & (vol_ > 0.0) & (T_ > 0.0)
     if euro.any():  # Black-76's own figures where no early exercise is worth anything
         g = black76.greeks(F_[euro], K_[euro], T_[euro], r_[euro], vol_[euro], call[euro])
@@ -403,7 +501,7 @@ def price(
     vol 0.05-1.5, r 0-10 % (``tests/model/test_american.py``). With ``r <= 0`` the result is
     the Black-76 premium itself.
     """
-    return _values(F, K, T, r, vol, kind)[0]
+    return _values(F, K, T, r, vol, kind, want_delta=False)[0]
 
 
 def early_exercise_premium(
@@ -469,8 +567,40 @@ _NON_FINITE_INPUT = int(ImpliedVolCode.NON_FINITE_INPUT)
 _EUROPEAN = -1  # r <= 0: the premium is a Black-76 one (resolved outside the kernel)
 
 _MAX_ITER = 100
-_STEP_TOL = 1e-14  # relative secant step at which the volatility is taken as converged
+_STEP_TOL = 1e-11  # relative secant step after which the error is far smaller (superlinear)
+_EPS = float(np.finfo(np.float64).eps)
+_PREDICTED_TOL = 1e-12  # estimated relative error of the next point at which to stop (measured
+# round trip: 8e-13 at most on 2,800 options, against the 1e-10 asked; 1e-13 costs 5 % more)
 _MAX_VOL = 1e3  # no volatility above this is searched (its premium is within eps of the bound)
+
+
+def _european_solve(
+    target: float, s: float, S: float, K: float, T: float, r: float, x: float, lo: float, hi: float
+) -> float:
+    """Root of ``P_E(vol) + s vol = target`` by Newton from ``x`` (NaN if it leaves
+    ``(lo / 2, 2 hi)``).
+
+    ``P_E`` is the European put premium; its derivative plus ``s`` is the American vega's
+    secant estimate, positive wherever the American premium rises with the volatility.
+    """
+    root_t = math.sqrt(T)
+    disc = math.exp(-r * T)
+    log_sk = math.log(S / K)
+    for _ in range(_MAX_ITER):
+        st = x * root_t
+        d1 = log_sk / st + 0.5 * st
+        value = disc * (K * _ncdf(st - d1) - S * _ncdf(-d1))
+        slope = disc * S * root_t * _INV_SQRT_2PI * math.exp(-0.5 * d1 * d1) + s
+        if not slope > 0.0:
+            return np.nan
+        step = (value + s * x - target) / slope
+        x_new = x - step
+        if x_new <= 0.5 * lo or x_new >= 2.0 * hi:
+            return np.nan
+        if abs(step) <= 4.0 * _EPS * x_new:
+            return x_new
+        x = x_new
+    return x
 
 
 def _put_vol(
@@ -480,6 +610,7 @@ def _put_vol(
     T: float,
     r: float,
     tab: Tables,
+    work: FloatArray,
 ) -> float:
     """Volatility at which the American put premium is ``p`` (``K - S < p < K``, ``r > 0``)."""
     intrinsic = max(K - S, 0.0)
@@ -491,12 +622,12 @@ def _put_vol(
     hi = 1.0
     if tv < min(S, K):
         hi = black76._solve_normalised(tv / math.sqrt(S * K), x) / root_t
-    g_hi = _put_value(S, K, T, r, hi, tab)[0] - p
+    g_hi = _put_value(S, K, T, r, hi, tab, False, work)[0] - p
     while g_hi < 0.0:
         if hi > _MAX_VOL:
             return np.nan
         hi *= 2.0
-        g_hi = _put_value(S, K, T, r, hi, tab)[0] - p
+        g_hi = _put_value(S, K, T, r, hi, tab, False, work)[0] - p
     if g_hi == 0.0:
         return hi
     lo = 0.0
@@ -507,25 +638,45 @@ def _put_vol(
         guess = black76._solve_normalised(tv1 / math.sqrt(S * K), x) / root_t
         if 0.0 < guess < hi:
             x1 = guess
+    # Each step solves P_E(x) + e(x1) + s (x - x1) = p exactly (Black-76 by Newton), with the
+    # early-exercise premium e = P - P_E taken linear through the last two points: a secant on
+    # e alone, whose error shrinks like a secant's but with e's far smaller curvature.
     x0, g0 = hi, g_hi
+    e0 = g_hi + p - _european_put(S, K, T, r, hi)
+    x_prev = s_prev = np.nan  # the point before x0 and the slope of e through it and x0
     for _ in range(_MAX_ITER):
-        g1 = _put_value(S, K, T, r, x1, tab)[0] - p
+        g1 = _put_value(S, K, T, r, x1, tab, False, work)[0] - p
         if g1 == 0.0:
             return x1
         if g1 < 0.0:
             lo = x1
         else:
             hi = x1
-        x2 = x1 - g1 * (x1 - x0) / (g1 - g0) if g1 != g0 else 0.5 * (lo + hi)
-        if not lo < x2 < hi:  # also catches NaN
+        e1 = g1 + p - _european_put(S, K, T, r, x1)
+        s = (e1 - e0) / (x1 - x0)
+        x2 = np.nan  # both in the exercise region, where the premium is flat: no model
+        if g1 != g0:
+            x2 = _european_solve(p - e1 + s * x1, s, S, K, T, r, x1, lo, hi)
+        if abs(x2 - x1) <= _STEP_TOL * x1:  # converged (x2 may sit a rounding outside)
+            return x2 if lo < x2 < hi else x1
+        inside = lo < x2 < hi  # also catches NaN
+        if not inside:
             x2 = 0.5 * (lo + hi)
-        if abs(x2 - x1) <= _STEP_TOL * x2 or hi - lo <= _STEP_TOL * hi:
+        if hi - lo <= _STEP_TOL * hi:
             return x2
-        x0, g0 = x1, g1
+        # the step's error is about |e''/(2 P')| (x1 - root)(x0 - root): once that estimate
+        # is below _PREDICTED_TOL the root is x2 without pricing there
+        den = (x1 - x_prev) * (g1 - g0)
+        curvature = abs((s - s_prev) * (x1 - x0) / den) if den != 0.0 else np.inf
+        if inside and abs(x2 - x1) * abs(x2 - x0) * curvature <= _PREDICTED_TOL * x2:
+            return x2
+        x_prev, s_prev = x0, s
+        x0, g0, e0 = x1, g1, e1
         x1 = x2
     return x1
 
 
+_european_solve = numba.njit(cache=True, error_model="numpy")(_european_solve)
 _put_vol = numba.njit(cache=True, error_model="numpy")(_put_vol)
 
 
@@ -540,6 +691,7 @@ def _implied_vol_loop(
     code: IntArray,
     tab: Tables,
 ) -> None:
+    work = np.empty(_work_size(tab))
     for i in range(premium.size):
         vol[i] = np.nan
         if code[i] != _OK:  # screened before the loop
@@ -556,7 +708,7 @@ def _implied_vol_loop(
         if p >= x:
             code[i] = _ABOVE_UPPER_BOUND
             continue
-        vol[i] = _put_vol(p, s, x, t, rr, tab)
+        vol[i] = _put_vol(p, s, x, t, rr, tab, work)
 
 
 _IV_KERNEL: Callable[..., None] = numba.njit(cache=True, nogil=True, error_model="numpy")(
@@ -587,9 +739,14 @@ def implied_vol_detail(
     The European (Black-76) volatility of the premium bounds the American one from above,
     since the American premium exceeds the European one at every volatility. The second
     point is the European volatility of the premium less the early-exercise premium at that
-    bound; secant steps follow inside the bracket that every evaluation tightens, and a step
-    leaving it is replaced by bisection. The root is that of :func:`price` itself, so a round
-    trip recovers the volatility to about ``eps * premium / vega``.
+    bound. Each further point solves the Black-76 premium plus the early-exercise premium,
+    taken linear through the last two points, equal to the premium (a secant on the
+    early-exercise premium alone, the European part exact); a point leaving the bracket that
+    every evaluation tightens, or one from two points in the exercise region, is replaced by
+    bisection. The search stops where the secant's error estimated from the last three points
+    is below 1e-12 relative, without pricing there: about 3.4 premiums per option. The root is
+    that of :func:`price` itself, so a round trip recovers the volatility to about
+    ``eps * premium / vega`` (at most 8e-13 measured).
     """
     shape, call, flat = _flat(kind, premium, F, K, T, r)
     _, F_, K_, T_, r_ = flat

@@ -204,6 +204,10 @@ def _solve_normalised(beta: float, x: float) -> float:
     ``b(x, s) = e^{x/2} N(x/s + s/2) - e^{-x/2} N(x/s - s/2)``; requires
     ``0 < beta < e^{x/2}``.
     """
+    if x == 0.0 and beta < 1e-8:
+        # at the money b = 2 N(s/2) - 1 = s / sqrt(2 pi) (1 - s^2/24 + ...): exact to rounding
+        # here, and the iteration below would divide by s^2 = 0 for beta near the float limit
+        return beta * _SQRT_2PI
     ehp = math.exp(0.5 * x)
     ehm = math.exp(-0.5 * x)
     x2 = x * x
@@ -241,6 +245,8 @@ def _solve_normalised(beta: float, x: float) -> float:
         if sc > 0.0 and w < _CUBIC_REACH:
             s = sc + _cubic_offset(w)
     for _ in range(_MAX_ITER):
+        if s * s == 0.0:  # a root below sqrt of the smallest double: no usable precision left
+            break
         d1 = x / s + 0.5 * s
         d2 = d1 - s
         b = ehp * _ncdf(d1) - ehm * _ncdf(d2)
@@ -268,6 +274,11 @@ def _solve_normalised(beta: float, x: float) -> float:
             hi = s
         else:
             break
+        if not f1 > 0.0:  # the slope underflowed (|x| near the float64 exponent limit): bisect
+            s = 0.5 * (lo + hi) if hi < math.inf else 2.0 * s
+            if hi - lo <= 4e-16 * s:
+                break
+            continue
         nu = -f / f1
         k2 = f2 / f1
         k3 = f3 / f1
@@ -321,9 +332,15 @@ def _implied_vol_loop(
         if time_value >= min(f, k):
             code[i] = _ABOVE_UPPER_BOUND
             continue
+        # sqrt(f) sqrt(k), not sqrt(f k): the product overflows for prices near the float64
+        # limit; a time value that vanishes against it carries no volatility at this precision
+        beta = time_value / (math.sqrt(f) * math.sqrt(k))
+        x = -abs(math.log(f) - math.log(k))
+        if not (beta > 0.0 and math.isfinite(beta) and math.isfinite(x)):
+            code[i] = _NO_TIME_VALUE
+            continue
         code[i] = _OK
-        x = -abs(math.log(f / k))
-        s = _solve_normalised(time_value / math.sqrt(f * k), x)
+        s = _solve_normalised(beta, x)
         vol[i] = s / math.sqrt(t)
 
 

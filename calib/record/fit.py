@@ -38,12 +38,21 @@ DERIVED_KEYS = ("binding", "all_gates_pass")
 
 @dataclass(frozen=True, slots=True)
 class BucketVols:
-    """Volatilities in force over calendar years ``[start, end)`` from the trade date
-    (forward mode: one per bucket; one bucket otherwise)."""
+    """Volatilities in force over calendar years ``[start, end)`` (forward mode: one per bucket).
+
+    ``std_errors``: standard errors of ``(sigma_spot, sigma_yield, rho)`` at the fit (``inf``
+    where the quotes do not identify the parameter, 0 where a constraint holds it);
+    ``yield_set_by``: ``"quotes"`` when the quotes set ``sigma_yield``, ``"anchor"`` when it
+    only follows the anchor, ``"none"`` when neither does (see
+    :mod:`calib.calibrate.uncertainty`). ``None`` where not computed (a stored earlier run).
+    Stored as JSON, an infinite standard error reads back as NaN (JSON has neither).
+    """
 
     start: float
     end: float
     params: TwoFactorParams
+    std_errors: tuple[float, float, float] | None = None
+    yield_set_by: str | None = None
 
 
 @dataclass(frozen=True, slots=True)
@@ -52,17 +61,24 @@ class ConstraintReport:
 
     Attributes
     ----------
-    name : ``psd`` (``|rho| <= 1``), ``decay_bound``, ``yield_floor``, ``spot_cap`` or
-        ``rho_held``.
+    name : the family (:mod:`calib.calibrate.constraints`): ``psd`` (``|rho| <= 1``),
+        ``decay_bound``, ``yield_floor``, ``sigma_spot_cap``, ``held_rho``, and the held
+        scan's ranges ``spot_limit`` and ``ratio_limit``.
     form : the constraint in words and symbols.
     bucket : forward-mode bucket index, ``None`` for a constant fit.
     slack : distance to the boundary in natural units (>= 0 when met): ``1 - |rho|``,
-        ``rho kappa s1 - s2``, ``s2 - q s2_hist``, ``cap - s1``; ``None`` for ``rho_held``.
-    binds : whether the constraint is active (slack within 1e-7, or rho held).
+        ``rho kappa s1 - s2``, ``s2 - q s2_hist``, ``cap - s1``, ``10 - s1``,
+        ``max_vol_ratio s1 - s2``; ``None`` for ``held_rho``.
+    binds : whether the constraint is active (slack within ``max(1e-7, tolerance)``, or rho
+        held).
     dual : the multiplier of the final convex sub-problem (objective per unit of the
         constraint in variance terms), ``None`` where the mode has no conic solve.
     refit_cost : objective saved by re-fitting without this constraint (in every bucket);
-        ``None`` when not computed (not binding, ``refit_costs`` off, or ``psd``).
+        ``None`` when not computed (see ``refit_note``).
+    tolerance : the slack's resolution at the solver's stated precision: the constraint is
+        met when ``slack >= -tolerance``.
+    refit_note : why ``refit_cost`` is ``None`` for a binding constraint (no switch, or the
+        re-fit cannot run, with its reason); ``None`` otherwise.
     """
 
     name: str
@@ -72,6 +88,13 @@ class ConstraintReport:
     binds: bool
     dual: float | None
     refit_cost: float | None
+    tolerance: float = 0.0
+    refit_note: str | None = None
+
+    @property
+    def met(self) -> bool:
+        """Whether the constraint holds within its tolerance."""
+        return self.slack is None or self.slack >= -self.tolerance
 
     def to_dict(self) -> dict[str, Any]:
         return encode(self)  # type: ignore[no-any-return]
@@ -117,6 +140,9 @@ class FitRecord:
     constraints : every constraint's report at the solution.
     dropped : quotes left out by the filters.
     gates : the gate verdicts against the approved set in force when the run was written.
+    inaccurate_steps, solver_precision, anchor_penalty, anchor_fit_cost, not_identified,
+        not_identified_reason, residual_variance : as
+        :class:`~calib.calibrate.CalibrationResult` has them (defaults for runs stored before).
     """
 
     params: TwoFactorParams
@@ -136,6 +162,13 @@ class FitRecord:
     constraints: tuple[ConstraintReport, ...] = ()
     dropped: tuple[Dropped, ...] = ()
     gates: tuple[Gate, ...] = ()
+    inaccurate_steps: int = 0
+    solver_precision: float = 0.0
+    anchor_penalty: float = 0.0
+    anchor_fit_cost: float | None = None
+    not_identified: tuple[str, ...] = ()
+    not_identified_reason: str = ""
+    residual_variance: float | None = None
     schema_version: int = SCHEMA_VERSION
 
     @property

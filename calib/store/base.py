@@ -15,6 +15,8 @@ from sqlalchemy.engine import Dialect
 from sqlalchemy.orm import DeclarativeBase
 from sqlalchemy.types import TypeDecorator
 
+from calib.errors import TextTooLongError
+
 NAMING_CONVENTION: dict[str, str] = {
     "ix": "ix_%(table_name)s_%(column_0_name)s",
     "uq": "uq_%(table_name)s_%(column_0_name)s",
@@ -70,3 +72,29 @@ class UtcDateTime(TypeDecorator[datetime]):
 def utc_now() -> datetime:
     """The current time, aware, in UTC."""
     return datetime.now(UTC)
+
+
+# --- text limits: the same on every engine ------------------------------------------------------
+# PostgreSQL refuses a longer value than its column holds, SQLite keeps any length: values are
+# checked against these before they reach the database (the columns are declared with them).
+
+CODE_CHARS = 32
+"""Longest commodity code."""
+NAME_CHARS = 200
+"""Longest commodity name."""
+UNIT_CHARS = 32
+"""Longest unit of a commodity (``tonne``, ``bbl``)."""
+CURRENCY_CHARS = 8
+"""Longest quote currency code."""
+USER_CHARS = 128
+"""Longest user name recorded (who ingested, fitted, approved; ``CALIB_USER``, ``--by``)."""
+
+
+def check_text(what: str, value: str, limit: int) -> str:
+    """``value`` if it has at most ``limit`` characters, else :class:`TextTooLongError`.
+
+    ``what`` names the value in the one-line message (``"the user name"``, ``"--by"``).
+    """
+    if len(value) > limit:
+        raise TextTooLongError(what, len(value), limit)
+    return value

@@ -9,12 +9,15 @@ wrote first. ``postgresql://`` URLs use psycopg 3.
 
 from __future__ import annotations
 
+import hashlib
+import os
 import sqlite3
 from collections.abc import Iterator
 from contextlib import contextmanager
 from dataclasses import dataclass
 from pathlib import Path
 from typing import Any
+from urllib.parse import quote
 
 from sqlalchemy import Engine, create_engine, event
 from sqlalchemy.engine import URL, Connection, make_url
@@ -39,15 +42,25 @@ def parse_url(url: str) -> URL:
     """
     try:
         parsed = make_url(url)
-    except ArgumentError as exc:
-        raise StoreURLError(url, str(exc)) from None
+    except (ArgumentError, ValueError):  # ValueError: a port that is not a number
+        raise StoreURLError(_hidden(url), "not a database URL") from None
     backend = parsed.get_backend_name()
     if backend == "postgresql":
         if parsed.get_driver_name() != "psycopg":
             parsed = parsed.set(drivername="postgresql+psycopg")
     elif backend != "sqlite":
-        raise StoreURLError(url, "only sqlite:/// and postgresql:// URLs are supported")
+        shown = parsed.render_as_string(hide_password=True)
+        raise StoreURLError(shown, "only sqlite:/// and postgresql:// URLs are supported")
     return parsed
+
+
+def _hidden(url: str) -> str:
+    """``url`` with anything between ``://user:`` and ``@`` masked (it may be a password)."""
+    scheme, sep, rest = url.partition("://")
+    credentials, at, host = rest.rpartition("@")
+    if not sep or not at or ":" not in credentials:
+        return url
+    return f"{scheme}://{credentials.split(':', 1)[0]}:***@{host}"
 
 
 def sqlite_file(url: URL) -> Path | None:
@@ -57,7 +70,7 @@ def sqlite_file(url: URL) -> Path | None:
     return Path(str(url.database))
 
 
-def create_store_engine(url: str, *, echo: bool = False) -> Engine:
+def create_store_engine(url: str, *, echo: bool = False, read_only: bool = False) -> Engine:
     """A new engine for ``url``, configured for calib's store.
 
     Parameters
@@ -65,6 +78,10 @@ def create_store_engine(url: str, *, echo: bool = False) -> Engine:
     url : SQLAlchemy URL, e.g. ``sqlite:///db/calib.sqlite`` or
         ``postgresql://user@host/db`` (psycopg 3 is used).
     echo : log every statement (debugging).
+    read_only : open the database for reading only, for commands that only read. SQLite: the
+        file is opened with ``mode=ro``, or ``immutable=1`` when its folder cannot be written
+        (a read-only mount, where even a reader cannot make WAL side files; nothing can write
+        there either); no pragma that writes is run. PostgreSQL: every transaction is read-only.
 
     Notes
     -----
@@ -75,6 +92,8 @@ def create_store_engine(url: str, *, echo: bool = False) -> Engine:
     correct transactional DDL and locking.
     """
     parsed = parse_url(url)
+    if parsed.get_backend_name() == "sqlite" and read_only:
+        return _sqlite_reader(parsed, echo)
     if parsed.get_backend_name() == "sqlite":
         engine = create_engine(
             parsed, echo=echo, connect_args={"timeout": SQLITE_BUSY_TIMEOUT_MS / 1000}
@@ -82,7 +101,44 @@ def create_store_engine(url: str, *, echo: bool = False) -> Engine:
         event.listen(engine, "connect", _sqlite_on_connect)
         event.listen(engine, "begin", _sqlite_on_begin)
         return engine
+    if read_only:
+        return create_engine(
+            parsed,
+            echo=echo,
+            pool_pre_ping=True,
+            execution_options={"postgresql_readonly": True},
+        )
     return create_engine(parsed, echo=echo, pool_pre_ping=True)
+
+
+def _sqlite_reader(parsed: URL, echo: bool) -> Engine:
+    """A read-only SQLite engine (``mode=ro``, or ``immutable=1`` on a read-only folder)."""
+    path = sqlite_file(parsed)
+    if path is None:
+        raise StoreURLError(str(parsed), "an in-memory database cannot be opened read-only")
+    writable = os.access(path.parent if str(path.parent) else Path("."), os.W_OK)
+    flag = "mode=ro" if writable else "immutable=1"
+    target = f"file:{quote(str(path.resolve()))}?{flag}"
+
+    def connect() -> sqlite3.Connection:
+        return sqlite3.connect(
+            target, uri=True, timeout=SQLITE_BUSY_TIMEOUT_MS / 1000, check_same_thread=False
+        )
+
+    engine = create_engine("sqlite://", echo=echo, creator=connect)
+    event.listen(engine, "connect", _sqlite_reader_on_connect)
+    event.listen(engine, "begin", _sqlite_on_begin)
+    return engine
+
+
+def _sqlite_reader_on_connect(dbapi_connection: sqlite3.Connection, _record: Any) -> None:
+    dbapi_connection.isolation_level = None
+    cursor = dbapi_connection.cursor()
+    try:
+        cursor.execute("PRAGMA foreign_keys=ON")
+        cursor.execute(f"PRAGMA busy_timeout={SQLITE_BUSY_TIMEOUT_MS}")
+    finally:
+        cursor.close()
 
 
 def _sqlite_on_connect(dbapi_connection: sqlite3.Connection, _record: Any) -> None:
@@ -112,6 +168,19 @@ def begin_write(session: Session) -> None:
     session.connection(execution_options={_WRITE: True})
 
 
+def lock_for(session: Session, name: str) -> None:
+    """Hold a lock named ``name`` until ``session``'s transaction ends (after
+    :func:`begin_write`), so that two processes doing the same thing take turns.
+
+    PostgreSQL: a transaction-level advisory lock on a 64-bit hash of ``name``. SQLite: the
+    write lock :func:`begin_write` took already serialises every writer.
+    """
+    connection = session.connection()
+    if connection.dialect.name == "postgresql":
+        key = int.from_bytes(hashlib.sha256(name.encode()).digest()[:8], "big", signed=True)
+        connection.exec_driver_sql("SELECT pg_advisory_xact_lock(%(key)s)", {"key": key})
+
+
 @dataclass(frozen=True)
 class Store:
     """An engine and the session factory bound to it."""
@@ -125,16 +194,17 @@ class Store:
         return self.engine.url.render_as_string(hide_password=True)
 
 
-def make_store(url: str, *, echo: bool = False) -> Store:
-    """A :class:`Store` for ``url`` (no connection is opened yet)."""
-    engine = create_store_engine(url, echo=echo)
+def make_store(url: str, *, echo: bool = False, read_only: bool = False) -> Store:
+    """A :class:`Store` for ``url`` (no connection is opened yet); see
+    :func:`create_store_engine` for ``read_only``."""
+    engine = create_store_engine(url, echo=echo, read_only=read_only)
     return Store(engine=engine, sessions=sessionmaker(engine, expire_on_commit=False))
 
 
 @contextmanager
-def store_for(url: str) -> Iterator[Store]:
+def store_for(url: str, *, read_only: bool = False) -> Iterator[Store]:
     """A :class:`Store` for the duration of a ``with`` block; the engine is disposed after."""
-    store = make_store(url)
+    store = make_store(url, read_only=read_only)
     try:
         yield store
     finally:

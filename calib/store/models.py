@@ -29,7 +29,16 @@ from sqlalchemy import (
 )
 from sqlalchemy.orm import Mapped, mapped_column
 
-from calib.store.base import Base, UtcDateTime, in_check
+from calib.store.base import (
+    CODE_CHARS,
+    CURRENCY_CHARS,
+    NAME_CHARS,
+    UNIT_CHARS,
+    USER_CHARS,
+    Base,
+    UtcDateTime,
+    in_check,
+)
 
 BATCH_KINDS = ("futures", "options", "rates")
 """What an ingest batch holds; one file is one kind."""
@@ -44,10 +53,10 @@ class Commodity(Base):
     __tablename__ = "commodities"
 
     id: Mapped[int] = mapped_column(Integer, primary_key=True)
-    code: Mapped[str] = mapped_column(String(32), unique=True)
-    name: Mapped[str] = mapped_column(String(200))
-    unit: Mapped[str] = mapped_column(String(32))
-    currency: Mapped[str] = mapped_column(String(8))
+    code: Mapped[str] = mapped_column(String(CODE_CHARS), unique=True)
+    name: Mapped[str] = mapped_column(String(NAME_CHARS))
+    unit: Mapped[str] = mapped_column(String(UNIT_CHARS))
+    currency: Mapped[str] = mapped_column(String(CURRENCY_CHARS))
     calendar_rule: Mapped[str] = mapped_column(Text)
     """Free text naming the contract calendar (e.g. ``monthly``); read by people, not code."""
 
@@ -73,7 +82,7 @@ class IngestBatch(Base):
     rows_accepted: Mapped[int] = mapped_column(Integer)
     rows_rejected: Mapped[int] = mapped_column(Integer)
     received_at: Mapped[datetime] = mapped_column(UtcDateTime())
-    received_by: Mapped[str] = mapped_column(String(128))
+    received_by: Mapped[str] = mapped_column(String(USER_CHARS))
 
 
 class FuturesSettlement(Base):

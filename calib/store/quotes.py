@@ -22,7 +22,8 @@ from typing import TYPE_CHECKING, Any, cast
 
 import numpy as np
 import numpy.typing as npt
-from sqlalchemy import ColumnElement, Select, Table, func, insert, select
+from sqlalchemy import ColumnElement, Select, Table, func, insert, select, update
+from sqlalchemy.exc import DBAPIError, OperationalError
 from sqlalchemy.orm import Session
 
 from calib.errors import UnknownCommodityError
@@ -208,6 +209,11 @@ def commodity_ids(*, session: Session, codes: Sequence[str]) -> dict[str, int]:
     return {code: id_ for code, id_ in rows}
 
 
+def all_commodity_codes(*, session: Session) -> list[str]:
+    """Every registered commodity code, sorted."""
+    return list(session.scalars(select(Commodity.code).order_by(Commodity.code)))
+
+
 def add_commodity(
     *, session: Session, code: str, name: str, unit: str, currency: str, calendar_rule: str
 ) -> CommodityRecord:
@@ -261,6 +267,32 @@ def add_batch(
     return batch.id
 
 
+def finish_batch(
+    *,
+    session: Session,
+    batch_id: int,
+    status: str,
+    rows_read: int,
+    rows_accepted: int,
+    rows_rejected: int,
+) -> None:
+    """Set a batch's outcome once its file is read, in the transaction that added it.
+
+    A batch is added first (its rows and quarantine refer to it) and given its counts when the
+    last chunk is in; no other transaction ever sees it before that.
+    """
+    session.execute(
+        update(_batches)
+        .where(_batches.c.id == batch_id)
+        .values(
+            status=status,
+            rows_read=rows_read,
+            rows_accepted=rows_accepted,
+            rows_rejected=rows_rejected,
+        )
+    )
+
+
 QUOTE_TABLES: Mapping[str, Table] = {"futures": _futures, "options": _options, "rates": _rates}
 """The quote table of each batch kind."""
 
@@ -289,9 +321,9 @@ def _sqlite_values(values: Any, count: int) -> list[Any]:
 
 
 def _arrow_values(values: Any, count: int) -> pa.Array:
+    """One column as an arrow array (dates as ``date32``, NaN as null)."""
     import pyarrow as pa
 
-    """One column as an arrow array (dates as ``date32``, NaN as null)."""
     arr = np.full(count, values) if np.isscalar(values) else np.asarray(values)
     return pa.array(arr, from_pandas=arr.dtype.kind == "f")
 
@@ -325,32 +357,54 @@ def insert_columns(
     column_list = ", ".join(quote(name) for name in names)
     if dialect.name == "postgresql":
         import psycopg  # the postgres extra; only reached with a PostgreSQL engine
-        import pyarrow as pa
-        import pyarrow.csv as pa_csv
 
-        # COPY in CSV form, written by arrow: ISO dates, shortest round-trip floats, empty = NULL
-        text = io.BytesIO()
-        pa_csv.write_csv(
-            pa.table({name: _arrow_values(columns[name], count) for name in names}),
-            text,
-            pa_csv.WriteOptions(include_header=False),
-        )
-        raw = cast(psycopg.Connection[Any], connection.connection.dbapi_connection)
-        with (
-            raw.cursor() as cursor,
-            cursor.copy(f"COPY {target} ({column_list}) FROM STDIN WITH (FORMAT csv)") as copy,
-        ):
-            copy.write(text.getbuffer())
+        try:
+            _copy(connection, target, column_list, names, columns, count)
+        except psycopg.OperationalError as exc:  # disk full, connection lost: the store says
+            raise OperationalError("COPY", None, exc) from exc
+        except psycopg.Error as exc:
+            raise DBAPIError("COPY", None, exc) from exc
         return
     prepared = [_sqlite_values(columns[name], count) for name in names]
     marks = ", ".join("?" for _ in names)
+    statement = f"INSERT INTO {target} ({column_list}) VALUES ({marks})"
     lite = cast(sqlite3.Connection, connection.connection.dbapi_connection).cursor()
     try:  # the driver's own executemany, fed row tuples as it goes
-        lite.executemany(
-            f"INSERT INTO {target} ({column_list}) VALUES ({marks})", zip(*prepared, strict=True)
-        )
+        lite.executemany(statement, zip(*prepared, strict=True))
+    except sqlite3.OperationalError as exc:  # disk full, database locked: the store says
+        raise OperationalError(statement, None, exc) from exc
+    except sqlite3.Error as exc:
+        raise DBAPIError(statement, None, exc) from exc
     finally:
         lite.close()
+
+
+def _copy(
+    connection: Any,
+    target: str,
+    column_list: str,
+    names: Sequence[str],
+    columns: Mapping[str, Any],
+    count: int,
+) -> None:
+    """PostgreSQL's ``COPY`` of the rows, in CSV form written by arrow."""
+    import psycopg
+    import pyarrow as pa
+    import pyarrow.csv as pa_csv
+
+    # COPY in CSV form, written by arrow: ISO dates, shortest round-trip floats, empty = NULL
+    text = io.BytesIO()
+    pa_csv.write_csv(
+        pa.table({name: _arrow_values(columns[name], count) for name in names}),
+        text,
+        pa_csv.WriteOptions(include_header=False),
+    )
+    raw = cast(psycopg.Connection[Any], connection.connection.dbapi_connection)
+    with (
+        raw.cursor() as cursor,
+        cursor.copy(f"COPY {target} ({column_list}) FROM STDIN WITH (FORMAT csv)") as copy,
+    ):
+        copy.write(text.getbuffer())
 
 
 def insert_rows(*, session: Session, table: Table, rows: Sequence[Mapping[str, Any]]) -> None:
@@ -359,9 +413,19 @@ def insert_rows(*, session: Session, table: Table, rows: Sequence[Mapping[str, A
         session.execute(insert(table), list(rows))
 
 
+def _storable(text: Any) -> Any:
+    """Text as every engine stores it: a NUL character is shown as ``\\x00`` (PostgreSQL's
+    text cannot hold one)."""
+    return text.replace("\x00", "\\x00") if isinstance(text, str) and "\x00" in text else text
+
+
 def quarantine(*, session: Session, rows: Sequence[Mapping[str, Any]]) -> None:
-    """Store refused rows (``batch_id, line, field, reason, raw``)."""
-    insert_rows(session=session, table=_quarantine, rows=rows)
+    """Store refused rows (``batch_id, line, field, reason, raw``); NUL shown as ``\\x00``."""
+    insert_rows(
+        session=session,
+        table=_quarantine,
+        rows=[{k: _storable(v) for k, v in row.items()} for row in rows],
+    )
 
 
 # --- versioned reads ---------------------------------------------------------------------------
@@ -401,25 +465,25 @@ def _to_days(series: pd.Series) -> DateArray:
     return np.asarray(pd.to_datetime(series).to_numpy().astype("datetime64[D]"))
 
 
-def futures_settlements(
+def current_quotes(
     *,
     session: Session,
+    kind: str,
     commodity_ids: Sequence[int],
     start: date,
     end: date,
     as_of: datetime | None = None,
 ) -> pd.DataFrame:
-    """Current futures settlements of several commodities over ``start..end`` (inclusive).
+    """Current futures settlements or option quotes (``kind``) of several commodities over
+    ``start..end`` (inclusive).
 
-    Columns ``id, batch_id, commodity_id, trade_date, delivery, settle, line`` (dates as
-    ``datetime.date``); one row per key, as known at ``as_of``.
+    Columns as the quote table's (``id, batch_id, commodity_id, trade_date, ...``; dates as
+    ``datetime.date``, NULL as ``None``); one row per key, as known at ``as_of``.
     """
-    where = [
-        _futures.c.commodity_id.in_(list(commodity_ids)),
-        _futures.c.trade_date.between(start, end),
-    ]
-    stmt = _latest(_futures, FUTURES_KEY, where, as_of or utc_now())
-    return _frame(session, stmt, [c.name for c in _futures.columns])
+    table = QUOTE_TABLES[kind]
+    where = [table.c.commodity_id.in_(list(commodity_ids)), table.c.trade_date.between(start, end)]
+    stmt = _latest(table, _KEYS[kind], where, as_of or utc_now())
+    return _frame(session, stmt, [c.name for c in table.columns])
 
 
 def zero_curves(

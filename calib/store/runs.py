@@ -8,7 +8,7 @@ Status
 A run's status at time ``t`` is the ``to_status`` of its newest event at or before ``t``
 (ties by event id). The moves allowed are :data:`TRANSITIONS`; a fitted run starts as
 ``candidate``, a failed one is ``rejected`` from the start. Approving a run is the workflow's
-unit of work (:func:`calib.workflows.runs.approve`), which appends ``superseded`` for the
+unit of work (:func:`calib.workflows.approve.approve`), which appends ``superseded`` for the
 previous approved run of the commodity in the same transaction.
 """
 

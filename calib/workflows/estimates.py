@@ -56,7 +56,8 @@ def _quiet(_: str) -> None:
     return None
 
 
-def _none_if_nan(value: float) -> float | None:
+def none_if_nan(value: float) -> float | None:
+    """``None`` for NaN or infinity (JSON has no such number), else the float."""
     return None if not math.isfinite(value) else float(value)
 
 
@@ -151,7 +152,7 @@ def store_window(
     assert result.std_errors is not None and result.covariance is not None
     assert result.filtered is not None and result.smoothed is not None
     dates = np.asarray(window.curves.dates, dtype="datetime64[D]")
-    cov = [[_none_if_nan(float(v)) for v in row] for row in result.covariance]
+    cov = [[none_if_nan(float(v)) for v in row] for row in result.covariance]
     return add_estimate(
         session=session,
         commodity_id=commodity_id,
@@ -163,7 +164,7 @@ def store_window(
         params=result.params,
         converged=result.converged,
         message=result.message,
-        std_errors={k: _none_if_nan(v) for k, v in result.std_errors.items()},
+        std_errors={k: none_if_nan(v) for k, v in result.std_errors.items()},
         noise_sd=result.noise_sd.tolist(),
         inputs=window.inputs,
         inputs_sha256=inputs_sha256(window.inputs),

@@ -29,14 +29,12 @@ from calib.calibrate import (
     fit,
 )
 from calib.errors import (
-    CalibrationSolverError,
+    CALIBRATION_ERRORS,
     CalibWarning,
-    InfeasibleSettingsError,
     NoEstimateError,
     NoQuotesError,
     NotConvergedEstimateError,
     QuoteError,
-    TooFewQuotesError,
     UnknownEstimateError,
 )
 from calib.model import black76
@@ -66,12 +64,7 @@ from calib.store.runs import (
 from calib.workflows.approve import approve_in
 from calib.workflows.provenance import code_version, inputs_sha256
 
-CALIBRATION_FAILURES = (
-    TooFewQuotesError,
-    InfeasibleSettingsError,
-    QuoteError,
-    CalibrationSolverError,
-)
+CALIBRATION_FAILURES = CALIBRATION_ERRORS
 """What the calibration raises for a day it cannot fit; each becomes a stored failed run."""
 
 

@@ -20,7 +20,7 @@ import csv
 import json
 import math
 from dataclasses import dataclass
-from datetime import date, datetime
+from datetime import UTC, date, datetime, time, timedelta
 from pathlib import Path
 from typing import Any
 
@@ -30,6 +30,9 @@ from sqlalchemy.orm import Session, sessionmaker
 from calib.errors import (
     HEDGE_NO_SET,
     HEDGE_OPTION_LEGS,
+    HEDGE_REPLAY_END,
+    HEDGE_REPLAY_SETS,
+    HEDGE_REPLAY_START,
     HEDGE_STEPS,
     HEDGE_WORLD_FILE,
     HEDGE_WORLD_RUN,
@@ -42,14 +45,26 @@ from calib.errors import (
     ParameterError,
 )
 from calib.hedge.engine import HedgeResult, hedge_paths
-from calib.hedge.instruments import CalendarSpread, HedgedOption, VanillaOption
+from calib.hedge.history import book_history
+from calib.hedge.instruments import CalendarSpread, HedgedOption, VanillaOption, remaining_law
 from calib.hedge.stats import QUANTILES, PnlStats, pnl_stats
+from calib.hedge.valuation import value_and_ratios
 from calib.hedge.world import initial_state, simulate_futures
 from calib.model.black76 import Kind
 from calib.model.spread import ForwardVols
 from calib.model.twofactor import TwoFactorParams
-from calib.store.quotes import DAYS_PER_YEAR, load_day, require_commodity, year_fractions
-from calib.store.runs import RunRecord, latest_approved, require_run
+from calib.store.quotes import (
+    DAYS_PER_YEAR,
+    ZeroCurve,
+    load_day,
+    load_futures_history,
+    require_commodity,
+    trade_dates,
+    year_fractions,
+    zero_curves,
+)
+from calib.store.runs import RunRecord, approved_history, latest_approved, require_run
+from calib.types import FloatArray
 from calib.workflows.pricing import run_vols
 
 STEPS_PER_YEAR = 252
@@ -395,6 +410,416 @@ def plot_histogram(sim: HedgeSimulation, path: Path) -> Path:
         f"{sim.commodity} {sim.trade.describe()}\n"
         f"run {sim.run.run_id}, world: {sim.world_source}; "
         f"{sim.result.n_paths} paths x {sim.result.steps} rebalancings",
+        fontsize=9,
+    )
+    ax.legend(fontsize=8)
+    fig.savefig(path, dpi=110)
+    return path
+
+
+# --- replay on stored history ------------------------------------------------------------------
+
+SETS_IN_FORCE = "in-force"
+"""Each day's set: the approved set in force at that morning by the approval log."""
+
+SETS_BY_TRADE_DATE = "by-trade-date"
+"""Each day's set: the newest ever-approved run fitted on an earlier trading day."""
+
+CURVE_LOOKBACK = 14
+"""Calendar days before the start searched for a zero curve when the start day has none."""
+
+MORNING = time(7, 0)
+"""Default time (UTC) of the morning at which the day's set is taken (in-force mode)."""
+
+NO_SET = "no set in force"
+LATE_SET = "the set in force (run {run_id}) was fitted on {fitted}, not before the day"
+NO_PRICE = "no settlement of {legs}"
+NO_DAY = "no settlements stored (missing day)"
+EXPIRY_FROM = "expiry settlement of {legs} taken from {day}"
+NO_CURVE = "no zero curve stored yet: rate 0"
+OLD_CURVE = "zero curve of {day} used"
+
+
+@dataclass(frozen=True, slots=True)
+class ReplayDay:
+    """One day of a replay: what was used, and the account after it."""
+
+    day: date
+    run_id: int | None
+    futures: tuple[float, ...]
+    value: float
+    positions: tuple[float, ...]
+    carried: bool
+    margin: float
+    cash: float
+    marked: float
+    hedge_error: float
+    notes: tuple[str, ...]
+
+    def to_dict(self) -> dict[str, Any]:
+        def num(x: float) -> float | None:
+            return None if math.isnan(x) else x
+
+        return {
+            "day": self.day.isoformat(),
+            "run_id": self.run_id,
+            "futures": [num(f) for f in self.futures],
+            "value": num(self.value),
+            "positions": list(self.positions),
+            "carried": self.carried,
+            "margin": self.margin,
+            "cash": self.cash,
+            "pnl_marked": num(self.marked),
+            "hedge_error": num(self.hedge_error),
+            "notes": list(self.notes),
+        }
+
+
+@dataclass(frozen=True, slots=True)
+class HedgeReplay:
+    """The outcome of ``calib hedge replay``: the account day by day and the final P&L."""
+
+    commodity: str
+    trade: Trade
+    sets: str
+    morning: time
+    days: tuple[ReplayDay, ...]
+    premium: float
+    payoff: float
+    pnl: float
+
+    @property
+    def pnl_pct(self) -> float:
+        return 100.0 * self.pnl / self.premium
+
+    def counts(self) -> dict[str, int]:
+        """Days by what was missing (a day may count under several)."""
+
+        def has(prefix: str) -> int:
+            return sum(any(n.startswith(prefix) for n in d.notes) for d in self.days)
+
+        return {
+            "days": len(self.days),
+            "carried": sum(d.carried for d in self.days),
+            "no_set": has(NO_SET) + has(LATE_SET.split("{", 1)[0]),
+            "no_price": has(NO_PRICE.split("{", 1)[0]),
+            "missing_day": has(NO_DAY),
+        }
+
+    def to_dict(self) -> dict[str, Any]:
+        errors = np.array([d.hedge_error for d in self.days[1:]])
+        return {
+            "commodity": self.commodity,
+            **self.trade.to_dict(),
+            "sets": self.sets,
+            "morning": self.morning.isoformat(),
+            "start": self.days[0].day.isoformat(),
+            "premium": self.premium,
+            "payoff": self.payoff,
+            "pnl": self.pnl,
+            "pnl_pct": self.pnl_pct,
+            "hedge_error_rms": float(np.sqrt(np.nanmean(errors**2))) if errors.size else 0.0,
+            "counts": self.counts(),
+            "days": [d.to_dict() for d in self.days],
+        }
+
+    def summary(self) -> str:
+        legs = len(self.trade.legs)
+        head = f"{'day':<10} {'run':>5} " + " ".join(f"{'F' + str(i + 1):>10}" for i in range(legs))
+        head += f" {'value':>10} " + " ".join(f"{'pos' + str(i + 1):>8}" for i in range(legs))
+        head += f" {'margin':>10} {'P&L':>10}  notes"
+        lines = [
+            f"{self.commodity} {self.trade.describe()}; sold on {self.days[0].day}, sets "
+            f"{self.sets}"
+            + (f" at {self.morning.strftime('%H:%M')} UTC" if self.sets == SETS_IN_FORCE else ""),
+            head,
+        ]
+        for d in self.days:
+            run = "-" if d.run_id is None else str(d.run_id)
+            row = f"{d.day.isoformat():<10} {run:>5} " + " ".join(f"{f:>10.4f}" for f in d.futures)
+            row += f" {d.value:>10.4f} " + " ".join(f"{p:>+8.4f}" for p in d.positions)
+            row += f" {d.margin:>+10.4f} {d.marked:>+10.4f}  " + "; ".join(d.notes)
+            lines.append(row.replace("nan", "  -"))
+        c = self.counts()
+        lines.append(
+            f"premium {self.premium:.6f}, payoff {self.payoff:.6f}, P&L {self.pnl:+.6f} "
+            f"({self.pnl_pct:+.3f} % of premium); {c['days']} days, {c['carried']} carried "
+            f"({c['no_set']} without a set, {c['no_price']} without a price, "
+            f"{c['missing_day']} missing)"
+        )
+        return "\n".join(lines)
+
+
+def _weekdays(start: date, end: date) -> list[date]:
+    days = [start + timedelta(days=i) for i in range((end - start).days + 1)]
+    return [d for d in days if d.weekday() < 5]
+
+
+def _sets_by_day(
+    session: Session, commodity: str, days: list[date], sets: str, morning: time
+) -> dict[date, tuple[RunRecord | None, str | None]]:
+    """Each day's set and, where there is none to use, why."""
+    out: dict[date, tuple[RunRecord | None, str | None]] = {}
+    if sets == SETS_IN_FORCE:
+        for day in days:
+            run = latest_approved(
+                session=session, commodity=commodity, as_of=datetime.combine(day, morning, UTC)
+            )
+            if run is None:
+                out[day] = (None, NO_SET)
+            elif run.trade_date >= day:
+                out[day] = (None, LATE_SET.format(run_id=run.run_id, fitted=run.trade_date))
+            else:
+                out[day] = (run, None)
+        return out
+    history = approved_history(session=session, commodity=commodity)
+    chosen: dict[int, RunRecord] = {}
+    for day in days:
+        earlier = [a for a in history if a.trade_date < day]
+        if not earlier:
+            out[day] = (None, NO_SET)
+            continue
+        best = max(earlier, key=lambda a: (a.trade_date, a.approved_at))
+        if best.run_id not in chosen:
+            chosen[best.run_id] = require_run(session=session, run_id=best.run_id)
+        out[day] = (chosen[best.run_id], None)
+    return out
+
+
+def replay(
+    sessions: sessionmaker[Session],
+    commodity: str,
+    trade: Trade,
+    *,
+    start: date,
+    sets: str = SETS_IN_FORCE,
+    morning: time = MORNING,
+) -> HedgeReplay:
+    """Sell ``trade`` on ``start`` and rehedge it every day on the stored history.
+
+    Each weekday (and any other day with settlements) from ``start`` to the day before expiry:
+    the day's set (``sets``: the approved set
+    in force at ``morning`` UTC that day by the approval log, refusing one fitted on that day or
+    later; or the newest ever-approved run fitted on an earlier day), the day's settlements of
+    the legs and its zero curve. A day without a set or without a leg's settlement keeps the
+    position it had (carried) and is reported; weekdays with no settlements at all are listed
+    as missing days. The payoff is settled on the legs' settlements on the expiry (or the last
+    ones before it, reported). See :mod:`calib.hedge.history` for the account.
+
+    Raises
+    ------
+    HedgeRequestError
+        Bad trade, unknown set mode, the sale day without a set or a leg's settlement, or an
+        expiry after the stored history.
+    UnknownCommodityError
+    """
+    check_trade(commodity, trade)
+    if sets not in (SETS_IN_FORCE, SETS_BY_TRADE_DATE):
+        raise HedgeRequestError(commodity, HEDGE_REPLAY_SETS.format(value=sets))
+    first = trade.legs[0]
+    if not start < trade.expiry <= first:
+        raise HedgeRequestError(
+            commodity, SPREAD_EXPIRY.format(expiry=trade.expiry, day=start, near=first)
+        )
+    with sessions.begin() as session:
+        stored = trade_dates(session=session, commodity=commodity, start=start)
+        futures = load_futures_history(
+            session=session, commodity=commodity, start=start, end=trade.expiry
+        )
+        curves = zero_curves(
+            session=session, start=start - timedelta(days=CURVE_LOOKBACK), end=trade.expiry
+        )
+        settled = {d for d in stored if d < trade.expiry}  # weekend sessions included
+        days = sorted(set(_weekdays(start, trade.expiry)) | settled | {start, trade.expiry})
+        days = [d for d in days if d < trade.expiry] + [trade.expiry]
+        chosen = _sets_by_day(session, commodity, days[:-1], sets, morning)
+    if not stored or stored[-1] < trade.expiry:
+        last = stored[-1] if stored else start
+        raise HedgeRequestError(commodity, HEDGE_REPLAY_END.format(expiry=trade.expiry, last=last))
+    return _replay_days(commodity, trade, sets, morning, days, set(stored), futures, curves, chosen)
+
+
+def _leg_prices(futures: Any, legs: tuple[date, ...], days: list[date]) -> FloatArray:
+    """``(n_days, n_legs)`` settlements, NaN where none is stored."""
+    table = futures.pivot(index="trade_date", columns="delivery", values="settle")
+    wanted = [np.datetime64(d, "ns") for d in legs]
+    index = [np.datetime64(d, "ns") for d in days]
+    return np.array(table.reindex(index=index, columns=wanted).to_numpy(dtype=np.float64))
+
+
+def _replay_days(
+    commodity: str,
+    trade: Trade,
+    sets: str,
+    morning: time,
+    days: list[date],
+    stored: set[date],
+    futures: Any,
+    curves: dict[date, ZeroCurve],
+    chosen: dict[date, tuple[RunRecord | None, str | None]],
+) -> HedgeReplay:
+    legs = trade.legs
+    F = _leg_prices(futures, legs, days)
+    notes: list[list[str]] = [[] for _ in days]
+    expiry_row = F[-1]
+    if np.any(np.isnan(expiry_row)):  # settle on each leg's last settlement before expiry
+        before = _leg_prices(futures, legs, sorted(d for d in stored if d <= trade.expiry))
+        taken = []
+        for j in np.flatnonzero(np.isnan(expiry_row)):
+            col = before[:, j]
+            ok = np.flatnonzero(np.isfinite(col))
+            expiry_row[j] = col[ok[-1]]
+            taken.append(str(legs[j]))
+        notes[-1].append(EXPIRY_FROM.format(legs=", ".join(taken), day="the last settlement"))
+    t = np.array([_years(days[0], d) for d in days])
+    n = len(days) - 1
+    values = np.full(n, np.nan)
+    ratios = np.full((n, len(legs)), np.nan)
+    rates = np.zeros(n)
+    run_ids: list[int | None] = []
+    earlier = [d for d in curves if d < days[0] and len(curves[d])]
+    last_curve: ZeroCurve | None = curves[max(earlier)] if earlier else None
+    for k, day in enumerate(days[:-1]):
+        run, why = chosen[day]
+        run_ids.append(None if run is None else run.run_id)
+        curve = curves.get(day)
+        last_curve = curve if curve is not None and len(curve) else last_curve
+        if day not in stored:
+            notes[k].append(NO_DAY)
+        elif np.any(np.isnan(F[k])):
+            missing = [str(leg) for leg, f in zip(legs, F[k], strict=True) if np.isnan(f)]
+            notes[k].append(NO_PRICE.format(legs=", ".join(missing)))
+        if why is not None:
+            notes[k].append(why)
+        if last_curve is None:
+            notes[k].append(NO_CURVE)
+        elif last_curve.trade_date != day:
+            notes[k].append(OLD_CURVE.format(day=last_curve.trade_date))
+        if last_curve is not None:  # discount factors from this day (1 today on its own curve)
+            ahead = np.array([day, days[k + 1], trade.expiry], dtype="datetime64[D]")
+            today, step_discount, discount = (float(x) for x in last_curve.discount(ahead))
+            step_discount, discount = step_discount / today, discount / today
+            rates[k] = -math.log(step_discount) / (t[k + 1] - t[k])
+        else:
+            discount = 1.0
+        if run is None or np.any(np.isnan(F[k])):
+            continue
+        option = option_for(trade, day)
+        vols = run_vols(run, day, option.expiry)
+        law = remaining_law(option, vols, np.zeros(1))
+        value, ratio = value_and_ratios(
+            option,
+            float(law.var_near[0]),
+            float(law.var_far[0]),
+            float(law.cov[0]),
+            F[k][None, :],
+            discount,
+        )
+        values[k], ratios[k] = value[0], ratio[0]
+    if np.isnan(values[0]):
+        reason = "; ".join(notes[0]) or NO_SET
+        raise HedgeRequestError(commodity, HEDGE_REPLAY_START.format(day=days[0], reason=reason))
+    option0 = option_for(trade, days[0])
+    payoff = float(option0.payoff(expiry_row[None, :])[0])
+    book = book_history(t, F, values, ratios, payoff, rates)
+    run_ids.append(None)
+    out = tuple(
+        ReplayDay(
+            day=day,
+            run_id=run_ids[k],
+            futures=tuple(float(f) for f in F[k]),
+            value=float(values[k]) if k < n else payoff,
+            positions=tuple(float(p) for p in book.positions[k]),
+            carried=bool(book.carried[k]),
+            margin=float(book.margin[k]),
+            cash=float(book.cash[k]),
+            marked=float(book.marked[k]),
+            hedge_error=float(book.hedge_error[k]),
+            notes=tuple(notes[k]),
+        )
+        for k, day in enumerate(days)
+    )
+    return HedgeReplay(
+        commodity=commodity,
+        trade=trade,
+        sets=sets,
+        morning=morning,
+        days=out,
+        premium=book.premium,
+        payoff=payoff,
+        pnl=book.pnl,
+    )
+
+
+def write_replay_csv(result: HedgeReplay, path: Path) -> Path:
+    """One row a day: set, settlements, value, positions, margin, cash, P&L, error, notes."""
+    path = Path(path)
+    path.parent.mkdir(parents=True, exist_ok=True)
+    n_legs = len(result.trade.legs)
+    with path.open("w", newline="", encoding="utf-8") as fh:
+        out = csv.writer(fh)
+        out.writerow(
+            ["day", "run_id"]
+            + [f"future_{i + 1}" for i in range(n_legs)]
+            + ["value"]
+            + [f"position_{i + 1}" for i in range(n_legs)]
+            + ["carried", "margin", "cash", "pnl_marked", "hedge_error", "notes"]
+        )
+        for d in result.days:
+            out.writerow(
+                [d.day.isoformat(), "" if d.run_id is None else d.run_id]
+                + [_cell(f) for f in d.futures]
+                + [_cell(d.value)]
+                + [_cell(p) for p in d.positions]
+                + [
+                    int(d.carried),
+                    _cell(d.margin),
+                    _cell(d.cash),
+                    _cell(d.marked),
+                    _cell(d.hedge_error),
+                    "; ".join(d.notes),
+                ]
+            )
+    return path
+
+
+def _cell(x: float) -> str:
+    return "" if math.isnan(x) else f"{x:.10g}"
+
+
+def plot_replay(result: HedgeReplay, path: Path) -> Path:
+    """PNG of the marked P&L (cash less the option's model value) day by day, carried days
+    marked, and the final P&L."""
+    from matplotlib.backends.backend_agg import FigureCanvasAgg
+    from matplotlib.figure import Figure
+
+    path = Path(path)
+    path.parent.mkdir(parents=True, exist_ok=True)
+    fig = Figure(figsize=(9.0, 4.5), layout="constrained")
+    FigureCanvasAgg(fig)
+    ax = fig.subplots()
+    days = np.array([d.day for d in result.days], dtype="datetime64[D]")
+    marked = np.array([d.marked for d in result.days])
+    ax.plot(days, marked, color="#08519c", marker=".", ms=4, lw=1.2, label="P&L marked to model")
+    carried = np.array([d.carried for d in result.days])
+    known = ~np.isnan(marked)
+    if carried.any():  # drawn on the line between the neighbouring marked days
+        x = days.astype(np.float64)
+        on_line = np.interp(x[carried], x[known], marked[known])
+        ax.plot(
+            days[carried],
+            on_line,
+            ls="none",
+            marker="x",
+            color="#cb181d",
+            label="hedge carried (no set or no price)",
+        )
+    ax.axhline(0.0, color="#777777", lw=0.8)
+    ax.tick_params(axis="x", labelrotation=30)
+    ax.set_ylabel(f"{result.commodity} per option")
+    ax.set_title(
+        f"{result.commodity} {result.trade.describe()}\nsold {result.days[0].day}, sets "
+        f"{result.sets}; final P&L {result.pnl:+.4f} ({result.pnl_pct:+.2f} % of premium)",
         fontsize=9,
     )
     ax.legend(fontsize=8)

@@ -52,6 +52,7 @@ from calib.policy.settings import RunSettings
 from calib.store.estimates import EstimateRecord, get_estimate, list_series, series_estimates
 from calib.store.quotes import DAYS_PER_YEAR, load_day
 from calib.store.runs import RunRecord, run_quotes
+from calib.workflows.estimates import none_if_nan
 from calib.workflows.fit import attempt_fit, option_quotes
 from calib.workflows.pricing import SpreadPrice, choose_run, run_vols
 
@@ -265,13 +266,13 @@ class PriceUncertainty:
         return {
             "estimate_id": self.estimate.estimate_id,
             "price": self.price,
-            "refit_price": self.refit_price,
-            "se": self.delta.se,
-            "gradient": self.delta.gradient,
-            "variance_share": self.delta.contribution,
-            "sampled_sd": s.sd,
+            "refit_price": none_if_nan(self.refit_price),
+            "se": none_if_nan(self.delta.se),
+            "gradient": {n: none_if_nan(v) for n, v in self.delta.gradient.items()},
+            "variance_share": {n: none_if_nan(v) for n, v in self.delta.contribution.items()},
+            "sampled_sd": none_if_nan(s.sd),
             "sampled_mean": float(np.mean(s.values)) if s.values.size else None,
-            "sampled_over_delta": self.ratio,
+            "sampled_over_delta": None if self.ratio is None else none_if_nan(self.ratio),
             "note": self.note,
             "draws": s.n_draws,
             "draws_used": int(s.values.size),
@@ -344,7 +345,7 @@ def price_uncertainty(
     sampled = sample(g, estimate.params, cov, draws, seed)
     start = pricing_date - LOOKBACK
     priced = tuple(
-        WindowPrice(w.estimate_id, w.window_end, _finite(g(w.params)))
+        WindowPrice(w.estimate_id, w.window_end, none_if_nan(g(w.params)))
         for w in windows
         if w.converged and start <= w.window_end <= pricing_date
     )
@@ -357,10 +358,6 @@ def price_uncertainty(
         series_id=series_id,
         windows=priced,
     )
-
-
-def _finite(value: float) -> float | None:
-    return value if math.isfinite(value) else None
 
 
 def spread_uncertainty(

@@ -38,11 +38,10 @@ from calib.errors import (
 )
 from calib.estimate.executor import Executor, InlineExecutor
 from calib.estimate.rolling import (
-    ChunkTask,
     FitSettings,
     Period,
     WindowFit,
-    fit_chunk,
+    estimate_windows,
     window_ends,
     window_start,
 )
@@ -56,7 +55,7 @@ from calib.workflows.provenance import inputs_sha256
 CHUNK = 8
 """Consecutive windows per work unit (each warm-starts from the one before it)."""
 
-COLD_CHECK_EVERY = 6
+COLD_CHECK_EVERY = 8
 """Every this many windows one is also estimated from a cold start (the sample checked)."""
 
 WindowDone = Callable[["RollingWindow"], None]
@@ -159,10 +158,6 @@ def series_settings(
         "n_contracts": n_contracts,
         "min_days": min_days,
     }
-
-
-def _chunks(items: list[int], size: int) -> list[list[int]]:
-    return [items[i : i + size] for i in range(0, len(items), size)]
 
 
 def estimate_rolling(
@@ -268,42 +263,39 @@ def estimate_rolling(
                     )
                     on_window(results[i])
     ready = [i for i in todo if i in windows]
-    fit_settings = FitSettings(min_days=min_days)
-    tasks: list[ChunkTask] = []
-    for part in _chunks(ready, max(1, chunk)):
-        prev = held.get(ends[part[0] - 1].isoformat()) if part[0] > 0 else None
-        warm = (prev.params, prev.noise_sd) if prev is not None and prev.converged else None
-        tasks.append(
-            ChunkTask(
-                windows=tuple(
-                    windows[i].task(i, check_cold=cold_every > 0 and i % cold_every == 1)
-                    for i in part
-                ),
-                settings=fit_settings,
-                warm=None if warm is None else (warm[0], np.asarray(warm[1], dtype=np.float64)),
-            )
-        )
     run = executor or InlineExecutor()
     cold_checked = 0
-    for fits in run.map(fit_chunk, tasks):
-        cold_checked += sum(1 for f in fits if f.cold_loglik is not None)
-        stored_now = _store_chunk(sessions, cid, user, series_id, length, step, windows, fits)
-        for f, estimate_id in zip(fits, stored_now, strict=True):
-            i = f.index
-            if f.error is not None:
-                results[i] = RollingWindow(i, ends[i], starts[i], "failed", detail=f.error)
-            else:
-                results[i] = RollingWindow(
-                    i,
-                    ends[i],
-                    starts[i],
-                    "stored",
-                    estimate_id,
-                    f.converged,
-                    f.start,
-                    f.local_optimum,
-                )
-            on_window(results[i])
+    # consecutive runs of ready windows: each run warm-starts from the held window before it
+    runs: list[list[int]] = []
+    for i in ready:
+        if runs and runs[-1][-1] == i - 1:
+            runs[-1].append(i)
+        else:
+            runs.append([i])
+    for part in runs:
+        prev = held.get(ends[part[0] - 1].isoformat()) if part[0] > 0 else None
+        warm = None
+        if prev is not None and prev.converged:
+            warm = (prev.params, np.asarray(prev.noise_sd, dtype=np.float64))
+        tasks = [
+            windows[i].task(i, check_cold=cold_every > 0 and i % cold_every == cold_every // 2)
+            for i in part
+        ]
+        for fits in estimate_windows(
+            tasks, FitSettings(min_days=min_days), run, chunk=chunk, warm=warm
+        ):
+            cold_checked += sum(1 for f in fits if f.cold_loglik is not None)
+            stored_now = _store_chunk(sessions, cid, user, series_id, length, step, windows, fits)
+            for f, estimate_id in zip(fits, stored_now, strict=True):
+                i = f.index
+                if f.error is not None:
+                    results[i] = RollingWindow(i, ends[i], starts[i], "failed", detail=f.error)
+                else:
+                    results[i] = RollingWindow(
+                        i, ends[i], starts[i], "stored", estimate_id, f.converged, f.start,
+                        f.local_optimum,
+                    )  # fmt: skip
+                on_window(results[i])
     return RollingReport(
         series_id=series_id,
         commodity=commodity,

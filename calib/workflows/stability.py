@@ -42,6 +42,7 @@ from calib.store.estimates import (
 )
 from calib.store.quotes import require_commodity
 from calib.store.runs import latest_approved
+from calib.workflows.estimates import none_if_nan
 
 DEFAULT_K = 3.0
 """Standard errors of the difference beyond which a window is flagged (``--k``)."""
@@ -83,10 +84,10 @@ class StabilityWindow:
             "window_end": self.window_end.isoformat(),
             "converged": self.converged,
             **self.params,
-            "std_errors": self.std_errors,
-            "z": self.z,
+            "std_errors": {n: none_if_nan(v) for n, v in self.std_errors.items()},
+            "z": {n: none_if_nan(v) for n, v in self.z.items()},
             "flags": list(self.flags),
-            "decay_slack": self.decay_slack,
+            "decay_slack": none_if_nan(self.decay_slack),
             "in_use": self.in_use,
         }
 

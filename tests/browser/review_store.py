@@ -1,5 +1,6 @@
 """A small store for the review pages: the generated scenario of the run tests, three mornings
-fitted, the first two approved by hand, the third left as today's candidate."""
+fitted, the first two approved by hand, the third left as today's candidate beside a failed
+fit of the same day."""
 
 from __future__ import annotations
 
@@ -8,11 +9,14 @@ from dataclasses import dataclass
 from datetime import datetime
 from pathlib import Path
 
+from calib.policy.settings import default_settings
 from calib.store.base import utc_now
 from calib.store.engine import make_store
+from calib.store.estimates import latest_estimate
 from calib.store.migrate import upgrade
+from calib.store.quotes import load_day
 from calib.workflows.approve import approve
-from calib.workflows.fit import fit_day
+from calib.workflows.fit import Attempt, fit_day, store_attempt
 from tests.workflows.small_day import load_with_estimate
 
 
@@ -28,6 +32,8 @@ class ReviewStore:
     """A moment after the first approval and before the second."""
     candidate: int
     """Today's candidate."""
+    failed: int
+    """A fit of today that failed (stored rejected, with its reason)."""
 
     def copy_to(self, folder: Path) -> str:
         """A fresh copy of the store in ``folder``; its URL."""
@@ -49,7 +55,20 @@ def build(folder: Path) -> ReviewStore:
         between = utc_now()
         two = fit_day(store.sessions, data.code, second, by="quant.a").run.run_id
         approve(store.sessions, two, by="quant.b", note="second morning")
+        with store.sessions.begin() as session:
+            day = load_day(session=session, commodity=data.code, trade_date=today)
+            estimate = latest_estimate(session=session, commodity=data.code)
+        assert estimate is not None
+        failed = store_attempt(
+            store.sessions,
+            day,
+            estimate.estimate_id,
+            default_settings(),
+            Attempt(None, "TooFewQuotesError: 3 quotes left after the filters", ()),
+            by="quant.a",
+            auto_approve=False,
+        ).run_id
         three = fit_day(store.sessions, data.code, today, by="quant.a").run.run_id
     finally:
         store.engine.dispose()
-    return ReviewStore(path, data.code, (one, two), between, three)
+    return ReviewStore(path, data.code, (one, two), between, three, failed)

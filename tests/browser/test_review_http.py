@@ -111,6 +111,10 @@ def test_stored_text_is_escaped_and_errors_are_pages(
         assert "ZZ&lt;b&gt;" in page and "ZZ<b>" not in page
         assert "/commodities/ZZ%3Cb%3E" in page
         assert http.get("/commodities/ZZ%3Cb%3E").status_code == 200
+        failed = http.get(f"/runs/{review_store.failed}")
+        assert failed.status_code == 200
+        assert "The fit failed: TooFewQuotesError: 3 quotes left after the filters" in failed.text
+        assert "<figure" not in failed.text and 'class="decide"' not in failed.text
         missing = http.get("/runs/999")
         assert missing.status_code == 404 and "no calibration run 999" in missing.text
         assert missing.headers["content-security-policy"] == CSP

@@ -92,6 +92,9 @@ def test_overview_lists_the_candidate_read_only_without_a_token(
         for chip, gate in zip(chips.all(), stored, strict=True):
             assert gate["name"] in chip.inner_text()
             assert ("pass" in (chip.get_attribute("class") or "")) == gate["passed"]
+        failed = page.locator(f"tr.fit-row[data-run='{review_store.failed}']")
+        assert failed.locator(".status").inner_text() == "rejected"
+        assert "fit failed" in failed.locator(".gate.fail").inner_text()
         in_force = page.locator(".inforce")
         assert f"run {review_store.approved[1]}" in in_force.inner_text()
         assert "quant.b" in in_force.inner_text()
@@ -113,6 +116,14 @@ def test_approving_with_the_token_changes_the_set_in_force(
         assert "Deciding as quant.c" in page.locator("#token-state").inner_text()
         assert page.locator("#token-form input[name=token]").input_value() == ""
         screenshot(page, "overview-deciding")
+        # links are followed inside the page while a token is held: typed once per tab
+        page.locator(f"tr.fit-row[data-run='{run}'] a").click()
+        page.locator("h1").filter(has_text=f"Run {run}").wait_for()
+        assert page.url == f"{base}/runs/{run}"
+        assert "Deciding as quant.c" in page.locator("#token-state").inner_text()
+        page.go_back()
+        page.locator("h1").filter(has_text="This morning").wait_for()
+        assert page.url == f"{base}/"
         _decide(page, run, HOSTILE_NOTE, "approve")
         page.locator("#flash").filter(has_text=f"Run {run} approved").wait_for()
         # the page refreshed in place: the candidate is now the set in force

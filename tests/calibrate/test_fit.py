@@ -165,10 +165,10 @@ def test_held_rho_with_binding_floor_beats_a_brute_force_grid(quotes: OptionQuot
         mode="held_rho", yield_floor=0.9, anchor_weight=0.0, decay_bound=False
     )
     res = fit(quotes, hist, settings)
-    assert set(res.binding) == {"yield_floor", "rho_held"}
+    assert set(res.binding) == {"yield_floor", "held_rho"}
     assert res.params.rho == hist.rho
     assert res.params.sigma_yield == pytest.approx(0.45, abs=BIND_TOL)
-    assert {c.name: c.refit_cost for c in res.constraints}["rho_held"] > 0.0
+    assert {c.name: c.refit_cost for c in res.constraints}["held_rho"] > 0.0
     J = _independent_objective(quotes, res.weight, hist, 0.0)
     assert J(_vols(res.params)) == pytest.approx(res.objective, rel=1e-10)
     # brute force over (s1, s2 >= floor) at the held rho
@@ -206,15 +206,7 @@ INVARIANCE_TOL = 1e-6
 
 def test_permuting_quotes_changes_nothing(quotes: OptionQuotes) -> None:
     perm = np.random.default_rng(3).permutation(len(quotes))
-    permuted = OptionQuotes(
-        expiry=quotes.expiry[perm],
-        maturity=quotes.maturity[perm],
-        is_call=quotes.is_call[perm],
-        strike=quotes.strike[perm],
-        forward=quotes.forward[perm],
-        discount=quotes.discount[perm],
-        premium=None if quotes.premium is None else quotes.premium[perm],
-    )
+    permuted = quotes.take(perm)
     np.testing.assert_allclose(_fit_vols(permuted), _fit_vols(quotes), atol=INVARIANCE_TOL)
 
 
@@ -267,7 +259,7 @@ def test_a_calibrator_re_solves_days_like_fresh_fits(quotes: OptionQuotes) -> No
 _WITHOUT = {
     "decay_bound": {"decay_bound": False},
     "yield_floor": {"yield_floor": 0.0},
-    "rho_held": {"mode": "constant"},
+    "held_rho": {"mode": "constant"},
 }
 
 
@@ -276,7 +268,7 @@ _WITHOUT = {
     [
         ("constant", 0.9, (0.5, 0.25, 0.35, 0.5), {"decay_bound", "yield_floor"}),
         ("forward", 0.9, (0.5, 0.25, 0.35), {"decay_bound"}),
-        ("held_rho", 0.5, (0.6, 0.25), {"decay_bound", "rho_held"}),
+        ("held_rho", 0.5, (0.6, 0.25), {"decay_bound", "held_rho"}),
     ],
 )
 def test_a_re_used_calibrator_prices_constraints_as_fresh_fits_do(

@@ -12,7 +12,14 @@ from calib.errors import QuoteError, SettingError
 
 
 def test_settings_round_trip_through_json() -> None:
-    s = CalibrationSettings(mode="forward", sigma_spot_cap=1.2, moneyness_band=(0.7, 1.4))
+    s = CalibrationSettings(
+        mode="forward",
+        sigma_spot_cap=1.2,
+        moneyness_band=(0.7, 1.4),
+        loss="huber",
+        huber_threshold=1.5,
+        screen_vol_points=10.0,
+    )
     again = CalibrationSettings.from_dict(json.loads(json.dumps(s.to_dict())))
     assert again == s
     assert "sigma_spot_cap" not in CalibrationSettings().to_dict()  # TOML has no null
@@ -30,6 +37,9 @@ def test_settings_round_trip_through_json() -> None:
         ("max_iterations", 0, "max_iterations = 0 is invalid: must be >= 1"),
         ("weighting", "bid", "weighting = 'bid' is invalid: must be one of equal, vega, spread"),
         ("step_tol", float("nan"), "step_tol = nan is invalid: must be finite"),
+        ("loss", "absolute", "loss = 'absolute' is invalid: must be one of squares, huber"),
+        ("huber_threshold", 0.0, "huber_threshold = 0.0 is invalid: must be > 0"),
+        ("screen_vol_points", -1.0, "screen_vol_points = -1.0 is invalid: must be >= 0"),
     ],
 )
 def test_bad_settings_are_refused(field: str, value: object, message: str) -> None:

@@ -292,6 +292,15 @@ def test_compare_selects_runs_and_flags_days_outside_the_band(
         assert r["rho_flag"] == ("1" if abs(diff) > 1.0 else "0")
     assert f"{len(every)} of {len(every)} day(s) flagged" in out
 
+    # --fail-on-flag (issue 12: schedulers): exit 1 when a day is flagged, 0 when none is
+    strict = ("--all", "--band-spot", "1,1", "--fail-on-flag")
+    code, out, err = run(capsys, monkeypatch, *base, *strict)
+    assert code == 1 and f"{len(every)} of {len(every)} day(s) flagged" in out
+    assert f"{len(every)} day(s) flagged: exit 1" in err
+    wide = ("--band-spot", "0,9", "--band-yield", "0,9", "--band-rho", "-2,2", "--fail-on-flag")
+    code, out, _ = run(capsys, monkeypatch, *base, *wide)
+    assert code == 0 and "0 of" in out
+
     code, out, _ = run(capsys, monkeypatch, *base, "--json", "--band-yield", "0.99,1.01")
     payload = json.loads(out)
     assert len(payload["rows"]) == len(rows) and payload["runs"] == "runs ever approved"

@@ -53,12 +53,22 @@ def test_morning_run_from_the_command_line(
     code, out, _ = calib("approve", str(first["run_id"]), "--by", "risk", "--note", "ok")
     assert code == 0 and f"run {first['run_id']} approved by risk" in out
 
+    # --auto-approve with a failed gate: a verdict line saying why, exit 3, still a candidate
+    strict = tmp_path / "strict.toml"
+    strict.write_text('[calibration]\nmode = "held_rho"\n[gates]\nmax_rmse_vol_points = 1e-6\n')
+    code, out, _ = calib("fit", "QLM", "--date", day, "--settings", str(strict), "--auto-approve")
+    assert code == 3 and "FAIL  rmse_vol" in out
+    assert "verdict: not approved because rmse_vol " in out and "against limit 1e-06" in out
+    code, out, _ = calib("reject", out.split(":")[0].split()[1], "--by", "risk", "--note", "x")
+    assert code == 0
+
     code, out, _ = calib("fit", "QLM", "--date", day, "--settings", str(held), "--auto-approve")
     assert code == 0 and "gates:" in out and "pass  jump_rho" in out
-    assert "every gate passed: approved" in out and "binding constraints:" in out
+    assert "verdict: approved (every gate passed)" in out and "binding constraints:" in out
+    assert "vol points (max " in out.split("\n")[1]  # the fit line leads with vol points
     code, out, _ = calib("latest", "QLM", "--json")
     latest = json.loads(out)
-    assert latest["status"] == "approved" and latest["run_id"] == first["run_id"] + 1
+    assert latest["status"] == "approved" and latest["run_id"] == first["run_id"] + 2
     code, out, _ = calib("latest", "QLM", "--as-of", "2020-01-01")
     assert (code, out) == (2, ""), (out, _)
     code, out, _ = calib("latest", "QLM", "--history", "--json")
@@ -75,11 +85,16 @@ def test_morning_run_from_the_command_line(
     assert "TooFewQuotesError" in failed["failure_reason"]
 
     code, out, _ = calib("runs", "QLM")
-    assert code == 0 and out.count("\n") == 3 and "superseded" in out and "failed" in out
+    assert code == 0 and out.count("\n") == 5 and "superseded" in out and "failed" in out
+    assert out.startswith("run  trade date  status") and " vp " in out  # header; vol points
     code, out, _ = calib("show", str(latest["run_id"]), "--json")
     shown = json.loads(out)
     assert len(shown["residuals"]) == shown["diagnostics"]["n_quotes"]
     assert [e["to_status"] for e in shown["events"]] == ["candidate", "approved"]
+    # residuals by contract: expiry, strike, kind, premiums, vols, residual in vol points
+    assert set(shown["residuals"][0]) >= {"expiry", "strike", "kind", "vol_residual"}
+    code, out, _ = calib("show", str(latest["run_id"]))
+    assert code == 0 and "expiry  kind  strike" in out and "resid vp" in out
     code, out, _ = calib("rerun", str(latest["run_id"]))
     assert code == 0 and "identical, bit for bit" in out
     code, _, err = calib("show", "999")

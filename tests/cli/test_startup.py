@@ -33,6 +33,7 @@ def _loaded(*args: str, db: str | None = None) -> tuple[int, list[str]]:
 def test_help_loads_no_numeric_package() -> None:
     assert _loaded("--help") == (0, [])
     assert _loaded("fit", "--help") == (0, [])
+    assert "numpy" not in calib("--help", prelude=PROBE.replace(repr(HEAVY), "('numpy',)")).stderr
 
 
 def test_latest_loads_no_numeric_package(tmp_path: Path) -> None:

@@ -46,8 +46,15 @@ def test_init_ingest_quotes_round_trip(
     opt.write_text(OPTIONS + "2031-03-03,QRX,2031-05-01,2031-04-25,put,50,-1\n")
     code, out, _ = run(capsys, monkeypatch, "ingest", "options", str(opt), "--db", db_url)
     assert code == 1 and f"{opt}:3: premium: must be > 0: '-1'" in out
+    code, out, _ = run(capsys, monkeypatch, "ingest", "options", str(opt), "--db", db_url)
+    assert code == 1 and "already loaded" in out and "1 row(s) of it are in quarantine" in out
     code, out, _ = run(capsys, monkeypatch, "quotes", "QRX", "--date", "2031-03-03", "--db", db_url)
     assert code == 0 and "1 futures, 1 options, 0 rates" in out and "2031-05-01" in out
+    # options before their day's zero curve: accepted, checked with r = 0, said, exit 1
+    clean = tmp_path / "o2.csv"
+    clean.write_text(OPTIONS.replace("call,50,2.1", "call,51,1.6"))
+    code, out, _ = run(capsys, monkeypatch, "ingest", "options", str(clean), "--db", db_url)
+    assert code == 1 and "1 accepted, 0 rejected" in out and "checked with r = 0" in out
     code, out, _ = run(
         capsys, monkeypatch, "quotes", "QRX", "--date", "2031-03-03", "--json", "--db", db_url
     )

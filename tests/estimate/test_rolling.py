@@ -192,3 +192,23 @@ def test_stability_numerics_by_hand() -> None:
     assert longest_quiet_interval(np.array([[1.0], [1.1], [1.25]]), s[:3, :1], 3.0) == 1
     assert decay_slack(2.0, 0.5, 0.3, 0.29)[()] == pytest.approx(0.01)
     assert np.isnan(drift_z([[1.0]], [[np.nan]], [1.0], [np.nan])).all()
+
+
+def test_a_disagreement_between_warm_and_cold_is_reported_and_the_better_kept(
+    monkeypatch: pytest.MonkeyPatch,
+) -> None:
+    # a warm start in another basin (slow mean reversion, negative correlation), stopped early:
+    # with the tolerance at -1 nats every gap counts as a disagreement, so the report and the
+    # choice of the better optimum are exercised whatever the two fits reach
+    import calib.estimate.rolling as rolling
+
+    days = business_days(WINDOW)
+    curves = simulate_panel(days, 9)
+    task = replace(_tasks(curves, range(0, 1), WINDOW)[0], check_cold=True)
+    far = (replace(TRUTH, kappa=0.3, rho=-0.5), NOISE_SD * 3.0)
+    monkeypatch.setattr(rolling, "LOCAL_OPTIMUM_TOL", -1.0)
+    got = rolling.fit_window(task, SETTINGS, far)
+    assert got.local_optimum is not None and "disagree" in got.local_optimum
+    assert got.cold_loglik is not None
+    assert got.loglik >= got.cold_loglik  # the better of the two is kept
+    assert got.start in ("warm", "cold") and (got.start == "warm" or got.loglik == got.cold_loglik)

@@ -116,6 +116,42 @@ def test_prices_match_quantlib_finite_differences(
     assert ours == pytest.approx(ref, rel=FD_REL_TOL)
 
 
+# Haug (1998), Option Pricing Formulas, p. 24 (as carried by QuantLib's test suite): American
+# options with r = q = 10 % (cost of carry zero, i.e. on a future), K = 100, by the
+# Barone-Adesi-Whaley approximation: (kind, F, T, vol, value).
+_HAUG_BAW_ZERO_CARRY = [
+    ("call", 90.0, 0.1, 0.15, 0.0206),
+    ("call", 100.0, 0.1, 0.25, 3.1280),
+    ("call", 110.0, 0.1, 0.35, 11.1679),
+    ("call", 90.0, 0.5, 0.25, 2.7437),
+    ("call", 100.0, 0.5, 0.35, 9.5106),
+    ("put", 90.0, 0.1, 0.25, 10.2533),
+    ("put", 110.0, 0.1, 0.15, 0.0410),
+    ("put", 100.0, 0.5, 0.15, 4.0842),
+    ("put", 110.0, 0.5, 0.35, 5.8823),
+]
+# Barone-Adesi-Whaley is an approximation: its values sit up to 0.037 (1.1 %) away from the
+# exact premium on this table (measured against our pricer, itself checked against QdFp above),
+# so the table only catches gross errors (a wrong rate, carry or symmetry).
+BAW_TABLE_ABS_TOL = 0.04
+
+
+@pytest.mark.parametrize(("kind", "F", "T", "vol", "value"), _HAUG_BAW_ZERO_CARRY)
+def test_haug_barone_adesi_whaley_table(
+    kind: str, F: float, T: float, vol: float, value: float
+) -> None:
+    ours = float(american.price(F, 100.0, T, 0.10, vol, kind))
+    assert ours == pytest.approx(value, abs=BAW_TABLE_ABS_TOL)
+
+
+def test_haug_zero_rate_row() -> None:
+    # Haug (1998), p. 24, last row: put, F = K = 100, r = q = 0, T = 0.5, vol = 0.15: 4.2294
+    # (exact: nothing is exercised early at zero rate).
+    assert float(american.price(100.0, 100.0, 0.5, 0.0, 0.15, "put")) == pytest.approx(
+        4.2294, abs=5e-5
+    )
+
+
 def test_put_call_symmetry_holds_in_quantlib_and_here() -> None:
     # McDonald and Schroder (1998): C(F, K) = P(K, F) at cost of carry zero. The relation is
     # first checked on QuantLib's own call and put (so it is a valid one), then on ours, whose
@@ -303,3 +339,13 @@ def test_implied_vol_at_non_positive_rate_is_black76() -> None:
     ref = black76.implied_vol_detail(premium, F, K, T, -0.01, call)
     np.testing.assert_array_equal(ours[1], ref[1])
     np.testing.assert_array_equal(ours[0], ref[0])
+
+
+def test_implied_vol_just_outside_the_exercise_region() -> None:
+    # A put 8e-6 above its intrinsic value of 24.35: the premium is flat (intrinsic) below the
+    # volatility sought and steep in early-exercise premium above it, where a solver that
+    # models the early-exercise premium linearly must not stall on the flat side.
+    F, K, T, r, vol = 64.99659129779637, 89.35025782659957, 2.16986301369863, 0.05, 0.1485574048
+    premium = float(american.price(F, K, T, r, vol, "put"))
+    assert premium - (K - F) < 1e-5
+    assert float(american.implied_vol(premium, F, K, T, r, "put")) == pytest.approx(vol, abs=IV_TOL)

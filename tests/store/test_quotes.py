@@ -2,16 +2,28 @@
 
 from __future__ import annotations
 
+import os
 from datetime import UTC, date, datetime
 from pathlib import Path
 
 import numpy as np
 import pytest
-from sqlalchemy import text
+from sqlalchemy import select, text
+from sqlalchemy.exc import DBAPIError
 
-from calib.errors import UnknownCommodityError
-from calib.store.engine import Store
-from calib.store.quotes import DayQuotes, load_day, load_days, load_futures_history, trade_dates
+from calib.errors import StoreURLError, UnknownCommodityError
+from calib.store.engine import Store, make_store, parse_url
+from calib.store.migrate import upgrade
+from calib.store.models import Commodity
+from calib.store.quotes import (
+    DayQuotes,
+    add_commodity,
+    load_day,
+    load_days,
+    load_futures_history,
+    trade_dates,
+    zero_curves,
+)
 from calib.workflows.ingest import NewCommodity, ingest_file
 
 FUT_HEADER = "trade_date,commodity,delivery,settle\n"
@@ -190,3 +202,51 @@ def test_one_day_is_one_index_seek(store: Store) -> None:
             ).all()
             detail = " ".join(str(row[0]) for row in plan)
             assert "uq_option_quotes_commodity_id" in detail
+
+
+@pytest.mark.parametrize("url", ["mysql://u:PASSWORD@h/d", "postgresql://u:PASSWORD@h:notaport/d"])
+def test_unusable_url_never_echoes_the_password(url: str) -> None:
+    with pytest.raises(StoreURLError) as info:
+        parse_url(url)
+    assert "PASSWORD" not in str(info.value) and "u:***@h" in str(info.value)
+
+
+def test_read_only_store_reads_and_refuses_writes(
+    store: Store, db_url: str, tmp_path: Path
+) -> None:
+    _put(
+        store,
+        tmp_path / "r.csv",
+        "trade_date,maturity,zero_rate\n2031-03-03,2032-03-03,0.05\n",
+        "rates",
+        T1,
+    )
+    reader = make_store(db_url, read_only=True)
+    try:
+        with reader.sessions() as s:
+            curves = zero_curves(session=s, start=date(2031, 3, 3), end=date(2031, 3, 3))
+            assert curves[date(2031, 3, 3)].zero_rate.tolist() == [0.05]
+        with pytest.raises(DBAPIError, match=r"(?i)read-?only"), reader.sessions.begin() as s:
+            add_commodity(
+                session=s, code="NEW", name="n", unit="t", currency="USD", calendar_rule="m"
+            )
+    finally:
+        reader.engine.dispose()
+
+
+def test_read_only_sqlite_on_a_folder_it_cannot_write(
+    tmp_path: Path, monkeypatch: pytest.MonkeyPatch
+) -> None:
+    # A read-only mount: no WAL side file can be made, so the file is opened immutable.
+    url = f"sqlite:///{tmp_path / 'ro.sqlite'}"
+    writer = make_store(url)
+    upgrade(writer.engine)
+    writer.engine.dispose()  # the last connection checkpoints and removes the WAL files
+    monkeypatch.setattr(os, "access", lambda *_a, **_k: False)
+    reader = make_store(url, read_only=True)
+    try:
+        with reader.sessions() as s:
+            assert s.scalars(select(Commodity.code)).all() == []
+        assert not (tmp_path / "ro.sqlite-shm").exists()
+    finally:
+        reader.engine.dispose()

@@ -1,6 +1,7 @@
 """Ingestion: every rule, quarantine, strict, duplicates of files, corrections; both engines.
 
-The scenario is invented: commodity QRX, trade date 2031-03-03, two futures, a zero curve.
+The scenario is invented (tests/workflows/ingest_day.py): commodity QRX, trade date 2031-03-03,
+two futures, a zero curve.
 """
 
 from __future__ import annotations
@@ -16,80 +17,30 @@ import pytest
 from sqlalchemy import func, select
 
 from calib.errors import IngestFileError
-from calib.model.black76 import price
+from calib.inputs.rules import IMPLIED_VOL_MAX, PREMIUM_BOUND_RTOL
 from calib.store.engine import Store
 from calib.store.models import Commodity, FuturesSettlement, IngestBatch, OptionQuote
 from calib.store.quotes import load_day, quarantined_rows
-from calib.workflows.ingest import (
-    IMPLIED_VOL_MAX,
-    PREMIUM_BOUND_RTOL,
-    NewCommodity,
-    ingest_file,
+from calib.workflows.ingest import NewCommodity
+from tests.workflows.ingest_day import (
+    EXPIRY,
+    F1,
+    OPTION_HEADER,
+    TD,
+    D,
+    fair,
+    ingest,
+    only_problem,
+    option,
+    store_day,
+    write_csv,
 )
-
-TD = "2031-03-03"
-F1, F2 = 50.0, 52.0
-EXPIRY = "2031-04-25"
-R_SHORT = 0.04
-# Discount factor to EXPIRY: 53 days, before the curve's first point (92 days), so the rate is
-# the first point's, held flat (the curve convention of calib.store.quotes.ZeroCurve).
-D = math.exp(-R_SHORT * 53 / 365)
-OPTION_HEADER = ["trade_date", "commodity", "delivery", "expiry", "kind", "strike", "premium"]
-
-
-def write_csv(path: Path, header: list[str], rows: list[list[object]]) -> Path:
-    with path.open("w", newline="") as handle:
-        writer = csv.writer(handle)
-        writer.writerow(header)
-        writer.writerows(rows)
-    return path
-
-
-def ingest(store: Store, path: Path, kind: str, **kw: object):  # type: ignore[no-untyped-def]
-    return ingest_file(store.sessions, path, kind, user="tester", **kw)  # type: ignore[arg-type]
 
 
 @pytest.fixture
 def day(store: Store, tmp_path: Path) -> Store:
     """QRX registered, its futures and the zero curve of TD stored."""
-    fut = write_csv(
-        tmp_path / "fut.csv",
-        ["trade_date", "commodity", "delivery", "settle"],
-        [[TD, "QRX", "2031-05-01", F1], [TD, "QRX", "2031-06-01", F2]],
-    )
-    assert ingest(store, fut, "futures", create=NewCommodity()).rows_accepted == 2
-    rates = write_csv(
-        tmp_path / "rates.csv",
-        ["trade_date", "maturity", "zero_rate"],
-        [[TD, "2031-06-03", R_SHORT], [TD, "2032-03-03", 0.05]],
-    )
-    assert ingest(store, rates, "rates").rows_accepted == 2
-    return store
-
-
-def option(strike: float, premium: object, kind: str = "call", **over: object) -> list[object]:
-    row = {
-        "trade_date": TD,
-        "commodity": "QRX",
-        "delivery": "2031-05-01",
-        "expiry": EXPIRY,
-        "kind": kind,
-        "strike": strike,
-        "premium": premium,
-    }
-    row.update(over)
-    return [row[c] for c in OPTION_HEADER]
-
-
-def fair(strike: float, kind: str = "call", forward: float = F1) -> float:
-    return float(price(forward, strike, 53 / 365, R_SHORT, 0.3, kind))
-
-
-def only_problem(store: Store, path: Path, kind: str = "options") -> tuple[str, str]:
-    report = ingest(store, path, kind)
-    assert report.rows_rejected == 1, report
-    (problem,) = report.problems
-    return problem.field, problem.reason
+    return store_day(store, tmp_path)
 
 
 # --- file-level refusals ---------------------------------------------------------------------

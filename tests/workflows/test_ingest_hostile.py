@@ -18,10 +18,11 @@ from hypothesis import strategies as st
 from sqlalchemy import func, select
 
 from calib.errors import IngestFileError
+from calib.inputs.files import REQUIRED_COLUMNS
 from calib.store.engine import Store, make_store
 from calib.store.migrate import upgrade
 from calib.store.models import FuturesSettlement, IngestBatch, OptionQuote, QuarantinedRow
-from calib.workflows.ingest import REQUIRED_COLUMNS, NewCommodity, ingest_file
+from calib.workflows.ingest import NewCommodity, ingest_file
 
 VALID = {
     "trade_date": ["2031-03-03"],
@@ -116,6 +117,9 @@ def seeded(tmp_path_factory: pytest.TempPathFactory) -> Iterator[tuple[Store, Pa
     fut = folder / "seed.csv"
     fut.write_text("trade_date,commodity,delivery,settle\n2031-03-03,QRX,2031-05-01,50\n")
     ingest_file(store.sessions, fut, "futures", user="t", create=NewCommodity())
+    rates = folder / "rates.csv"
+    rates.write_text("trade_date,maturity,zero_rate\n2031-03-03,2032-03-03,0.03\n")
+    ingest_file(store.sessions, rates, "rates", user="t")
     yield store, folder
     store.engine.dispose()
 

@@ -11,11 +11,16 @@ from pathlib import Path
 import pytest
 
 from calib.errors import RollingRequestError
-from calib.estimate.executor import ProcessExecutor
+from calib.estimate.executor import Executor, InlineExecutor, ProcessExecutor
 from calib.estimate.rolling import parse_period
 from calib.model.twofactor import PARAM_NAMES
 from calib.store.engine import Store
-from calib.store.estimates import get_estimate, latest_estimate, series_estimates
+from calib.store.estimates import (
+    EstimateRecord,
+    get_estimate,
+    latest_estimate,
+    series_estimates,
+)
 from calib.workflows.estimates import estimate
 from calib.workflows.rolling import RollingReport, RollingWindow, estimate_rolling
 from calib.workflows.stability import stability, write_csv, write_png
@@ -38,10 +43,9 @@ def test_rolling_series_is_stored_marked_resumable_and_equal_to_single_estimates
     data = load_scenario(store, tmp_path)
     seen: list[RollingWindow] = []
 
-    def stop_after_two(w: RollingWindow) -> None:
+    def stop_after_one(w: RollingWindow) -> None:
         seen.append(w)
-        if len(seen) == 2:
-            raise StopHereError
+        raise StopHereError
 
     def series(**kw: object) -> RollingReport:
         return estimate_rolling(
@@ -57,14 +61,15 @@ def test_rolling_series_is_stored_marked_resumable_and_equal_to_single_estimates
             **kw,  # type: ignore[arg-type]
         )
 
-    # interrupted after the first chunk of two: that chunk is stored, nothing of the next
+    # interrupted after the first window (estimated cold on its own, then stored): the
+    # chunks after it were never written
     with pytest.raises(StopHereError):
-        series(on_window=stop_after_two)
+        series(on_window=stop_after_one)
     report = series(cold_every=2)
-    assert [w.status for w in report.windows] == ["held", "held", "stored", "stored"]
-    # the resumed chunk warm-starts from the held window before it
-    assert [w.started for w in report.windows[2:]] == ["warm", "warm"]
-    assert report.cold_checked == 1 and not report.local_optima
+    assert [w.status for w in report.windows] == ["held", "stored", "stored", "stored"]
+    # the resumed windows warm-start from the held window before them
+    assert [w.started for w in report.windows[1:]] == ["warm", "warm", "warm"]
+    assert report.cold_checked == 2 and not report.local_optima  # windows 1 and 3
     with store.sessions() as s:
         stored = series_estimates(session=s, series_id=report.series_id)
         assert latest_estimate(session=s, commodity=data.code) is None  # never the default
@@ -110,25 +115,25 @@ def test_rolling_series_is_stored_marked_resumable_and_equal_to_single_estimates
     assert write_png(view, tmp_path / "s.png").stat().st_size > 10_000
 
 
-def test_worker_processes_give_the_inline_result(store: Store, tmp_path: Path) -> None:
+def test_worker_processes_give_the_inline_result(store: Store, db_url: str, tmp_path: Path) -> None:
+    if not db_url.startswith("sqlite"):
+        pytest.skip("workers never touch the store: one engine is enough (spawn costs seconds)")
     data = load_scenario(store, tmp_path)
-    ends = (date(2031, 7, 1), date(2031, 8, 1))
-    pooled = estimate_rolling(
-        store.sessions,
-        data.code,
-        *ends,
-        LENGTH,
-        STEP,
-        user="q",
-        min_days=MIN_DAYS,
-        chunk=1,
-        executor=ProcessExecutor(2),
-    )
-    with store.sessions() as s:
-        got = series_estimates(session=s, series_id=pooled.series_id)
-    for w, e in zip(pooled.windows, got, strict=True):
-        single = estimate(store.sessions, data.code, w.start, w.end, user="q", min_days=MIN_DAYS)
-        assert e.params == single.params  # cold start in a worker: the very same numbers
+    ends = (date(2031, 7, 1), date(2031, 9, 1))  # three windows: one cold, two in workers
+
+    def estimates(min_days: int, executor: Executor) -> list[EstimateRecord]:
+        report = estimate_rolling(
+            store.sessions, data.code, *ends, LENGTH, STEP, user="q", min_days=min_days,
+            chunk=1, executor=executor,
+        )  # fmt: skip
+        with store.sessions() as s:
+            return series_estimates(session=s, series_id=report.series_id)
+
+    # two series (min_days differs, every window has more days than either): same numbers
+    pooled = estimates(MIN_DAYS, ProcessExecutor(2))
+    inline = estimates(MIN_DAYS + 1, InlineExecutor())
+    assert len(pooled) == 3 and [e.params for e in pooled] == [e.params for e in inline]
+    assert [e.settings["start_point"] for e in pooled] == ["cold", "warm", "warm"]
 
 
 def test_rolling_and_stability_requests_that_cannot_be_served(store: Store, tmp_path: Path) -> None:
@@ -161,6 +166,8 @@ def test_rolling_and_stability_from_the_command_line(
     capsys: pytest.CaptureFixture[str],
     monkeypatch: pytest.MonkeyPatch,
 ) -> None:
+    if not db_url.startswith("sqlite"):
+        pytest.skip("the command line is engine-blind; the workflow tests run on both engines")
     data = load_scenario(store, tmp_path)
 
     def calib(*args: str) -> tuple[int, str, str]:
@@ -205,3 +212,18 @@ def test_rolling_and_stability_from_the_command_line(
     assert (tmp_path / "s.png").exists() and (tmp_path / "s.csv").exists()
     code, out, _ = calib("stability", data.code, "--json")
     assert code == 2 or json.loads(out)["windows"]  # code 2: no converged single estimate
+
+
+def test_unknown_standard_errors_print_as_null() -> None:
+    # a window whose observed information was not positive definite has NaN s.e.: JSON null
+    from calib.workflows.stability import StabilityWindow
+
+    w = StabilityWindow(
+        estimate_id=1, window_start=date(2031, 1, 1), window_end=date(2031, 12, 31),
+        converged=False, params=dict.fromkeys(PARAM_NAMES, 0.5),
+        std_errors=dict.fromkeys(PARAM_NAMES, float("nan")),
+        z=dict.fromkeys(PARAM_NAMES, float("nan")), flags=("not_converged",),
+        decay_slack=float("nan"), in_use=False,
+    )  # fmt: skip
+    out = json.loads(json.dumps(w.to_dict(), allow_nan=False))
+    assert out["std_errors"]["kappa"] is None and out["z"]["rho"] is None

@@ -30,15 +30,52 @@
     return "no reason given";
   }
 
-  function refresh() {
-    return fetch(window.location.href, { cache: "no-store", credentials: "omit" })
+  // While a token is held, links between review pages are followed inside this page (the
+  // page's <main> is swapped and the address updated), so the token is typed once per tab.
+  function load(url, push) {
+    return fetch(url, { cache: "no-store", credentials: "omit" })
       .then(function (r) { return r.text(); })
       .then(function (text) {
-        var fresh = new DOMParser().parseFromString(text, "text/html").querySelector("main");
+        var doc = new DOMParser().parseFromString(text, "text/html");
+        var fresh = doc.querySelector("main");
         var main = document.querySelector("main");
-        if (fresh && main) { main.replaceWith(document.adoptNode(fresh)); }
+        if (!fresh || !main) { window.location.assign(url); return; }
+        main.replaceWith(document.adoptNode(fresh));
+        document.title = doc.title;
+        if (push) {
+          window.history.pushState({ review: true }, "", url);
+          window.scrollTo(0, 0);
+        }
       });
   }
+
+  function refresh() {
+    return load(window.location.href, false);
+  }
+
+  function follow(url) {
+    var flash = document.getElementById("flash");
+    if (flash) { flash.hidden = true; }
+    load(url, true).catch(function () { window.location.assign(url); });
+  }
+
+  function inPage(a, ev) {
+    return held.token && a.origin === window.location.origin && !a.target &&
+      !/^\/(v1|static)\/|\.png$/.test(a.pathname) &&
+      ev.button === 0 && !(ev.ctrlKey || ev.metaKey || ev.shiftKey || ev.altKey);
+  }
+
+  document.addEventListener("click", function (ev) {
+    var a = ev.target.closest && ev.target.closest("a[href]");
+    if (a && inPage(a, ev)) {
+      ev.preventDefault();
+      follow(a.href);
+    }
+  });
+
+  window.addEventListener("popstate", function () {
+    load(window.location.href, false).catch(function () { window.location.reload(); });
+  });
 
   function decide(form, action) {
     var msg = form.querySelector(".msg");
@@ -96,6 +133,10 @@
       held.token = form.elements.token.value;
       form.elements.token.value = "";
       showHeld();
+    } else if (form.classList.contains("asof-form") && held.token) {
+      ev.preventDefault();
+      var query = new URLSearchParams(new FormData(form)).toString();
+      follow(form.action + (query ? "?" + query : ""));
     } else if (form.classList.contains("decide")) {
       ev.preventDefault();
       decide(form, ev.submitter && ev.submitter.value === "reject" ? "reject" : "approve");

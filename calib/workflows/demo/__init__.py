@@ -34,6 +34,7 @@ from pathlib import Path
 from typing import Any
 
 from calib.errors import DemoFolderError, ParameterError, RunNotFittedError
+from calib.inputs.files import FileKind
 from calib.output import compare as compare_out
 from calib.output.report import CAUTIONS
 from calib.policy.settings import RunSettings, load_settings
@@ -45,7 +46,7 @@ from calib.workflows.compare import Selection, compare_runs
 from calib.workflows.demo.scenario import Scenario, ScenarioSpec, generate, write_csv
 from calib.workflows.estimates import MIN_DAYS, estimate
 from calib.workflows.fit import FitOutcome, fit_day
-from calib.workflows.ingest import Kind, ingest_file
+from calib.workflows.ingest import ingest_file
 from calib.workflows.report import write_report
 
 Progress = Callable[[str], None]
@@ -315,7 +316,7 @@ def run_demo(
     with store_for(db_url) as store:
         upgrade(store.engine)
         _register(store, scenario)
-        order: tuple[Kind, ...] = ("futures", "rates", "options")  # options check both others
+        order: tuple[FileKind, ...] = ("futures", "rates", "options")  # options check both others
         for kind in order:
             report = ingest_file(store.sessions, paths[kind], kind, user=USER)
             progress(
