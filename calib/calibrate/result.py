@@ -2,13 +2,13 @@
 
 from __future__ import annotations
 
+import math
 from dataclasses import dataclass
 from typing import Any
 
 from calib.calibrate.quotes import SCREENED, DroppedQuote
 from calib.calibrate.settings import CalibrationSettings
 from calib.model.twofactor import TwoFactorParams
-from calib.record.codec import encode
 from calib.record.fit import BucketVols, ConstraintReport
 from calib.types import FloatArray, IntArray
 
@@ -111,10 +111,68 @@ class CalibrationResult:
         )
 
     def to_dict(self) -> dict[str, Any]:
-        """Plain values (lists, floats, strings) for JSON: every field, by name
-        (:func:`calib.record.codec.encode`). What a run stores of it is
-        :class:`~calib.record.fit.FitRecord`."""
-        return encode(self)  # type: ignore[no-any-return]
+        """Plain values (lists, floats, strings) for JSON; a standard error that is not finite
+        (a parameter not identified) is ``None``."""
+        return {
+            "params": self.params.to_dict(),
+            "buckets": [
+                {
+                    "start": b.start,
+                    "end": b.end,
+                    "params": b.params.to_dict(),
+                    "std_errors": None
+                    if b.std_errors is None
+                    else dict(
+                        zip(
+                            ("sigma_spot", "sigma_yield", "rho"),
+                            (_finite(v) for v in b.std_errors),
+                            strict=True,
+                        )
+                    ),
+                    "yield_set_by": b.yield_set_by,
+                }
+                for b in self.buckets
+            ],
+            "quotes": {
+                "index": self.quote_index.tolist(),
+                "label": list(self.labels),
+                "market_price": self.market_price.tolist(),
+                "model_price": self.model_price.tolist(),
+                "market_vol": self.market_vol.tolist(),
+                "model_vol": self.model_vol.tolist(),
+                "price_residual": self.price_residual.tolist(),
+                "vol_residual": self.vol_residual.tolist(),
+                "weight": self.weight.tolist(),
+            },
+            "objective": self.objective,
+            "fit": self.fit,
+            "rmse": self.rmse,
+            "max_error": self.max_error,
+            "constraints": [c.to_dict() for c in self.constraints],
+            "solver": self.solver,
+            "status": self.status,
+            "iterations": self.iterations,
+            "converged": self.converged,
+            "flags": list(self.flags),
+            "settings": self.settings.to_dict(),
+            "historical": self.historical.to_dict(),
+            "dropped": [
+                {"index": d.index, "label": d.label, "reason": d.reason} for d in self.dropped
+            ],
+            "inaccurate_steps": self.inaccurate_steps,
+            "solver_precision": self.solver_precision,
+            "anchor_scale": self.anchor_scale,
+            "anchor_penalty": self.anchor_penalty,
+            "anchor_fit_cost": self.anchor_fit_cost,
+            "not_identified": list(self.not_identified),
+            "not_identified_reason": self.not_identified_reason,
+            "residual_variance": _finite(self.residual_variance),
+        }
+
+
+def _finite(x: float) -> float | None:
+    """``x``, or ``None`` where JSON has no number (a parameter not identified: ``inf``)."""
+    return x if math.isfinite(x) else None
 
 
 @dataclass(frozen=True, slots=True)

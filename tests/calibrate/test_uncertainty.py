@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import json
 import math
 import warnings
 from dataclasses import replace
@@ -64,7 +65,10 @@ def test_one_expiry_on_one_future_is_not_identified() -> None:
         res = fit(q, TRUE, CalibrationSettings(refit_costs=False, anchor_weight=0.0))
     assert res.not_identified and "singular" in res.not_identified_reason
     assert any(math.isinf(v) for v in res.buckets[0].std_errors or ())
-    assert res.to_dict()["not_identified"] == list(res.not_identified)
+    d = res.to_dict()
+    assert d["not_identified"] == list(res.not_identified)
+    assert None in d["buckets"][0]["std_errors"].values()  # JSON has no infinity
+    json.dumps(d, allow_nan=False)
 
 
 def test_held_correlation_has_no_rho_error() -> None:
