@@ -29,7 +29,6 @@ from pathlib import Path
 
 import numpy as np
 
-from calib.model.black76 import price
 from calib.store.engine import Store, create_store_engine, make_store
 from calib.store.migrate import upgrade
 from calib.workflows.ingest import NewCommodity, ingest_file
@@ -60,6 +59,8 @@ def write_year(
     folder: Path, seed: int = 7, strikes: int = N_STRIKES
 ) -> tuple[Path, Path, Path, list[tuple[object, ...]]]:
     """Write futures, rates and options CSV files for one invented year; also the option rows."""
+    from calib.model.black76 import price  # not in the memory run's fresh process
+
     rng = np.random.default_rng(seed)
     days = _weekdays(date(2031, 1, 6), N_DAYS)
     fut_rows: list[tuple[object, ...]] = []
@@ -148,7 +149,13 @@ LARGE_STRIKES = 180
 
 
 def _peak_mb() -> float:
-    return resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024  # kilobytes on Linux
+    """This process's peak resident memory (VmHWM: unlike ``ru_maxrss`` it starts afresh at
+    exec, not at the parent's high-water mark)."""
+    with open("/proc/self/status") as status:
+        for line in status:
+            if line.startswith("VmHWM:"):
+                return int(line.split()[1]) / 1024  # kB
+    return resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024
 
 
 def _child(task: str, folder: Path) -> None:
@@ -188,7 +195,8 @@ def _run_child(task: str, folder: Path) -> tuple[int, float, float, float]:
 def _memory() -> None:
     with tempfile.TemporaryDirectory() as tmp:
         folder = Path(tmp)
-        futures, rates, options, _ = write_year(folder, strikes=LARGE_STRIKES)
+        futures, rates, options, rows = write_year(folder, strikes=LARGE_STRIKES)
+        del rows
         size = options.stat().st_size / 2**20
         store = make_store(f"sqlite:///{folder / 'large.sqlite'}")
         try:

@@ -31,6 +31,7 @@ from __future__ import annotations
 
 import hmac
 import threading
+import warnings
 from collections import OrderedDict
 from collections.abc import AsyncIterator, Callable, Hashable
 from contextlib import asynccontextmanager
@@ -49,6 +50,7 @@ from calib.as_of import parse_as_of
 from calib.client import ApprovedSet, Client
 from calib.errors import (
     AsOfError,
+    CalibWarning,
     NoApprovedSetError,
     RunNotFittedError,
     UnknownCommodityError,
@@ -120,6 +122,18 @@ class _Cache(Generic[_K, _V]):
 def _drawn(draw: Callable[..., bytes], *args: Any, **kwargs: Any) -> bytes:
     with _DRAWING:
         return draw(*args, **kwargs)
+
+
+def _noted(
+    gather: Callable[..., tuple[ReportInputs, Any]], *args: Any
+) -> tuple[ReportInputs, tuple[str, ...]]:
+    """The report inputs of a run, and the calib warnings their frontier re-solves gave (shown
+    on the page, not raised: ``catch_warnings`` is process-wide, hence the lock)."""
+    with _DRAWING, warnings.catch_warnings(record=True) as caught:
+        warnings.simplefilter("always", CalibWarning)
+        inputs = gather(*args)[0]
+    notes = (str(w.message) for w in caught if issubclass(w.category, CalibWarning))
+    return inputs, tuple(dict.fromkeys(notes))
 
 
 def _num(value: Any, fmt: str = ".4g") -> str:
@@ -195,7 +209,7 @@ def review_router(settings: Settings, token: str | None) -> APIRouter:
     router = APIRouter(lifespan=lifespan, include_in_schema=False)
     env = _environment()
     static = _static()
-    reports: _Cache[int, ReportInputs] = _Cache(REPORT_CACHE)
+    reports: _Cache[int, tuple[ReportInputs, tuple[str, ...]]] = _Cache(REPORT_CACHE)
     figures: _Cache[tuple[int, str], bytes] = _Cache(FIGURE_CACHE)
     can_decide = token is not None
 
@@ -217,11 +231,14 @@ def review_router(settings: Settings, token: str | None) -> APIRouter:
         headers = {**SECURITY_HEADERS, "Cache-Control": "no-cache"}
         return Response(body, media_type="image/png", headers=headers)
 
-    def report_of(run_id: int) -> ReportInputs | None:
+    def report_and_notes(run_id: int) -> tuple[ReportInputs | None, tuple[str, ...]]:
         try:
-            return reports.get(run_id, lambda: report_inputs(store().sessions, run_id)[0])
+            return reports.get(run_id, lambda: _noted(report_inputs, store().sessions, run_id))
         except RunNotFittedError:
-            return None
+            return None, ()
+
+    def report_of(run_id: int) -> ReportInputs | None:
+        return report_and_notes(run_id)[0]
 
     @router.get("/", response_class=HTMLResponse)
     def overview() -> HTMLResponse:
@@ -233,9 +250,9 @@ def review_router(settings: Settings, token: str | None) -> APIRouter:
             view = views.run_view(store().sessions, run_id)
         except UnknownRunError as exc:
             return page("missing.html", 404, message=str(exc))
-        report = report_of(run_id)
+        report, notes = report_and_notes(run_id)
         names = () if report is None else figure_names(report)
-        return page("run.html", view=view, report=report, figures=names)
+        return page("run.html", view=view, report=report, figures=names, notes=notes)
 
     @router.get("/runs/{run_id}/figures/{name}.png")
     def run_figure(run_id: int, name: str) -> Response:
