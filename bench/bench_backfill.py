@@ -22,14 +22,15 @@ import time
 from dataclasses import replace
 from pathlib import Path
 
+from calib.policy.settings import RunSettings
 from calib.store.engine import make_store
 from calib.store.migrate import upgrade
 from calib.store.quotes import load_day, trade_dates
 from calib.workflows.backfill import backfill
+from calib.workflows.demo.scenario import ScenarioSpec, generate, write_csv
 from calib.workflows.estimates import import_estimate
+from calib.workflows.fit import attempt_fit
 from calib.workflows.ingest import NewCommodity, ingest_file
-from calib.workflows.runs import RunSettings, attempt_fit
-from calib.workflows.scenario import ScenarioSpec, generate, write_csv
 
 N_DATES = 2_500
 WORKERS = 2
@@ -79,7 +80,7 @@ def main() -> None:
         )
 
         cpu0 = _cpu_seconds()
-        report = backfill(store, code, dates[0], dates[-1], user="bench", workers=WORKERS)
+        report = backfill(store, code, dates[0], dates[-1], by="bench", workers=WORKERS)
         cpu = _cpu_seconds() - cpu0  # the workers are joined, so their time is counted
         n = len(report.days)
         print(

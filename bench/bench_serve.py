@@ -31,12 +31,12 @@ from datetime import UTC, datetime
 from pathlib import Path
 from typing import Any
 
-from calib.client import Client, latest_set_stmt
+from bench.serve_seed import CODE, candidate, commodity
+from calib.client import Client
 from calib.store.engine import Store, make_store
 from calib.store.migrate import upgrade
-from calib.store.runs import latest_approved
-from calib.workflows.runs import approve
-from tests.serving.seed import CODE, candidate, commodity
+from calib.store.runs import in_force_stmt, latest_approved
+from calib.workflows.approve import approve
 
 N_READS = 20_000
 N_ORM_READS = 2_000
@@ -73,7 +73,7 @@ def _raw_reader(path: Path) -> Callable[[], object]:
     """The client's statement on a plain sqlite3 connection: one execute, one fetch."""
     from sqlalchemy.dialects import sqlite
 
-    compiled = latest_set_stmt().compile(dialect=sqlite.dialect())
+    compiled = in_force_stmt().compile(dialect=sqlite.dialect())
     conn = sqlite3.connect(path, isolation_level=None)
     conn.execute("PRAGMA journal_mode=WAL")
     cid = conn.execute("SELECT id FROM commodities WHERE code = ?", (CODE,)).fetchone()[0]

@@ -15,12 +15,17 @@ How a read is made
 ------------------
 :meth:`Client.latest` is one round trip on one held database connection: a single statement,
 compiled once per client for the engine's dialect (SQLAlchemy Core) and executed on the raw
-DBAPI connection with the driver's own parameter style. It joins the newest ``approved`` event
-of the commodity at or before the time asked for to its run, and refuses (``NOT EXISTS``) an
-approval that was already superseded by then, so a run that was not approved at that time is
-never returned. The statement sees one snapshot (SQLite: its own read transaction in WAL mode;
-PostgreSQL: autocommit, one statement), and a run, its residuals and its first event are
-committed together by the morning run, so a set is never seen without its residuals.
+DBAPI connection with the driver's own parameter style. It is the one definition of the set in
+force, :func:`calib.store.runs.in_force_stmt` (the CLI and the HTTP API run the same): the
+newest ``approved`` event of the commodity at or before the time asked for, joined to its run,
+refusing (``NOT EXISTS``) an approval that was already superseded by then. The statement
+sees one snapshot (SQLite: its own read transaction in WAL mode; PostgreSQL: autocommit, one
+statement), and a run, its residuals and its first event are committed together by the
+morning run, so a set is never seen without its residuals.
+
+The answer for a past moment never changes: a read waits while an approval of the commodity is
+being written (the approval lock, :func:`calib.store.runs.approvals_held`: a shared ``flock``
+on SQLite, two system calls; on PostgreSQL a shared advisory lock, one more round trip).
 
 Runs and events are never updated, so the :class:`ApprovedSet` built for an approval event is
 kept (a small cache keyed by the event id) and handed out again while that approval is in
@@ -38,28 +43,38 @@ client anyway. A lost PostgreSQL connection is replaced once per read before
 
 from __future__ import annotations
 
-import json
+import fcntl
 import os
 import threading
 from collections import OrderedDict
 from collections.abc import Callable, Mapping, Sequence
-from dataclasses import dataclass
-from datetime import UTC, date, datetime
+from datetime import UTC, datetime
 from types import TracebackType
 from typing import Any, cast
 
-from sqlalchemy import Select, Table, and_, bindparam, exists, select
+from sqlalchemy import Select, bindparam, func, select
 from sqlalchemy.engine import Dialect
 
 from calib.errors import NoApprovedSetError, StoreUnavailableError, UnknownCommodityError
-from calib.model.twofactor import PARAM_NAMES, TwoFactorParams
 from calib.settings import get_settings
 from calib.store.base import utc_now
 from calib.store.engine import Store, make_store
 from calib.store.migrate import check_current
 from calib.store.models import Commodity
-from calib.store.run_models import CalibrationRun, RunEvent
-from calib.store.runs import ApprovalRecord, RunRecord, approved_history, require_run
+from calib.store.runs import (
+    APPROVAL_LOCK_SPACE,
+    IN_FORCE_COLUMNS,
+    ApprovalRecord,
+    ApprovedSet,
+    RunRecord,
+    approval_lock_file,
+    approved_history,
+    approved_set_of,
+    in_force_stmt,
+    require_run,
+)
+
+_APPROVAL_ID = IN_FORCE_COLUMNS.index("approval_id")
 
 CACHE_SIZE = 64
 """Approved sets kept per client (one per approval event seen; they never change)."""
@@ -67,96 +82,7 @@ CACHE_SIZE = 64
 _SQLITE_TIME = "%Y-%m-%d %H:%M:%S.%f"
 """How :class:`~calib.store.base.UtcDateTime` stores a time on SQLite (naive UTC text)."""
 
-
-@dataclass(frozen=True, slots=True)
-class ForwardBucket:
-    """The parameters in force over one stretch of time, in years from the trade date."""
-
-    start: float
-    end: float
-    params: TwoFactorParams
-
-    def to_dict(self) -> dict[str, Any]:
-        return {"start": self.start, "end": self.end, "params": self.params.to_dict()}
-
-
-@dataclass(frozen=True, slots=True)
-class ApprovedSet:
-    """An approved parameter set of one commodity, as a pricer uses it (read-only).
-
-    Attributes
-    ----------
-    run_id : the calibration run the set comes from.
-    commodity : commodity code.
-    trade_date : the trading day the run was fitted to.
-    approved_at, approved_by, note : the approval event (UTC time, who, why).
-    approval_id : the approval event's id (changes whenever another set comes into force).
-    mode : calibration mode (``constant``, ``forward``, ``held_rho``).
-    params : the parameter set (in forward mode the first bucket's volatilities).
-    buckets : the forward buckets, in years from the trade date (one in constant mode).
-    """
-
-    run_id: int
-    commodity: str
-    trade_date: date
-    approved_at: datetime
-    approved_by: str
-    note: str
-    approval_id: int
-    mode: str
-    params: TwoFactorParams
-    buckets: tuple[ForwardBucket, ...]
-
-    def to_dict(self) -> dict[str, Any]:
-        """Plain values for JSON: the seven parameter names at the top level."""
-        return {
-            "run_id": self.run_id,
-            "commodity": self.commodity,
-            "trade_date": self.trade_date.isoformat(),
-            **self.params.to_dict(),
-            "approved_at": self.approved_at.isoformat(),
-            "approved_by": self.approved_by,
-            "note": self.note,
-            "approval_id": self.approval_id,
-            "mode": self.mode,
-            "buckets": [b.to_dict() for b in self.buckets],
-        }
-
-
-def latest_set_stmt() -> Select[Any]:
-    """Run and approval event of the newest approval of ``:cid`` at or before ``:t``."""
-    events = cast(Table, RunEvent.__table__)
-    runs = cast(Table, CalibrationRun.__table__)
-    ended = events.alias("ended")
-    t = bindparam("t", type_=RunEvent.at.type)
-    return (
-        select(
-            runs.c.id,
-            runs.c.trade_date,
-            runs.c.mode,
-            runs.c.buckets,
-            *[runs.c[n] for n in PARAM_NAMES],
-            events.c.id,
-            events.c.at,
-            events.c.actor,
-            events.c.note,
-        )
-        .join_from(events, runs, runs.c.id == events.c.run_id)
-        .where(
-            events.c.commodity_id == bindparam("cid"),
-            events.c.to_status == "approved",
-            events.c.at <= t,
-            ~exists().where(
-                and_(
-                    ended.c.run_id == events.c.run_id,
-                    ended.c.to_status == "superseded",
-                    ended.c.at <= t,
-                )
-            ),
-        )
-        .order_by(events.c.at.desc(), events.c.id.desc())
-        .limit(1)
-    )
+__all__ = ["ApprovedSet", "Client"]
 
 
 class _Prepared:
@@ -198,7 +124,11 @@ class Client:
         engine = self._store.engine
         check_current(engine)
         self._sqlite = engine.dialect.name == "sqlite"
-        self._latest = _Prepared(latest_set_stmt(), engine.dialect)
+        self._latest = _Prepared(in_force_stmt(), engine.dialect)
+        wait = select(func.pg_advisory_xact_lock_shared(APPROVAL_LOCK_SPACE, bindparam("cid")))
+        self._wait = None if self._sqlite else _Prepared(wait, engine.dialect)
+        self._lock_path = approval_lock_file(engine)
+        self._lock_file: Any = None
         code = select(Commodity.id).where(Commodity.code == bindparam("code"))
         self._code = _Prepared(code, engine.dialect)
         dbapi = engine.dialect.loaded_dbapi
@@ -216,6 +146,11 @@ class Client:
     # --- connection ----------------------------------------------------------------------------
 
     def _connect(self) -> None:
+        if self._lock_path is not None:
+            try:
+                self._lock_file = self._lock_path.open("a")
+            except OSError:  # a read-only folder: nothing can approve through it
+                self._lock_file = None
         self._conn = self._store.engine.raw_connection()
         if not self._sqlite:
             self._conn.driver_connection.autocommit = True  # one statement, one snapshot
@@ -252,6 +187,22 @@ class Client:
                     raise StoreUnavailableError(self._store.url, detail) from None
         raise AssertionError("unreachable")
 
+    def _read_in_force(self, cid: int, bound: Any) -> Any:
+        """The row of the set in force, read after any approval being written has committed
+        (:func:`calib.store.runs.approvals_held`); the caller holds the lock."""
+        if self._wait is not None:  # PostgreSQL: wait on the shared advisory lock, then read
+            self._fetch(self._wait, {"cid": cid})
+            return self._fetch(self._latest, {"cid": cid, "t": bound})
+        if self._pid != os.getpid():
+            self._leave_to_parent()
+        if self._lock_file is None:
+            return self._fetch(self._latest, {"cid": cid, "t": bound})
+        fcntl.flock(self._lock_file, fcntl.LOCK_SH)
+        try:
+            return self._fetch(self._latest, {"cid": cid, "t": bound})
+        finally:
+            fcntl.flock(self._lock_file, fcntl.LOCK_UN)
+
     def close(self) -> None:
         """Close the connection and dispose of the engine (the client cannot be used after)."""
         with self._lock:
@@ -261,6 +212,9 @@ class Client:
                 self._cursor.close()
                 self._conn.close()
             self._conn = self._cursor = None
+            if self._lock_file is not None:
+                self._lock_file.close()
+                self._lock_file = None
             self._store.engine.dispose()
 
     def __enter__(self) -> Client:
@@ -312,14 +266,14 @@ class Client:
         bound = when.replace(tzinfo=None).strftime(_SQLITE_TIME) if self._sqlite else when
         with self._lock:
             cid = self._commodity_id(commodity)
-            row = self._fetch(self._latest, {"cid": cid, "t": bound})
+            row = self._read_in_force(cid, bound)
             if row is None:
                 what = "now" if as_of is None else f"at {when.isoformat()}"
                 raise NoApprovedSetError(commodity, what)
-            approval_id = row[11]
+            approval_id = row[_APPROVAL_ID]
             found = self._sets.get(approval_id)
             if found is None:
-                found = self._sets[approval_id] = _approved_set(commodity, row, self._sqlite)
+                found = self._sets[approval_id] = approved_set_of(commodity, row)
                 if len(self._sets) > self._cache_size:
                     self._sets.popitem(last=False)
             return found
@@ -355,33 +309,3 @@ class Client:
 
 def _utc(when: datetime) -> datetime:
     return when.replace(tzinfo=UTC) if when.tzinfo is None else when.astimezone(UTC)
-
-
-def _approved_set(commodity: str, row: Sequence[Any], sqlite: bool) -> ApprovedSet:
-    """Build the frozen set from a row of :func:`latest_set_stmt` (SQLite hands back text)."""
-    run_id, trade_date, mode, buckets = row[0], row[1], row[2], row[3]
-    at = row[12]
-    if sqlite:
-        trade_date = date.fromisoformat(trade_date)
-        at = datetime.fromisoformat(at).replace(tzinfo=UTC)
-    else:
-        at = at.astimezone(UTC)
-    if isinstance(buckets, str):
-        buckets = json.loads(buckets)
-    return ApprovedSet(
-        run_id=run_id,
-        commodity=commodity,
-        trade_date=trade_date,
-        approved_at=at,
-        approved_by=row[13],
-        note=row[14],
-        approval_id=row[11],
-        mode=mode,
-        params=TwoFactorParams(*row[4:11]),
-        buckets=tuple(
-            ForwardBucket(
-                float(b["start"]), float(b["end"]), TwoFactorParams.from_dict(b["params"])
-            )
-            for b in buckets or ()
-        ),
-    )

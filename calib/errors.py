@@ -532,17 +532,6 @@ class BandOptionError(TemplatedError, InputError):
     reason: str
 
 
-@dataclass(eq=False, repr=False)
-class DemoDirectoryError(TemplatedError, InputError):
-    """The demo's directory holds a store the demo did not make; kept unless ``--fresh``."""
-
-    TEMPLATE: ClassVar[str] = (
-        "{path} already exists and is not the demo's: pass --fresh to replace it, or choose "
-        "another --dir"
-    )
-    path: str
-
-
 # --- serving: the pricers' client and the HTTP API ---------------------------------------------
 
 
@@ -734,3 +723,19 @@ CALIBRATION_ERRORS: tuple[type[CalibError], ...] = (
     CalibrationNumericalError,
 )
 """What a fit raises for a day it cannot fit: each is stored as a rejected run with its reason."""
+
+
+# --- the demo's folder (issue 19) --------------------------------------------------------------
+
+
+@dataclass(eq=False, repr=False)
+class DemoFolderError(TemplatedError, InputError):
+    """A ``calib demo --dir`` the demo did not make and that is not empty: nothing is written
+    or deleted there."""
+
+    TEMPLATE: ClassVar[str] = (
+        "{path} is not empty and has no {marker} (it was not made by calib demo): choose a new "
+        "or empty --dir"
+    )
+    path: str
+    marker: str

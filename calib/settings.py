@@ -6,11 +6,23 @@ database URL. Nothing here creates an engine or touches a file.
 
 from __future__ import annotations
 
+import getpass
 import os
 from dataclasses import dataclass, field
 from pathlib import Path
 
 DEFAULT_DB_FILE = Path("db") / "calib.sqlite"
+
+
+def os_user() -> str:
+    """The login name of this process (``CALIB_USER`` first): the environment's ``LOGNAME``,
+    ``USER``..., else the password database's entry for the user id, else ``uid <n>``."""
+    if os.environ.get("CALIB_USER"):
+        return os.environ["CALIB_USER"]
+    try:
+        return getpass.getuser()
+    except (OSError, KeyError):  # no name variable and no passwd entry (a bare container)
+        return f"uid {os.getuid()}"
 
 
 def _default_db_url() -> str:
@@ -29,9 +41,7 @@ class Settings:
     """
 
     db_url: str = field(default_factory=_default_db_url)
-    user: str = field(
-        default_factory=lambda: os.environ.get("CALIB_USER") or os.environ.get("USER") or "unknown"
-    )
+    user: str = field(default_factory=os_user)
 
 
 def get_settings(db_url: str | None = None) -> Settings:

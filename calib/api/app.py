@@ -18,7 +18,7 @@ Approving over HTTP exists only when the server is given a token (``CALIB_API_TO
 file named by ``CALIB_API_TOKEN_FILE`` / ``calib serve --token-file``): without one the route
 is not mounted at all. A request must carry ``Authorization: Bearer <token>`` (compared in
 constant time) and ``{"by": ..., "note": ...}``; it runs the same unit of work as
-``calib approve`` (:func:`calib.workflows.runs.approve`).
+``calib approve`` (:func:`calib.workflows.approve.approve`).
 
 Reads go through one :class:`calib.client.Client` per server process. The latest-set route
 runs on the event loop (one short statement on a held connection is cheaper than a hop to
@@ -39,6 +39,7 @@ from datetime import date, datetime
 from typing import Annotated, Any
 
 from fastapi import Depends, FastAPI, HTTPException, Query, Request
+from fastapi.exceptions import RequestValidationError
 from fastapi.responses import JSONResponse, Response
 from fastapi.security import HTTPAuthorizationCredentials, HTTPBearer
 
@@ -64,7 +65,7 @@ from calib.errors import (
 )
 from calib.settings import Settings, get_settings
 from calib.store.engine import Store, make_store
-from calib.workflows import runs as run_flow
+from calib.workflows.approve import approve as approve_run
 
 BODY_CACHE_SIZE = 256
 """Rendered latest-set bodies kept (one per approval event; they never change)."""
@@ -162,6 +163,10 @@ def create_app(settings: Settings | None = None, *, token: str | None = None) ->
             status = 409
         return JSONResponse({"detail": str(exc)}, status_code=status)
 
+    @app.exception_handler(RequestValidationError)
+    async def invalid(_request: Request, exc: RequestValidationError) -> JSONResponse:
+        return JSONResponse({"detail": validation_reason(exc)}, status_code=422)
+
     @app.exception_handler(StoreUnavailableError)
     async def unavailable(_request: Request, exc: StoreUnavailableError) -> JSONResponse:
         return JSONResponse({"detail": str(exc)}, status_code=503)
@@ -184,7 +189,7 @@ def create_app(settings: Settings | None = None, *, token: str | None = None) ->
 
     @app.get(
         "/v1/commodities/{commodity}/history",
-        response_model=list[ApprovalBody],
+        response_model=list[ApprovalBody],  # type: ignore[valid-type]
         responses={**_NOT_FOUND, **_CACHED},
         summary="Every approval of a commodity, oldest first",
     )
@@ -228,9 +233,20 @@ def _mount_approval(app: FastAPI, token: str) -> None:
     )
     def approve(request: Request, run_id: int, decision: ApproveRequest) -> Response:
         store: Store = request.app.state.writer
-        result = run_flow.approve(store.sessions, run_id, by=decision.by, note=decision.note)
+        result = approve_run(store.sessions, run_id, by=decision.by, note=decision.note)
         body = _json({**result.run.to_dict(), "superseded_run_id": result.superseded})
         return Response(body, media_type="application/json")
+
+
+def validation_reason(exc: RequestValidationError) -> str:
+    """One line for a request that does not fit its route: where, and what is wrong (the
+    offending value is not echoed)."""
+    first = exc.errors()[0] if exc.errors() else {}
+    where = ".".join(str(p) for p in first.get("loc", ()) if p not in ("query", "body", "path"))
+    reason = str(first.get("msg", "invalid request")).splitlines()[0]
+    if where == "as_of":
+        reason += " (give an ISO time such as 2033-06-01T17:00:00Z)"
+    return f"{where}: {reason}" if where else reason
 
 
 def app_from_env() -> FastAPI:

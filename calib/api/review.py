@@ -57,13 +57,13 @@ from calib.errors import (
     UnknownRunError,
 )
 from calib.model.twofactor import PARAM_NAMES
+from calib.output.compare import plot_png
+from calib.output.report import CAUTIONS, FIGURES, ReportInputs, figure_names, figure_png
 from calib.settings import Settings
 from calib.store.engine import Store, make_store
+from calib.workflows import approve as approve_flow
 from calib.workflows import review as views
-from calib.workflows import runs as run_flow
-from calib.workflows.compare import plot_png
-from calib.workflows.report import CAUTIONS, FIGURES, ReportInputs, figure_names, figure_png
-from calib.workflows.run_report import report_inputs
+from calib.workflows.report import report_inputs
 
 CSP = (
     "default-src 'none'; script-src 'self'; style-src 'self'; img-src 'self'; "
@@ -312,7 +312,9 @@ def review_router(settings: Settings, token: str | None) -> APIRouter:
             summary="Reject a candidate run",
         )
         def reject(run_id: int, decision: ApproveRequest) -> JSONResponse:
-            record = run_flow.reject(store().sessions, run_id, by=decision.by, note=decision.note)
+            record = approve_flow.reject(
+                store().sessions, run_id, by=decision.by, note=decision.note
+            )
             return JSONResponse(record.to_dict())
 
     return router

@@ -1,108 +1,136 @@
 """The shapes of the HTTP API's bodies, for its OpenAPI schema and for parsing requests.
 
-Responses are rendered by the routes themselves (plain JSON of the records' ``to_dict``); these
-models document them. The seven parameter names of
-:class:`~calib.model.twofactor.TwoFactorParams` are stable top-level keys.
+Responses are rendered from the records' ``to_dict`` (JSON of
+:func:`calib.record.codec.encode`); the response models here are **derived** from those same
+record types (:class:`~calib.store.runs.ApprovedSet`, :class:`~calib.store.runs.RunRecord`,
+:class:`~calib.record.fit.FitRecord`, ...), never written again: a field added to a record
+appears here by itself. The seven parameter names of
+:class:`~calib.model.twofactor.TwoFactorParams` are stable top-level keys (the records'
+``params`` is spread into the body).
 """
 
 from __future__ import annotations
 
-from typing import Any
+import dataclasses
+import re
+import types
+import typing
+from collections.abc import Mapping
+from datetime import date, datetime
+from typing import Any, get_args, get_origin
 
-from pydantic import BaseModel, Field
+from pydantic import BaseModel, Field, create_model
 
+from calib.model.twofactor import TwoFactorParams
+from calib.record.fit import DERIVED_KEYS, BucketVols, FitRecord
+from calib.store.runs import ApprovalRecord, ApprovedSet, EventRecord, RunRecord
 
-class Parameters(BaseModel):
-    """The seven parameters of the two-factor model."""
-
-    mu: float = Field(description="Real-world drift of the spot price, per year.")
-    kappa: float = Field(description="Mean-reversion speed of the convenience yield, per year.")
-    alpha: float = Field(description="Real-world long-run convenience yield.")
-    lam: float = Field(description="Market price of convenience-yield risk.")
-    sigma_spot: float = Field(description="Volatility of the spot price.")
-    sigma_yield: float = Field(description="Volatility of the convenience yield.")
-    rho: float = Field(description="Correlation of the two Brownian motions.")
-
-
-class Bucket(BaseModel):
-    """Parameters in force over one stretch of time (years from the trade date)."""
-
-    start: float
-    end: float
-    params: Parameters
+_MODELS: dict[type, type[BaseModel]] = {}
 
 
-class ApprovedSetBody(Parameters):
-    """The approved parameter set in force: parameters, run and approval."""
-
-    run_id: int
-    commodity: str
-    trade_date: str = Field(description="ISO date of the trading day fitted.")
-    approved_at: str = Field(description="ISO time (UTC) of the approval.")
-    approved_by: str
-    note: str
-    approval_id: int = Field(description="Id of the approval event.")
-    mode: str = Field(description="Calibration mode: constant, forward or held_rho.")
-    buckets: list[Bucket]
+def _attribute_docs(cls: type) -> dict[str, str]:
+    """``name : text`` lines of a numpydoc ``Attributes`` section, by name."""
+    docs: dict[str, str] = {}
+    for line in (cls.__doc__ or "").splitlines():
+        m = re.match(r"\s*([a-z_, ]+) : (.+)", line)
+        if m:
+            for name in m.group(1).split(","):
+                docs[name.strip()] = m.group(2).strip()
+    return docs
 
 
-class ApprovalBody(Parameters):
-    """One approval of a commodity's history."""
-
-    run_id: int
-    trade_date: str
-    approved_at: str
-    approved_by: str
-    note: str
-    superseded_at: str | None = Field(description="When a later approval replaced it.")
-
-
-class EventBody(BaseModel):
-    """One status change of a run."""
-
-    event_id: int
-    run_id: int
-    to_status: str
-    at: str
-    by: str
-    note: str
+def _annotation(hint: Any) -> Any:
+    """The pydantic annotation of a record field's type (dates and times as ISO text)."""
+    origin = get_origin(hint)
+    if hint in (date, datetime):
+        return str
+    if origin in (typing.Union, types.UnionType):
+        args = tuple(_annotation(a) for a in get_args(hint))
+        out = args[0]
+        for a in args[1:]:
+            out = out | a
+        return out
+    if origin is tuple:
+        return list[_annotation(get_args(hint)[0])]  # type: ignore[misc]
+    if origin in (dict, Mapping) or hint is Mapping:
+        return dict[str, Any]
+    if dataclasses.is_dataclass(hint):
+        return model_of(hint)  # type: ignore[arg-type]
+    return hint
 
 
-class RunBody(BaseModel):
-    """A stored calibration run with its status (parameters null when the fit failed)."""
+def model_of(
+    cls: type,
+    *,
+    name: str | None = None,
+    exclude: tuple[str, ...] = (),
+    extra: Mapping[str, Any] | None = None,
+    spread_params: bool = True,
+    base: type[BaseModel] | None = None,
+) -> type[BaseModel]:
+    """A pydantic model of the JSON of record ``cls``: its fields less ``exclude``, plus
+    ``extra`` (name -> annotation); a ``params`` field is spread into the seven parameters."""
+    key = cls if (name, exclude, extra, base) == (None, (), None, None) else None
+    if key is not None and key in _MODELS:
+        return _MODELS[key]
+    hints = typing.get_type_hints(cls)
+    docs = _attribute_docs(cls)
+    fields: dict[str, Any] = {}
+    for f in dataclasses.fields(cls):
+        if f.name in exclude:
+            continue
+        hint = hints[f.name]
+        if f.name == "params" and spread_params and cls is not TwoFactorParams:
+            optional = type(None) in get_args(hint)
+            for p, spec in model_of(TwoFactorParams).model_fields.items():
+                ann = float | None if optional else float
+                fields[p] = (ann, Field(description=spec.description))
+            continue
+        fields[f.name] = (_annotation(hint), Field(description=docs.get(f.name)))
+    for extra_name, ann in (extra or {}).items():
+        fields[extra_name] = (ann, Field())
+    doc = (cls.__doc__ or "").strip().split("\n\n")[0]
+    made: type[BaseModel] = create_model(
+        name or f"{cls.__name__}Body", __doc__=doc, __base__=base, **fields
+    )
+    if key is not None:
+        _MODELS[key] = made
+    return made
 
-    run_id: int
-    commodity: str
-    trade_date: str
-    status: str = Field(description="candidate, approved, rejected or superseded.")
-    outcome: str = Field(description="fitted or failed.")
-    mu: float | None
-    kappa: float | None
-    alpha: float | None
-    lam: float | None
-    sigma_spot: float | None
-    sigma_yield: float | None
-    rho: float | None
-    failure_reason: str | None
-    estimate_id: int
-    mode: str
-    buckets: list[dict[str, Any]]
-    diagnostics: dict[str, Any]
-    settings: dict[str, Any]
-    inputs_sha256: str
-    created_at: str
-    created_by: str
-    code_version: str
-    approved_at: str | None
-    approved_by: str | None
-    approval_note: str | None
-    events: list[EventBody]
+
+Parameters = model_of(TwoFactorParams, name="Parameters")
+ApprovedSetBody = model_of(ApprovedSet)
+ApprovalBody = model_of(ApprovalRecord)
+EventBody = model_of(EventRecord)
+FitBody = model_of(
+    FitRecord,
+    name="DiagnosticsBody",
+    exclude=("params", "buckets"),
+    extra={k: (list[str] if k == "binding" else bool) for k in DERIVED_KEYS},
+)
 
 
-class ApprovedBody(RunBody):
-    """The run just approved, and the run it superseded."""
+class FailureBody(BaseModel):
+    """The diagnostics of a failed run: the reason only."""
 
-    superseded_run_id: int | None
+    failure: str | None
+
+
+RunBody = model_of(
+    RunRecord,
+    exclude=("fit", "inputs"),
+    extra={
+        **{p: float | None for p in Parameters.model_fields},
+        "buckets": list[model_of(BucketVols)],  # type: ignore[misc]
+        "diagnostics": FitBody | FailureBody,
+    },
+)
+ApprovedBody = create_model(
+    "ApprovedBody",
+    __doc__="The run just approved, and the run it superseded.",
+    __base__=RunBody,
+    superseded_run_id=(int | None, Field()),
+)
 
 
 class ApproveRequest(BaseModel):

@@ -9,80 +9,10 @@ from typing import Any
 from calib.calibrate.quotes import SCREENED, DroppedQuote
 from calib.calibrate.settings import CalibrationSettings
 from calib.model.twofactor import TwoFactorParams
+from calib.record.fit import BucketVols, ConstraintReport
 from calib.types import FloatArray, IntArray
 
-
-@dataclass(frozen=True, slots=True)
-class BucketVols:
-    """Volatilities in force over calendar years ``[start, end)`` (forward mode: one per bucket).
-
-    ``std_errors``: standard errors of ``(sigma_spot, sigma_yield, rho)`` at the fit (``inf``
-    where the quotes do not identify the parameter, 0 where a constraint holds it);
-    ``yield_set_by``: ``"quotes"`` when the quotes set ``sigma_yield``, ``"anchor"`` when it
-    only follows the anchor, ``"none"`` when neither does (see
-    :mod:`calib.calibrate.uncertainty`). ``None`` where not computed (a stored earlier run).
-    """
-
-    start: float
-    end: float
-    params: TwoFactorParams
-    std_errors: tuple[float, float, float] | None = None
-    yield_set_by: str | None = None
-
-
-@dataclass(frozen=True, slots=True)
-class ConstraintReport:
-    """One constraint at the solution.
-
-    Attributes
-    ----------
-    name : the family (:mod:`calib.calibrate.constraints`): ``psd`` (``|rho| <= 1``),
-        ``decay_bound``, ``yield_floor``, ``sigma_spot_cap``, ``held_rho``, and the held
-        scan's ranges ``spot_limit`` and ``ratio_limit``.
-    form : the constraint in words and symbols.
-    bucket : forward-mode bucket index, ``None`` for a constant fit.
-    slack : distance to the boundary in natural units (>= 0 when met): ``1 - |rho|``,
-        ``rho kappa s1 - s2``, ``s2 - q s2_hist``, ``cap - s1``, ``10 - s1``,
-        ``max_vol_ratio s1 - s2``; ``None`` for ``held_rho``.
-    binds : whether the constraint is active (slack within ``max(1e-7, tolerance)``, or rho
-        held).
-    dual : the multiplier of the final convex sub-problem (objective per unit of the
-        constraint in variance terms), ``None`` where the mode has no conic solve.
-    refit_cost : objective saved by re-fitting without this constraint (in every bucket);
-        ``None`` when not computed (see ``refit_note``).
-    tolerance : the slack's resolution at the solver's stated precision: the constraint is
-        met when ``slack >= -tolerance``.
-    refit_note : why ``refit_cost`` is ``None`` for a binding constraint (no switch, or the
-        re-fit cannot run, with its reason); ``None`` otherwise.
-    """
-
-    name: str
-    form: str
-    bucket: int | None
-    slack: float | None
-    binds: bool
-    dual: float | None
-    refit_cost: float | None
-    tolerance: float = 0.0
-    refit_note: str | None = None
-
-    @property
-    def met(self) -> bool:
-        """Whether the constraint holds within its tolerance."""
-        return self.slack is None or self.slack >= -self.tolerance
-
-    def to_dict(self) -> dict[str, Any]:
-        return {
-            "name": self.name,
-            "form": self.form,
-            "bucket": self.bucket,
-            "slack": self.slack,
-            "binds": self.binds,
-            "dual": self.dual,
-            "refit_cost": self.refit_cost,
-            "tolerance": self.tolerance,
-            "refit_note": self.refit_note,
-        }
+__all__ = ["BucketVols", "CalibrationResult", "ConstraintReport", "FrontierPoint"]
 
 
 @dataclass(frozen=True, slots=True, eq=False)

@@ -134,8 +134,8 @@ def backfill_cmd(
     Days already fitted with the same estimate and settings are skipped, so an interrupted
     backfill resumes where it stopped. Exit code 1 if any day failed.
     """
+    from calib.policy.settings import load_settings
     from calib.workflows import backfill as flow
-    from calib.workflows.runs import load_settings
 
     settings = load_settings(settings_file, commodity)
     with open_store(db) as (store, program):
@@ -146,7 +146,7 @@ def backfill_cmd(
                 commodity,
                 start.date(),
                 end.date(),
-                user=program.user,
+                by=program.user,
                 settings=settings,
                 estimate_id=estimate_id,
                 workers=workers,

@@ -21,7 +21,7 @@ from calib.errors import BandOptionError
 from calib.output import text
 
 if TYPE_CHECKING:  # the workflows are imported by the commands that use them
-    from calib.workflows.compare import Band
+    from calib.output.compare import Band
     from calib.workflows.demo import DemoPlan, DemoSummary
 
 EXIT_FLAGGED = 1
@@ -48,10 +48,12 @@ def report_cmd(
 ) -> None:
     """Write a run's fit report: an HTML page and PNG figures (smiles, residual heat map,
     futures curve and vol term structure, anchor frontier, constraints, gates, inputs)."""
-    from calib.workflows.run_report import write_report
+    from calib.workflows.report import write_report
 
     with open_store(db) as (store, _):
         result = write_report(store.sessions, run_id, out)
+    for note in result.warnings:  # one plain line each; the page shows them too
+        typer.echo(f"warning: {note}", err=True)
     if as_json:
         echo_json(result.to_dict())
     else:
@@ -69,7 +71,7 @@ def parse_band(option: str, value: str | None, default: Band) -> Band:
     BandOptionError
         Not two comma-separated finite numbers with ``LO <= HI``.
     """
-    from calib.workflows.compare import Band
+    from calib.output.compare import Band
 
     if value is None:
         return default
@@ -133,9 +135,9 @@ def compare_cmd(
     By default the runs that were ever approved (superseded ones included); --all for every
     fitted run. Exit code 1 with --fail-on-flag when a day is flagged (the table is printed
     first)."""
-    from calib.workflows import compare as compare_out
-    from calib.workflows.compare import Bands
-    from calib.workflows.run_compare import Selection, compare_runs
+    from calib.output import compare as compare_out
+    from calib.output.compare import Bands
+    from calib.workflows.compare import Selection, compare_runs
 
     default = Bands()
     bands = Bands(
@@ -151,7 +153,9 @@ def compare_cmd(
         written["csv"] = str(compare_out.write_csv(table, csv_file))
     if plot_file is not None:
         title = f"{commodity}: calibrated against historical ({selection.rule})"
-        written["plot"] = str(compare_out.plot(table, plot_file, title=title))
+        written["plot"] = str(
+            compare_out.plot(table, plot_file, title=title, span=(selection.start, selection.end))
+        )
     if as_json:
         echo_json(
             {

@@ -27,7 +27,7 @@ from calib.output import text
 
 if TYPE_CHECKING:  # the store and the workflows are imported by the commands that use them
     from calib.workflows import estimates as estimate_flow
-    from calib.workflows import runs as run_flow
+    from calib.workflows import fit as fit_flow
 
 MIN_DAYS = 250
 """Default of ``--min-days``: ``calib.workflows.estimates.MIN_DAYS`` (a test keeps them equal)."""
@@ -48,6 +48,12 @@ Commodity = Annotated[str, typer.Argument(help="Commodity code.", metavar="COMMO
 RunId = Annotated[int, typer.Argument(help="Run id.", metavar="RUN")]
 ByOpt = Annotated[str, typer.Option("--by", help="Who decides (recorded on the event).")]
 NoteOpt = Annotated[str, typer.Option("--note", help="Why (recorded on the event).")]
+CreatorOpt = Annotated[
+    str | None,
+    typer.Option(
+        "--by", help="Recorded as the run's creator; default $CALIB_USER, else the login name."
+    ),
+]
 
 
 def register(app: typer.Typer) -> None:
@@ -203,7 +209,7 @@ def estimates_cmd(
 # --- runs --------------------------------------------------------------------------------------
 
 
-def _fit_lines(outcome: run_flow.FitOutcome, auto_approve: bool) -> list[str]:
+def _fit_lines(outcome: fit_flow.FitOutcome, auto_approve: bool) -> list[str]:
     run = outcome.run
     lines = text.run_lines(run)
     if run.params is None:
@@ -238,6 +244,7 @@ def fit_cmd(
             help="Approve if every gate passes; else say which failed and exit 3.",
         ),
     ] = False,
+    by: CreatorOpt = None,
     db: DbOption = None,
     as_json: JsonOption = False,
 ) -> None:
@@ -246,15 +253,16 @@ def fit_cmd(
     Exit code 1 when the fit failed (stored as a rejected run with its reason); 3 when
     --auto-approve found a failed gate (the run stays a candidate; the verdict line says why).
     """
-    from calib.workflows import runs as run_flow
+    from calib.policy.settings import load_settings
+    from calib.workflows import fit as fit_flow
 
-    settings = run_flow.load_settings(settings_file, commodity)
+    settings = load_settings(settings_file, commodity)
     with open_store(db) as (store, program):
-        outcome = run_flow.fit_day(
+        outcome = fit_flow.fit_day(
             store.sessions,
             commodity,
             trade_date.date(),
-            user=program.user,
+            by=by or program.user,
             settings=settings,
             estimate_id=estimate_id,
             auto_approve=auto_approve,
@@ -273,10 +281,10 @@ def approve_cmd(
     run_id: RunId, by: ByOpt, note: NoteOpt, db: DbOption = None, as_json: JsonOption = False
 ) -> None:
     """Approve a candidate run; the commodity's previous approved set becomes superseded."""
-    from calib.workflows import runs as run_flow
+    from calib.workflows import approve as approve_flow
 
     with open_store(db) as (store, _):
-        result = run_flow.approve(store.sessions, run_id, by=by, note=note)
+        result = approve_flow.approve(store.sessions, run_id, by=by, note=note)
     if as_json:
         echo_json({**result.run.to_dict(), "superseded_run_id": result.superseded})
         return
@@ -289,10 +297,10 @@ def reject_cmd(
     run_id: RunId, by: ByOpt, note: NoteOpt, db: DbOption = None, as_json: JsonOption = False
 ) -> None:
     """Reject a candidate run."""
-    from calib.workflows import runs as run_flow
+    from calib.workflows import approve as approve_flow
 
     with open_store(db) as (store, _):
-        run = run_flow.reject(store.sessions, run_id, by=by, note=note)
+        run = approve_flow.reject(store.sessions, run_id, by=by, note=note)
     if as_json:
         echo_json(run.to_dict())
     else:
@@ -347,7 +355,7 @@ def show_cmd(run_id: RunId, db: DbOption = None, as_json: JsonOption = False) ->
         lines += text.gate_lines(fit.get("gates", []))
     lines.append("events:")
     lines += [
-        f"  {e.at:%Y-%m-%d %H:%M:%S}  {e.to_status:<10} by {e.actor}: {e.note}" for e in run.events
+        f"  {e.at:%Y-%m-%d %H:%M:%S}  {e.to_status:<10} by {e.by}: {e.note}" for e in run.events
     ]
     if residuals:
         lines += text.residual_table(residuals, contracts)
@@ -364,14 +372,15 @@ def latest_cmd(
     as_json: JsonOption = False,
 ) -> None:
     """The approved parameter set in force (exit code 2 if there is none)."""
-    from calib.store.runs import approved_history, latest_approved
+    from calib.store.runs import approved_history, read_in_force
 
-    with open_store(db) as (store, _), store.sessions.begin() as session:
+    with open_store(db) as (store, _):
         if history:
-            approvals = approved_history(session=session, commodity=commodity)
+            with store.sessions.begin() as session:
+                approvals = approved_history(session=session, commodity=commodity)
             run = None
         else:
-            run = latest_approved(session=session, commodity=commodity, as_of=as_of)
+            run = read_in_force(store.sessions, commodity, as_of=as_of)
     if history:
         if as_json:
             echo_json([a.to_dict() for a in approvals])
@@ -395,10 +404,10 @@ def rerun_cmd(run_id: RunId, db: DbOption = None, as_json: JsonOption = False) -
 
     Exit code 1 if the parameters differ.
     """
-    from calib.workflows import runs as run_flow
+    from calib.workflows import rerun as rerun_flow
 
     with open_store(db) as (store, _):
-        result = run_flow.rerun(store.sessions, run_id)
+        result = rerun_flow.rerun(store.sessions, run_id)
     if as_json:
         echo_json(result.to_dict())
     elif result.identical:

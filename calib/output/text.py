@@ -78,9 +78,7 @@ def params_line(values: Mapping[str, Any], names: Sequence[str] | None = None) -
 def fit_of(run: RunRecord) -> Mapping[str, Any] | None:
     """The run's stored fit as plain values (``rmse``, ``gates``, ``buckets``, ...; ``None``:
     the fit failed): the one place that knows how a run record holds its fit."""
-    if run.params is None:
-        return None
-    return {**run.diagnostics, "buckets": list(run.buckets or ())}
+    return None if run.fit is None else run.fit.to_dict()
 
 
 def vol_points(diagnostics: Mapping[str, Any]) -> tuple[float, float] | None:

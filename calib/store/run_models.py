@@ -50,6 +50,7 @@ from sqlalchemy import (
 )
 from sqlalchemy.orm import Mapped, mapped_column
 
+from calib.model.twofactor import PARAM_NAMES
 from calib.store.base import Base, UtcDateTime, in_check
 
 ESTIMATE_SOURCES = ("kalman", "imported")
@@ -61,8 +62,8 @@ RUN_OUTCOMES = ("fitted", "failed")
 RUN_STATUSES = ("candidate", "approved", "rejected", "superseded")
 """What a run's events move it to (see :data:`calib.store.runs.TRANSITIONS`)."""
 
-PARAM_COLUMNS = ("mu", "kappa", "alpha", "lam", "sigma_spot", "sigma_yield", "rho")
-"""The seven parameter columns, in the order of ``TwoFactorParams``."""
+PARAM_COLUMNS = PARAM_NAMES
+"""The seven parameter columns, named and ordered as ``TwoFactorParams``."""
 
 
 class HistoricalEstimate(Base):
@@ -188,8 +189,8 @@ class CalibrationRun(Base):
     buckets: Mapped[list[dict[str, Any]] | None] = mapped_column(JSON)
     """``[{"start", "end", "params": {...}}]`` in years from the trade date (NULL when failed)."""
     diagnostics: Mapped[dict[str, Any]] = mapped_column(JSON)
-    """``rmse``, ``max_error``, ``constraints``, ``solver``, ``status``, ``iterations``,
-    ``flags``, ``dropped``, ``gates`` (each with value, limit, passed)."""
+    """The rest of the stored-fit record (:class:`calib.record.fit.FitRecord`, with its
+    ``schema_version``); ``{"failure": reason}`` for a failed run."""
     code_version: Mapped[str] = mapped_column(String(64))
 
 
@@ -225,5 +226,6 @@ class RunEvent(Base):
     """The run's commodity, repeated so the latest-approved query needs no join."""
     to_status: Mapped[str] = mapped_column(String(16))
     at: Mapped[datetime] = mapped_column(UtcDateTime())
-    actor: Mapped[str] = mapped_column(String(128))
+    by: Mapped[str] = mapped_column("actor", String(128))
+    """Who moved the run (column ``actor``)."""
     note: Mapped[str] = mapped_column(Text)

@@ -8,25 +8,38 @@ Status
 A run's status at time ``t`` is the ``to_status`` of its newest event at or before ``t``
 (ties by event id). The moves allowed are :data:`TRANSITIONS`; a fitted run starts as
 ``candidate``, a failed one is ``rejected`` from the start. Approving a run is the workflow's
-unit of work (:func:`calib.workflows.runs.approve`), which appends ``superseded`` for the
+unit of work (:func:`calib.workflows.approve.approve`), which appends ``superseded`` for the
 previous approved run of the commodity in the same transaction.
 """
 
 from __future__ import annotations
 
-from collections.abc import Mapping, Sequence
+import fcntl
+import json
+from collections.abc import Iterator, Mapping, Sequence
+from contextlib import AbstractContextManager, contextmanager
 from dataclasses import dataclass, field
-from datetime import date, datetime
+from datetime import UTC, date, datetime
+from pathlib import Path
 from types import MappingProxyType
 from typing import TYPE_CHECKING, Any, cast
 
 import numpy as np
-from sqlalchemy import Select, Table, func, select
-from sqlalchemy.orm import Session
+from sqlalchemy import Engine, Select, Table, and_, bindparam, exists, func, select
+from sqlalchemy.orm import Session, sessionmaker
 
 from calib.errors import IllegalTransitionError, UnknownRunError
 from calib.model.twofactor import PARAM_NAMES, TwoFactorParams
+from calib.record.codec import decode, encode
+from calib.record.fit import (
+    SCHEMA_VERSION,
+    BucketVols,
+    FitRecord,
+    fit_from_columns,
+    fit_to_columns,
+)
 from calib.store.base import utc_now
+from calib.store.engine import sqlite_file
 from calib.store.models import Commodity, FuturesSettlement, OptionQuote, RateQuote
 from calib.store.quotes import (
     DayQuotes,
@@ -74,32 +87,26 @@ _residuals = cast(Table, RunResidual.__table__)
 
 @dataclass(frozen=True, slots=True)
 class EventRecord:
-    """One status change of a run."""
+    """One status change of a run: to what, when, by whom and why."""
 
     event_id: int
     run_id: int
     to_status: str
     at: datetime
-    actor: str
+    by: str
     note: str
 
     def to_dict(self) -> dict[str, Any]:
-        return {
-            "event_id": self.event_id,
-            "run_id": self.run_id,
-            "to_status": self.to_status,
-            "at": self.at.isoformat(),
-            "by": self.actor,
-            "note": self.note,
-        }
+        return encode(self)  # type: ignore[no-any-return]
 
 
 @dataclass(frozen=True, slots=True)
 class RunRecord:
     """A stored calibration run with its status at a time (read-only).
 
-    ``params`` is ``None`` for a failed run. ``status`` is the status at the time the record
-    was read for (``as_of``, default now); ``approved_at`` / ``approved_by`` / ``approval_note``
+    ``fit`` is the stored-fit record (:class:`~calib.record.fit.FitRecord`), ``None`` for a
+    failed run. ``status`` is the status at the time the record was read for (``as_of``,
+    default now); ``approved_at`` / ``approved_by`` / ``approval_note`` / ``approval_id``
     come from its ``approved`` event if it had one by then.
     """
 
@@ -108,9 +115,7 @@ class RunRecord:
     trade_date: date
     status: str
     outcome: str
-    params: TwoFactorParams | None
-    buckets: tuple[Mapping[str, Any], ...]
-    diagnostics: Mapping[str, Any]
+    fit: FitRecord | None
     settings: Mapping[str, Any]
     inputs: Mapping[str, Any] = field(repr=False)
     inputs_sha256: str
@@ -123,11 +128,33 @@ class RunRecord:
     approved_at: datetime | None
     approved_by: str | None
     approval_note: str | None
+    approval_id: int | None
     events: tuple[EventRecord, ...]
 
+    @property
+    def params(self) -> TwoFactorParams | None:
+        """The parameter set (``None`` for a failed run)."""
+        return None if self.fit is None else self.fit.params
+
+    @property
+    def buckets(self) -> tuple[BucketVols, ...]:
+        """The forward buckets (empty for a failed run)."""
+        return () if self.fit is None else self.fit.buckets
+
     def to_dict(self, *, with_inputs: bool = False) -> dict[str, Any]:
-        """Plain values for JSON: the seven parameter names at the top level (null if failed)."""
-        params = self.params.to_dict() if self.params is not None else dict.fromkeys(PARAM_NAMES)
+        """Plain values for JSON: the seven parameter names at the top level (null if failed),
+        ``buckets`` and ``diagnostics`` (the rest of the fit record; ``{"failure": reason}``
+        for a failed run)."""
+        diagnostics: dict[str, Any]
+        if self.fit is None:
+            params: dict[str, Any] = dict.fromkeys(PARAM_NAMES)
+            buckets: list[Any] = []
+            diagnostics = {"failure": self.failure_reason}
+        else:
+            params = self.fit.params.to_dict()
+            diagnostics = self.fit.to_dict()
+            buckets = diagnostics.pop("buckets")
+            del diagnostics["params"]
         out: dict[str, Any] = {
             "run_id": self.run_id,
             "commodity": self.commodity,
@@ -138,8 +165,8 @@ class RunRecord:
             "failure_reason": self.failure_reason,
             "estimate_id": self.estimate_id,
             "mode": self.mode,
-            "buckets": [dict(b) for b in self.buckets],
-            "diagnostics": dict(self.diagnostics),
+            "buckets": buckets,
+            "diagnostics": diagnostics,
             "settings": dict(self.settings),
             "inputs_sha256": self.inputs_sha256,
             "created_at": self.created_at.isoformat(),
@@ -148,6 +175,7 @@ class RunRecord:
             "approved_at": None if self.approved_at is None else self.approved_at.isoformat(),
             "approved_by": self.approved_by,
             "approval_note": self.approval_note,
+            "approval_id": self.approval_id,
             "events": [e.to_dict() for e in self.events],
         }
         if with_inputs:
@@ -164,20 +192,57 @@ class ApprovalRecord:
     params: TwoFactorParams
     approved_at: datetime
     approved_by: str
-    note: str
+    approval_note: str
+    approval_id: int
     superseded_at: datetime | None
     """When a later approval replaced it (``None``: still in force)."""
 
     def to_dict(self) -> dict[str, Any]:
-        return {
-            "run_id": self.run_id,
-            "trade_date": self.trade_date.isoformat(),
-            **self.params.to_dict(),
-            "approved_at": self.approved_at.isoformat(),
-            "approved_by": self.approved_by,
-            "note": self.note,
-            "superseded_at": None if self.superseded_at is None else self.superseded_at.isoformat(),
-        }
+        """Plain values for JSON: the seven parameter names at the top level."""
+        return _flat_params(encode(self))
+
+
+@dataclass(frozen=True, slots=True)
+class ApprovedSet:
+    """An approved parameter set of one commodity, as a pricer uses it (read-only).
+
+    Attributes
+    ----------
+    run_id : the calibration run the set comes from.
+    commodity : commodity code.
+    trade_date : the trading day the run was fitted to.
+    approved_at, approved_by, approval_note : the approval event (UTC time, who, why).
+    approval_id : the approval event's id (changes whenever another set comes into force).
+    mode : calibration mode (``constant``, ``forward``, ``held_rho``).
+    params : the parameter set (in forward mode the first bucket's volatilities).
+    buckets : the forward buckets, in years from the trade date (one in constant mode).
+    """
+
+    run_id: int
+    commodity: str
+    trade_date: date
+    approved_at: datetime
+    approved_by: str
+    approval_note: str
+    approval_id: int
+    mode: str
+    params: TwoFactorParams
+    buckets: tuple[BucketVols, ...]
+
+    def to_dict(self) -> dict[str, Any]:
+        """Plain values for JSON: the seven parameter names at the top level."""
+        return _flat_params(encode(self))
+
+
+def _flat_params(data: dict[str, Any]) -> dict[str, Any]:
+    """``data`` with its ``params`` object spread into the top level (the stable keys)."""
+    out: dict[str, Any] = {}
+    for key, value in data.items():
+        if key == "params":
+            out.update(value)
+        else:
+            out[key] = value
+    return out
 
 
 def _params_of(row: CalibrationRun) -> TwoFactorParams | None:
@@ -186,13 +251,20 @@ def _params_of(row: CalibrationRun) -> TwoFactorParams | None:
     return TwoFactorParams(**{name: getattr(row, name) for name in PARAM_NAMES})
 
 
+def _fit_of(row: CalibrationRun) -> FitRecord | None:
+    params = _params_of(row)
+    if params is None:
+        return None
+    return fit_from_columns(params, row.buckets, row.diagnostics)
+
+
 def _event(row: RunEvent) -> EventRecord:
     return EventRecord(
         event_id=row.id,
         run_id=row.run_id,
         to_status=row.to_status,
         at=row.at,
-        actor=row.actor,
+        by=row.by,
         note=row.note,
     )
 
@@ -213,9 +285,7 @@ def _record(session: Session, row: CalibrationRun, code: str, as_of: datetime | 
         trade_date=row.trade_date,
         status=events[-1].to_status if events else "unknown",
         outcome=row.outcome,
-        params=_params_of(row),
-        buckets=tuple(MappingProxyType(b) for b in (row.buckets or [])),
-        diagnostics=MappingProxyType(row.diagnostics),
+        fit=_fit_of(row),
         settings=MappingProxyType(row.settings),
         inputs=MappingProxyType(row.inputs),
         inputs_sha256=row.inputs_sha256,
@@ -226,8 +296,9 @@ def _record(session: Session, row: CalibrationRun, code: str, as_of: datetime | 
         created_by=row.created_by,
         code_version=row.code_version,
         approved_at=None if approved is None else approved.at,
-        approved_by=None if approved is None else approved.actor,
+        approved_by=None if approved is None else approved.by,
         approval_note=None if approved is None else approved.note,
+        approval_id=None if approved is None else approved.event_id,
         events=tuple(events),
     )
 
@@ -247,15 +318,23 @@ def add_run(
     settings: Mapping[str, Any],
     inputs: Mapping[str, Any],
     inputs_sha256: str,
-    outcome: str,
     failure_reason: str | None,
-    params: TwoFactorParams | None,
-    buckets: Sequence[Mapping[str, Any]] | None,
-    diagnostics: Mapping[str, Any],
+    fit: FitRecord | None,
     code_version: str,
 ) -> int:
-    """Insert a run row (no events, no residuals); returns its id."""
-    values = params.to_dict() if params is not None else dict.fromkeys(PARAM_NAMES)
+    """Insert a run row (no events, no residuals); returns its id.
+
+    ``fit`` is the stored-fit record of a fitted run; ``None`` stores a failed run with
+    ``failure_reason``.
+    """
+    if fit is None:
+        assert failure_reason is not None, "a failed run needs its reason"
+        values: dict[str, Any] = dict.fromkeys(PARAM_NAMES)
+        buckets = None
+        diagnostics: dict[str, Any] = {"schema_version": SCHEMA_VERSION, "failure": failure_reason}
+    else:
+        params, buckets, diagnostics = fit_to_columns(fit)
+        values = params.to_dict()
     row = CalibrationRun(
         commodity_id=commodity_id,
         trade_date=trade_date,
@@ -266,10 +345,10 @@ def add_run(
         settings=dict(settings),
         inputs=dict(inputs),
         inputs_sha256=inputs_sha256,
-        outcome=outcome,
+        outcome="failed" if fit is None else "fitted",
         failure_reason=failure_reason,
-        buckets=None if buckets is None else [dict(b) for b in buckets],
-        diagnostics=dict(diagnostics),
+        buckets=buckets,
+        diagnostics=diagnostics,
         code_version=code_version,
         **values,
     )
@@ -301,7 +380,7 @@ def append_event(
     session: Session,
     run_id: int,
     to_status: str,
-    actor: str,
+    by: str,
     note: str,
     at: datetime | None = None,
 ) -> EventRecord:
@@ -331,7 +410,7 @@ def append_event(
         commodity_id=run.commodity_id,
         to_status=to_status,
         at=at or utc_now(),
-        actor=actor,
+        by=by,
         note=note,
     )
     session.add(row)
@@ -340,39 +419,173 @@ def append_event(
 
 
 def lock_commodity(*, session: Session, commodity_id: int) -> None:
-    """Hold the commodity's row until the transaction ends (``SELECT ... FOR UPDATE``).
+    """Hold the commodity's row and its approval lock until the transaction ends.
 
-    Serialises approvals of one commodity on PostgreSQL; SQLite has no row locks (SQLAlchemy
-    drops ``FOR UPDATE``) and serialises every writer with ``BEGIN IMMEDIATE`` instead
-    (:func:`calib.store.engine.begin_write`).
+    Serialises the writers of one commodity's runs on PostgreSQL (``SELECT ... FOR UPDATE``)
+    and holds the approval lock exclusively there (``pg_advisory_xact_lock``), so that readers
+    of the set in force wait for the commit (:func:`wait_for_approvals`). SQLite has no row
+    locks and serialises every writer with ``BEGIN IMMEDIATE``
+    (:func:`calib.store.engine.begin_write`); its approval lock is a file lock held around the
+    whole transaction (:func:`approvals_held`).
     """
     session.execute(select(Commodity.id).where(Commodity.id == commodity_id).with_for_update())
+    if session.get_bind().dialect.name == "postgresql":
+        session.execute(select(func.pg_advisory_xact_lock(APPROVAL_LOCK_SPACE, commodity_id)))
+
+
+APPROVAL_LOCK_SPACE = 0x63616C69
+"""First key of the PostgreSQL advisory locks that guard approvals (the second: commodity id)."""
+
+
+def approval_lock_file(engine: Engine) -> Path | None:
+    """The file whose lock guards approvals on a SQLite store (``None``: not a SQLite file)."""
+    database = sqlite_file(engine.url)
+    return None if database is None else database.with_name(database.name + "-approvals.lock")
+
+
+@contextmanager
+def approvals_held(sessions: sessionmaker[Session]) -> Iterator[None]:
+    """Hold the approval lock exclusively around a write transaction that may approve.
+
+    Why: an approval's event is stamped with the time before its commit; a reader asking for
+    the set in force at a moment after the stamp, before the commit, must not get the old set
+    and later the new one. Readers wait behind this lock (:func:`wait_for_approvals`), so the
+    answer for a past moment never changes. On SQLite this is an exclusive ``flock`` on
+    :func:`approval_lock_file` (taken before ``BEGIN IMMEDIATE``, released after the commit);
+    on PostgreSQL the transaction takes an advisory lock itself (:func:`lock_commodity`).
+    """
+    with _flocked(_engine_of(sessions), fcntl.LOCK_EX):
+        yield
+
+
+def wait_for_approvals(session: Session, commodity_id: int) -> None:
+    """PostgreSQL: wait until no approval of the commodity is being written (a shared advisory
+    lock taken and released at once). Call before reading the set in force in a new snapshot.
+    SQLite readers take a shared ``flock`` instead (:func:`approvals_read`)."""
+    if session.get_bind().dialect.name == "postgresql":
+        lock = func.pg_advisory_xact_lock_shared(APPROVAL_LOCK_SPACE, commodity_id)
+        session.execute(select(lock))
+
+
+def approvals_read(engine: Engine) -> AbstractContextManager[None]:
+    """SQLite: hold the approval lock shared for one read of the set in force."""
+    return _flocked(engine, fcntl.LOCK_SH)
+
+
+@contextmanager
+def _flocked(engine: Engine, mode: int) -> Iterator[None]:
+    path = approval_lock_file(engine)
+    if path is None:
+        yield
+        return
+    with path.open("a") as handle:
+        fcntl.flock(handle, mode)
+        try:
+            yield
+        finally:
+            fcntl.flock(handle, fcntl.LOCK_UN)
+
+
+def _engine_of(sessions: sessionmaker[Session]) -> Engine:
+    bind = sessions.kw["bind"]
+    assert isinstance(bind, Engine), "a store's sessions are bound to its engine"
+    return bind
 
 
 # --- reading -----------------------------------------------------------------------------------
 
 
-def latest_approved_stmt(commodity_id: int, as_of: datetime) -> Select[Any]:
-    """The run id of the newest ``approved`` event of a commodity at or before ``as_of``.
+def in_force_stmt() -> Select[Any]:
+    """The one definition of the approved set in force: commodity ``:cid`` at time ``:t``.
 
-    One seek on ``ix_run_events_commodity_id`` (``commodity_id, to_status, at, id``).
+    The newest ``approved`` event of the commodity at or before ``:t`` whose run was not
+    ``superseded`` by ``:t`` (ties by event id), joined to its run: the columns of
+    :data:`IN_FORCE_COLUMNS`. One seek on ``ix_run_events_commodity_id`` (``commodity_id,
+    to_status, at, id``). The CLI (:func:`latest_approved`), the pricers' client and the HTTP
+    API all run this statement; :func:`approved_set_of` builds the answer from its row.
     """
+    events = cast(Table, RunEvent.__table__)
+    runs = cast(Table, CalibrationRun.__table__)
+    ended = events.alias("ended")
+    t = bindparam("t", type_=RunEvent.at.type)
     return (
-        select(RunEvent.run_id)
-        .where(
-            RunEvent.commodity_id == commodity_id,
-            RunEvent.to_status == "approved",
-            RunEvent.at <= as_of,
+        select(
+            runs.c.id,
+            runs.c.trade_date,
+            runs.c.mode,
+            runs.c.buckets,
+            *[runs.c[n] for n in PARAM_NAMES],
+            events.c.id,
+            events.c.at,
+            events.c.actor,
+            events.c.note,
         )
-        .order_by(RunEvent.at.desc(), RunEvent.id.desc())
+        .join_from(events, runs, runs.c.id == events.c.run_id)
+        .where(
+            events.c.commodity_id == bindparam("cid"),
+            events.c.to_status == "approved",
+            events.c.at <= t,
+            ~exists().where(
+                and_(
+                    ended.c.run_id == events.c.run_id,
+                    ended.c.to_status == "superseded",
+                    ended.c.at <= t,
+                )
+            ),
+        )
+        .order_by(events.c.at.desc(), events.c.id.desc())
         .limit(1)
     )
 
 
-def latest_approved(
+IN_FORCE_COLUMNS = (
+    "run_id",
+    "trade_date",
+    "mode",
+    "buckets",
+    *PARAM_NAMES,
+    "approval_id",
+    "approved_at",
+    "approved_by",
+    "approval_note",
+)
+"""The columns of a row of :func:`in_force_stmt`, in order."""
+
+
+def approved_set_of(commodity: str, row: Sequence[Any]) -> ApprovedSet:
+    """The :class:`ApprovedSet` of a row of :func:`in_force_stmt`.
+
+    The row may come from SQLAlchemy or straight from a driver (SQLite then hands back text
+    for dates, times and JSON).
+    """
+    v = dict(zip(IN_FORCE_COLUMNS, row, strict=True))
+    trade_date, at, buckets = v["trade_date"], v["approved_at"], v["buckets"]
+    if isinstance(trade_date, str):
+        trade_date = date.fromisoformat(trade_date)
+    if isinstance(at, str):
+        at = datetime.fromisoformat(at)
+    at = at.replace(tzinfo=UTC) if at.tzinfo is None else at.astimezone(UTC)
+    if isinstance(buckets, str):
+        buckets = json.loads(buckets)
+    return ApprovedSet(
+        run_id=v["run_id"],
+        commodity=commodity,
+        trade_date=trade_date,
+        approved_at=at,
+        approved_by=v["approved_by"],
+        approval_note=v["approval_note"],
+        approval_id=v["approval_id"],
+        mode=v["mode"],
+        params=TwoFactorParams(**{n: v[n] for n in PARAM_NAMES}),
+        buckets=tuple(decode(BucketVols, b) for b in buckets or ()),
+    )
+
+
+def approved_set(
     *, session: Session, commodity: str, as_of: datetime | None = None
-) -> RunRecord | None:
-    """The approved run of ``commodity`` in force at ``as_of`` (default now), or ``None``.
+) -> ApprovedSet | None:
+    """The :class:`ApprovedSet` of ``commodity`` in force at ``as_of`` (default now), or
+    ``None`` (:func:`in_force_stmt`).
 
     Raises
     ------
@@ -380,13 +593,55 @@ def latest_approved(
         ``commodity`` is not registered.
     """
     cid = require_commodity(session=session, code=commodity).id
+    row = _in_force_row(session, cid, as_of or utc_now())
+    return None if row is None else approved_set_of(commodity, row)
+
+
+def in_force_run_id(*, session: Session, commodity_id: int, as_of: datetime) -> int | None:
+    """The run id of the approved set in force at ``as_of`` (:func:`in_force_stmt`)."""
+    row = _in_force_row(session, commodity_id, as_of)
+    return None if row is None else int(row[0])
+
+
+def _in_force_row(session: Session, commodity_id: int, as_of: datetime) -> tuple[Any, ...] | None:
+    row = session.execute(in_force_stmt(), {"cid": commodity_id, "t": as_of}).one_or_none()
+    return None if row is None else tuple(row)
+
+
+def latest_approved(
+    *, session: Session, commodity: str, as_of: datetime | None = None
+) -> RunRecord | None:
+    """The run of the approved set of ``commodity`` in force at ``as_of`` (default now), with
+    its status at that time, or ``None`` (:func:`in_force_stmt`).
+
+    Raises
+    ------
+    UnknownCommodityError
+        ``commodity`` is not registered.
+    """
     when = as_of or utc_now()
-    run_id = session.scalars(latest_approved_stmt(cid, when)).one_or_none()
-    if run_id is None:
+    found = approved_set(session=session, commodity=commodity, as_of=when)
+    if found is None:
         return None
-    row = session.get(CalibrationRun, run_id)
+    row = session.get(CalibrationRun, found.run_id)
     assert row is not None  # foreign key
     return _record(session, row, commodity, when)
+
+
+def read_in_force(
+    sessions: sessionmaker[Session], commodity: str, as_of: datetime | None = None
+) -> RunRecord | None:
+    """:func:`latest_approved` in a read transaction of its own, after any approval being
+    written has committed (the answer for a past moment never changes; see
+    :func:`approvals_held`). For readers outside a write; the CLI's ``latest`` uses it.
+    """
+    when = as_of or utc_now()
+    with approvals_read(_engine_of(sessions)):
+        with sessions.begin() as session:
+            cid = require_commodity(session=session, code=commodity).id
+            wait_for_approvals(session, cid)
+        with sessions.begin() as session:
+            return latest_approved(session=session, commodity=commodity, as_of=when)
 
 
 def get_run(*, session: Session, run_id: int, as_of: datetime | None = None) -> RunRecord | None:
@@ -474,8 +729,9 @@ def approved_history(*, session: Session, commodity: str) -> list[ApprovalRecord
                 trade_date=run.trade_date,
                 params=params,
                 approved_at=event.at,
-                approved_by=event.actor,
-                note=event.note,
+                approved_by=event.by,
+                approval_note=event.note,
+                approval_id=event.id,
                 superseded_at=ended.get(run.id),
             )
         )

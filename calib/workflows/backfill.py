@@ -5,9 +5,9 @@ Units of work
 Days are read :data:`DAYS_PER_TASK` at a time, in one read transaction and one query per
 quote table (:func:`calib.store.quotes.load_days`, which gives each day exactly what
 :func:`~calib.store.quotes.load_day` gives it), and fitted outside any transaction
-(:func:`calib.workflows.runs.attempt_fit`). The runs are written :data:`DAYS_PER_WRITE` days
-per write transaction (:func:`calib.workflows.runs.store_attempts`, the code
-:func:`~calib.workflows.runs.fit_day` uses for its one day): each run with its residuals and
+(:func:`calib.workflows.fit.attempt_fit`). The runs are written :data:`DAYS_PER_WRITE` days
+per write transaction (:func:`calib.workflows.fit.store_attempts`, the code
+:func:`~calib.workflows.fit.fit_day` uses for its one day): each run with its residuals and
 first event, every day of the batch or, interrupted, none of them. The progress listener
 hears of a day only once its batch is committed. A day the calibration refuses is stored as
 a failed run (status ``rejected``) with its reason; a day with futures but no options is
@@ -20,7 +20,7 @@ and fits the tasks in parallel; each worker process builds one
 :class:`~calib.calibrate.Calibrator` per problem shape (forward mode: per number of expiry
 buckets) and re-solves it for every day it is given (a fresh solver each time, no warm
 start: a day's result does not depend on the days before it, so one worker, two, and
-:func:`calib.workflows.runs.rerun` agree bit for bit). The calling process is the one writer:
+:func:`calib.workflows.rerun.rerun` agree bit for bit). The calling process is the one writer:
 it stores the days strictly in date order, so with ``auto_approve`` each day is gated
 against, and supersedes, the approved set of the day before (an earlier day of the same
 batch included). SQLite admits one writer at a time (WAL), and a day's write is a small part
@@ -33,7 +33,9 @@ complete runs). A day is skipped when it already has a run of the commodity keye
 **estimate id** and the same **settings hash**: the SHA-256 of the canonical JSON (sorted keys,
 no spaces) of the run's stored settings, ``{"calibration": ..., "gates": ...}``. So a rerun of
 the same command fits only the days still missing; changed settings (or another estimate) fit
-every day again, as new runs beside the old ones.
+every day again, as new runs beside the old ones. Two backfills of the same range at once
+never store a day twice: each write transaction asks again, under the commodity's write lock,
+which days are stored, and skips those (they are reported as skipped).
 """
 
 from __future__ import annotations
@@ -49,22 +51,18 @@ from dataclasses import dataclass, field
 from datetime import date
 from typing import Any, Protocol
 
+from sqlalchemy.orm import Session
+
 from calib.calibrate import CalibrationSettings, Calibrator, OptionQuotes, bucket_edges
 from calib.calibrate.quotes import prepare
 from calib.errors import BackfillRangeError
 from calib.model.twofactor import TwoFactorParams
+from calib.policy.settings import RunSettings, default_settings
 from calib.store.engine import Store, make_store
 from calib.store.quotes import DayQuotes, load_days, trade_dates
 from calib.store.runs import run_keys
+from calib.workflows.fit import Attempt, attempt_fit, choose_estimate, store_attempts
 from calib.workflows.provenance import inputs_sha256
-from calib.workflows.runs import (
-    Attempt,
-    GateLimits,
-    RunSettings,
-    attempt_fit,
-    choose_estimate,
-    store_attempts,
-)
 
 DAYS_PER_TASK = 16
 """Days a worker reads in one query per table and fits before handing them back."""
@@ -315,7 +313,7 @@ def backfill(
     start: date,
     end: date,
     *,
-    user: str,
+    by: str,
     settings: RunSettings | None = None,
     estimate_id: int | None = None,
     workers: int = 1,
@@ -329,7 +327,7 @@ def backfill(
     store : the store (its URL is opened again by each worker process).
     commodity : commodity code.
     start, end : first and last trading day (inclusive); the days are those with futures.
-    user : recorded as the runs' creator (and approver with ``auto_approve``).
+    by : recorded as the runs' creator (and approver with ``auto_approve``).
     settings : calibration settings and gate limits (defaults when None).
     estimate_id : the historical estimate to hold fixed (default: newest converged).
     workers : processes that read and fit; 1 fits in this process.
@@ -345,20 +343,25 @@ def backfill(
         raise BackfillRangeError(f"--from {start} is after --to {end}")
     if workers < 1:
         raise BackfillRangeError(f"workers must be at least 1, not {workers}")
-    settings = settings or RunSettings(CalibrationSettings(), GateLimits())
+    settings = settings or default_settings()
     progress = progress or _Silent()
     key = settings_sha256(settings)
     began = time.perf_counter()
     with store.sessions.begin() as session:
         estimate = choose_estimate(session, commodity, estimate_id)
         dates = trade_dates(session=session, commodity=commodity, start=start, end=end)
-        done = {
-            k.trade_date
-            for k in run_keys(session=session, commodity=commodity, start=start, end=end)
-            if k.estimate_id == estimate.estimate_id and inputs_sha256(dict(k.settings)) == key
-        }
+
+        def stored_days(session: Session) -> set[date]:
+            """Days of the range that have a run with this estimate and these settings."""
+            return {
+                k.trade_date
+                for k in run_keys(session=session, commodity=commodity, start=start, end=end)
+                if k.estimate_id == estimate.estimate_id and inputs_sha256(dict(k.settings)) == key
+            }
+
+        done = stored_days(session)
     todo = [d for d in dates if d not in done]
-    skipped = tuple(d for d in dates if d in done)
+    skipped = [d for d in dates if d in done]
     progress.start(len(todo), len(skipped))
     fitter = DayFitter(
         store.engine.url.render_as_string(hide_password=False),
@@ -380,8 +383,9 @@ def backfill(
                 fits,
                 estimate.estimate_id,
                 settings,
-                user=user,
+                by=by,
                 auto_approve=auto_approve,
+                skip_stored=stored_days,
             )
         )
         write_seconds += time.perf_counter() - t0
@@ -390,6 +394,9 @@ def backfill(
                 day = BackfillDay(f.trade_date, "no_quotes", None, f.reason, False)
             else:
                 run = next(stored)
+                if run.run_id is None:  # another backfill stored the day meanwhile
+                    skipped.append(f.trade_date)
+                    continue
                 failure = f.attempt.failure
                 outcome = "failed" if failure is not None else "fitted"
                 day = BackfillDay(f.trade_date, outcome, run.run_id, failure, run.auto_approved)
@@ -414,7 +421,7 @@ def backfill(
         settings_sha256=key,
         workers=workers,
         trade_dates=len(dates),
-        skipped=skipped,
+        skipped=tuple(sorted(skipped)),
         days=tuple(days),
         seconds=time.perf_counter() - began,
         fit_seconds=fit_seconds,

@@ -9,7 +9,7 @@ the estimate's settings say so (``rate_source``).
 
 **Convergence.** An estimate that does not converge is stored with ``converged = False`` and
 its message, and is never picked by the calibration unless named (and then refused, see
-:func:`calib.workflows.runs.fit_day`).
+:func:`calib.workflows.fit.fit_day`).
 """
 
 from __future__ import annotations

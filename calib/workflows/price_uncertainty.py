@@ -48,12 +48,13 @@ from calib.estimate.uncertainty import DeltaMethod, Sampled, delta_method, sampl
 from calib.model.black76 import Kind, undiscounted_price
 from calib.model.spread import ForwardVols, SpreadOption, spread_greeks, spread_law
 from calib.model.twofactor import TwoFactorParams
+from calib.policy.settings import RunSettings
 from calib.store.estimates import EstimateRecord, get_estimate, list_series, series_estimates
 from calib.store.quotes import DAYS_PER_YEAR, load_day
 from calib.store.runs import RunRecord, run_quotes
 from calib.workflows.estimates import none_if_nan
+from calib.workflows.fit import attempt_fit, option_quotes
 from calib.workflows.pricing import SpreadPrice, choose_run, run_vols
-from calib.workflows.runs import RunSettings, attempt_fit, option_quotes
 
 DRAWS = 200
 """Default draws from the estimate's asymptotic law (the sampling check)."""
@@ -333,13 +334,8 @@ def price_uncertainty(
         if attempt.result is None:
             return math.nan
         r = attempt.result
-        refit = replace(
-            run,
-            params=r.params,
-            buckets=tuple(
-                {"start": b.start, "end": b.end, "params": b.params.to_dict()} for b in r.buckets
-            ),
-        )
+        assert run.fit is not None  # a fitted run was chosen
+        refit = replace(run, fit=replace(run.fit, params=r.params, buckets=r.buckets))
         return price_of(run_vols(refit, pricing_date, expiry_years))
 
     cov = np.array(

@@ -141,18 +141,17 @@ def run_vols(
     if run.mode != "forward" or len(run.buckets) < 2:
         return run.params
     shift = _years(run.trade_date, pricing_date)
-    kept = [b for b in run.buckets if float(b["end"]) - shift > 0.0]
+    kept = [b for b in run.buckets if b.end - shift > 0.0]
     if not kept:  # every bucket is over: the last one's volatilities hold from now on
         kept = [run.buckets[-1]]
-    edges = [0.0] + [float(b["end"]) - shift for b in kept]
+    edges = [0.0] + [b.end - shift for b in kept]
     edges[-1] = max(edges[-1], expiry_years)
-    params = [b["params"] for b in kept]
     return ForwardVols(
         kappa=run.params.kappa,
         edges=np.array(edges),
-        sigma_spot=np.array([p["sigma_spot"] for p in params]),
-        sigma_yield=np.array([p["sigma_yield"] for p in params]),
-        rho=np.array([p["rho"] for p in params]),
+        sigma_spot=np.array([b.params.sigma_spot for b in kept]),
+        sigma_yield=np.array([b.params.sigma_yield for b in kept]),
+        rho=np.array([b.params.rho for b in kept]),
     )
 
 

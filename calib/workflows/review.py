@@ -2,8 +2,8 @@
 their gates, drift alerts, and the approval history; read from the store, nothing written.
 
 The review pages of ``calib serve`` (:mod:`calib.api.review`) render these records; deciding
-(approve, reject) goes through :func:`calib.workflows.runs.approve` and
-:func:`calib.workflows.runs.reject` like the CLI.
+(approve, reject) goes through :func:`calib.workflows.approve.approve` and
+:func:`calib.workflows.approve.reject` like the CLI.
 
 Notes
 -----
@@ -24,6 +24,14 @@ from datetime import date, timedelta
 
 from sqlalchemy.orm import Session, sessionmaker
 
+from calib.output.compare import (
+    MEASURE_KIND,
+    QUANTITIES,
+    Band,
+    Bands,
+    CompareTable,
+    compare_series,
+)
 from calib.store.quotes import CommodityRecord, list_commodities, require_commodity
 from calib.store.runs import (
     ApprovalRecord,
@@ -34,15 +42,7 @@ from calib.store.runs import (
     newest_trade_date,
     require_run,
 )
-from calib.workflows.compare import (
-    MEASURE_KIND,
-    QUANTITIES,
-    Band,
-    Bands,
-    CompareTable,
-    compare_series,
-)
-from calib.workflows.run_compare import Selection, compare_rows
+from calib.workflows.compare import Selection, compare_rows
 
 ALERT_DAYS = 31
 """Calendar days back from the newest trade date that the overview's alerts look at."""

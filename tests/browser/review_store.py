@@ -9,20 +9,14 @@ from dataclasses import dataclass
 from datetime import datetime
 from pathlib import Path
 
-from calib.calibrate import CalibrationSettings
+from calib.policy.settings import default_settings
 from calib.store.base import utc_now
 from calib.store.engine import make_store
 from calib.store.estimates import latest_estimate
 from calib.store.migrate import upgrade
 from calib.store.quotes import load_day
-from calib.workflows.runs import (
-    Attempt,
-    GateLimits,
-    RunSettings,
-    approve,
-    fit_day,
-    store_attempt,
-)
+from calib.workflows.approve import approve
+from calib.workflows.fit import Attempt, fit_day, store_attempt
 from tests.workflows.small_day import load_with_estimate
 
 
@@ -56,10 +50,10 @@ def build(folder: Path) -> ReviewStore:
         upgrade(store.engine)
         data = load_with_estimate(store, folder)
         first, second, today = data.days[-3:]
-        one = fit_day(store.sessions, data.code, first, user="quant.a").run.run_id
+        one = fit_day(store.sessions, data.code, first, by="quant.a").run.run_id
         approve(store.sessions, one, by="quant.a", note="first morning, checked by hand")
         between = utc_now()
-        two = fit_day(store.sessions, data.code, second, user="quant.a").run.run_id
+        two = fit_day(store.sessions, data.code, second, by="quant.a").run.run_id
         approve(store.sessions, two, by="quant.b", note="second morning")
         with store.sessions.begin() as session:
             day = load_day(session=session, commodity=data.code, trade_date=today)
@@ -69,12 +63,12 @@ def build(folder: Path) -> ReviewStore:
             store.sessions,
             day,
             estimate.estimate_id,
-            RunSettings(CalibrationSettings(), GateLimits()),
+            default_settings(),
             Attempt(None, "TooFewQuotesError: 3 quotes left after the filters", ()),
-            user="quant.a",
+            by="quant.a",
             auto_approve=False,
         ).run_id
-        three = fit_day(store.sessions, data.code, today, user="quant.a").run.run_id
+        three = fit_day(store.sessions, data.code, today, by="quant.a").run.run_id
     finally:
         store.engine.dispose()
     return ReviewStore(path, data.code, (one, two), between, three, failed)

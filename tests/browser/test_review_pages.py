@@ -15,8 +15,8 @@ import pytest
 
 from calib.api.app import create_app
 from calib.client import Client
+from calib.output.report import FIGURES
 from calib.settings import Settings
-from calib.workflows.report import FIGURES
 from tests.browser.harness import chromium, new_page, screenshot
 from tests.browser.review_store import ReviewStore, build
 from tests.serving.test_api import serving
@@ -87,7 +87,7 @@ def test_overview_lists_the_candidate_read_only_without_a_token(
         assert row.locator(".status").inner_text() == "candidate"
         chips = row.locator(".gate")
         with Client(url) as client:
-            stored = client.run(review_store.candidate).diagnostics["gates"]
+            stored = client.run(review_store.candidate).to_dict()["diagnostics"]["gates"]
         assert chips.count() == len(stored)
         for chip, gate in zip(chips.all(), stored, strict=True):
             assert gate["name"] in chip.inner_text()
@@ -131,7 +131,7 @@ def test_approving_with_the_token_changes_the_set_in_force(
         with Client(url) as client:
             latest = client.latest(review_store.code)
         assert latest.run_id == run and latest.approved_by == "quant.c"
-        assert latest.note == HOSTILE_NOTE
+        assert latest.approval_note == HOSTILE_NOTE
         assert page.evaluate("document.cookie") == ""
         assert page.evaluate("window.localStorage.length + window.sessionStorage.length") == 0
         assert page.locator(".inforce .note").inner_text() == HOSTILE_NOTE
@@ -186,8 +186,9 @@ def test_run_page_shows_gates_constraints_residuals_and_every_figure(
         assert page.locator("figure img").count() == len(FIGURES)
         with Client(url) as client:
             record = client.run(run)
-        assert page.locator("table.gate-table tbody tr").count() == len(record.diagnostics["gates"])
-        assert page.locator("table.residuals tbody tr").count() == record.diagnostics["n_quotes"]
+        assert record.fit is not None
+        assert page.locator("table.gate-table tbody tr").count() == len(record.fit.gates)
+        assert page.locator("table.residuals tbody tr").count() == record.fit.n_quotes
         assert "decay_bound" in page.locator("main").inner_text()
         assert problems == []
         screenshot(page, "run")

@@ -20,7 +20,7 @@ from calib.errors import (
     InfeasibleSettingsError,
 )
 from calib.model.twofactor import TwoFactorParams
-from calib.workflows.runs import CALIBRATION_FAILURES
+from calib.workflows.fit import CALIBRATION_FAILURES
 from tests.calibrate.quotes_from_model import make_quotes
 
 TRUE = TwoFactorParams(

@@ -13,12 +13,15 @@ import pytest
 
 from calib.model import black76
 from calib.model.twofactor import total_variance
+from calib.policy.settings import RunSettings
 from calib.store.engine import Store
-from calib.workflows import runs as flow
+from calib.workflows.approve import approve
+from calib.workflows.fit import fit_day
+from calib.workflows.fit import fit_day as fit_one_day
 from tests.cli.test_store_cmds import run
 from tests.workflows.small_day import Loaded, load_with_estimate
 
-FAST = flow.RunSettings.from_dict({"calibration": {"refit_costs": False}})
+FAST = RunSettings.from_dict({"calibration": {"refit_costs": False}})
 STABLE = {"premium", "mean_pct", "sd_pct", "es95_pct", "quantiles_pct", "paths", "steps"}
 
 
@@ -52,8 +55,8 @@ def test_hedge_sim_end_to_end(
     code, _, err = run(capsys, monkeypatch, *spread, *small)
     assert code == 2 and err.count("\n") == 1 and "no approved parameter set" in err
 
-    fitted = flow.fit_day(store.sessions, loaded.code, day, user="q", settings=FAST)
-    flow.approve(store.sessions, fitted.run.run_id, by="risk", note="ok")
+    fitted = fit_day(store.sessions, loaded.code, day, by="q", settings=FAST)
+    approve(store.sessions, fitted.run.run_id, by="risk", note="ok")
     png, paths_csv = tmp_path / "h.png", tmp_path / "paths.csv"
     code, out, _ = run(
         capsys, monkeypatch, *spread, *small, "--json", "--png", str(png), "--csv", str(paths_csv)
@@ -133,8 +136,8 @@ def test_hedge_sim_refuses_bad_requests_in_one_line(
 ) -> None:
     day = loaded.days[-5]
     legs = _legs(loaded, day)
-    fitted = flow.fit_day(store.sessions, loaded.code, day, user="q", settings=FAST)
-    flow.approve(store.sessions, fitted.run.run_id, by="risk", note="ok")
+    fitted = fit_day(store.sessions, loaded.code, day, by="q", settings=FAST)
+    approve(store.sessions, fitted.run.run_id, by="risk", note="ok")
     expiry = str(legs[1] - dt.timedelta(days=7))
     base = ["hedge", "sim", loaded.code, "--db", db_url, "--expiry", expiry, "--strike", "5"]
     bad_json = tmp_path / "bad.json"
@@ -173,8 +176,8 @@ def test_hedge_replay_end_to_end(
     code, _, err = run(capsys, monkeypatch, *base)
     assert code == 2 and err.count("\n") == 1 and f"cannot sell on {start}" in err
 
-    fitted = flow.fit_day(store.sessions, loaded.code, fit_day, user="q", settings=FAST)
-    flow.approve(store.sessions, fitted.run.run_id, by="risk", note="ok")
+    fitted = fit_one_day(store.sessions, loaded.code, fit_day, by="q", settings=FAST)
+    approve(store.sessions, fitted.run.run_id, by="risk", note="ok")
     out_csv, out_png = tmp_path / "replay.csv", tmp_path / "replay.png"
     code, out, _ = run(
         capsys,

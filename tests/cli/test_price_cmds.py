@@ -10,12 +10,14 @@ import numpy as np
 import pytest
 
 from calib.model.spread import ForwardVols, SpreadOption, price_exact, spread_law
+from calib.policy.settings import RunSettings
 from calib.store.engine import Store
-from calib.workflows import runs as flow
+from calib.workflows.approve import approve
+from calib.workflows.fit import fit_day
 from tests.cli.test_store_cmds import run
 from tests.workflows.small_day import Loaded, load_with_estimate
 
-FAST = flow.RunSettings.from_dict({"calibration": {"refit_costs": False}})
+FAST = RunSettings.from_dict({"calibration": {"refit_costs": False}})
 KEYS = {
     "run_id",
     "commodity",
@@ -81,8 +83,8 @@ def test_price_spread_end_to_end(
     code, _, err = run(capsys, monkeypatch, *args)
     assert code == 2 and err.count("\n") == 1 and "no approved parameter set" in err
 
-    fitted = flow.fit_day(store.sessions, loaded.code, day, user="q", settings=FAST)
-    flow.approve(store.sessions, fitted.run.run_id, by="risk", note="ok")
+    fitted = fit_day(store.sessions, loaded.code, day, by="q", settings=FAST)
+    approve(store.sessions, fitted.run.run_id, by="risk", note="ok")
     code, out, _ = run(capsys, monkeypatch, *args, "--json")
     assert code == 0
     payload = json.loads(out)
@@ -145,8 +147,8 @@ def test_forward_buckets_and_clear_errors(
     futures = _day_futures(loaded, day)
     near, far = sorted(futures)[0], sorted(futures)[2]
     expiry = near - dt.timedelta(days=7)
-    forward = flow.RunSettings.from_dict({"calibration": {"mode": "forward", "refit_costs": False}})
-    fitted = flow.fit_day(store.sessions, loaded.code, day, user="q", settings=forward)
+    forward = RunSettings.from_dict({"calibration": {"mode": "forward", "refit_costs": False}})
+    fitted = fit_day(store.sessions, loaded.code, day, by="q", settings=forward)
     rid = str(fitted.run.run_id)
     base = ["price", "spread", loaded.code, "--run", rid, "--db", db_url, "--strike", "5"]
     ok = [*base, "--near", str(near), "--far", str(far), "--expiry", str(expiry)]
@@ -158,10 +160,10 @@ def test_forward_buckets_and_clear_errors(
     assert len(payload["vol_sensitivities"]["rho"]) == len(buckets) > 1
     vols = ForwardVols(
         kappa=fitted.run.params.kappa,  # type: ignore[union-attr]
-        edges=np.array([0.0] + [b["end"] for b in buckets]),
-        sigma_spot=np.array([b["params"]["sigma_spot"] for b in buckets]),
-        sigma_yield=np.array([b["params"]["sigma_yield"] for b in buckets]),
-        rho=np.array([b["params"]["rho"] for b in buckets]),
+        edges=np.array([0.0] + [b.end for b in buckets]),
+        sigma_spot=np.array([b.params.sigma_spot for b in buckets]),
+        sigma_yield=np.array([b.params.sigma_yield for b in buckets]),
+        rho=np.array([b.params.rho for b in buckets]),
     )
     option = SpreadOption(
         near=np.array([payload["t_near"]]),

@@ -11,6 +11,7 @@ import csv
 import itertools
 import json
 import math
+import warnings
 from dataclasses import dataclass
 from pathlib import Path
 from typing import Any
@@ -20,14 +21,16 @@ from sqlalchemy import func, select
 from typer.testing import CliRunner
 
 from calib.cli import _register_all, app
+from calib.errors import CalibrationInaccurateWarning
+from calib.output.compare import csv_columns
+from calib.output.report import FIGURES
 from calib.store.engine import make_store
 from calib.store.run_models import CalibrationRun, HistoricalEstimate, RunResidual
-from calib.workflows.compare import csv_columns
+from calib.workflows import report as report_flow
 from calib.workflows.demo import MARKER, QUICK_PLAN
-from calib.workflows.report import FIGURES
-from calib.workflows.run_report import ANCHOR_FACTORS, report_inputs
+from calib.workflows.report import ANCHOR_FACTORS, report_inputs
 from tests.cli.test_store_cmds import run
-from tests.workflows.test_report import _parse
+from tests.output.test_report import _parse
 
 PNG_MAGIC = b"\x89PNG\r\n\x1a\n"  # PNG signature, ISO/IEC 15948 section 5.2
 
@@ -111,14 +114,46 @@ def test_demo_refuses_a_store_it_did_not_make(
     theirs = tmp_path / "theirs"
     theirs.mkdir()
     (theirs / "calib.sqlite").write_bytes(b"someone else's store")
-    code, out, err = run(capsys, monkeypatch, "demo", "--dir", str(theirs))
-    assert code == 2 and out == "" and err.count("\n") == 1
-    assert "calib.sqlite already exists and is not the demo's: pass --fresh" in err
-    assert sorted(p.name for p in theirs.iterdir()) == ["calib.sqlite"]
-    assert (theirs / "calib.sqlite").read_bytes() == b"someone else's store"
+    for fresh in ((), ("--fresh",)):  # --fresh never lets it delete what it did not write
+        code, out, err = run(capsys, monkeypatch, "demo", "--dir", str(theirs), *fresh)
+        assert code == 2 and out == "" and err.count("\n") == 1
+        assert "is not empty and has no .calib-demo (it was not made by calib demo)" in err
+        assert sorted(p.name for p in theirs.iterdir()) == ["calib.sqlite"]
+        assert (theirs / "calib.sqlite").read_bytes() == b"someone else's store"
 
 
 # --- report ------------------------------------------------------------------------------------
+
+
+def test_a_solver_warning_reaches_the_user_as_one_plain_line(
+    demo: Demo,
+    tmp_path: Path,
+    capsys: pytest.CaptureFixture[str],
+    monkeypatch: pytest.MonkeyPatch,
+) -> None:
+    """A warning raised while the report re-solves the frontier is one line on stderr (no
+    source line, no class path) and is shown on the page."""
+    real = report_flow.frontier
+
+    def inaccurate_frontier(*args: Any, **kwargs: Any) -> Any:
+        warnings.warn(
+            CalibrationInaccurateWarning(
+                CalibrationInaccurateWarning.TEMPLATE.format(
+                    solver="CLARABEL", status="optimal_inaccurate", iteration=2
+                )
+            ),
+            stacklevel=1,
+        )
+        return real(*args, **kwargs)
+
+    monkeypatch.setattr(report_flow, "frontier", inaccurate_frontier)
+    fitted = next(r for r in demo.runs if r["status"] == "superseded")
+    out_dir = tmp_path / "warned"
+    args = ("report", str(fitted["run_id"]), "--out", str(out_dir), "--db", demo.db_url)
+    code, _, err = run(capsys, monkeypatch, *args)
+    line = "frontier: solver CLARABEL returned optimal_inaccurate at Gauss-Newton iteration 2"
+    assert code == 0 and err.splitlines() == [f"warning: {line}"]
+    assert line in " ".join(_parse(out_dir / "index.html").text)
 
 
 def test_report_of_a_fitted_run(
@@ -269,6 +304,8 @@ def test_compare_selects_runs_and_flags_days_outside_the_band(
     code, out, _ = run(capsys, monkeypatch, *base, "--json", "--band-yield", "0.99,1.01")
     payload = json.loads(out)
     assert len(payload["rows"]) == len(rows) and payload["runs"] == "runs ever approved"
+    # run ids are integers in every JSON output (issue 12, defect 5)
+    assert [r["run_id"] for r in payload["rows"]] == [int(r["run_id"]) for r in rows]
     flagged = [r for r in payload["rows"] if "sigma_yield" in r["flags"]]
     for r in payload["rows"]:
         outside = not 0.99 <= r["sigma_yield"] / r["sigma_yield_hist"] <= 1.01

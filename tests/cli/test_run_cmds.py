@@ -43,9 +43,12 @@ def test_morning_run_from_the_command_line(
 
     held = tmp_path / "held.toml"
     held.write_text('[calibration]\nmode = "held_rho"\n')
-    code, out, _ = calib("fit", "QLM", "--date", before, "--settings", str(held), "--json")
+    code, out, _ = calib(
+        "fit", "QLM", "--date", before, "--settings", str(held), "--json", "--by", "A. Quant"
+    )
     first = json.loads(out)
     assert code == 0 and first["status"] == "candidate" and first["change"] is None
+    assert first["created_by"] == "A. Quant"
     assert set(PARAM_NAMES) <= set(first) and first["mode"] == "held_rho"
     code, out, _ = calib("approve", str(first["run_id"]), "--by", "risk", "--note", "ok")
     assert code == 0 and f"run {first['run_id']} approved by risk" in out

@@ -18,17 +18,19 @@ import numpy as np
 import pytest
 
 from calib.model.spread import SpreadOption, spread_greeks, spread_law
+from calib.policy.settings import RunSettings
 from calib.store.engine import Store
 from calib.store.quotes import ZeroCurve, load_day
 from calib.store.runs import latest_approved
+from calib.workflows import approve as approve_flow
 from calib.workflows import hedge as hedge_flow
-from calib.workflows import runs as flow
+from calib.workflows.demo.scenario import generate, write_csv
 from calib.workflows.estimates import import_estimate
+from calib.workflows.fit import fit_day as fit_one_day
 from calib.workflows.ingest import NewCommodity, ingest_file
-from calib.workflows.scenario import generate, write_csv
 from tests.workflows.small_day import SPEC, write_estimate_file
 
-FAST = flow.RunSettings.from_dict({"calibration": {"refit_costs": False}})
+FAST = RunSettings.from_dict({"calibration": {"refit_costs": False}})
 UTC = dt.UTC
 REL = 1e-9  # the same formulas by two routes; only summation order differs
 
@@ -77,9 +79,9 @@ def _history(store: Store, folder: Path, monkeypatch: pytest.MonkeyPatch) -> His
     )
 
     def fit_and_approve(fit_day: dt.date, when: dt.datetime) -> None:
-        run = flow.fit_day(store.sessions, code, fit_day, user="q", settings=FAST).run
-        monkeypatch.setattr(flow, "utc_now", lambda: when)
-        flow.approve(store.sessions, run.run_id, by="risk", note="ok")
+        run = fit_one_day(store.sessions, code, fit_day, by="q", settings=FAST).run
+        monkeypatch.setattr(approve_flow, "utc_now", lambda: when)
+        approve_flow.approve(store.sessions, run.run_id, by="risk", note="ok")
         monkeypatch.undo()
 
     fit_and_approve(days[99], _at(days[100], 6))  # in force from the start's morning

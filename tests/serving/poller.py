@@ -48,8 +48,10 @@ def _check_new_set(store: Store, got: ApprovedSet) -> list[str]:
     return problems
 
 
-def poll(url: str, code: str, seconds: float, stop: Any, out: Any) -> None:
-    """One reader: poll ``latest`` until ``stop`` is set (or a bound passes); report to ``out``."""
+def poll(url: str, code: str, seconds: float, stop: Any, out: Any, seen: Any, me: int) -> None:
+    """One reader: poll ``latest`` until ``stop`` is set (or ``seconds`` pass); report to
+    ``out``, and publish the approval id of each set it reads in ``seen[me]`` (the writer
+    waits for it before the next approval, so every reader sees every set)."""
     reads, sets, problems, errors = 0, 0, [], []
     try:
         with Client(url) as client, store_for(url) as store:
@@ -67,6 +69,7 @@ def poll(url: str, code: str, seconds: float, stop: Any, out: Any) -> None:
                         problems.append(f"went back from run {last.run_id} to {got.run_id}")
                     sets += 1
                     problems += _check_new_set(store, got)
+                    seen[me] = got.approval_id
                 last = got
                 time.sleep(POLL_PAUSE)
     except Exception as exc:  # every failure is reported; the test asserts there are none

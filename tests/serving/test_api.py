@@ -18,14 +18,14 @@ import pytest
 import uvicorn
 from fastapi import FastAPI
 
+from bench.serve_seed import CODE, candidate, commodity
 from calib.api.app import create_app
 from calib.cli import main
 from calib.model.twofactor import PARAM_NAMES
 from calib.settings import Settings
 from calib.store.base import utc_now
 from calib.store.engine import Store
-from calib.workflows.runs import approve
-from tests.serving.seed import CODE, candidate, commodity
+from calib.workflows.approve import approve
 
 REPO = Path(__file__).resolve().parents[2]
 TOKEN = "s3cret-token-for-tests-only"

@@ -10,13 +10,13 @@ from datetime import UTC, datetime, timedelta
 
 import pytest
 
+from bench.serve_seed import CODE, candidate, commodity
 from calib.client import ApprovedSet, Client
 from calib.errors import NoApprovedSetError, UnknownCommodityError, UnknownRunError
 from calib.store.base import utc_now
 from calib.store.engine import Store, begin_write
 from calib.store.runs import append_event, get_run
-from calib.workflows.runs import approve
-from tests.serving.seed import CODE, candidate, commodity
+from calib.workflows.approve import approve
 
 
 def _stored_params(store: Store, run_id: int) -> object:
@@ -38,7 +38,8 @@ def test_latest_as_of_run_and_history(store: Store, db_url: str) -> None:
     with Client(db_url) as client:
         now = client.latest(CODE)
         assert isinstance(now, ApprovedSet)
-        assert (now.run_id, now.approved_by, now.note) == (second, "head of risk", "second")
+        shown = (now.run_id, now.approved_by, now.approval_note)
+        assert shown == (second, "head of risk", "second")
         assert now.params == _stored_params(store, second)
         assert now.trade_date.isoformat() == "2031-01-08" and now.mode == "constant"
         assert now.approved_at.tzinfo is not None and between <= now.approved_at <= utc_now()
@@ -74,7 +75,7 @@ def test_a_superseded_approval_is_never_served(store: Store, db_url: str) -> Non
         # withdrawn without a successor (not what the workflow does, but the store allows it)
         with store.sessions.begin() as s:
             begin_write(s)
-            append_event(session=s, run_id=run, to_status="superseded", actor="risk", note="no")
+            append_event(session=s, run_id=run, to_status="superseded", by="risk", note="no")
         with pytest.raises(NoApprovedSetError):
             client.latest(CODE)
 

@@ -8,6 +8,7 @@ import numpy as np
 import pytest
 from sqlalchemy import inspect
 
+from bench.serve_seed import seeded_fit
 from calib.errors import IllegalTransitionError, UnknownRunError
 from calib.model.twofactor import TwoFactorParams
 from calib.store.engine import Store, begin_write
@@ -79,22 +80,19 @@ def _run(store: Store, cid: int, eid: int, day: date, *, failed: bool = False) -
             settings={},
             inputs={"option_rows": []},
             inputs_sha256="1" * 64,
-            outcome="failed" if failed else "fitted",
             failure_reason="infeasible" if failed else None,
-            params=None if failed else PARAMS.with_vols(0.3, 0.2, 0.7 + day.day / 100),
-            buckets=None,
-            diagnostics={},
+            fit=None if failed else seeded_fit(PARAMS.with_vols(0.3, 0.2, 0.7 + day.day / 100)),
             code_version="test",
         )
         first = "rejected" if failed else "candidate"
-        append_event(session=s, run_id=run_id, to_status=first, actor="tester", note="", at=T0)
+        append_event(session=s, run_id=run_id, to_status=first, by="tester", note="", at=T0)
         return run_id
 
 
 def _move(store: Store, run_id: int, to: str, at: datetime) -> None:
     with store.sessions.begin() as s:
         begin_write(s)
-        append_event(session=s, run_id=run_id, to_status=to, actor="risk", note=to, at=at)
+        append_event(session=s, run_id=run_id, to_status=to, by="risk", note=to, at=at)
 
 
 @pytest.fixture
@@ -176,3 +174,41 @@ def test_newest_converged_estimate_is_the_default(store: Store, cid: int) -> Non
         assert chosen.std_errors["rho"] is None
         states = estimate_states(session=s, estimate_id=good)
         assert states["yield_smoothed"].tolist() == [0.011, 0.021]
+
+
+def test_a_run_stored_in_the_earlier_layout_still_reads(store: Store, cid: int) -> None:
+    """Rows written before the stored-fit record (layout version 1) decode to it."""
+    from calib.store.run_models import CalibrationRun
+    from tests.record.test_fit_record import FRONT, V1_BUCKETS, V1_DIAGNOSTICS, record
+
+    eid = _estimate(store, cid, True, T0)
+    with store.sessions.begin() as s:
+        row = CalibrationRun(
+            commodity_id=cid,
+            trade_date=date(2031, 3, 3),
+            created_at=T0,
+            created_by="tester",
+            estimate_id=eid,
+            mode="forward",
+            settings={},
+            inputs={},
+            inputs_sha256="1" * 64,
+            outcome="fitted",
+            failure_reason=None,
+            buckets=V1_BUCKETS,
+            diagnostics=V1_DIAGNOSTICS,
+            code_version="0.1.0",
+            **FRONT.to_dict(),
+        )
+        s.add(row)
+        s.flush()
+        run_id = row.id
+        append_event(session=s, run_id=run_id, to_status="candidate", by="tester", note="", at=T0)
+    with store.sessions() as s:
+        run = get_run(session=s, run_id=run_id)
+    assert run is not None and run.fit == record()
+    shown = run.to_dict()
+    assert shown["diagnostics"]["n_quotes"] == 42 and shown["diagnostics"]["binding"] == [
+        "decay_bound@1"
+    ]
+    assert [b["end"] for b in shown["buckets"]] == [0.25, 1.5]

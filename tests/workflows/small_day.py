@@ -8,8 +8,8 @@ from dataclasses import dataclass
 from pathlib import Path
 
 from calib.store.engine import Store
+from calib.workflows.demo.scenario import Scenario, ScenarioSpec, generate, write_csv
 from calib.workflows.ingest import NewCommodity, ingest_file
-from calib.workflows.scenario import Scenario, ScenarioSpec, generate, write_csv
 
 SPEC = ScenarioSpec(
     seed=20310106, years=1, n_contracts=8, n_expiries=3, n_strikes=5, start=dt.date(2031, 1, 6)

@@ -11,6 +11,7 @@ import pytest
 from sqlalchemy import text
 
 from calib.errors import BackfillRangeError
+from calib.policy.settings import RunSettings
 from calib.store.engine import Store
 from calib.store.runs import (
     approved_history,
@@ -20,9 +21,9 @@ from calib.store.runs import (
     run_status,
 )
 from calib.workflows import backfill as flow
-from calib.workflows import runs as runs_flow
 from calib.workflows.estimates import import_estimate
-from calib.workflows.runs import RunSettings, rerun
+from calib.workflows.rerun import rerun
+from tests.hooks import inside_each_write
 from tests.workflows.small_day import Loaded, load_with_estimate, write_estimate_file
 
 N_DAYS = 8
@@ -81,11 +82,11 @@ def test_interrupted_backfill_resumes_without_duplicates(
     days = loaded.days[:N_DAYS]
     stop = StopAfter(3)  # told of a day once its write transaction has committed
     with pytest.raises(StopRequestedError):
-        flow.backfill(store, loaded.code, days[0], days[-1], user="q", settings=FAST, progress=stop)
+        flow.backfill(store, loaded.code, days[0], days[-1], by="q", settings=FAST, progress=stop)
     assert stop.total == N_DAYS
     assert sorted(d for d, _ in _keys(store, loaded)) == days[:4]  # two complete writes
 
-    again = flow.backfill(store, loaded.code, days[0], days[-1], user="q", settings=FAST)
+    again = flow.backfill(store, loaded.code, days[0], days[-1], by="q", settings=FAST)
     assert again.skipped == tuple(days[:4])
     assert [d.trade_date for d in again.days] == days[4:]
     assert again.count("fitted") == N_DAYS - 4 and not again.failures
@@ -94,12 +95,44 @@ def test_interrupted_backfill_resumes_without_duplicates(
 
     # the resume key is (estimate, settings hash): the same command does nothing now,
     # other settings fit every day again as new runs beside the old ones
-    idle = flow.backfill(store, loaded.code, days[0], days[-1], user="q", settings=FAST)
+    idle = flow.backfill(store, loaded.code, days[0], days[-1], by="q", settings=FAST)
     assert len(idle.skipped) == N_DAYS and not idle.days
     other = RunSettings.from_dict({"calibration": {"refit_costs": True}})
-    redo = flow.backfill(store, loaded.code, days[0], days[2], user="q", settings=other)
+    redo = flow.backfill(store, loaded.code, days[0], days[2], by="q", settings=other)
     assert not redo.skipped and redo.count("fitted") == 3
     assert redo.settings_sha256 != again.settings_sha256 == flow.settings_sha256(FAST)
+
+
+class OtherBackfillMeanwhile:
+    """A progress listener that, once the backfill has chosen its days (and before it stores
+    any), runs a second backfill of part of the same range to its end: two overlapping runs."""
+
+    def __init__(self, store: Store, loaded: Loaded, days: list[dt.date]) -> None:
+        self.store, self.loaded, self.days = store, loaded, days
+        self.other: flow.BackfillReport | None = None
+
+    def start(self, total: int, skipped: int) -> None:
+        code, days = self.loaded.code, self.days
+        self.other = flow.backfill(self.store, code, days[2], days[5], by="q", settings=FAST)
+
+    def advance(self, day: flow.BackfillDay) -> None:
+        pass
+
+
+def test_overlapping_backfills_store_each_day_once(
+    store: Store, loaded: Loaded, monkeypatch: pytest.MonkeyPatch
+) -> None:
+    monkeypatch.setattr(flow, "DAYS_PER_WRITE", 3)
+    days = loaded.days[:N_DAYS]
+    meanwhile = OtherBackfillMeanwhile(store, loaded, days)
+    first = flow.backfill(
+        store, loaded.code, days[0], days[-1], by="q", settings=FAST, progress=meanwhile
+    )
+    assert meanwhile.other is not None and meanwhile.other.count("fitted") == 4
+    stored = sorted(d for d, _ in _keys(store, loaded))
+    assert stored == days  # every day once, whoever stored it
+    assert first.skipped == tuple(days[2:6])  # claimed by the other backfill meanwhile
+    assert [d.trade_date for d in first.days] == days[:2] + days[6:]
 
 
 def test_a_write_interrupted_before_its_commit_stores_none_of_its_days(
@@ -112,10 +145,12 @@ def test_a_write_interrupted_before_its_commit_stores_none_of_its_days(
         if next(writes) == 2:
             raise StopRequestedError
 
-    monkeypatch.setattr(runs_flow, "_pause_for_tests", interrupt_the_second_write)
     days = loaded.days[:N_DAYS]
-    with pytest.raises(StopRequestedError):
-        flow.backfill(store, loaded.code, days[0], days[-1], user="q", settings=FAST)
+    with (
+        inside_each_write(store.sessions, interrupt_the_second_write),
+        pytest.raises(StopRequestedError),
+    ):
+        flow.backfill(store, loaded.code, days[0], days[-1], by="q", settings=FAST)
     assert sorted(d for d, _ in _keys(store, loaded)) == days[:3]
     with store.engine.connect() as conn:  # nothing of the rolled-back days is left behind
         runs = conn.execute(text("SELECT count(*) FROM calibration_runs")).scalar_one()
@@ -127,7 +162,7 @@ def test_a_write_interrupted_before_its_commit_stores_none_of_its_days(
             )
         ).scalar_one()
     assert (runs, events, orphans) == (3, 3, 0)
-    again = flow.backfill(store, loaded.code, days[0], days[-1], user="q", settings=FAST)
+    again = flow.backfill(store, loaded.code, days[0], days[-1], by="q", settings=FAST)
     assert again.skipped == tuple(days[:3]) and again.count("fitted") == N_DAYS - 3
 
 
@@ -146,7 +181,7 @@ def test_failures_are_summarised_with_reasons(store: Store, loaded: Loaded, tmp_
     # and every quote filtered out: each day a TooFewQuotesError, stored as a rejected run
     settings = RunSettings.from_dict({"calibration": {"min_days_to_expiry": 400.0}})
     end = saturday + dt.timedelta(days=2)
-    report = flow.backfill(store, loaded.code, loaded.days[0], end, user="q", settings=settings)
+    report = flow.backfill(store, loaded.code, loaded.days[0], end, by="q", settings=settings)
     dates = [d for d in loaded.days if d <= end]
     assert report.trade_dates == len(dates) + 1
     assert report.count("fitted") == 0 and report.count("failed") == len(dates)
@@ -161,13 +196,13 @@ def test_failures_are_summarised_with_reasons(store: Store, loaded: Loaded, tmp_
     payload = report.to_dict()
     assert payload["failed"] == len(dates) and len(payload["failures"]) == len(dates) + 1
     with pytest.raises(BackfillRangeError, match="is after"):
-        flow.backfill(store, loaded.code, end, loaded.days[0], user="q")
+        flow.backfill(store, loaded.code, end, loaded.days[0], by="q")
 
 
 def test_auto_approve_supersedes_in_date_order(store: Store, loaded: Loaded) -> None:
     days = loaded.days[10 : 10 + N_DAYS]
     report = flow.backfill(
-        store, loaded.code, days[0], days[-1], user="q", settings=LOOSE, auto_approve=True
+        store, loaded.code, days[0], days[-1], by="q", settings=LOOSE, auto_approve=True
     )
     passed = [d for d in report.days if d.auto_approved]
     assert 2 <= len(passed) < N_DAYS  # some days miss the rmse gate and stay candidates
@@ -176,7 +211,8 @@ def test_auto_approve_supersedes_in_date_order(store: Store, loaded: Loaded) -> 
         current = latest_approved(session=s, commodity=loaded.code)
         for d in report.days:
             run = require_run(session=s, run_id=d.run_id)  # type: ignore[arg-type]
-            assert run.diagnostics["all_gates_pass"] == d.auto_approved
+            assert run.fit is not None
+            assert run.fit.all_gates_pass == d.auto_approved
             if not d.auto_approved:
                 assert run.status == "candidate"
     # approved oldest day first, each superseding the one before
@@ -195,7 +231,7 @@ def test_two_worker_processes_give_the_same_parameters(
     monkeypatch.setattr(flow, "DAYS_PER_TASK", 3)  # both workers get days, three at a time
     days = loaded.days[:N_DAYS]
     priced = RunSettings.from_dict({})  # re-fits without each binding constraint too
-    one = flow.backfill(store, loaded.code, days[0], days[-1], user="q", settings=priced)
+    one = flow.backfill(store, loaded.code, days[0], days[-1], by="q", settings=priced)
     # the same estimate imported again: a new estimate id, so the days are fitted again
     second = import_estimate(
         store.sessions,
@@ -208,7 +244,7 @@ def test_two_worker_processes_give_the_same_parameters(
         loaded.code,
         days[0],
         days[-1],
-        user="q",
+        by="q",
         settings=priced,
         estimate_id=second.estimate_id,
         workers=2,
@@ -219,9 +255,10 @@ def test_two_worker_processes_give_the_same_parameters(
         runs_two = [require_run(session=s, run_id=d.run_id) for d in two.days]  # type: ignore[arg-type]
     assert all(r.params is not None for r in runs_one)
     assert [r.params for r in runs_one] == [r.params for r in runs_two]  # bit for bit
-    constraints = [r.diagnostics["constraints"] for r in runs_one]
-    assert constraints == [r.diagnostics["constraints"] for r in runs_two]
-    assert any(c["refit_cost"] is not None for day in constraints for c in day)
+    constraints = [r.fit.constraints for r in runs_one if r.fit is not None]
+    assert constraints == [r.fit.constraints for r in runs_two if r.fit is not None]
+    assert len(constraints) == len(runs_one)
+    assert any(c.refit_cost is not None for day in constraints for c in day)
     # and equal to a fresh fit of the day from its stored rows (problem rebuilt)
     again = rerun(store.sessions, two.days[-1].run_id)  # type: ignore[arg-type]
     assert again.identical

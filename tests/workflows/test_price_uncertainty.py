@@ -17,8 +17,9 @@ from calib.model.black76 import undiscounted_price
 from calib.model.twofactor import total_variance
 from calib.store.engine import Store
 from calib.store.quotes import load_day
-from calib.workflows import runs as run_flow
+from calib.workflows.approve import approve
 from calib.workflows.estimates import estimate
+from calib.workflows.fit import fit_day
 from calib.workflows.price_uncertainty import (
     price_vanilla,
     spread_uncertainty,
@@ -31,8 +32,8 @@ from tests.workflows.small_day import load_scenario, load_with_estimate
 
 
 def _approved_day(store: Store, code: str, day: date) -> int:
-    outcome = run_flow.fit_day(store.sessions, code, day, user="q")
-    run_flow.approve(store.sessions, outcome.run.run_id, by="risk", note="ok")
+    outcome = fit_day(store.sessions, code, day, by="q")
+    approve(store.sessions, outcome.run.run_id, by="risk", note="ok")
     return outcome.run.run_id
 
 

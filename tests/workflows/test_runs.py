@@ -13,11 +13,15 @@ import pytest
 from sqlalchemy import func, select
 
 from calib.errors import NoEstimateError, NotConvergedEstimateError, SettingsFileError
+from calib.policy.settings import RunSettings, load_settings
 from calib.store.engine import Store
 from calib.store.run_models import CalibrationRun, RunResidual
 from calib.store.runs import latest_approved, run_residuals, run_status
-from calib.workflows import runs as flow
+from calib.workflows.approve import approve
 from calib.workflows.estimates import import_estimate
+from calib.workflows.fit import fit_day
+from calib.workflows.rerun import rerun
+from tests.hooks import PAUSE_LINE, PAUSED_CLI
 from tests.workflows.small_day import Loaded, load_scenario, write_estimate_file
 
 REPO = Path(__file__).resolve().parents[2]
@@ -43,10 +47,10 @@ def _latest_id(store: Store, code: str) -> int | None:
 
 def test_fit_gates_approve_supersede_and_rerun(store: Store, loaded: Loaded) -> None:
     # rho held at history: with three expiries a day a free rho swings between days
-    held = flow.RunSettings.from_dict({"calibration": {"mode": "held_rho"}})
-    first = flow.fit_day(store.sessions, loaded.code, loaded.days[-2], user="quant", settings=held)
+    held = RunSettings.from_dict({"calibration": {"mode": "held_rho"}})
+    first = fit_day(store.sessions, loaded.code, loaded.days[-2], by="quant", settings=held)
     assert first.run.status == "candidate" and first.previous is None
-    names = [g["name"] for g in first.gates]
+    names = [g.name for g in first.gates]
     assert names == [
         "solver_optimal",
         "decay_bound",
@@ -58,66 +62,66 @@ def test_fit_gates_approve_supersede_and_rerun(store: Store, loaded: Loaded) -> 
     ]
     with store.sessions() as s:
         residuals = run_residuals(session=s, run_id=first.run.run_id)
-    assert len(residuals) == first.run.diagnostics["n_quotes"] > 0
+    assert first.run.fit is not None and len(residuals) == first.run.fit.n_quotes > 0
     # the gate value is the stored residuals' RMSE in vol points
     rmse = 100 * float((residuals["vol_residual"] ** 2).mean() ** 0.5)
-    assert first.gates[2]["value"] == pytest.approx(rmse, rel=1e-12)
+    assert first.gates[2].value == pytest.approx(rmse, rel=1e-12)
 
-    approval = flow.approve(store.sessions, first.run.run_id, by="risk", note="looks fine")
+    approval = approve(store.sessions, first.run.run_id, by="risk", note="looks fine")
     assert approval.superseded is None and approval.run.approved_by == "risk"
     assert _latest_id(store, loaded.code) == first.run.run_id
 
-    second = flow.fit_day(
-        store.sessions, loaded.code, loaded.days[-1], user="quant", settings=held, auto_approve=True
+    second = fit_day(
+        store.sessions, loaded.code, loaded.days[-1], by="quant", settings=held, auto_approve=True
     )
     assert second.previous is not None and second.previous.run_id == first.run.run_id
-    jumps = {g["name"]: g for g in second.gates if g["name"].startswith("jump")}
+    jumps = {g.name: g for g in second.gates if g.name.startswith("jump")}
     spot_jump = abs(second.run.params.sigma_spot / first.run.params.sigma_spot - 1)  # type: ignore[union-attr]
-    assert jumps["jump_sigma_spot"]["value"] == pytest.approx(spot_jump, rel=1e-12)
-    assert second.auto_approved and all(g["passed"] for g in second.gates)
+    assert jumps["jump_sigma_spot"].value == pytest.approx(spot_jump, rel=1e-12)
+    assert second.auto_approved and all(g.passed for g in second.gates)
     with store.sessions() as s:
         assert run_status(session=s, run_id=first.run.run_id) == "superseded"
         past = latest_approved(session=s, commodity=loaded.code, as_of=second.run.created_at)
     assert _latest_id(store, loaded.code) == second.run.run_id
     assert past is not None and past.run_id == first.run.run_id
 
-    again = flow.rerun(store.sessions, first.run.run_id)
+    again = rerun(store.sessions, first.run.run_id)
     assert again.identical and again.params == first.run.params and not again.differences
 
 
 def test_tight_gates_block_auto_approval(store: Store, loaded: Loaded, tmp_path: Path) -> None:
     toml = tmp_path / "s.toml"
     toml.write_text("[gates]\nmax_rmse_vol_points = 5.0\n[gates.QLM]\nmax_rmse_vol_points = 0.0\n")
-    settings = flow.load_settings(toml, loaded.code)
+    settings = load_settings(toml, loaded.code)
     assert settings.gates.max_rmse_vol_points == 0.0  # the commodity's own table wins
-    outcome = flow.fit_day(
+    outcome = fit_day(
         store.sessions,
         loaded.code,
         loaded.days[-1],
-        user="q",
+        by="q",
         settings=settings,
         auto_approve=True,
     )
-    failed = [g["name"] for g in outcome.gates if not g["passed"]]
+    failed = [g.name for g in outcome.gates if not g.passed]
     assert "rmse_vol" in failed and not outcome.auto_approved
     assert outcome.run.status == "candidate" and _latest_id(store, loaded.code) is None
     toml.write_text("[calibration]\nmode = 'sideways'\n")
     with pytest.raises(SettingsFileError, match="mode = 'sideways' is invalid"):
-        flow.load_settings(toml, loaded.code)
+        load_settings(toml, loaded.code)
 
 
 def test_failed_fit_is_stored_rejected_and_never_replaces_the_approved_set(
     store: Store, loaded: Loaded
 ) -> None:
-    good = flow.fit_day(store.sessions, loaded.code, loaded.days[-2], user="q")
-    flow.approve(store.sessions, good.run.run_id, by="risk", note="ok")
+    good = fit_day(store.sessions, loaded.code, loaded.days[-2], by="q")
+    approve(store.sessions, good.run.run_id, by="risk", note="ok")
     # every quote is under a year to expiry, so this filter leaves none: TooFewQuotesError
-    settings = flow.RunSettings.from_dict({"calibration": {"min_days_to_expiry": 400.0}})
-    bad = flow.fit_day(
+    settings = RunSettings.from_dict({"calibration": {"min_days_to_expiry": 400.0}})
+    bad = fit_day(
         store.sessions,
         loaded.code,
         loaded.days[-1],
-        user="q",
+        by="q",
         settings=settings,
         auto_approve=True,
     )
@@ -138,31 +142,30 @@ def test_estimate_choice_never_uses_an_unconverged_one(
         write_estimate_file(tmp_path / "bad.json", loaded.scenario, converged=False),
         user="t",
     )
-    outcome = flow.fit_day(store.sessions, loaded.code, loaded.days[-1], user="q")
+    outcome = fit_day(store.sessions, loaded.code, loaded.days[-1], by="q")
     assert outcome.run.estimate_id == bad.estimate_id - 1  # the converged import
     with pytest.raises(NotConvergedEstimateError, match=f"estimate {bad.estimate_id} did not"):
-        flow.fit_day(
-            store.sessions, loaded.code, loaded.days[-1], user="q", estimate_id=bad.estimate_id
-        )
+        fit_day(store.sessions, loaded.code, loaded.days[-1], by="q", estimate_id=bad.estimate_id)
 
 
 def test_no_estimate_is_a_clear_error(store: Store, tmp_path: Path) -> None:
     data = load_scenario(store, tmp_path)
     with pytest.raises(NoEstimateError, match="no converged historical estimate for QLM"):
-        flow.fit_day(store.sessions, data.code, data.days[-1], user="q")
+        fit_day(store.sessions, data.code, data.days[-1], by="q")
 
 
 @pytest.mark.slow
 def test_fit_killed_mid_write_leaves_no_partial_run(
     store: Store, loaded: Loaded, db_url: str
 ) -> None:
-    good = flow.fit_day(store.sessions, loaded.code, loaded.days[-2], user="q")
-    flow.approve(store.sessions, good.run.run_id, by="risk", note="ok")
-    env = {**os.environ, flow.PAUSE_IN_WRITE_ENV: "60", "PYTHONPATH": str(REPO)}
+    good = fit_day(store.sessions, loaded.code, loaded.days[-2], by="q")
+    approve(store.sessions, good.run.run_id, by="risk", note="ok")
+    env = {**os.environ, "PYTHONPATH": str(REPO)}
     command = [
         sys.executable,
-        "-m",
-        "calib",
+        "-c",
+        PAUSED_CLI,
+        "60",
         "fit",
         loaded.code,
         "--date",
@@ -175,7 +178,7 @@ def test_fit_killed_mid_write_leaves_no_partial_run(
     try:
         assert child.stderr is not None
         line = child.stderr.readline()  # printed inside the transaction, after the inserts
-        assert flow.PAUSE_IN_WRITE_ENV in line, line
+        assert PAUSE_LINE in line, line
         child.send_signal(signal.SIGKILL)
     finally:
         child.wait(timeout=30)

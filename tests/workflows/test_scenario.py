@@ -12,7 +12,7 @@ from scipy.optimize import brentq
 
 from calib.errors import ParameterError
 from calib.model import black76, twofactor
-from calib.workflows import scenario as sc
+from calib.workflows.demo import scenario as sc
 
 FIXTURES = Path(__file__).resolve().parents[2] / "fixtures" / "demo"
 # The exchange's invented holidays as documented in fixtures/demo/README.md (month, day).
@@ -94,7 +94,7 @@ def test_csv_files_round_trip_and_committed_fixtures_are_current(
             back[c] = back[c].astype(frame[c].dtype)
         pd.testing.assert_frame_equal(back, frame, check_dtype=False, rtol=1e-12)
         committed = FIXTURES / f"{name}.csv"
-        stale = f"{committed} is stale: python -m calib.workflows.scenario --dir fixtures/demo"
+        stale = f"{committed} is stale: python -m calib.workflows.demo.scenario --dir fixtures/demo"
         if name == "states":  # unrounded floats: allow for the last digit of exp/log
             kept = pd.read_csv(committed, parse_dates=dates)
             pd.testing.assert_frame_equal(kept, back, check_dtype=False, rtol=1e-12, obj=stale)

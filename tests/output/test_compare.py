@@ -11,7 +11,7 @@ import pytest
 from PIL import Image
 
 from calib.errors import ReportInputError
-from calib.workflows import compare as cmp
+from calib.output import compare as cmp
 
 D0 = dt.date(2031, 3, 3)  # invented trade dates
 STEP = 1e-9  # beyond an edge by far more than EDGE_RTOL (1e-12), far less than any band width
@@ -22,7 +22,7 @@ def _row(
 ) -> cmp.CompareRow:
     base: dict[str, object] = dict(
         trade_date=D0 + dt.timedelta(days=day),
-        run_id=f"r{day}",
+        run_id=100 + day,
         status="approved",
         sigma_spot=s1,
         sigma_yield=s2,
@@ -78,7 +78,7 @@ def test_yield_band_is_separate_and_zero_history_is_flagged() -> None:
 
 def test_rows_are_sorted_by_date_and_arrays_are_read_only() -> None:
     t = cmp.compare_series([_row(5), _row(1, s1=0.3), _row(3)])
-    assert t.run_id == ("r1", "r3", "r5")
+    assert t.run_id == (101, 103, 105)
     assert t.calibrated["sigma_spot"][0] == 0.3
     with pytest.raises(ValueError, match="read-only"):
         t.measure["sigma_spot"][0] = 2.0
@@ -125,7 +125,7 @@ def test_csv_round_trip_is_exact(tmp_path: Path, rng: np.random.Generator) -> No
     assert len(back) == len(t)
     for i, rec in enumerate(back):
         assert dt.date.fromisoformat(rec["trade_date"]) == t.trade_date[i]
-        assert (rec["run_id"], rec["status"]) == (t.run_id[i], t.status[i])
+        assert (int(rec["run_id"]), rec["status"]) == (t.run_id[i], t.status[i])
         for q in cmp.QUANTITIES:
             kind = cmp.MEASURE_KIND[q]
             assert float(rec[q]) == t.calibrated[q][i]
@@ -143,3 +143,17 @@ def test_plot_writes_a_valid_png(tmp_path: Path) -> None:
         assert img.format == "PNG"
         assert img.size == (1000, 800)  # 10 x 8 inches at 100 dpi
         img.verify()
+
+
+def test_one_run_plots_over_the_range_asked_with_a_band_of_width() -> None:
+    """The date axis is the --from/--to range, and a single run's band spans it (it held
+    until another run's day), rather than a hairline at one date."""
+    t = cmp.compare_series([_row(3)])
+    start, end = D0, D0 + dt.timedelta(days=30)
+    fig = cmp.figure(t, span=(start, end))
+    from matplotlib.dates import date2num
+
+    lo, hi = fig.axes[-1].get_xlim()
+    assert (lo, hi) == (date2num(start), date2num(end + dt.timedelta(days=1)))
+    band = fig.axes[0].collections[0].get_paths()[0].get_extents()
+    assert band.x0 <= date2num(start) and band.x1 >= date2num(end)  # the whole range

@@ -1,11 +1,12 @@
-"""Approved runs written straight through the store functions: the data of the serving tests
-and of `bench/bench_serve.py`."""
+"""Approved runs written straight through the store functions: the data of
+`bench/bench_serve.py` and of the serving tests (which import it from here)."""
 
 from __future__ import annotations
 
 from datetime import UTC, date, datetime, timedelta
 
 from calib.model.twofactor import TwoFactorParams
+from calib.record.fit import BucketVols, FitRecord
 from calib.store.engine import Store
 from calib.store.estimates import add_estimate
 from calib.store.quotes import add_commodity
@@ -45,12 +46,30 @@ def commodity(store: Store, code: str = CODE) -> tuple[int, int]:
     return cid, eid
 
 
+def seeded_fit(params: TwoFactorParams, buckets: tuple[BucketVols, ...] = ()) -> FitRecord:
+    """A stored-fit record of ``params`` with small made-up fit figures (one bucket if none)."""
+    return FitRecord(
+        params=params,
+        buckets=buckets or (BucketVols(0.0, 1.0, params),),
+        rmse=0.001,
+        max_error=0.002,
+        error_measure="price",
+        objective=1e-6,
+        fit=1e-6,
+        solver="seeded",
+        status="optimal",
+        iterations=1,
+        converged=True,
+    )
+
+
 def candidate(store: Store, cid: int, eid: int, k: int, *, mode: str = "constant") -> int:
     """A fitted candidate run whose ``sigma_spot`` is ``0.3 + k / 100`` (two buckets if forward)."""
     params = PARAMS.with_vols(0.3 + k / 100, 0.2, 0.7)
-    buckets = [{"start": 0.0, "end": 0.5, "params": params.to_dict()}]
+    buckets = [BucketVols(0.0, 0.5, params)]
     if mode == "forward":
-        buckets.append({"start": 0.5, "end": 2.0, "params": PARAMS.to_dict()})
+        buckets.append(BucketVols(0.5, 2.0, PARAMS))
+    fit = seeded_fit(params, tuple(buckets))
     with store.sessions.begin() as s:
         run_id = add_run(
             session=s,
@@ -63,12 +82,9 @@ def candidate(store: Store, cid: int, eid: int, k: int, *, mode: str = "constant
             settings={},
             inputs={"option_rows": []},
             inputs_sha256="1" * 64,
-            outcome="fitted",
             failure_reason=None,
-            params=params,
-            buckets=buckets,
-            diagnostics={"rmse": 0.001},
+            fit=fit,
             code_version="test",
         )
-        append_event(session=s, run_id=run_id, to_status="candidate", actor="tester", note="fit")
+        append_event(session=s, run_id=run_id, to_status="candidate", by="tester", note="fit")
     return run_id

@@ -1,7 +1,7 @@
 """The demo: the whole morning job on the invented scenario, in one call.
 
-:func:`run_demo` generates the scenario (:mod:`calib.workflows.scenario`, invented commodity
-and exchange), writes its CSV files into ``DIR/inputs``, creates a fresh SQLite store
+:func:`run_demo` generates the scenario (:mod:`calib.workflows.demo.scenario`, invented
+commodity and exchange), writes its CSV files into ``DIR/inputs``, creates a fresh SQLite store
 ``DIR/calib.sqlite``, registers the commodity, ingests futures, rates and options (in that
 order: the options' checks need the day's futures and zero curve), estimates the model on the
 first :attr:`DemoPlan.estimate_months` (Kalman-filter maximum likelihood), fits and gates each
@@ -10,21 +10,20 @@ historical over those mornings (``DIR/compare.csv``, ``DIR/compare.png``), rende
 of the latest approved run (``DIR/report/index.html``) and returns a :class:`DemoSummary`
 (also written to ``DIR/summary.json``).
 
-The mornings are fitted one after another with :func:`calib.workflows.runs.fit_day`, each
+The mornings are fitted one after another with :func:`calib.workflows.fit.fit_day`, each
 gated against the set approved the morning before, exactly as the morning job would.
 
-Running the demo again into the same directory replaces its own earlier output: the demo
-marks a directory it writes into with :data:`MARKER` before it creates anything. A
-``calib.sqlite`` in an unmarked directory is someone else's store and is refused unless
-``fresh``. Only the demo's own files are replaced (the store, ``inputs/``, ``report/``, the
-compare files and the summary); nothing else in the directory is touched.
+The demo writes only into a directory that is new, empty, or its own: it marks a directory
+with :data:`MARKER` before it creates anything there, and a directory that is not empty and
+has no marker is refused (``--fresh`` does not change that). The marker lists every file the
+demo wrote; running the demo again deletes exactly those files (and the folders they leave
+empty), never anything else in the directory.
 """
 
 from __future__ import annotations
 
 import json
 import math
-import shutil
 import statistics
 import time
 from collections import Counter
@@ -34,20 +33,21 @@ from datetime import date
 from pathlib import Path
 from typing import Any
 
-from calib.errors import DemoDirectoryError, ParameterError, RunNotFittedError
+from calib.errors import DemoFolderError, ParameterError, RunNotFittedError
 from calib.inputs.files import FileKind
+from calib.output import compare as compare_out
+from calib.output.report import CAUTIONS
+from calib.policy.settings import RunSettings, load_settings
 from calib.store.engine import Store, begin_write, store_for
 from calib.store.estimates import EstimateRecord
 from calib.store.migrate import upgrade
 from calib.store.quotes import add_commodity
-from calib.workflows import compare as compare_out
+from calib.workflows.compare import Selection, compare_runs
+from calib.workflows.demo.scenario import Scenario, ScenarioSpec, generate, write_csv
 from calib.workflows.estimates import MIN_DAYS, estimate
+from calib.workflows.fit import FitOutcome, fit_day
 from calib.workflows.ingest import ingest_file
-from calib.workflows.report import CAUTIONS
-from calib.workflows.run_compare import Selection, compare_runs
-from calib.workflows.run_report import write_report
-from calib.workflows.runs import FitOutcome, RunSettings, fit_day, load_settings
-from calib.workflows.scenario import Scenario, ScenarioSpec, generate, write_csv
+from calib.workflows.report import write_report
 
 Progress = Callable[[str], None]
 
@@ -179,20 +179,71 @@ class DemoSummary:
         }
 
 
-def _prepare(directory: Path, fresh: bool) -> None:
-    db = directory / DB_FILE
-    if db.exists() and not (fresh or (directory / MARKER).exists()):
-        raise DemoDirectoryError(str(db))
-    for name in (DB_FILE, f"{DB_FILE}-wal", f"{DB_FILE}-shm", "compare.csv", "compare.png"):
-        (directory / name).unlink(missing_ok=True)
-    (directory / "summary.json").unlink(missing_ok=True)
-    for sub in ("inputs", "report"):
-        shutil.rmtree(directory / sub, ignore_errors=True)
-    directory.mkdir(parents=True, exist_ok=True)
+LEGACY_FILES = (
+    DB_FILE,
+    f"{DB_FILE}-wal",
+    f"{DB_FILE}-shm",
+    "compare.csv",
+    "compare.png",
+    "summary.json",
+)
+"""What a marker written before the marker listed its files stood for (the tree ``inputs/``
+and ``report/`` aside, which such a demo also wrote)."""
+
+
+def _ours(directory: Path) -> list[Path]:
+    """The files the demo's marker in ``directory`` says it wrote."""
+    text = (directory / MARKER).read_text(encoding="utf-8")
+    try:
+        names = json.loads(text)["files"]
+    except (ValueError, KeyError, TypeError):  # a marker of an earlier version: plain text
+        older = [
+            *LEGACY_FILES,
+            *(
+                str(p.relative_to(directory))
+                for sub in ("inputs", "report")
+                for p in (directory / sub).rglob("*")
+                if p.is_file()
+            ),
+        ]
+        names = older
+    return [directory / str(n) for n in names]
+
+
+def _mark(directory: Path, files: list[str]) -> None:
     (directory / MARKER).write_text(
-        "Written by `calib demo`; it replaces its own files here when run again.\n",
+        json.dumps({"written_by": "calib demo", "files": sorted(files)}, indent=1) + "\n",
         encoding="utf-8",
     )
+
+
+def _prepare(directory: Path, fresh: bool) -> set[Path]:
+    """Make ``directory`` ready: new or empty (marked now), or the demo's own (its earlier
+    files deleted). Returns the files present that are not the demo's (left alone).
+
+    ``fresh`` is accepted for compatibility: an earlier run's files are always replaced.
+
+    Raises
+    ------
+    DemoFolderError
+        ``directory`` is a file, or a non-empty folder without the demo's marker.
+    """
+    del fresh
+    marker = directory / MARKER
+    if directory.exists() and (
+        not directory.is_dir() or (not marker.is_file() and any(directory.iterdir()))
+    ):
+        raise DemoFolderError(str(directory), MARKER)
+    if marker.is_file():
+        for path in _ours(directory):
+            if path.is_file() and not path.is_symlink():
+                path.unlink()
+        for folder in sorted(directory.rglob("*"), reverse=True):  # deepest first
+            if folder.is_dir() and not any(folder.iterdir()):
+                folder.rmdir()
+    directory.mkdir(parents=True, exist_ok=True)
+    _mark(directory, [])
+    return {p for p in directory.rglob("*") if p.is_file()}
 
 
 def _register(store: Store, scenario: Scenario) -> None:
@@ -215,8 +266,8 @@ def _days(scenario: Scenario) -> list[date]:
 
 def _rmse_vol(outcome: FitOutcome) -> float | None:
     for g in outcome.gates:
-        if g["name"] == "rmse_vol" and isinstance(g["value"], int | float):
-            return float(g["value"])
+        if g.name == "rmse_vol" and isinstance(g.value, int | float):
+            return float(g.value)
     return None
 
 
@@ -226,9 +277,7 @@ def _mornings(
     """Fit, gate and (if every gate passes) approve each morning in turn."""
     outcomes: list[FitOutcome] = []
     for i, day in enumerate(days, start=1):
-        outcome = fit_day(
-            store.sessions, code, day, user=USER, settings=settings, auto_approve=True
-        )
+        outcome = fit_day(store.sessions, code, day, by=USER, settings=settings, auto_approve=True)
         outcomes.append(outcome)
         rmse = _rmse_vol(outcome)
         quality = "" if rmse is None else f", rmse {rmse:.3f} vol points"
@@ -247,13 +296,13 @@ def run_demo(
 
     Raises
     ------
-    DemoDirectoryError
-        ``directory`` holds a store the demo did not make, and ``fresh`` is false.
+    DemoFolderError
+        ``directory`` is not empty and was not made by the demo.
     """
     plan = plan or DemoPlan()
     started = time.monotonic()
     directory = Path(directory)
-    _prepare(directory, fresh)
+    theirs = _prepare(directory, fresh)
 
     scenario = generate(plan.spec)
     code = scenario.commodity["code"]
@@ -310,6 +359,7 @@ def run_demo(
             table,
             directory / "compare.png",
             title=f"{code}: calibrated against historical, {fit_days[0]} to {fit_days[-1]}",
+            span=(fit_days[0], fit_days[-1]),
         )
         progress(f"compared {len(table)} run(s) ({selection.rule}): {csv_path}, {png_path}")
 
@@ -317,9 +367,7 @@ def run_demo(
         rep = write_report(store.sessions, shown, directory / "report")
         progress(f"report of run {shown}: {rep.files.index}")
 
-    gates_failed: Counter[str] = Counter(
-        g["name"] for o in fitted for g in o.gates if not g["passed"]
-    )
+    gates_failed: Counter[str] = Counter(g.name for o in fitted for g in o.gates if not g.passed)
     rmse_all = tuple(
         r for r in (_rmse_vol(o) for o in fitted) if r is not None and math.isfinite(r)
     )
@@ -341,7 +389,7 @@ def run_demo(
         days_failed=len(outcomes) - len(fitted),
         gates_failed=dict(sorted(gates_failed.items())),
         rmse_vol_points=rmse_all,
-        quotes_per_day=statistics.fmean(o.run.diagnostics["n_quotes"] for o in fitted)
+        quotes_per_day=statistics.fmean(o.run.fit.n_quotes for o in fitted if o.run.fit)
         if fitted
         else 0.0,
         flagged_days=int(table.any_flag.sum()),
@@ -350,4 +398,7 @@ def run_demo(
     (directory / "summary.json").write_text(
         json.dumps(summary.to_dict(), indent=2, default=str) + "\n", encoding="utf-8"
     )
+    marker = directory / MARKER
+    written = [p for p in directory.rglob("*") if p.is_file() and p not in theirs | {marker}]
+    _mark(directory, [str(p.relative_to(directory)) for p in written])
     return summary

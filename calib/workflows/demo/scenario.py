@@ -6,7 +6,7 @@ market data is used or imitated. :func:`generate` simulates the data from a
 :class:`ScenarioSpec` (seeded, deterministic, well under a second); :func:`write_csv` writes it in
 the input layout of calib (one row a quote, ISO dates).
 
-Run ``python -m calib.workflows.scenario --dir DIR`` to regenerate the CSV files.
+Run ``python -m calib.workflows.demo.scenario --dir DIR`` to regenerate the CSV files.
 
 Notes
 -----
@@ -21,7 +21,8 @@ first ``n_expiries`` contracts whose options have not yet expired. Times are ACT
 **States.** ``z = (X, d)`` (log spot, convenience yield) moves between consecutive trade dates
 by the exact Gaussian transition of the real-world dynamics,
 ``z_{n+1} = c_n + Phi_n z_n + L_n e_n`` with ``L_n L_n' = cov_n`` and ``e_n`` standard normal
-(:func:`calib.model.twofactor.transition` over the irregular day gaps, weekends included).
+(:func:`calib.model.simulate.simulate_states`, one path, over the irregular day gaps,
+weekends included).
 
 **Rates.** The zero curve of day ``n`` is ``R_n(T) = level_n + slope_n (1 - e^{-T/h}) / (T/h)``
 (``h`` = ``rate_shape_years``) with ``level`` and ``slope`` independent Ornstein-Uhlenbeck
@@ -75,6 +76,7 @@ import pandas as pd
 
 from calib.errors import ParameterError
 from calib.model import black76, twofactor
+from calib.model.simulate import simulate_states
 from calib.model.twofactor import TwoFactorParams
 from calib.types import BoolArray, FloatArray, IntArray
 
@@ -319,19 +321,13 @@ def _zero_curves(spec: ScenarioSpec, h: FloatArray, rng: np.random.Generator) ->
 
 
 def _states(spec: ScenarioSpec, h: FloatArray, rng: np.random.Generator) -> FloatArray:
-    """True ``(X, d)`` on each trade date, ``(n_days, 2)``."""
-    tr = twofactor.transition(spec.params, h, measure="real")
-    e = rng.standard_normal((h.size, 2))
-    # 2x2 Cholesky written out: it also copes with a zero volatility (singular covariance)
-    l00 = np.sqrt(tr.cov[:, 0, 0])
-    l10 = np.divide(tr.cov[:, 1, 0], l00, out=np.zeros_like(l00), where=l00 > 0.0)
-    l11 = np.sqrt(np.maximum(tr.cov[:, 1, 1] - l10 * l10, 0.0))
-    eps = np.stack([l00 * e[:, 0], l10 * e[:, 0] + l11 * e[:, 1]], axis=1)
-    z = np.empty((h.size + 1, 2))
-    z[0] = (math.log(spec.spot0), spec.yield0)
-    for n in range(h.size):  # the state recursion is sequential by nature
-        z[n + 1] = tr.c[n] + tr.Phi[n] @ z[n] + eps[n]
-    return z
+    """True ``(X, d)`` on each trade date, ``(n_days, 2)``: one path of the exact simulation
+    :func:`calib.model.simulate.simulate_states` under the real-world measure."""
+    times = np.concatenate([[0.0], np.cumsum(h)])
+    path = simulate_states(
+        spec.params, times, math.log(spec.spot0), spec.yield0, 1, rng=rng, measure="real"
+    )
+    return np.stack([path.log_spot[0], path.conv_yield[0]], axis=1)
 
 
 # --- options -----------------------------------------------------------------------------------
@@ -536,9 +532,9 @@ def write_csv(scenario: Scenario, directory: Path | str) -> dict[str, Path]:
 
 
 def main(argv: Sequence[str] | None = None) -> int:
-    """``python -m calib.workflows.scenario --dir DIR [--json]``: write the default scenario."""
+    """``python -m calib.workflows.demo.scenario --dir DIR [--json]``: the default scenario."""
     parser = argparse.ArgumentParser(
-        prog="python -m calib.workflows.scenario",
+        prog="python -m calib.workflows.demo.scenario",
         description="Write the invented demo scenario (default spec) as CSV files.",
     )
     parser.add_argument("--dir", required=True, type=Path, help="output directory")

@@ -20,7 +20,7 @@ from calib.calibrate.result import BucketVols, ConstraintReport
 from calib.errors import ReportInputError
 from calib.model import black76, twofactor
 from calib.model.twofactor import TwoFactorParams
-from calib.workflows import report as rp
+from calib.output import report as rp
 from tests.browser.harness import chromium_page, screenshot
 
 TRADE = dt.date(2031, 3, 3)  # invented
@@ -215,7 +215,7 @@ def test_inconsistent_inputs_are_errors_of_ours(rng: np.random.Generator) -> Non
 
 def test_importing_the_modules_does_not_import_matplotlib() -> None:
     code = (
-        "import sys, calib.workflows.report, calib.workflows.compare;"
+        "import sys, calib.output.report, calib.output.compare;"
         "sys.exit('matplotlib' in sys.modules)"
     )
     root = Path(__file__).resolve().parents[2]
@@ -244,3 +244,67 @@ def test_page_loads_in_headless_chromium_with_every_figure(
         assert problems == []
         assert page.locator("h1").inner_text().startswith("Fit report: Quellium (QLM)")
         screenshot(page, "fit-report")
+
+
+def _page_text(inputs: rp.ReportInputs, folder: Path) -> str:
+    files = rp.render_report(inputs, folder)
+    return " ".join(" ".join(_parse(files.index).text).split())
+
+
+def test_verdict_box_leads_with_the_failed_gates_and_flags(
+    tmp_path: Path, rng: np.random.Generator
+) -> None:
+    clean = _page_text(_inputs(rng, frontier=()), tmp_path / "clean")
+    assert "Verdict: every gate passed (2), solver optimal." in clean
+    gates = (rp.GateRow("rmse_vol", 1.4, "<= 1.0", False), rp.GateRow("decay_bound", 0.0, 0, True))
+    solve = rp.SolveInfo(
+        "CLARABEL", "optimal_inaccurate", 4, True, 0.8, 2.1, "price", ("inaccurate",)
+    )
+    text = _page_text(_inputs(rng, gates=gates, solve=solve, frontier=()), tmp_path / "bad")
+    verdict = (
+        "Verdict: not for automatic approval; failed gate: rmse_vol; caution flags: inaccurate."
+    )
+    assert verdict in text
+    assert text.index("Verdict:") < text.index("Parameters against historical")
+
+
+def test_title_names_a_commodity_once_when_it_has_no_long_name(
+    tmp_path: Path, rng: np.random.Generator
+) -> None:
+    text = _page_text(
+        _inputs(rng, commodity=rp.Commodity("QLM", "QLM", "t", "NMD"), frontier=()), tmp_path
+    )
+    assert "Fit report: QLM, trade date" in text and "QLM (QLM)" not in text
+
+
+def test_every_forward_bucket_and_the_previous_set_are_in_the_parameter_table(
+    tmp_path: Path, rng: np.random.Generator
+) -> None:
+    buckets = tuple(
+        BucketVols(0.3 * k, 0.3 * (k + 1), CAL.with_vols(0.2 + k / 100, 0.18, 0.7))
+        for k in range(3)
+    )
+    previous = rp.PreviousSet(38, dt.date(2031, 3, 2), CAL.with_vols(0.25, 0.19, 0.66))
+    inputs = _inputs(rng, buckets=buckets, previous=previous, frontier=())
+    text = _page_text(inputs, tmp_path)
+    for k, b in enumerate(buckets):
+        for name in ("sigma_spot", "sigma_yield", "rho"):
+            assert f"{name} bucket {k} [{b.start:.3g}, {b.end:.3g}) y" in text
+    assert "previous approved (run 38)" in text and "calibrated vs previous" in text
+
+
+def test_crowded_frontier_points_share_one_label() -> None:
+    pts = [rp.FrontierRow(w, 0.05 / (1 + 1e4 * w), 0.6 + 40 * w, 0.1) for w in (0.0, 1e-9, 1e-2)]
+    d = np.array([p.distance for p in pts])
+    r = np.array([p.rmse for p in pts])
+    assert [p.anchor_weight for p in rp._spaced(pts, d, r)] == [0.0, 1e-2]
+
+
+def test_calls_and_puts_differ_in_colour_and_strikes_read_as_moneyness(
+    rng: np.random.Generator,
+) -> None:
+    fig = rp._fig_smiles(_inputs(rng))
+    ax = fig.axes[0]
+    colours = {line.get_label(): line.get_color() for line in ax.get_lines()}
+    assert colours["market call"] != colours["market put"]
+    assert ax.child_axes, "a secondary strike axis in moneyness"

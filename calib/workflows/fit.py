@@ -1,0 +1,448 @@
+"""The morning run: fit one day, gate it, store it (one write transaction).
+
+:func:`fit_day` reads the day's quotes and the historical estimate in one read transaction,
+fits outside any transaction, then writes the run, its residuals and its first event in **one**
+write transaction (SQLite ``BEGIN IMMEDIATE``; PostgreSQL row lock on the commodity, so gates
+compare against the approved set that is current when the run is written). A fit that the
+calibration refuses (too few quotes, conflicting constraints, solver failure, unusable quotes)
+is stored as a ``failed`` run with its reason and status ``rejected``; the approved set is
+never touched by it. The settings file and the gates are :mod:`calib.policy`; what a run
+stores is :class:`calib.record.fit.FitRecord`.
+"""
+
+from __future__ import annotations
+
+import warnings
+from collections.abc import Callable, Collection, Sequence
+from dataclasses import dataclass
+from datetime import date
+from typing import Any
+
+import numpy as np
+from sqlalchemy.orm import Session, sessionmaker
+
+from calib.calibrate import (
+    CalibrationResult,
+    CalibrationSettings,
+    Calibrator,
+    OptionQuotes,
+    fit,
+)
+from calib.errors import (
+    CALIBRATION_ERRORS,
+    CalibWarning,
+    NoEstimateError,
+    NoQuotesError,
+    NotConvergedEstimateError,
+    QuoteError,
+    UnknownEstimateError,
+)
+from calib.model import black76
+from calib.model.twofactor import PARAM_NAMES, TwoFactorParams
+from calib.policy.gates import evaluate_gates
+from calib.policy.settings import RunSettings, default_settings
+from calib.record.fit import Dropped, FitRecord, Gate
+from calib.store.base import utc_now
+from calib.store.engine import begin_write
+from calib.store.estimates import (
+    EstimateRecord,
+    get_estimate,
+    latest_estimate,
+    unconverged_estimate_ids,
+)
+from calib.store.quotes import DayQuotes, load_day, year_fractions
+from calib.store.runs import (
+    RunRecord,
+    add_residuals,
+    add_run,
+    append_event,
+    approvals_held,
+    latest_approved,
+    lock_commodity,
+    require_run,
+)
+from calib.workflows.approve import approve_in
+from calib.workflows.provenance import code_version, inputs_sha256
+
+CALIBRATION_FAILURES = CALIBRATION_ERRORS
+"""What the calibration raises for a day it cannot fit; each becomes a stored failed run."""
+
+
+# --- building the calibration's input from stored quotes ---------------------------------------
+
+
+def option_quotes(day: DayQuotes) -> OptionQuotes:
+    """The calibration's quotes for a stored day.
+
+    Forwards are the day's futures settlements of each option's delivery; discount factors
+    come from the day's zero curve at the option expiry; times are ACT/365 from the trade
+    date. A quote with only an implied volatility gets its Black-76 premium at that
+    volatility; bid and ask are used only when every quote has both. Labels are the
+    ``option_quotes`` row ids.
+
+    Raises
+    ------
+    QuoteError
+        An option whose delivery has no futures settlement that day, or other unusable
+        values (the calibration's own checks).
+    """
+    o = day.options
+    forward = day.futures.settle_for(o.delivery)
+    if np.isnan(forward).any():
+        j = int(np.argmax(np.isnan(forward)))
+        raise QuoteError(
+            "forward",
+            f"missing: no futures settlement for delivery {o.delivery[j]} (row {o.row_id[j]})",
+        )
+    expiry = year_fractions(day.trade_date, o.expiry)
+    discount = day.rates.discount(o.expiry)
+    premium = np.array(o.premium, dtype=np.float64)
+    missing = np.isnan(premium)
+    if missing.any():
+        rate = -np.log(discount[missing]) / expiry[missing]
+        premium[missing] = black76.price(
+            forward[missing],
+            o.strike[missing],
+            expiry[missing],
+            rate,
+            o.implied_vol[missing],
+            o.is_call[missing],
+        )
+    quoted = ~(np.isnan(o.bid) | np.isnan(o.ask))
+    return OptionQuotes(
+        expiry=expiry,
+        maturity=year_fractions(day.trade_date, o.delivery),
+        is_call=np.asarray(o.is_call),
+        strike=np.asarray(o.strike),
+        forward=forward,
+        discount=discount,
+        premium=premium,
+        bid=np.asarray(o.bid) if quoted.all() else None,
+        ask=np.asarray(o.ask) if quoted.all() else None,
+        labels=tuple(str(i) for i in o.row_id.tolist()),
+    )
+
+
+def _inputs(day: DayQuotes) -> dict[str, Any]:
+    return {
+        "futures_rows": sorted(day.futures.row_id.tolist()),
+        "option_rows": sorted(day.options.row_id.tolist()),
+        "rate_rows": sorted(day.rates.row_id.tolist()),
+        "batch_ids": list(day.batch_ids),
+        "as_of": day.as_of.isoformat(),
+    }
+
+
+@dataclass(frozen=True, slots=True)
+class Attempt:
+    """What a fit of one day gave: a result, or the reason there is none."""
+
+    result: CalibrationResult | None
+    failure: str | None
+    warnings: tuple[str, ...]
+
+
+def attempt_fit(
+    day: DayQuotes,
+    historical: TwoFactorParams,
+    settings: CalibrationSettings,
+    *,
+    calibrator_for: Callable[[OptionQuotes], Calibrator] | None = None,
+) -> Attempt:
+    """Fit ``day`` holding ``historical`` fixed; a refusal of the calibration becomes
+    ``failure`` (its message).
+
+    ``calibrator_for`` hands out a :class:`~calib.calibrate.Calibrator` built with
+    ``settings`` for the day's quotes (a backfill re-solves one compiled problem); without it
+    the problem is built for this day alone (:func:`calib.calibrate.fit`). The calibration's
+    warnings are caught and kept, one line each, in ``warnings`` (and stored with the run).
+    """
+    with warnings.catch_warnings(record=True) as caught:
+        warnings.simplefilter("always", CalibWarning)
+        try:
+            quotes = option_quotes(day)
+            if calibrator_for is None:
+                result = fit(quotes, historical, settings)
+            else:
+                result = calibrator_for(quotes).fit(quotes, historical)
+        except CALIBRATION_FAILURES as exc:
+            return Attempt(None, f"{type(exc).__name__}: {exc}", ())
+    notes = tuple(str(w.message) for w in caught if issubclass(w.category, CalibWarning))
+    return Attempt(result, None, notes)
+
+
+def fit_record(
+    result: CalibrationResult, gates: Sequence[Gate], warnings_: Sequence[str]
+) -> FitRecord:
+    """The stored-fit record of ``result``: every :class:`~calib.record.fit.FitRecord` field
+    that the result has under the same name, plus the gates, warnings and what is derived."""
+    same = {
+        name: getattr(result, name)
+        for name in FitRecord.__dataclass_fields__
+        if name not in ("dropped", "gates", "warnings") and hasattr(result, name)
+    }
+    return FitRecord(
+        **same,
+        error_measure=result.settings.error_measure,
+        n_quotes=int(result.quote_index.size),
+        dropped=tuple(Dropped(int(d.label), d.reason) for d in result.dropped),
+        gates=tuple(gates),
+        warnings=tuple(warnings_),
+    )
+
+
+# --- the estimate the fit holds fixed ----------------------------------------------------------
+
+
+def choose_estimate(session: Session, commodity: str, estimate_id: int | None) -> EstimateRecord:
+    """The named estimate (of this commodity, converged), else the newest converged one.
+
+    Raises
+    ------
+    UnknownEstimateError, NotConvergedEstimateError, NoEstimateError
+    """
+    if estimate_id is None:
+        found = latest_estimate(session=session, commodity=commodity)
+        if found is None:
+            raise NoEstimateError(
+                commodity, unconverged_estimate_ids(session=session, commodity=commodity)
+            )
+        return found
+    named = get_estimate(session=session, estimate_id=estimate_id)
+    if named is None:
+        raise UnknownEstimateError(estimate_id)
+    if named.commodity != commodity:
+        raise UnknownEstimateError(estimate_id, f" for {commodity} (it is {named.commodity}'s)")
+    if not named.converged:
+        raise NotConvergedEstimateError(estimate_id, named.message)
+    return named
+
+
+# --- units of work -----------------------------------------------------------------------------
+
+
+@dataclass(frozen=True, slots=True)
+class FitOutcome:
+    """A stored run and what the morning run saw: gates, the set it would replace."""
+
+    run: RunRecord
+    previous: RunRecord | None
+    """The approved run in force when this one was written (``None``: none yet)."""
+    auto_approved: bool
+
+    @property
+    def gates(self) -> tuple[Gate, ...]:
+        return () if self.run.fit is None else self.run.fit.gates
+
+    def change(self) -> dict[str, dict[str, float]] | None:
+        """Per parameter: previous approved value, new value, difference (``None``: no pair)."""
+        if self.previous is None or self.previous.params is None or self.run.params is None:
+            return None
+        old, new = self.previous.params, self.run.params
+        return {
+            n: {
+                "approved": getattr(old, n),
+                "new": getattr(new, n),
+                "change": getattr(new, n) - getattr(old, n),
+            }
+            for n in PARAM_NAMES
+        }
+
+    def to_dict(self) -> dict[str, Any]:
+        return {
+            **self.run.to_dict(),
+            "gates": [g.to_dict() for g in self.gates],
+            "auto_approved": self.auto_approved,
+            "previous_run_id": None if self.previous is None else self.previous.run_id,
+            "change": self.change(),
+        }
+
+
+@dataclass(frozen=True, slots=True)
+class StoredAttempt:
+    """What :func:`store_attempts` wrote for a day: the run id, the set it was gated against,
+    approval; ``run_id`` is ``None`` when the day was skipped (already stored, see
+    ``skip_stored``)."""
+
+    run_id: int | None
+    previous: RunRecord | None
+    auto_approved: bool
+
+
+def store_attempt(
+    sessions: sessionmaker[Session],
+    day: DayQuotes,
+    estimate_id: int,
+    settings: RunSettings,
+    attempt: Attempt,
+    *,
+    by: str,
+    auto_approve: bool,
+) -> StoredAttempt:
+    """Store a fit of ``day`` in one write transaction: the run, its residuals, its first
+    event, gated against the approved set in force (and approved if asked and every gate
+    passes). A failed attempt is stored ``rejected`` with its reason.
+    """
+    (stored,) = store_attempts(
+        sessions, [(day, attempt)], estimate_id, settings, by=by, auto_approve=auto_approve
+    )
+    return stored
+
+
+def store_attempts(
+    sessions: sessionmaker[Session],
+    fits: Sequence[tuple[DayQuotes, Attempt]],
+    estimate_id: int,
+    settings: RunSettings,
+    *,
+    by: str,
+    auto_approve: bool,
+    skip_stored: Callable[[Session], Collection[date]] | None = None,
+) -> list[StoredAttempt]:
+    """:func:`store_attempt` for several days of one commodity, in order, in **one** write
+    transaction: all of them are stored, or (interrupted, failed) none.
+
+    Each day is gated against the approved set in force when it is written, which includes
+    an earlier day of ``fits`` approved in this transaction. ``skip_stored`` is asked, under
+    the commodity's write lock, which days already have their run (stored by another writer
+    since the caller looked): those are not stored again (a backfill's claim on its days).
+    """
+    if not fits:
+        return []
+    commodity_id = fits[0][0].commodity_id
+    assert all(day.commodity_id == commodity_id for day, _ in fits), "one commodity at a time"
+    run_settings = settings.to_dict()
+    version = code_version()
+    out: list[StoredAttempt] = []
+    with approvals_held(sessions), sessions.begin() as session:
+        begin_write(session)
+        lock_commodity(session=session, commodity_id=commodity_id)
+        # under the lock only these writes can change the approved set in force
+        taken = set() if skip_stored is None else set(skip_stored(session))
+        previous = latest_approved(session=session, commodity=fits[0][0].commodity)
+        for day, attempt in fits:
+            if day.trade_date in taken:
+                out.append(StoredAttempt(None, previous, False))
+                continue
+            stored = _store_in(
+                session,
+                day,
+                estimate_id,
+                settings,
+                run_settings,
+                version,
+                attempt,
+                previous,
+                by=by,
+                auto_approve=auto_approve,
+            )
+            out.append(stored)
+            if stored.auto_approved:
+                previous = latest_approved(session=session, commodity=day.commodity)
+    return out
+
+
+def _store_in(
+    session: Session,
+    day: DayQuotes,
+    estimate_id: int,
+    settings: RunSettings,
+    run_settings: dict[str, Any],
+    version: str,
+    attempt: Attempt,
+    previous: RunRecord | None,
+    *,
+    by: str,
+    auto_approve: bool,
+) -> StoredAttempt:
+    """Write one day's run inside the caller's write transaction (which holds the lock),
+    gated against ``previous``, the approved run in force."""
+    inputs = _inputs(day)
+    result = attempt.result
+    gates: tuple[Gate, ...] = ()
+    record = None
+    if result is not None:
+        gates = evaluate_gates(
+            result, settings.gates, None if previous is None else previous.params
+        )
+        record = fit_record(result, gates, attempt.warnings)
+    run_id = add_run(
+        session=session,
+        commodity_id=day.commodity_id,
+        trade_date=day.trade_date,
+        created_at=utc_now(),
+        created_by=by,
+        estimate_id=estimate_id,
+        mode=settings.calibration.mode,
+        settings=run_settings,
+        inputs=inputs,
+        inputs_sha256=inputs_sha256(inputs),
+        failure_reason=attempt.failure,
+        fit=record,
+        code_version=version,
+    )
+    if result is not None:
+        add_residuals(
+            session=session,
+            run_id=run_id,
+            quote_id=[int(x) for x in np.asarray(result.labels)],
+            columns={
+                "market_price": result.market_price,
+                "model_price": result.model_price,
+                "market_vol": result.market_vol,
+                "model_vol": result.model_vol,
+                "price_residual": result.price_residual,
+                "vol_residual": result.vol_residual,
+                "weight": result.weight,
+            },
+        )
+        append_event(session=session, run_id=run_id, to_status="candidate", by=by, note="fitted")
+    else:
+        append_event(
+            session=session,
+            run_id=run_id,
+            to_status="rejected",
+            by=by,
+            note=f"fit failed: {attempt.failure}",
+        )
+    approved = auto_approve and record is not None and record.all_gates_pass
+    if approved:
+        note = "auto-approved: every gate passed"
+        approve_in(session, run_id, day.commodity_id, by=by, note=note)
+    return StoredAttempt(run_id, previous, approved)
+
+
+def fit_day(
+    sessions: sessionmaker[Session],
+    commodity: str,
+    trade_date: date,
+    *,
+    by: str,
+    settings: RunSettings | None = None,
+    estimate_id: int | None = None,
+    auto_approve: bool = False,
+) -> FitOutcome:
+    """Fit one day's options, store the run (candidate, or rejected if it failed), gate it.
+
+    Raises
+    ------
+    UnknownCommodityError, NoQuotesError
+        Unknown commodity, or no futures or options stored for the day (nothing stored).
+    NoEstimateError, UnknownEstimateError, NotConvergedEstimateError
+        No usable historical estimate (nothing stored).
+    """
+    settings = settings or default_settings()
+    with sessions.begin() as session:
+        day = load_day(session=session, commodity=commodity, trade_date=trade_date)
+        estimate = choose_estimate(session, commodity, estimate_id)
+    if not len(day.options) or not len(day.futures):
+        what = "options" if len(day.futures) else "futures"
+        raise NoQuotesError(commodity, f"no {what} stored for {trade_date}")
+    attempt = attempt_fit(day, estimate.params, settings.calibration)
+    stored = store_attempt(
+        sessions, day, estimate.estimate_id, settings, attempt, by=by, auto_approve=auto_approve
+    )
+    assert stored.run_id is not None  # nothing is skipped without skip_stored
+    with sessions.begin() as session:
+        run = require_run(session=session, run_id=stored.run_id)
+    return FitOutcome(run=run, previous=stored.previous, auto_approved=stored.auto_approved)
