@@ -1,11 +1,17 @@
 """The gates a fit must pass to be approved automatically.
 
-``solver_optimal`` (status ``optimal``, no caution flags), ``decay_bound``
-(``sigma_yield <= rho kappa sigma_spot`` in every bucket, value = smallest slack),
-``rmse_vol`` and ``max_error_vol`` (model minus market Black volatility over the fitted quotes,
-in vol points), and ``jump_sigma_spot``, ``jump_sigma_yield`` (relative change) and
-``jump_rho`` (absolute change) against the approved set in force; with no approved set yet the
-jump gates pass with no value. ``--auto-approve`` approves only when every gate passes.
+Gates judge the *final* solution, at the solver's stated precision:
+
+``solver_optimal`` (the final solve optimal, not flagged inaccurate, Gauss-Newton converged; an
+earlier sub-solve flagged inaccurate is shown but does not fail it), ``decay_bound``
+(``sigma_yield <= rho kappa sigma_spot`` in every bucket, value = smallest slack, met within
+``max(decay_tolerance, the constraint's own tolerance)``), ``rmse_vol`` and ``max_error_vol``
+(model minus market Black volatility over the fitted quotes, in vol points),
+``jump_sigma_spot``, ``jump_sigma_yield`` (relative change) and ``jump_rho`` (absolute change)
+against the approved set in force (with no approved set yet they pass with no value),
+``constraints`` (every constraint the solver used holds within its tolerance; value = the
+number that do not) and ``identified`` (the quotes identify every fitted parameter).
+``--auto-approve`` approves only when every gate passes.
 """
 
 from __future__ import annotations
@@ -19,7 +25,7 @@ import numpy as np
 
 from calib.errors import SettingError
 from calib.model.twofactor import TwoFactorParams
-from calib.record.fit import Gate
+from calib.record.fit import ConstraintReport, Gate
 
 if TYPE_CHECKING:
     from calib.calibrate.result import CalibrationResult
@@ -80,27 +86,37 @@ def evaluate_gates(
     result: CalibrationResult, limits: GateLimits, approved: TwoFactorParams | None
 ) -> tuple[Gate, ...]:
     """The gates of the module notes for ``result``, against the ``approved`` set in force."""
-    status_ok = result.status == "optimal" and not result.flags
     flags = f" ({', '.join(result.flags)})" if result.flags else ""
+    earlier = (
+        f"{result.inaccurate_steps} earlier sub-solve(s) inaccurate, final solve judged"
+        if result.inaccurate_steps
+        else ""
+    )
     gates = [
         Gate(
             "solver_optimal",
             f"{result.solver}: {result.status}{flags}",
             "optimal",
-            status_ok,
-            "",
+            result.final_optimal,
+            earlier,
         )
     ]
-    slack = min(
-        b.params.rho * b.params.kappa * b.params.sigma_spot - b.params.sigma_yield
-        for b in result.buckets
-    )
+    reports = [c for c in result.constraints if c.name == "decay_bound" and c.slack is not None]
+    if reports:  # the bound was imposed: its reports carry the slack and the solver's tolerance
+        slack = min(c.slack for c in reports if c.slack is not None)
+        tolerance = max([limits.decay_tolerance, *(c.tolerance for c in reports)])
+    else:  # not imposed: the gate still asks that futures volatility falls with maturity
+        slack = min(
+            b.params.rho * b.params.kappa * b.params.sigma_spot - b.params.sigma_yield
+            for b in result.buckets
+        )
+        tolerance = limits.decay_tolerance
     gates.append(
         Gate(
             "decay_bound",
             slack,
-            -limits.decay_tolerance,
-            slack >= -limits.decay_tolerance,
+            -tolerance,
+            slack >= -tolerance,
             "smallest rho kappa sigma_spot - sigma_yield over the buckets",
         )
     )
@@ -140,4 +156,28 @@ def evaluate_gates(
         value = _relative(a, b) if relative else abs(a - b)
         change = "relative" if relative else "absolute"
         gates.append(Gate(name, value, limit, value <= limit, f"{change}, {b:.6g} -> {a:.6g}"))
+    unmet = [c for c in result.constraints if not c.met]
+    gates.append(
+        Gate(
+            "constraints",
+            float(len(unmet)),
+            0.0,
+            not unmet,
+            "not met: " + ", ".join(_label(c) for c in unmet) if unmet else "all met",
+        )
+    )
+    gates.append(
+        Gate(
+            "identified",
+            ", ".join(result.not_identified) or "all",
+            "all",
+            not result.not_identified,
+            result.not_identified_reason,
+        )
+    )
     return tuple(gates)
+
+
+def _label(report: ConstraintReport) -> str:
+    where = "" if report.bucket is None else f"@{report.bucket}"
+    return f"{report.name}{where} (slack {report.slack:.3g})"

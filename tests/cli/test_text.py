@@ -52,7 +52,11 @@ def _run(**changes: Any) -> Any:
         "approved_at": None,
         "approved_by": None,
     }
-    return SimpleNamespace(**{**fields, **changes})
+    run = {**fields, **changes}
+    # the printers read a run's fit through its stored record (``run.fit.to_dict()``)
+    record = {**run["diagnostics"], "buckets": run["buckets"]}
+    fit = None if run["params"] is None else SimpleNamespace(to_dict=lambda: record)
+    return SimpleNamespace(**run, fit=fit)
 
 
 def test_fit_line_leads_with_vol_points_and_labels_the_premium_error() -> None:

@@ -59,6 +59,8 @@ def test_fit_gates_approve_supersede_and_rerun(store: Store, loaded: Loaded) -> 
         "jump_sigma_spot",
         "jump_sigma_yield",
         "jump_rho",
+        "constraints",
+        "identified",
     ]
     with store.sessions() as s:
         residuals = run_residuals(session=s, run_id=first.run.run_id)
