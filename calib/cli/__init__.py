@@ -17,6 +17,7 @@ from __future__ import annotations
 
 import json
 import sys
+from functools import cache
 from typing import Annotated
 
 import typer
@@ -50,7 +51,10 @@ def version_cmd(
     typer.echo(json.dumps({"version": version}) if as_json else version)
 
 
+@cache
 def _register_all() -> None:
+    """Add every command group to ``app``, once per process (``main`` may run many times in
+    one process, as in the tests: registering again would stack duplicate commands)."""
     from importlib import import_module
 
     for name in _COMMAND_MODULES:

@@ -4,6 +4,7 @@ not by a clock; the times themselves are measured outside the tests."""
 
 from __future__ import annotations
 
+import sys
 from pathlib import Path
 
 import pytest
@@ -80,3 +81,22 @@ def test_backfill_rate_is_the_average_since_the_start() -> None:
         now[0] = 0.7 + day * 1e-6
         bar.advance(None)  # type: ignore[arg-type]
     assert bar.bar.tasks[0].fields["rate"] == "10.0 days/s"
+
+
+def test_commands_are_registered_once_however_often_main_runs(
+    monkeypatch: pytest.MonkeyPatch,
+) -> None:
+    """In one process (the tests) ``main`` runs many times; the app must not grow each time."""
+    from calib.cli import app, main
+
+    def commands() -> int:
+        return len(app.registered_commands) + len(app.registered_groups)
+
+    monkeypatch.setattr(sys, "argv", ["calib", "--help"])
+    for _ in range(2):
+        with pytest.raises(SystemExit):
+            main()
+    once = commands()
+    with pytest.raises(SystemExit):
+        main()
+    assert commands() == once
