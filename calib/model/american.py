@@ -59,7 +59,7 @@ from collections.abc import Callable
 import numba
 import numpy as np
 
-from calib.errors import AMERICAN_IMPLIED_VOL_REASONS, IMPLIED_VOL_REASONS, ImpliedVolError
+from calib.errors import AMERICAN_IMPLIED_VOL_REASONS, IMPLIED_VOL_REASONS
 from calib.model import black76
 from calib.model.black76 import ImpliedVolCode, Kind, is_call
 from calib.types import ArrayLike, BoolArray, FloatArray, IntArray
@@ -779,9 +779,8 @@ def implied_vol(
     raises :class:`calib.errors.ImpliedVolError` naming the reason instead.
     """
     vol, code = implied_vol_detail(premium, F, K, T, r, kind)
-    if vol.ndim == 0 and int(code) != ImpliedVolCode.OK:
-        name = ImpliedVolCode(int(code)).name
-        european = float(np.asarray(r, dtype=np.float64)) <= 0.0
-        reason = (IMPLIED_VOL_REASONS if european else AMERICAN_IMPLIED_VOL_REASONS)[name]
-        raise ImpliedVolError(float(np.asarray(premium, dtype=np.float64)), reason)
-    return vol
+    if vol.ndim != 0:
+        return vol
+    european = float(np.asarray(r, dtype=np.float64)) <= 0.0
+    reasons = IMPLIED_VOL_REASONS if european else AMERICAN_IMPLIED_VOL_REASONS
+    return black76.scalar_checked(vol, code, premium, reasons)

@@ -18,7 +18,7 @@ time (theta :math:`= -\\partial V/\\partial T`).
 from __future__ import annotations
 
 import math
-from collections.abc import Callable
+from collections.abc import Callable, Mapping
 from enum import IntEnum
 from typing import Literal
 
@@ -430,7 +430,15 @@ def implied_vol(
     raises :class:`calib.errors.ImpliedVolError` naming the reason instead.
     """
     vol, code = implied_vol_detail(premium, F, K, T, r, kind)
+    return scalar_checked(vol, code, premium, IMPLIED_VOL_REASONS)
+
+
+def scalar_checked(
+    vol: FloatArray, code: IntArray, premium: ArrayLike, reasons: Mapping[str, str]
+) -> FloatArray:
+    """``vol``, or for a scalar without an implied volatility :class:`ImpliedVolError` naming
+    the reason (``reasons``: phrase per :class:`ImpliedVolCode` name)."""
     if vol.ndim == 0 and int(code) != ImpliedVolCode.OK:
-        reason = IMPLIED_VOL_REASONS[ImpliedVolCode(int(code)).name]
+        reason = reasons[ImpliedVolCode(int(code)).name]
         raise ImpliedVolError(float(np.asarray(premium, dtype=np.float64)), reason)
     return vol
