@@ -16,6 +16,7 @@ import typer
 
 from calib.cli.common import (
     AsOfOption,
+    ClusterOption,
     DbOption,
     EstimateOption,
     JsonOption,
@@ -121,6 +122,7 @@ def estimate_cmd(
             show_default=False,
         ),
     ] = None,
+    cluster: ClusterOption = None,
     db: DbOption = None,
     as_json: JsonOption = False,
 ) -> None:
@@ -128,7 +130,7 @@ def estimate_cmd(
 
     With --rolling: a rolling series (resumable: the same command again estimates only the
     windows not stored yet); its estimates are never the morning fit's default."""
-    if rolling is not None or step is not None or workers is not None:
+    if rolling is not None or step is not None or workers is not None or cluster is not None:
         from calib.cli.stability_cmds import rolling_estimate
 
         rolling_estimate(
@@ -138,6 +140,7 @@ def estimate_cmd(
             rolling,
             step,
             workers,
+            cluster=cluster,
             contracts=contracts,
             min_days=min_days,
             db=db,
