@@ -26,41 +26,26 @@ STD_ERRORS = {n: 0.01 for n in PARAM_NAMES}
 
 def _series(store: Store, code: str, truth: TwoFactorParams, shifts: dict[date, float]) -> int:
     """A rolling series whose windows are the truth with ``sigma_spot`` moved by a shift."""
-    now = datetime(2031, 12, 1, tzinfo=UTC)
+    stamp = {"created_at": datetime(2031, 12, 1, tzinfo=UTC), "created_by": "q", "settings": {}}
+    window = {"source": "kalman", "converged": True, "message": "", "inputs": {}}
     with store.sessions.begin() as s:
         cid = require_commodity(session=s, code=code).id
-        series_id = add_series(
-            session=s,
-            commodity_id=cid,
-            created_at=now,
-            created_by="q",
-            window_length="6m",
-            step="1m",
-            first_end=ENDS[0],
-            last_end=ENDS[-1],
-            settings={},
-            settings_sha256="s",
-        )
+        series = {"window_length": "6m", "step": "1m", "first_end": ENDS[0], "last_end": ENDS[-1]}
+        series_id = add_series(session=s, commodity_id=cid, settings_sha256="s", **series, **stamp)
         for end in ENDS:
-            params = dataclasses.replace(truth, sigma_spot=truth.sigma_spot + shifts[end])
             add_estimate(
                 session=s,
                 commodity_id=cid,
-                created_at=now,
-                created_by="q",
-                source="kalman",
                 window_start=date(end.year - 1, end.month, end.day),
                 window_end=end,
-                params=params,
-                converged=True,
-                message="",
+                params=dataclasses.replace(truth, sigma_spot=truth.sigma_spot + shifts[end]),
                 std_errors=STD_ERRORS,
                 noise_sd=[0.001],
-                inputs={},
                 inputs_sha256=end.isoformat(),
-                settings={},
                 code_version="test",
                 series_id=series_id,
+                **window,
+                **stamp,
             )
     return series_id
 
