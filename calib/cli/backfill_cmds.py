@@ -9,8 +9,9 @@ from __future__ import annotations
 
 import time
 from collections.abc import Callable
-from contextlib import nullcontext
+from contextlib import closing, nullcontext
 from datetime import datetime
+from functools import partial
 from typing import TYPE_CHECKING, Annotated
 
 import typer
@@ -23,6 +24,7 @@ from calib.cli.common import (
     EstimateOption,
     JsonOption,
     SettingsOption,
+    WorkersOption,
     chosen_commodities,
     echo_json,
     open_store,
@@ -126,15 +128,7 @@ def backfill_cmd(
     ] = None,
     commodities: CommoditiesOption = None,
     every: AllCommoditiesOption = False,
-    workers: Annotated[
-        int | None,
-        typer.Option(
-            "--workers",
-            min=1,
-            help="Local processes that fit days (default 1).",
-            show_default=False,
-        ),
-    ] = None,
+    workers: WorkersOption = None,
     cluster: ClusterOption = None,
     settings_file: SettingsOption = None,
     estimate_id: EstimateOption = None,
@@ -158,21 +152,13 @@ def backfill_cmd(
 
     with open_store(db) as (store, program):
         codes = chosen_commodities(store, [commodity, *(commodities or [])], every)
-        settings = {code: load_settings(settings_file, code) for code in codes}
-        with open_executor(workers, cluster) as executor:
+        jobs = [flow.BackfillJob(c, load_settings(settings_file, c), estimate_id) for c in codes]
+        with closing(open_executor(workers, cluster)) as executor:
             bar = None if as_json else _Bar()
             with bar.bar if bar is not None else nullcontext():
-                reports = flow.backfill_many(
-                    store,
-                    codes,
-                    start.date(),
-                    end.date(),
-                    by=program.user,
-                    settings=settings,
-                    estimate_id=estimate_id,
-                    executor=executor,
-                    auto_approve=auto_approve,
-                    progress=bar,
+                run = partial(flow.backfill_many, store, jobs, by=program.user, progress=bar)
+                reports = run(
+                    start.date(), end.date(), executor=executor, auto_approve=auto_approve
                 )
     if as_json:
         if len(reports) == 1 and not commodities and not every:

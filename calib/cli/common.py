@@ -82,6 +82,15 @@ ClusterOption = Annotated[
     ),
 ]
 """``--cluster ADDRESS``: hand to :func:`calib.compute.executor.open_executor`."""
+WorkersOption = Annotated[
+    int | None,
+    typer.Option(
+        "--workers",
+        min=1,
+        help="Local worker processes (backfill: default 1; rolling estimates: the cores).",
+        show_default=False,
+    ),
+]
 CommoditiesOption = Annotated[
     list[str] | None,
     typer.Option(

@@ -21,6 +21,7 @@ from calib.cli.common import (
     EstimateOption,
     JsonOption,
     SettingsOption,
+    WorkersOption,
     echo_json,
     open_store,
 )
@@ -115,15 +116,7 @@ def estimate_cmd(
             show_default=False,
         ),
     ] = None,
-    workers: Annotated[
-        int | None,
-        typer.Option(
-            "--workers",
-            min=1,
-            help="With --rolling: worker processes (default: cores).",
-            show_default=False,
-        ),
-    ] = None,
+    workers: WorkersOption = None,
     cluster: ClusterOption = None,
     db: DbOption = None,
     as_json: JsonOption = False,

@@ -7,6 +7,7 @@ Exit codes: 0 done; 2 a user mistake (bad period, unknown series or estimate), n
 from __future__ import annotations
 
 import sys
+from contextlib import closing
 from datetime import date, datetime
 from pathlib import Path
 from typing import TYPE_CHECKING, Annotated, Any, Literal
@@ -98,7 +99,7 @@ def rolling_estimate(
         if bar is not None and w.status != "held":
             bar.update(1)
 
-    with open_store(db) as (store, settings), open_executor(workers, cluster) as executor:
+    with open_store(db) as (store, settings), closing(open_executor(workers, cluster)) as executor:
         try:
             report = flow.estimate_rolling(
                 store.sessions,

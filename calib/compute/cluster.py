@@ -2,7 +2,8 @@
 
 :func:`connect` opens a :class:`distributed.Client` on a running scheduler; the returned
 :class:`DaskExecutor` runs :func:`~calib.compute.executor.ordered_map` over the client's
-``concurrent.futures`` executor, the code path local processes take. What travels: the
+``concurrent.futures`` executor (:class:`~calib.compute.executor.PoolExecutor`), the code path
+local processes take. What travels: the
 function by reference (module and name: every worker has calib installed) and each unit's
 plain data (pickled arrays and settings), then the results back to the caller. Workers never
 see a database URL. A worker lost mid-unit is the scheduler's to handle: it runs the unit
@@ -11,17 +12,14 @@ again elsewhere, and the caller, which alone writes, still receives each result 
 
 from __future__ import annotations
 
-from collections.abc import Callable, Generator, Iterable
-from typing import TYPE_CHECKING, TypeVar
+from concurrent.futures import Executor as FuturesExecutor
+from typing import TYPE_CHECKING
 
-from calib.compute.executor import AHEAD_PER_WORKER, _Closing, ordered_map
+from calib.compute.executor import PoolExecutor
 from calib.errors import ClusterError
 
 if TYPE_CHECKING:
     from distributed import Client
-
-T = TypeVar("T")
-R = TypeVar("R")
 
 CONNECT_SECONDS = 5.0
 """How long :func:`connect` waits for the scheduler to answer."""
@@ -29,7 +27,7 @@ CONNECT_SECONDS = 5.0
 INSTALL_HINT = "needs dask distributed (pip install 'calib[cluster]')"
 
 
-class DaskExecutor(_Closing):
+class DaskExecutor(PoolExecutor):
     """The units on the cluster behind ``client``; ``close()`` disconnects (the cluster
     keeps running)."""
 
@@ -47,12 +45,10 @@ class DaskExecutor(_Closing):
     def where(self) -> str:
         return f"cluster {self.address}"
 
-    def map(
-        self, fn: Callable[[T], R], items: Iterable[T], *, ahead: int | None = None
-    ) -> Generator[R, None, None]:
+    def pool(self) -> FuturesExecutor:
         # pure=False: every unit is its own task, never merged with an equal-looking one
-        pool = self.client.get_executor(pure=False)
-        yield from ordered_map(pool, fn, items, ahead or AHEAD_PER_WORKER * self.workers)
+        executor: FuturesExecutor = self.client.get_executor(pure=False)
+        return executor
 
     def close(self) -> None:
         self.client.close()

@@ -25,13 +25,13 @@ import signal
 import sys
 import threading
 import time
+from abc import ABC, abstractmethod
 from collections import deque
 from collections.abc import Callable, Generator, Iterable
 from concurrent.futures import Executor as FuturesExecutor
 from concurrent.futures import Future, ProcessPoolExecutor
 from itertools import islice
-from types import TracebackType
-from typing import Protocol, Self, TypeVar
+from typing import Protocol, TypeVar
 
 T = TypeVar("T")
 R = TypeVar("R")
@@ -48,7 +48,8 @@ WATCH_SECONDS = 0.5
 
 
 class Executor(Protocol):
-    """Runs ``fn`` over ``items`` and yields the results in the order of ``items``."""
+    """Runs ``fn`` over ``items`` and yields the results in the order of ``items``; ``close()``
+    releases what it holds (use ``with contextlib.closing(executor)``)."""
 
     @property
     def workers(self) -> int:
@@ -57,7 +58,7 @@ class Executor(Protocol):
 
     @property
     def where(self) -> str:
-        """Where the units run, for reports: ``"this process"``, ``"2 local processes"``,
+        """Where the units run, for reports: ``"this process"``, ``"2 local process(es)"``,
         ``"cluster tcp://host:8786"``."""
         ...
 
@@ -66,33 +67,6 @@ class Executor(Protocol):
     ) -> Generator[R, None, None]: ...
 
     def close(self) -> None: ...
-
-    def __enter__(self) -> Self: ...
-
-    def __exit__(
-        self,
-        kind: type[BaseException] | None,
-        value: BaseException | None,
-        trace: TracebackType | None,
-    ) -> None: ...
-
-
-class _Closing:
-    """``with`` support: ``close()`` on the way out."""
-
-    def close(self) -> None:
-        pass
-
-    def __enter__(self) -> Self:
-        return self
-
-    def __exit__(
-        self,
-        kind: type[BaseException] | None,
-        value: BaseException | None,
-        trace: TracebackType | None,
-    ) -> None:
-        self.close()
 
 
 def ordered_map(
@@ -115,8 +89,11 @@ def ordered_map(
             future.cancel()
 
 
-class InlineExecutor(_Closing):
+class InlineExecutor:
     """Every item in this process, one after another (debugging, tests, one core)."""
+
+    def close(self) -> None:
+        pass
 
     @property
     def workers(self) -> int:
@@ -155,7 +132,26 @@ def die_with_parent(parent: int) -> None:
     threading.Thread(target=_watch_parent, args=(parent,), daemon=True).start()
 
 
-class ProcessExecutor(_Closing):
+class PoolExecutor(ABC):
+    """An executor whose units go through a :class:`concurrent.futures.Executor` opened for
+    each ``map`` (:func:`ordered_map`): local processes and a Dask cluster alike."""
+
+    @property
+    @abstractmethod
+    def workers(self) -> int: ...
+
+    @abstractmethod
+    def pool(self) -> FuturesExecutor:
+        """A ``concurrent.futures`` executor for one ``map`` (shut down at its end)."""
+
+    def map(
+        self, fn: Callable[[T], R], items: Iterable[T], *, ahead: int | None = None
+    ) -> Generator[R, None, None]:
+        with self.pool() as pool:
+            yield from ordered_map(pool, fn, items, ahead or AHEAD_PER_WORKER * self.workers)
+
+
+class ProcessExecutor(PoolExecutor):
     """Local worker processes (``concurrent.futures.ProcessPoolExecutor``), one pool per map.
 
     Workers are started with ``spawn``: they share nothing with the caller (no inherited
@@ -175,17 +171,16 @@ class ProcessExecutor(_Closing):
     def where(self) -> str:
         return f"{self._workers} local process(es)"
 
-    def map(
-        self, fn: Callable[[T], R], items: Iterable[T], *, ahead: int | None = None
-    ) -> Generator[R, None, None]:
-        context = multiprocessing.get_context("spawn")
-        with ProcessPoolExecutor(
+    def close(self) -> None:
+        pass  # each map's pool is shut down at the end of the map
+
+    def pool(self) -> FuturesExecutor:
+        return ProcessPoolExecutor(
             max_workers=self._workers,
-            mp_context=context,
+            mp_context=multiprocessing.get_context("spawn"),
             initializer=die_with_parent,
             initargs=(os.getpid(),),
-        ) as pool:
-            yield from ordered_map(pool, fn, items, ahead or AHEAD_PER_WORKER * self._workers)
+        )
 
 
 def local_executor(workers: int | None = None) -> Executor:
@@ -198,7 +193,7 @@ def local_executor(workers: int | None = None) -> Executor:
 def open_executor(workers: int | None = None, cluster: str | None = None) -> Executor:
     """The executor a command asked for: the Dask cluster at ``cluster`` (connected now,
     see :func:`calib.compute.cluster.connect`), else :func:`local_executor` of ``workers``.
-    Use it in a ``with`` block (a cluster's connection is closed at the end).
+    Use it in ``with contextlib.closing(...)`` (a cluster's connection is closed at the end).
 
     Raises
     ------

@@ -52,7 +52,7 @@ from __future__ import annotations
 import threading
 import time
 from collections import Counter, deque
-from collections.abc import Iterator, Mapping, Sequence
+from collections.abc import Iterator, Sequence
 from contextlib import closing
 from dataclasses import dataclass, field
 from datetime import date
@@ -304,6 +304,16 @@ class _Plan:
         }
 
 
+@dataclass(frozen=True, slots=True)
+class BackfillJob:
+    """One commodity of a backfill: its settings (defaults when None) and the historical
+    estimate to hold fixed (default: its newest converged one)."""
+
+    commodity: str
+    settings: RunSettings | None = None
+    estimate_id: int | None = None
+
+
 def backfill(
     store: Store,
     commodity: str,
@@ -318,14 +328,13 @@ def backfill(
     progress: Progress | None = None,
 ) -> BackfillReport:
     """:func:`backfill_many` of one commodity."""
+    job = BackfillJob(commodity, settings, estimate_id)
     (report,) = backfill_many(
         store,
-        [commodity],
+        [job],
         start,
         end,
         by=by,
-        settings={commodity: settings or default_settings()},
-        estimate_id=estimate_id,
         executor=executor,
         auto_approve=auto_approve,
         progress=progress,
@@ -335,36 +344,31 @@ def backfill(
 
 def backfill_many(
     store: Store,
-    commodities: Sequence[str],
+    jobs: Sequence[BackfillJob],
     start: date,
     end: date,
     *,
     by: str,
-    settings: Mapping[str, RunSettings] | None = None,
-    estimate_id: int | None = None,
     executor: Executor | None = None,
     auto_approve: bool = False,
     progress: Progress | None = None,
 ) -> tuple[BackfillReport, ...]:
     """Fit and store every trading day of ``start..end`` that has no run with these settings,
-    for each of ``commodities``; one report per commodity, in their order.
+    for each job's commodity; one report per job, in their order.
 
     Parameters
     ----------
     store : the store (only this process opens it).
-    commodities : commodity codes (each once).
+    jobs : the commodities (each once), with their settings and estimate.
     start, end : first and last trading day (inclusive); the days are those with futures.
     by : recorded as the runs' creator (and approver with ``auto_approve``).
-    settings : calibration settings and gate limits per commodity (defaults when missing).
-    estimate_id : the historical estimate to hold fixed (default: each commodity's newest
-        converged one).
     executor : where the days are fitted (default: this process); the caller closes it.
     auto_approve : approve each day whose gates all pass, in date order.
     progress : told the number of days to fit (all commodities) and of each stored day.
 
     Raises
     ------
-    BackfillRangeError : ``start`` after ``end``.
+    BackfillRangeError : ``start`` after ``end``, or a commodity named twice.
     UnknownCommodityError, NoEstimateError, UnknownEstimateError, NotConvergedEstimateError
     """
     if start > end:
@@ -373,13 +377,16 @@ def backfill_many(
     progress = progress or _Silent()
     began = time.perf_counter()
     plans: list[_Plan] = []
+    twice = [c for c, n in Counter(j.commodity for j in jobs).items() if n > 1]
+    if twice:
+        raise BackfillRangeError(f"commodity {twice[0]} named twice")
     with store.sessions.begin() as session:
-        for commodity in dict.fromkeys(commodities):
-            chosen = (settings or {}).get(commodity) or default_settings()
-            estimate = choose_estimate(session, commodity, estimate_id)
-            dates = trade_dates(session=session, commodity=commodity, start=start, end=end)
+        for job in jobs:
+            chosen = job.settings or default_settings()
+            estimate = choose_estimate(session, job.commodity, job.estimate_id)
+            dates = trade_dates(session=session, commodity=job.commodity, start=start, end=end)
             plan = _Plan(
-                commodity=commodity,
+                commodity=job.commodity,
                 settings=chosen,
                 key=settings_sha256(chosen),
                 estimate_id=estimate.estimate_id,
