@@ -739,3 +739,18 @@ class DemoFolderError(TemplatedError, InputError):
     )
     path: str
     marker: str
+
+
+# --- study runs and policy comparisons (hedge2) --------------------------------------------------
+
+
+@dataclass(eq=False, repr=False)
+class StudyRunError(TemplatedError, InputError):
+    """A run of a policy study asked to be approved or served: study runs never are."""
+
+    TEMPLATE: ClassVar[str] = (
+        "run {run_id} belongs to the policy study {study!r}: study runs are never approved or "
+        "served"
+    )
+    run_id: int
+    study: str

@@ -201,3 +201,97 @@ def replay_cmd(
         typer.echo(result.summary())
         for path in written:
             typer.echo(f"  wrote {path}")
+
+
+@hedge_app.command("policies")
+def policies_cmd(
+    expiry: Expiry,
+    strike: Strike,
+    start: Annotated[
+        datetime, typer.Option("--from", formats=_DAY, help="First possible sale day.")
+    ],
+    end: Annotated[datetime, typer.Option("--to", formats=_DAY, help="Last possible sale day.")],
+    policy: Annotated[
+        list[str],
+        typer.Option(
+            "--policy",
+            metavar="NAME=FILE",
+            help="A calibration settings file to compare (repeat; NAME defaults to the file name).",
+        ),
+    ],
+    commodity: Annotated[
+        list[str] | None,
+        typer.Option("--commodity", metavar="CODE", help="Commodity (repeat).", show_default=False),
+    ] = None,
+    every_commodity: Annotated[
+        bool, typer.Option("--all", help="Every registered commodity.")
+    ] = False,
+    future: Future = None,
+    near: Near = None,
+    far: Far = None,
+    kind: KindOpt = "call",
+    every: Annotated[
+        int, typer.Option("--every", min=1, help="Trading days between two sales.")
+    ] = 5,
+    workers: Annotated[
+        int, typer.Option("--workers", min=1, help="Processes that fit and replay.")
+    ] = 1,
+    png: Annotated[
+        Path | None,
+        typer.Option("--png", help="Write the P&L figure by policy here.", show_default=False),
+    ] = None,
+    csv_path: Annotated[
+        Path | None,
+        typer.Option("--csv", help="Write one row per policy here.", show_default=False),
+    ] = None,
+    html_dir: Annotated[
+        Path | None,
+        typer.Option(
+            "--html", help="Write the page (index.html and its figure) here.", show_default=False
+        ),
+    ] = None,
+    db: DbOption = None,
+    as_json: JsonOption = False,
+) -> None:
+    """Compare calibration policies by hedge P&L on the stored history: fit each policy's
+    study runs (never approved or served; resumable), then replay the same option sold every
+    --every trading days under each policy."""
+    from calib.errors import HedgeRequestError
+    from calib.estimate.executor import local_executor
+    from calib.output import hedge as show
+    from calib.workflows import hedge_policies as flow
+
+    if bool(commodity) == every_commodity:
+        raise HedgeRequestError("-", "name commodities with --commodity CODE, or give --all")
+    trade = _trade(expiry, strike, kind, future, near, far)
+    policies = [flow.Policy.parse(p) for p in policy]
+    with open_store(db) as (store, program):
+        result = flow.compare_policies(
+            store,
+            None if every_commodity else commodity,
+            policies,
+            trade,
+            start=start.date(),
+            end=end.date(),
+            every=every,
+            by=program.user,
+            executor=local_executor(workers),
+        )
+    rows = result.to_list()
+    title = (
+        f"{trade.describe()}; sold every {every} trading days, {start:%Y-%m-%d} to {end:%Y-%m-%d}"
+    )
+    written = []
+    if png is not None:
+        written.append(str(show.plot_policies(rows, title, png)))
+    if csv_path is not None:
+        written.append(str(show.write_policy_csv(rows, csv_path)))
+    if html_dir is not None:
+        written.append(str(show.render_policy_page(rows, title, html_dir)[0]))
+    if as_json:
+        echo_json(rows)
+    else:
+        typer.echo(title)
+        typer.echo("\n".join(show.policy_lines(rows)))
+        for path in written:
+            typer.echo(f"  wrote {path}")

@@ -202,6 +202,25 @@ class _Silent:
 
 
 @dataclass
+class Calibrators:
+    """One compiled :class:`~calib.calibrate.Calibrator` per problem shape, re-solved for
+    every day of that shape (forward mode: the day's number of expiry buckets)."""
+
+    settings: CalibrationSettings
+    _by_shape: dict[int, Calibrator] = field(default_factory=dict, init=False, repr=False)
+
+    def __call__(self, quotes: OptionQuotes) -> Calibrator:
+        """The calibrator for this day's shape."""
+        n = 1
+        if self.settings.mode == "forward":
+            n = max(bucket_edges(prepare(quotes, self.settings).expiry).size - 1, 1)
+        found = self._by_shape.get(n)
+        if found is None:
+            found = self._by_shape[n] = Calibrator(self.settings, n)
+        return found
+
+
+@dataclass
 class DayFitter:
     """Reads and fits days of one commodity; one per process, its calibrators re-solved.
 
@@ -218,17 +237,13 @@ class DayFitter:
     historical: TwoFactorParams
     settings: CalibrationSettings
     _store: Store | None = field(default=None, init=False, repr=False)
-    _calibrators: dict[int, Calibrator] = field(default_factory=dict, init=False, repr=False)
+    _calibrators: Calibrators | None = field(default=None, init=False, repr=False)
 
     def calibrator_for(self, quotes: OptionQuotes) -> Calibrator:
         """The calibrator for this day's shape (forward mode: its number of buckets)."""
-        n = 1
-        if self.settings.mode == "forward":
-            n = max(bucket_edges(prepare(quotes, self.settings).expiry).size - 1, 1)
-        found = self._calibrators.get(n)
-        if found is None:
-            found = self._calibrators[n] = Calibrator(self.settings, n)
-        return found
+        if self._calibrators is None:
+            self._calibrators = Calibrators(self.settings)
+        return self._calibrators(quotes)
 
     def __call__(self, dates: Sequence[date]) -> list[FittedDay]:
         """Read ``dates`` in one read transaction (:func:`~calib.store.quotes.load_days`),
