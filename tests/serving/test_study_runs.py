@@ -55,7 +55,8 @@ def test_approve_refuses_a_study_run(
     study = study_candidate(store, cid, eid, "free")
     with pytest.raises(StudyRunError, match=f"run {study} belongs to the policy study 'free'"):
         approve(store.sessions, study, by="risk", note="no")
-    code, _, err = run(capsys, monkeypatch, "approve", str(study), "--by", "risk", "--db", db_url)
+    args = ["approve", str(study), "--by", "risk", "--note", "x", "--db", db_url]
+    code, _, err = run(capsys, monkeypatch, *args)
     assert code == 2 and err.count("\n") == 1 and "study runs are never approved" in err
     with Client(db_url) as client:
         assert client.latest(CODE).run_id == served  # nothing changed
