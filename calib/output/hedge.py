@@ -112,6 +112,8 @@ def write_policy_csv(rows: Sequence[Mapping[str, Any]], path: Path) -> Path:
 
 
 def _cell(x: Any) -> str:
+    if x is None:
+        return ""
     if isinstance(x, float):
         return "" if math.isnan(x) else f"{x:.10g}"
     return str(x)
@@ -135,7 +137,8 @@ def plot_policies(rows: Sequence[Mapping[str, Any]], title: str, path: Path) -> 
     for ax, code in zip(axes, commodities, strict=True):
         mine = [r for r in rows if r["commodity"] == code]
         samples = [
-            np.array([t["pnl_pct"] for t in r["trade_list"] if t["not_sold"] is None]) for r in mine
+            np.array([t["pnl_pct"] for t in r["trade_list"] if t["not_sold"] is None], dtype=float)
+            for r in mine
         ]
         shown = [s if s.size else np.array([np.nan]) for s in samples]
         ax.boxplot(shown, showfliers=False, widths=0.5)

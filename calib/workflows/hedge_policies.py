@@ -181,10 +181,10 @@ class TradeOutcome:
     def to_dict(self) -> dict[str, Any]:
         return {
             "start": self.start.isoformat(),
-            "premium": self.premium,
-            "pnl": self.pnl,
-            "pnl_pct": self.pnl_pct,
-            "hedge_error_rms": _rms(self.hedge_errors),
+            "premium": _json_num(self.premium),
+            "pnl": _json_num(self.pnl),
+            "pnl_pct": _json_num(self.pnl_pct),
+            "hedge_error_rms": _json_num(_rms(self.hedge_errors)),
             "carried_days": self.carried,
             "not_sold": self.reason,
         }
@@ -220,6 +220,11 @@ def _outcome(commodity: str, valued: ValuedDays, first: int) -> TradeOutcome:
         hedge_errors=errors[np.isfinite(errors)],
         carried=int(book.carried.sum()),
     )
+
+
+def _json_num(x: float) -> float | None:
+    """``x``, or ``None`` (JSON null) for NaN: a quantity with nothing to measure."""
+    return None if np.isnan(x) else x
 
 
 def _rms(x: FloatArray) -> float:
@@ -287,9 +292,9 @@ class PolicyRow:
             "settings_sha256": self.settings_sha256,
             "trades": len(self.sold),
             "not_sold": len(self.trades) - len(self.sold),
-            **self.stats(),
-            "fit_rmse_vol_points": self.fit_rmse_vp,
-            "gate_failed_share": self.gate_failed_days / self.days if self.days else float("nan"),
+            **{k: _json_num(v) for k, v in self.stats().items()},
+            "fit_rmse_vol_points": _json_num(self.fit_rmse_vp),
+            "gate_failed_share": self.gate_failed_days / self.days if self.days else None,
             "days": self.days,
             "gate_failed_days": self.gate_failed_days,
             "fitted": self.fits.fitted,
