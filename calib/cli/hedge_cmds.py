@@ -7,13 +7,25 @@ bad world file, ...), nothing simulated.
 
 from __future__ import annotations
 
+from contextlib import closing
 from datetime import date, datetime
 from pathlib import Path
 from typing import TYPE_CHECKING, Annotated, Literal
 
 import typer
 
-from calib.cli.common import AsOfOption, DbOption, JsonOption, echo_json, open_store
+from calib.cli.common import (
+    AllCommoditiesOption,
+    AsOfOption,
+    ClusterOption,
+    CommoditiesOption,
+    DbOption,
+    JsonOption,
+    WorkersOption,
+    chosen_commodities,
+    echo_json,
+    open_store,
+)
 
 if TYPE_CHECKING:
     from calib.workflows.hedge import Trade
@@ -219,13 +231,8 @@ def policies_cmd(
             help="A calibration settings file to compare (repeat; NAME defaults to the file name).",
         ),
     ],
-    commodity: Annotated[
-        list[str] | None,
-        typer.Option("--commodity", metavar="CODE", help="Commodity (repeat).", show_default=False),
-    ] = None,
-    every_commodity: Annotated[
-        bool, typer.Option("--all", help="Every registered commodity.")
-    ] = False,
+    commodity: CommoditiesOption = None,
+    every_commodity: AllCommoditiesOption = False,
     future: Future = None,
     near: Near = None,
     far: Far = None,
@@ -233,9 +240,8 @@ def policies_cmd(
     every: Annotated[
         int, typer.Option("--every", min=1, help="Trading days between two sales.")
     ] = 5,
-    workers: Annotated[
-        int, typer.Option("--workers", min=1, help="Processes that fit and replay.")
-    ] = 1,
+    workers: WorkersOption = None,
+    cluster: ClusterOption = None,
     png: Annotated[
         Path | None,
         typer.Option("--png", help="Write the P&L figure by policy here.", show_default=False),
@@ -256,27 +262,27 @@ def policies_cmd(
     """Compare calibration policies by hedge P&L on the stored history: fit each policy's
     study runs (never approved or served; resumable), then replay the same option sold every
     --every trading days under each policy."""
-    from calib.errors import HedgeRequestError
-    from calib.estimate.executor import local_executor
+    from calib.compute.executor import open_executor
     from calib.output import hedge as show
     from calib.workflows import hedge_policies as flow
 
-    if bool(commodity) == every_commodity:
-        raise HedgeRequestError("-", "name commodities with --commodity CODE, or give --all")
     trade = _trade(expiry, strike, kind, future, near, far)
     policies = [flow.Policy.parse(p) for p in policy]
     with open_store(db) as (store, program):
-        result = flow.compare_policies(
-            store,
-            None if every_commodity else commodity,
-            policies,
-            trade,
-            start=start.date(),
-            end=end.date(),
-            every=every,
-            by=program.user,
-            executor=local_executor(workers),
-        )
+        codes = chosen_commodities(store, commodity or [], every_commodity)
+        local = workers if cluster is not None else (workers or 1)
+        with closing(open_executor(local, cluster)) as run:
+            result = flow.compare_policies(
+                store,
+                codes,
+                policies,
+                trade,
+                start=start.date(),
+                end=end.date(),
+                every=every,
+                by=program.user,
+                executor=run,
+            )
     rows = result.to_list()
     title = (
         f"{trade.describe()}; sold every {every} trading days, {start:%Y-%m-%d} to {end:%Y-%m-%d}"

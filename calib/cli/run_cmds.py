@@ -16,10 +16,12 @@ import typer
 
 from calib.cli.common import (
     AsOfOption,
+    ClusterOption,
     DbOption,
     EstimateOption,
     JsonOption,
     SettingsOption,
+    WorkersOption,
     echo_json,
     open_store,
 )
@@ -114,15 +116,8 @@ def estimate_cmd(
             show_default=False,
         ),
     ] = None,
-    workers: Annotated[
-        int | None,
-        typer.Option(
-            "--workers",
-            min=1,
-            help="With --rolling: worker processes (default: cores).",
-            show_default=False,
-        ),
-    ] = None,
+    workers: WorkersOption = None,
+    cluster: ClusterOption = None,
     db: DbOption = None,
     as_json: JsonOption = False,
 ) -> None:
@@ -130,7 +125,7 @@ def estimate_cmd(
 
     With --rolling: a rolling series (resumable: the same command again estimates only the
     windows not stored yet); its estimates are never the morning fit's default."""
-    if rolling is not None or step is not None or workers is not None:
+    if rolling is not None or step is not None or workers is not None or cluster is not None:
         from calib.cli.stability_cmds import rolling_estimate
 
         rolling_estimate(
@@ -140,6 +135,7 @@ def estimate_cmd(
             rolling,
             step,
             workers,
+            cluster=cluster,
             contracts=contracts,
             min_days=min_days,
             db=db,

@@ -21,12 +21,12 @@ commodity and policy, :func:`compare_policies`
 
 Units of work
 -------------
-Reads are one read transaction per commodity; the fits of one ``(commodity, policy)`` are
-handed out :data:`DAYS_PER_UNIT` days at a time, and the replays one ``(commodity, policy)``
-at a time, to an :class:`~calib.estimate.executor.Executor` (:func:`fit_unit`,
-:func:`replay_unit`: module-level functions of plain data; workers never open the store). The
-caller writes each fit unit's runs in one write transaction
-(:func:`calib.workflows.fit.store_attempts`).
+The fits are a backfill of every ``(commodity, policy)`` study
+(:func:`calib.workflows.backfill.backfill_many`: days read, shipped as plain data, fitted on the
+executor, written by the caller, resumable); the replays go to the same
+:class:`~calib.compute.executor.Executor`, one ``(commodity, policy)`` per unit
+(:func:`replay_unit`: a module-level function of plain data; workers never open the store).
+Reads are one read transaction per commodity.
 """
 
 from __future__ import annotations
@@ -35,35 +35,27 @@ import dataclasses
 import re
 from dataclasses import dataclass
 from datetime import date, timedelta
-from functools import partial
 from pathlib import Path
 from typing import Any
 
 import numpy as np
-from sqlalchemy.orm import Session
 
-from calib.calibrate import CalibrationSettings
+from calib.compute.executor import Executor, InlineExecutor
 from calib.errors import HEDGE_REPLAY_END, SPREAD_EXPIRY, HedgeRequestError, InputError
-from calib.estimate.executor import Executor, InlineExecutor
-from calib.model.twofactor import TwoFactorParams
 from calib.output.text import vol_points
 from calib.policy.settings import RunSettings, load_settings
 from calib.store.engine import Store
 from calib.store.quotes import (
-    DayQuotes,
     ZeroCurve,
     all_commodity_codes,
-    load_days,
     load_futures_history,
     require_commodity,
     trade_dates,
     zero_curves,
 )
-from calib.store.runs import RunKey, RunRecord, run_keys, study_runs
+from calib.store.runs import RunRecord, study_runs
 from calib.types import FloatArray
-from calib.workflows.backfill import Calibrators
-from calib.workflows.fit import Attempt, attempt_fit, choose_estimate, store_attempts
-from calib.workflows.fit import study_settings as stored_settings
+from calib.workflows.backfill import BackfillJob, BackfillReport, backfill_many
 from calib.workflows.hedge import (
     CURVE_LOOKBACK,
     Trade,
@@ -75,9 +67,6 @@ from calib.workflows.hedge import (
     weekdays,
 )
 from calib.workflows.provenance import inputs_sha256
-
-DAYS_PER_UNIT = 16
-"""Days of one ``(commodity, policy)`` fitted in one unit of work and stored in one write."""
 
 EVERY = 5
 """Default number of trading days between two sales of the option."""
@@ -125,29 +114,6 @@ class Policy:
 
 
 # --- plain-data units of work ------------------------------------------------------------------
-
-
-@dataclass(frozen=True, slots=True)
-class FitUnit:
-    """Days of one commodity to fit with one policy's settings."""
-
-    commodity: str
-    policy: str
-    historical: TwoFactorParams
-    settings: CalibrationSettings
-    days: tuple[DayQuotes, ...]
-
-
-def fit_unit(unit: FitUnit) -> tuple[Attempt | None, ...]:
-    """The fit of each day of ``unit`` (``None``: the day has no options), one compiled
-    problem per shape re-solved (:class:`~calib.workflows.backfill.Calibrators`)."""
-    calibrators = Calibrators(unit.settings)
-    return tuple(
-        attempt_fit(day, unit.historical, unit.settings, calibrator_for=calibrators)
-        if len(day.options)
-        else None
-        for day in unit.days
-    )
 
 
 @dataclass(frozen=True, slots=True)
@@ -326,10 +292,6 @@ class PolicyComparison:
 # --- the unit of work --------------------------------------------------------------------------
 
 
-def _key(settings: RunSettings, study: str) -> str:
-    return inputs_sha256(stored_settings(settings, study))
-
-
 def compare_policies(
     store: Store,
     commodities: list[str] | None,
@@ -374,102 +336,45 @@ def compare_policies(
         codes = commodities or all_commodity_codes(session=session)
         for code in codes:
             require_commodity(session=session, code=code)
-    rows: list[PolicyRow] = []
+    settings = {(c, p.name): load_settings(p.path, c) for c in codes for p in policies}
     for code in codes:
-        settings = {p.name: load_settings(p.path, code) for p in policies}
         check_trade(code, trade)
         if not trade.expiry <= trade.legs[0]:
             raise HedgeRequestError(
                 code, SPREAD_EXPIRY.format(expiry=trade.expiry, day=start, near=trade.legs[0])
             )
-        fits = _fit_policies(store, code, policies, settings, trade, start, by, run)
-        rows.extend(
-            _replay_policies(store, code, policies, settings, trade, start, end, every, fits, run)
-        )
-    return PolicyComparison(trade, start, end, every, tuple(rows))
+    fits = _fit_studies(store, codes, policies, settings, trade, start, by, run)
+    units: list[ReplayUnit] = []
+    partial_rows: list[PolicyRow] = []
+    for code in codes:
+        made = _replay_units(store, code, policies, fits, trade, start, end, every)
+        units.extend(u for u, _ in made)
+        partial_rows.extend(r for _, r in made)
+    rows = tuple(
+        dataclasses.replace(row, trades=outcomes)
+        for row, outcomes in zip(partial_rows, run.map(replay_unit, units), strict=True)
+    )
+    return PolicyComparison(trade, start, end, every, rows)
 
 
-def _fit_policies(
+def _fit_studies(
     store: Store,
-    code: str,
+    codes: list[str],
     policies: list[Policy],
-    settings: dict[str, RunSettings],
+    settings: dict[tuple[str, str], RunSettings],
     trade: Trade,
     start: date,
     by: str,
     run: Executor,
-) -> dict[str, PolicyFits]:
-    """Fit every missing day of each policy's study (units through ``run``); the caller
-    stores each unit in one write transaction."""
+) -> dict[tuple[str, str], BackfillReport]:
+    """Backfill every ``(commodity, policy)`` study from ``start`` to the day before expiry
+    (:func:`calib.workflows.backfill.backfill_many`: units through ``run``, resumable)."""
+    jobs = [
+        BackfillJob(code, settings[code, p.name], study=p.name) for code in codes for p in policies
+    ]
     last = trade.expiry - timedelta(days=1)
-    with store.sessions.begin() as session:
-        estimate = choose_estimate(session, code, None)
-        dates = trade_dates(session=session, commodity=code, start=start, end=last)
-        keys = run_keys(session=session, commodity=code, start=start, end=last)
-        units: list[FitUnit] = []
-        skipped: dict[str, int] = {}
-        for p in policies:
-            key = _key(settings[p.name], p.name)
-            done = _days_keyed(keys, estimate.estimate_id, key)
-            todo = [d for d in dates if d not in done]
-            skipped[p.name] = len(dates) - len(todo)
-            for i in range(0, len(todo), DAYS_PER_UNIT):
-                days = load_days(session=session, commodity=code, dates=todo[i : i + DAYS_PER_UNIT])
-                units.append(
-                    FitUnit(
-                        code, p.name, estimate.params, settings[p.name].calibration, tuple(days)
-                    )
-                )
-    counts = {p.name: [0, 0, 0] for p in policies}
-    for unit, attempts in zip(units, run.map(fit_unit, units), strict=True):
-        policy = settings[unit.policy]
-        key = _key(policy, unit.policy)
-        pairs = [(d, a) for d, a in zip(unit.days, attempts, strict=True) if a is not None]
-        counts[unit.policy][2] += len(unit.days) - len(pairs)
-
-        stored = store_attempts(
-            store.sessions,
-            pairs,
-            estimate.estimate_id,
-            policy,
-            by=by,
-            auto_approve=False,
-            skip_stored=partial(
-                _stored_days, code, unit.days[0].trade_date, last, estimate.estimate_id, key
-            ),
-            study=unit.policy,
-        )
-        for (_, attempt), s in zip(pairs, stored, strict=True):
-            if s.run_id is None:
-                skipped[unit.policy] += 1
-            else:
-                counts[unit.policy][0 if attempt.failure is None else 1] += 1
-    return {
-        p.name: PolicyFits(
-            fitted=counts[p.name][0],
-            failed=counts[p.name][1],
-            no_quotes=counts[p.name][2],
-            skipped=skipped[p.name],
-        )
-        for p in policies
-    }
-
-
-def _days_keyed(keys: list[RunKey], estimate_id: int, key: str) -> set[date]:
-    """The days of ``keys`` with a run of this estimate and this settings hash."""
-    return {
-        k.trade_date
-        for k in keys
-        if k.estimate_id == estimate_id and inputs_sha256(dict(k.settings)) == key
-    }
-
-
-def _stored_days(
-    code: str, start: date, end: date, estimate_id: int, key: str, session: Session
-) -> set[date]:
-    """Asked under the write lock: the days of ``start..end`` stored meanwhile."""
-    keys = run_keys(session=session, commodity=code, start=start, end=end)
-    return _days_keyed(keys, estimate_id, key)
+    reports = backfill_many(store, jobs, start, max(start, last), by=by, executor=run)
+    return {(j.commodity, j.study or ""): r for j, r in zip(jobs, reports, strict=True)}
 
 
 def _portable(run: RunRecord) -> RunRecord:
@@ -510,21 +415,20 @@ def choose_sets(
     return chosen, failed
 
 
-def _replay_policies(
+def _replay_units(
     store: Store,
     code: str,
     policies: list[Policy],
-    settings: dict[str, RunSettings],
+    fits: dict[tuple[str, str], BackfillReport],
     trade: Trade,
     start: date,
     end: date,
     every: int,
-    fits: dict[str, PolicyFits],
-    run: Executor,
-) -> list[PolicyRow]:
+) -> list[tuple[ReplayUnit, PolicyRow]]:
+    """One commodity's replay unit per policy (read in one transaction) and its row so far
+    (everything but the trades)."""
     last = trade.expiry - timedelta(days=1)
     with store.sessions.begin() as session:
-        estimate = choose_estimate(session, code, None)
         stored = trade_dates(session=session, commodity=code, start=start)
         sale_days = [d for d in stored if d <= min(end, last)][::every]
         if not sale_days:
@@ -545,56 +449,52 @@ def _replay_policies(
         settled = {d for d in stored if d < trade.expiry}
         days = sorted(set(weekdays(first, trade.expiry)) | settled | {trade.expiry})
         days = [d for d in days if first <= d < trade.expiry] + [trade.expiry]
-        runs = {
-            p.name: [
+        runs = {}
+        for p in policies:
+            report = fits[code, p.name]
+            found = study_runs(session=session, commodity=code, study=p.name, start=first, end=last)
+            runs[p.name] = [
                 r
-                for r in study_runs(
-                    session=session, commodity=code, study=p.name, start=first, end=last
-                )
-                if r.estimate_id == estimate.estimate_id
-                and inputs_sha256(dict(r.settings)) == _key(settings[p.name], p.name)
+                for r in found
+                if r.estimate_id == report.estimate_id
+                and inputs_sha256(dict(r.settings)) == report.settings_sha256
             ]
-            for p in policies
-        }
     F, expiry_note = leg_table(futures, trade, days, set(stored))
     index = {d: k for k, d in enumerate(days)}
-    trading = [d for d in days[:-1] if d in settled]
-    units, extras = [], []
+    trading = set(d for d in days[:-1] if d in settled)
+    out = []
     for p in policies:
-        chosen, failed = choose_sets(days[:-1], runs[p.name])
-        units.append(
-            ReplayUnit(
-                code,
-                p.name,
-                trade,
-                tuple(days),
-                frozenset(stored),
-                F,
-                expiry_note,
-                curves,
-                chosen,
-                tuple(index[d] for d in sale_days),
-            )
+        mine = runs[p.name]
+        chosen, failed = choose_sets(days[:-1], mine)
+        unit = ReplayUnit(
+            code,
+            p.name,
+            trade,
+            tuple(days),
+            frozenset(stored),
+            F,
+            expiry_note,
+            curves,
+            chosen,
+            tuple(index[d] for d in sale_days),
         )
-        fitted = [r for r in runs[p.name] if r.fit is not None]
-        vps = [vp[0] for r in fitted if (vp := vol_points(r.fit.to_dict())) is not None]  # type: ignore[union-attr]
-        judged = len({r.trade_date for r in runs[p.name]} & set(trading))
-        extras.append((failed, judged, float(np.mean(vps)) if vps else float("nan")))
-    rows = []
-    for p, outcomes, (gate_failed, judged, rmse) in zip(
-        policies, run.map(replay_unit, units), extras, strict=True
-    ):
-        rows.append(
-            PolicyRow(
-                commodity=code,
-                policy=p.name,
-                path=str(p.path),
-                settings_sha256=_key(settings[p.name], p.name),
-                trades=outcomes,
-                fits=fits[p.name],
-                days=judged,
-                gate_failed_days=gate_failed,
-                fit_rmse_vp=rmse,
-            )
+        vps = [vp[0] for r in mine if r.fit and (vp := vol_points(r.fit.to_dict())) is not None]
+        report = fits[code, p.name]
+        row = PolicyRow(
+            commodity=code,
+            policy=p.name,
+            path=str(p.path),
+            settings_sha256=report.settings_sha256,
+            trades=(),
+            fits=PolicyFits(
+                fitted=report.count("fitted"),
+                failed=report.count("failed"),
+                no_quotes=report.count("no_quotes"),
+                skipped=len(report.skipped),
+            ),
+            days=len({r.trade_date for r in mine} & trading),
+            gate_failed_days=failed,
+            fit_rmse_vp=float(np.mean(vps)) if vps else float("nan"),
         )
-    return rows
+        out.append((unit, row))
+    return out

@@ -14,14 +14,14 @@ import datetime as dt
 import json
 import math
 import pickle
-from collections.abc import Callable, Iterator, Sequence
+from collections.abc import Callable, Generator, Iterable, Sequence
 from pathlib import Path
 from typing import TypeVar
 
 import numpy as np
 import pytest
 
-from calib.estimate.executor import InlineExecutor
+from calib.compute.executor import InlineExecutor
 from calib.model.spread import SpreadOption, spread_greeks, spread_law
 from calib.output.hedge import CSV_KEYS, policy_lines
 from calib.record.run import RunRecord
@@ -29,6 +29,7 @@ from calib.store.engine import Store
 from calib.store.quotes import DayQuotes, ZeroCurve, load_day
 from calib.store.runs import list_runs
 from calib.workflows import hedge_policies as flow
+from calib.workflows.backfill import FitTask
 from calib.workflows.hedge import Trade
 from tests.cli.test_store_cmds import run
 from tests.workflows.small_day import Loaded, load_with_estimate
@@ -206,9 +207,11 @@ class _Pickling(InlineExecutor):
     def __init__(self) -> None:
         self.units: list[object] = []
 
-    def map(self, fn: Callable[[T], R], items: Sequence[T]) -> Iterator[R]:
-        self.units.extend(items)
+    def map(
+        self, fn: Callable[[T], R], items: Iterable[T], *, ahead: int | None = None
+    ) -> Generator[R, None, None]:
         for item in items:
+            self.units.append(item)
             yield fn(pickle.loads(pickle.dumps(item)))
 
 
@@ -225,7 +228,7 @@ def test_policy_table_equals_a_slow_loop_over_stored_runs(
     s = setup
     shipped = _Pickling()
     rows = _compare(store, s, shipped).to_list()
-    assert {type(u) for u in shipped.units} == {flow.FitUnit, flow.ReplayUnit}
+    assert {type(u) for u in shipped.units} == {FitTask, flow.ReplayUnit}
     assert [r["policy"] for r in rows] == ["loose", "strict"]
     with store.sessions.begin() as session:
         runs = list_runs(session=session, commodity=s.loaded.code, limit=10_000)
@@ -275,48 +278,37 @@ def test_policy_table_equals_a_slow_loop_over_stored_runs(
     _check_cli(s, db_url, tmp_path, capsys, monkeypatch)
 
 
-class _InterruptedError(Exception):
-    pass
-
-
-class _StopsAfter:
-    """Runs ``n`` units in this process, then raises (an interrupted comparison)."""
-
-    def __init__(self, n: int) -> None:
-        self.n = n
-
-    @property
-    def workers(self) -> int:
-        return 1
-
-    def map(self, fn: Callable[[T], R], items: Sequence[T]) -> Iterator[R]:
-        for i, item in enumerate(items):
-            if i == self.n:
-                raise _InterruptedError
-            yield fn(item)
-
-
-def test_an_interrupted_study_resumes_without_refitting(store: Store, setup: Setup) -> None:
+def test_a_study_resumes_without_refitting(store: Store, setup: Setup) -> None:
+    """A comparison stopped after its later days were stored (a shorter window) fits only
+    the missing days; once all are stored, nothing is fitted again."""
     s = setup
     trading = [d for d in s.loaded.days if s.start <= d < s.trade.expiry]
-    first = min(flow.DAYS_PER_UNIT, len(trading))
-    with pytest.raises(_InterruptedError):
-        _compare(store, s, _StopsAfter(1))  # the first unit: the first policy's first days
-    with store.sessions.begin() as session:
-        stored = [r for r in list_runs(session=session, commodity=s.loaded.code) if r.study]
-    assert {r.study for r in stored} == {"loose"} and len(stored) == first
-    rows = _compare(store, s, InlineExecutor()).to_list()
-    assert rows[0]["skipped"] == first
-    assert rows[0]["fitted"] + rows[0]["fit_failed"] == len(trading) - first
+    later = trading[len(trading) // 2]
+    part = flow.compare_policies(
+        store,
+        [s.loaded.code],
+        s.policies[:1],
+        s.trade,
+        start=later,
+        end=s.trade.expiry,
+        every=3,
+        by="tester",
+    ).to_list()
+    done = len([d for d in trading if d >= later])
+    assert part[0]["fitted"] + part[0]["fit_failed"] == done and part[0]["skipped"] == 0
+    rows = _compare(store, s).to_list()
+    assert rows[0]["skipped"] == done
+    assert rows[0]["fitted"] + rows[0]["fit_failed"] == len(trading) - done
     assert rows[1]["skipped"] == 0
     again = _compare(store, s).to_list()
     assert [r["skipped"] for r in again] == [len(trading)] * 2
-    assert [r["fitted"] for r in again] == [0, 0]
+    assert [r["fitted"] + r["fit_failed"] for r in again] == [0, 0]
     assert [r["mean_pct"] for r in again] == [r["mean_pct"] for r in rows]
     with store.sessions.begin() as session:
-        runs = [r for r in list_runs(session=session, commodity=s.loaded.code, limit=10_000)]
+        runs = list_runs(session=session, commodity=s.loaded.code, limit=10_000)
     keys = [(r.study, r.trade_date) for r in runs if r.study]
     assert len(keys) == len(set(keys)) == 2 * len(trading)  # no day stored twice
+    assert not [r for r in runs if r.study is None]  # no production run was made
 
 
 def _check_cli(
@@ -333,7 +325,7 @@ def _check_cli(
     args += ["--to", str(s.trade.expiry), "--every", "3", "--db", db_url]
     args += [f"--policy={p.name}={p.path}" for p in s.policies]
     code, _, err = run(capsys, monkeypatch, *args)
-    assert code == 2 and err.count("\n") == 1 and "--commodity CODE, or give --all" in err
+    assert code == 2 and err.count("\n") == 1 and "or give --all" in err
     out_dir = tmp_path / "page"
     files = ["--csv", str(tmp_path / "p.csv"), "--png", str(tmp_path / "p.png")]
     code, out, _ = run(
