@@ -10,7 +10,7 @@ from __future__ import annotations
 from contextlib import closing
 from datetime import date, datetime
 from pathlib import Path
-from typing import TYPE_CHECKING, Annotated, Literal
+from typing import TYPE_CHECKING, Annotated, Any, Literal
 
 import typer
 
@@ -50,6 +50,21 @@ Near = Annotated[
 ]
 Far = Annotated[datetime | None, typer.Option("--far", formats=_DAY, help="Spread: far delivery.")]
 KindOpt = Annotated[Literal["call", "put"], typer.Option("--kind", help="call or put.")]
+
+
+def _file(flag: str, help: str) -> Any:
+    """An optional output path option (no default shown)."""
+    return typer.Option(flag, help=help, show_default=False)
+
+
+def _finish(as_json: bool, data: Any, summary: str, written: list[str]) -> None:
+    """Print ``data`` as JSON, or ``summary`` and the files written."""
+    if as_json:
+        echo_json(data)
+        return
+    typer.echo(summary)
+    for path in written:
+        typer.echo(f"  wrote {path}")
 
 
 def _trade(
@@ -112,14 +127,9 @@ def sim_cmd(
     ] = 252,
     paths: Annotated[int, typer.Option("--paths", min=2, help="Simulated paths.")] = 10_000,
     seed: Annotated[int, typer.Option("--seed", help="Random seed.")] = 20261202,
-    png: Annotated[
-        Path | None, typer.Option("--png", help="Write the P&L histogram here.", show_default=False)
-    ] = None,
+    png: Annotated[Path | None, _file("--png", "Write the P&L histogram here.")] = None,
     csv_path: Annotated[
-        Path | None,
-        typer.Option(
-            "--csv", help="Write one row a path (P&L, payoff, hedge error).", show_default=False
-        ),
+        Path | None, _file("--csv", "Write one row a path (P&L, payoff, hedge error).")
     ] = None,
     db: DbOption = None,
     as_json: JsonOption = False,
@@ -147,12 +157,7 @@ def sim_cmd(
         written.append(str(flow.plot_histogram(result, png)))
     if csv_path is not None:
         written.append(str(flow.write_paths_csv(result, csv_path)))
-    if as_json:
-        echo_json(result.to_dict())
-    else:
-        typer.echo(result.summary())
-        for path in written:
-            typer.echo(f"  wrote {path}")
+    _finish(as_json, result.to_dict(), result.summary(), written)
 
 
 @hedge_app.command("replay")
@@ -178,12 +183,8 @@ def replay_cmd(
     morning: Annotated[
         str, typer.Option("--morning", metavar="HH:MM", help="The morning's time (UTC).")
     ] = "07:00",
-    png: Annotated[
-        Path | None, typer.Option("--png", help="Write the P&L path here.", show_default=False)
-    ] = None,
-    csv_path: Annotated[
-        Path | None, typer.Option("--csv", help="Write one row a day.", show_default=False)
-    ] = None,
+    png: Annotated[Path | None, _file("--png", "Write the P&L path here.")] = None,
+    csv_path: Annotated[Path | None, _file("--csv", "Write one row a day.")] = None,
     db: DbOption = None,
     as_json: JsonOption = False,
 ) -> None:
@@ -207,12 +208,7 @@ def replay_cmd(
         written.append(str(flow.plot_replay(result, png)))
     if csv_path is not None:
         written.append(str(flow.write_replay_csv(result, csv_path)))
-    if as_json:
-        echo_json(result.to_dict())
-    else:
-        typer.echo(result.summary())
-        for path in written:
-            typer.echo(f"  wrote {path}")
+    _finish(as_json, result.to_dict(), result.summary(), written)
 
 
 @hedge_app.command("policies")
@@ -242,19 +238,10 @@ def policies_cmd(
     ] = 5,
     workers: WorkersOption = None,
     cluster: ClusterOption = None,
-    png: Annotated[
-        Path | None,
-        typer.Option("--png", help="Write the P&L figure by policy here.", show_default=False),
-    ] = None,
-    csv_path: Annotated[
-        Path | None,
-        typer.Option("--csv", help="Write one row per policy here.", show_default=False),
-    ] = None,
+    png: Annotated[Path | None, _file("--png", "Write the P&L figure by policy here.")] = None,
+    csv_path: Annotated[Path | None, _file("--csv", "Write one row per policy here.")] = None,
     html_dir: Annotated[
-        Path | None,
-        typer.Option(
-            "--html", help="Write the page (index.html and its figure) here.", show_default=False
-        ),
+        Path | None, _file("--html", "Write the page (index.html and its figure) here.")
     ] = None,
     db: DbOption = None,
     as_json: JsonOption = False,
@@ -294,10 +281,4 @@ def policies_cmd(
         written.append(str(show.write_policy_csv(rows, csv_path)))
     if html_dir is not None:
         written.append(str(show.render_policy_page(rows, title, html_dir)[0]))
-    if as_json:
-        echo_json(rows)
-    else:
-        typer.echo(title)
-        typer.echo("\n".join(show.policy_lines(rows)))
-        for path in written:
-            typer.echo(f"  wrote {path}")
+    _finish(as_json, rows, "\n".join([title, *show.policy_lines(rows)]), written)

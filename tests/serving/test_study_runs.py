@@ -4,6 +4,8 @@ approved or served: refused by approve (workflow, CLI, HTTP), invisible to the s
 
 from __future__ import annotations
 
+from collections.abc import Callable
+
 import pytest
 from sqlalchemy import insert
 
@@ -43,12 +45,16 @@ def study_candidate(store: Store, cid: int, eid: int, study: str) -> int:
     return run_id
 
 
-def test_approve_refuses_a_study_run(
-    store: Store,
-    db_url: str,
-    capsys: pytest.CaptureFixture[str],
-    monkeypatch: pytest.MonkeyPatch,
-) -> None:
+Cli = Callable[..., tuple[int, str, str]]
+
+
+@pytest.fixture
+def cli(capsys: pytest.CaptureFixture[str], monkeypatch: pytest.MonkeyPatch) -> Cli:
+    """``calib ARGS...`` in this process: exit code, stdout, stderr."""
+    return lambda *args: run(capsys, monkeypatch, *args)
+
+
+def test_approve_refuses_a_study_run(store: Store, db_url: str, cli: Cli) -> None:
     cid, eid = commodity(store)
     served = candidate(store, cid, eid, 1)
     approve(store.sessions, served, by="risk", note="ok")
@@ -56,7 +62,7 @@ def test_approve_refuses_a_study_run(
     with pytest.raises(StudyRunError, match=f"run {study} belongs to the policy study 'free'"):
         approve(store.sessions, study, by="risk", note="no")
     args = ["approve", str(study), "--by", "risk", "--note", "x", "--db", db_url]
-    code, _, err = run(capsys, monkeypatch, *args)
+    code, _, err = cli(*args)
     assert code == 2 and err.count("\n") == 1 and "study runs are never approved" in err
     with Client(db_url) as client:
         assert client.latest(CODE).run_id == served  # nothing changed
@@ -69,12 +75,7 @@ def test_approve_refuses_a_study_run(
         assert http.get(LATEST).json()["run_id"] == served
 
 
-def test_a_study_run_is_never_served(
-    store: Store,
-    db_url: str,
-    capsys: pytest.CaptureFixture[str],
-    monkeypatch: pytest.MonkeyPatch,
-) -> None:
+def test_a_study_run_is_never_served(store: Store, db_url: str, cli: Cli) -> None:
     cid, eid = commodity(store)
     study = study_candidate(store, cid, eid, "held")
     # an approved event written around the workflow (the store's own check refuses it): the
@@ -94,9 +95,9 @@ def test_a_study_run_is_never_served(
             client.latest(CODE)
         with pytest.raises(StudyRunError):
             client.run(study)
-    code, _, err = run(capsys, monkeypatch, "latest", CODE, "--db", db_url)
+    code, _, err = cli("latest", CODE, "--db", db_url)
     assert code != 0 and "no approved parameter set" in err
-    code, out, _ = run(capsys, monkeypatch, "runs", CODE, "--db", db_url)
+    code, out, _ = cli("runs", CODE, "--db", db_url)
     assert code == 0 and "(study held)" in out
     with serving(create_app(Settings(db_url=db_url))) as http:
         assert http.get(LATEST).status_code == 404

@@ -57,22 +57,7 @@ max_jump_sigma_spot = 10.0
 max_jump_sigma_yield = 10.0
 max_jump_rho = 2.0
 """
-ROW_KEYS = {
-    "commodity",
-    "policy",
-    "settings_file",
-    "settings_sha256",
-    "trades",
-    "not_sold",
-    "mean_pct",
-    "sd_pct",
-    "worst_pct",
-    "q5_pct",
-    "hedge_error_rms",
-    "fit_rmse_vol_points",
-    "gate_failed_share",
-    "days",
-    "gate_failed_days",
+ROW_KEYS = set(CSV_KEYS) | {
     "fitted",
     "fit_failed",
     "no_quotes",
