@@ -781,3 +781,20 @@ class CommoditySelectionError(TemplatedError, InputError, template="{reason}"):
     """A command over several commodities was given none, or both names and ``--all``."""
 
     reason: str
+
+
+# --- study runs and policy comparisons (hedge2) --------------------------------------------------
+
+
+class StudyRunError(
+    TemplatedError,
+    InputError,
+    template=(
+        "run {run_id} belongs to the policy study {study!r}: study runs are never approved or "
+        "served"
+    ),
+):
+    """A run of a policy study asked to be approved or served: study runs never are."""
+
+    run_id: int
+    study: str

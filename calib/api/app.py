@@ -75,6 +75,7 @@ from calib.errors import (
     InputError,
     NoApprovedSetError,
     StoreUnavailableError,
+    StudyRunError,
     UnknownCommodityError,
     UnknownRunError,
 )
@@ -215,7 +216,9 @@ def create_app(
     @app.exception_handler(InputError)
     async def input_error(_request: Request, exc: InputError) -> Response:
         status = 400
-        if isinstance(exc, UnknownCommodityError | UnknownRunError | NoApprovedSetError):
+        if isinstance(
+            exc, UnknownCommodityError | UnknownRunError | NoApprovedSetError | StudyRunError
+        ):
             status = 404
         elif isinstance(exc, IllegalTransitionError):
             status = 409

@@ -6,17 +6,16 @@ from __future__ import annotations
 
 import json
 import math
-import sys
 from pathlib import Path
 
 import pytest
 
-from calib.cli import main
 from calib.inputs.rules import Bands
 from calib.policy.settings import RunSettings
 from calib.store.engine import Store
 from calib.workflows.fit import fit_day
 from calib.workflows.ingest import ingest_file
+from tests.cli.test_store_cmds import run
 from tests.workflows.small_day import load_with_estimate
 
 HELD = RunSettings.from_dict(
@@ -55,12 +54,10 @@ def test_a_curve_that_jumped_is_held_for_review(
     assert [n for n, g in gates.items() if not g.passed] == ["curve_move"]
     assert not jumped.auto_approved and jumped.run.status == "candidate"
 
-    run_id = str(jumped.run.run_id)
-    monkeypatch.setattr(sys, "argv", ["calib", "show", run_id, "--json", "--db", db_url])
-    with pytest.raises(SystemExit) as done:
-        main()
-        raise SystemExit(0)
-    assert not done.value.code
-    shown = json.loads(capsys.readouterr().out)
+    code, out, _ = run(
+        capsys, monkeypatch, "show", str(jumped.run.run_id), "--json", "--db", db_url
+    )
+    assert code == 0
+    shown = json.loads(out)
     (stored,) = [g for g in shown["diagnostics"]["gates"] if g["name"] == "curve_move"]
     assert stored["passed"] is False and stored["value"] == pytest.approx(expected, rel=1e-12)
