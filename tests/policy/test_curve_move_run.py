@@ -10,12 +10,12 @@ from pathlib import Path
 
 import pytest
 
+from calib.cli.run_cmds import show_cmd
 from calib.inputs.rules import Bands
 from calib.policy.settings import RunSettings
 from calib.store.engine import Store
 from calib.workflows.fit import fit_day
 from calib.workflows.ingest import ingest_file
-from tests.cli.test_store_cmds import run
 from tests.workflows.small_day import load_with_estimate
 
 HELD = RunSettings.from_dict(
@@ -25,11 +25,7 @@ HELD = RunSettings.from_dict(
 
 
 def test_a_curve_that_jumped_is_held_for_review(
-    store: Store,
-    db_url: str,
-    tmp_path: Path,
-    capsys: pytest.CaptureFixture[str],
-    monkeypatch: pytest.MonkeyPatch,
+    store: Store, db_url: str, tmp_path: Path, capsys: pytest.CaptureFixture[str]
 ) -> None:
     loaded = load_with_estimate(store, tmp_path)
     last, before = loaded.days[-1], loaded.days[-2]
@@ -54,10 +50,8 @@ def test_a_curve_that_jumped_is_held_for_review(
     assert [n for n, g in gates.items() if not g.passed] == ["curve_move"]
     assert not jumped.auto_approved and jumped.run.status == "candidate"
 
-    code, out, _ = run(
-        capsys, monkeypatch, "show", str(jumped.run.run_id), "--json", "--db", db_url
-    )
-    assert code == 0
+    show_cmd(jumped.run.run_id, db=db_url, as_json=True)  # what `calib show RUN --json` prints
+    out = capsys.readouterr().out
     shown = json.loads(out)
     (stored,) = [g for g in shown["diagnostics"]["gates"] if g["name"] == "curve_move"]
     assert stored["passed"] is False and stored["value"] == pytest.approx(expected, rel=1e-12)
