@@ -31,7 +31,7 @@ def _options(rng: np.random.Generator) -> SpreadOption:
         far=far,
         expiry=expiry,
         strike=rng.uniform(-3.0, 5.0, N_OPTIONS),
-        kind=rng.random(N_OPTIONS) < 0.5,
+        is_call=rng.random(N_OPTIONS) < 0.5,
         near_price=near_price,
         far_price=near_price * rng.uniform(0.9, 1.1, N_OPTIONS),
         discount=np.exp(-0.03 * expiry),
@@ -65,7 +65,7 @@ def _quantlib_per_option(opt: SpreadOption, law: SpreadLaw, n: int) -> float:
                 ql.BlackConstantVol(today, ql.NullCalendar(), vol, dc)
             )
             procs.append(ql.BlackProcess(ql.QuoteHandle(ql.SimpleQuote(float(F))), curve, vts))
-        kind = ql.Option.Call if opt.kind[i] else ql.Option.Put
+        kind = ql.Option.Call if opt.is_call[i] else ql.Option.Put
         payoff = ql.SpreadBasketPayoff(ql.PlainVanillaPayoff(kind, float(opt.strike[i])))
         option = ql.BasketOption(payoff, ql.EuropeanExercise(today + max(1, round(t * 365))))
         option.setPricingEngine(ql.KirkEngine(procs[0], procs[1], rho))
@@ -76,7 +76,7 @@ def _quantlib_per_option(opt: SpreadOption, law: SpreadLaw, n: int) -> float:
 def _quad_per_option(opt: SpreadOption, law: SpreadLaw, n: int) -> float:
     sub = SpreadLaw(*(getattr(law, name)[:n] for name in SpreadLaw.__slots__))
     t0 = time.perf_counter()
-    price_quad(sub, opt.strike[:n], opt.kind[:n], opt.discount[:n])
+    price_quad(sub, opt.strike[:n], opt.is_call[:n], opt.discount[:n])
     return (time.perf_counter() - t0) / n
 
 
@@ -87,10 +87,10 @@ def main() -> None:
     )
     opt = _options(rng)
     law = spread_law(opt, params)
-    spread_greeks(law, opt.strike, opt.kind, opt.discount)  # warm the node cache
-    ours = _best(lambda: spread_greeks(law, opt.strike, opt.kind, opt.discount), REPEATS)
+    spread_greeks(law, opt.strike, opt.is_call, opt.discount)  # warm the node cache
+    ours = _best(lambda: spread_greeks(law, opt.strike, opt.is_call, opt.discount), REPEATS)
     with_law = _best(
-        lambda: spread_greeks(spread_law(opt, params), opt.strike, opt.kind, opt.discount),
+        lambda: spread_greeks(spread_law(opt, params), opt.strike, opt.is_call, opt.discount),
         REPEATS,
     )
     ql_each = _quantlib_per_option(opt, law, N_QUANTLIB)

@@ -61,6 +61,7 @@ from calib.store.base import utc_now
 from calib.store.engine import Store, make_store
 from calib.store.migrate import check_current
 from calib.store.models import Commodity
+from calib.store.quick import SQLITE_TIME
 from calib.store.runs import (
     APPROVAL_LOCK_SPACE,
     IN_FORCE_COLUMNS,
@@ -78,9 +79,6 @@ _APPROVAL_ID = IN_FORCE_COLUMNS.index("approval_id")
 
 CACHE_SIZE = 64
 """Approved sets kept per client (one per approval event seen; they never change)."""
-
-_SQLITE_TIME = "%Y-%m-%d %H:%M:%S.%f"
-"""How :class:`~calib.store.base.UtcDateTime` stores a time on SQLite (naive UTC text)."""
 
 __all__ = ["ApprovedSet", "Client"]
 
@@ -263,7 +261,7 @@ class Client:
             The database cannot be reached.
         """
         when = utc_now() if as_of is None else _utc(as_of)
-        bound = when.replace(tzinfo=None).strftime(_SQLITE_TIME) if self._sqlite else when
+        bound = when.replace(tzinfo=None).strftime(SQLITE_TIME) if self._sqlite else when
         with self._lock:
             cid = self._commodity_id(commodity)
             row = self._read_in_force(cid, bound)

@@ -4,16 +4,22 @@ User mistakes (bad files, bad settings, unknown names) are :class:`InputError` s
 are printed by the CLI as one clear line, never as a traceback. Numerical failures name the
 cause. Tests match on the messages with ``pytest.raises(..., match=...)``.
 
-An error with a message template is a dataclass: its fields are its constructor's arguments
-(in order) and its attributes, and its message is ``TEMPLATE`` filled with them
-(:class:`TemplatedError`). A class whose message needs a field worked out first overrides
-:meth:`TemplatedError.fill`.
+An error with a message template subclasses :class:`TemplatedError`, names its template in
+the class statement and lists its fields::
+
+    class UnknownRunError(TemplatedError, InputError, template="no calibration run {run_id}"):
+        # docstring, then the fields
+        run_id: int
+
+It is a dataclass: its fields are its constructor's arguments (in order) and its attributes,
+and its message is the template filled with them. A class whose message needs a field worked
+out first overrides :meth:`TemplatedError.fill`.
 """
 
 from __future__ import annotations
 
 from dataclasses import dataclass, fields
-from typing import Any, ClassVar
+from typing import Any, ClassVar, dataclass_transform
 
 
 class CalibError(Exception):
@@ -24,11 +30,23 @@ class CalibWarning(UserWarning):
     """Base of every calib warning."""
 
 
+@dataclass_transform(eq_default=False)
 @dataclass(eq=False, repr=False)
 class TemplatedError(Exception):
-    """Mixin: the message is ``TEMPLATE`` formatted with the dataclass fields (see the module)."""
+    """Mixin: the message is ``TEMPLATE`` formatted with the dataclass fields (see the module).
+
+    A subclass names its template in its class statement (``template="..."``, else it keeps
+    its parent's) and lists its fields; it is made a dataclass (``eq=False, repr=False``) as it
+    is defined, so its constructor takes the fields in order.
+    """
 
     TEMPLATE: ClassVar[str] = ""
+
+    def __init_subclass__(cls, template: str | None = None, **kwargs: Any) -> None:
+        super().__init_subclass__(**kwargs)
+        if template is not None:
+            cls.TEMPLATE = template
+        dataclass(eq=False, repr=False)(cls)
 
     def fill(self) -> dict[str, Any]:
         """The values ``TEMPLATE`` is formatted with; by default the fields as given."""
@@ -49,21 +67,24 @@ class InputError(CalibError):
     """A user mistake: bad file, bad option, bad value. Printed without a traceback."""
 
 
-@dataclass(eq=False, repr=False)
-class ParameterError(TemplatedError, InputError, ValueError):
+class ParameterError(
+    TemplatedError, InputError, ValueError, template="{name} = {value!r} is invalid: {reason}"
+):
     """A parameter value outside its domain (e.g. ``kappa <= 0``)."""
 
-    TEMPLATE: ClassVar[str] = "{name} = {value!r} is invalid: {reason}"
     name: str
     value: object
     reason: str
 
 
-@dataclass(eq=False, repr=False)
-class ImpliedVolError(TemplatedError, InputError, ValueError):
+class ImpliedVolError(
+    TemplatedError,
+    InputError,
+    ValueError,
+    template="no implied volatility for premium {premium!r}: {reason}",
+):
     """A premium from which no implied volatility exists (outside the no-arbitrage bounds)."""
 
-    TEMPLATE: ClassVar[str] = "no implied volatility for premium {premium!r}: {reason}"
     premium: float
     reason: str
 
@@ -86,28 +107,29 @@ IMPLIED_VOL_REASONS: dict[str, str] = {
 # --- calibration ------------------------------------------------------------------------------
 
 
-@dataclass(eq=False, repr=False)
 class SettingError(ParameterError):
     """A calibration setting outside its domain (e.g. ``yield_floor = 1.5``)."""
 
 
-@dataclass(eq=False, repr=False)
-class QuoteError(TemplatedError, InputError, ValueError):
+class QuoteError(
+    TemplatedError, InputError, ValueError, template="option quotes: {field} {reason}"
+):
     """Option quotes that cannot be used as given (shapes, signs, missing fields)."""
 
-    TEMPLATE: ClassVar[str] = "option quotes: {field} {reason}"
     field: str
     reason: str
 
 
-@dataclass(eq=False, repr=False)
-class TooFewQuotesError(TemplatedError, InputError):
-    """Fewer usable quotes than the calibration mode has free parameters."""
-
-    TEMPLATE: ClassVar[str] = (
+class TooFewQuotesError(
+    TemplatedError,
+    InputError,
+    template=(
         "only {usable} usable option quote(s) of {total}, {mode} mode needs at least {needed}"
         "{dropped}"
-    )
+    ),
+):
+    """Fewer usable quotes than the calibration mode has free parameters."""
+
     usable: int
     total: int
     mode: str
@@ -119,29 +141,32 @@ class TooFewQuotesError(TemplatedError, InputError):
         return {**super().fill(), "dropped": f"; dropped: {why}" if self.dropped else ""}
 
 
-@dataclass(eq=False, repr=False)
-class InfeasibleSettingsError(TemplatedError, InputError):
+class InfeasibleSettingsError(
+    TemplatedError, InputError, template="calibration constraints conflict: {conflict}"
+):
     """Constraints that no parameter set can meet together; says which and by how much."""
 
-    TEMPLATE: ClassVar[str] = "calibration constraints conflict: {conflict}"
     conflict: str
     shortfall: float
 
 
-@dataclass(eq=False, repr=False)
-class CalibrationShapeError(TemplatedError, InputError, ValueError):
+class CalibrationShapeError(
+    TemplatedError,
+    InputError,
+    ValueError,
+    template="calibrator built for {built}, these quotes need {needed}",
+):
     """Quotes that do not fit the shape a re-usable calibrator was built for."""
 
-    TEMPLATE: ClassVar[str] = "calibrator built for {built}, these quotes need {needed}"
     built: str
     needed: str
 
 
-@dataclass(eq=False, repr=False)
-class CalibrationSolverError(TemplatedError, CalibError):
+class CalibrationSolverError(
+    TemplatedError, CalibError, template="solver {solver} returned {status}: {cause}"
+):
     """The conic solver failed or returned no usable solution; names the solver and status."""
 
-    TEMPLATE: ClassVar[str] = "solver {solver} returned {status}: {cause}"
     solver: str
     status: str
     cause: str
@@ -162,51 +187,55 @@ class CalibrationNotConvergedWarning(CalibWarning):
 # --- quote store and ingestion ----------------------------------------------------------------
 
 
-@dataclass(eq=False, repr=False)
-class StoreURLError(TemplatedError, InputError):
+class StoreURLError(
+    TemplatedError, InputError, template="database URL {url!r} is not usable: {reason}"
+):
     """A database URL calib cannot use."""
 
-    TEMPLATE: ClassVar[str] = "database URL {url!r} is not usable: {reason}"
     url: str
     reason: str
 
 
-@dataclass(eq=False, repr=False)
-class StoreNotInitialisedError(TemplatedError, InputError):
+class StoreNotInitialisedError(
+    TemplatedError,
+    InputError,
+    template="database {url} has no calib schema: run `calib init` first",
+):
     """The database holds no calib schema yet."""
 
-    TEMPLATE: ClassVar[str] = "database {url} has no calib schema: run `calib init` first"
     url: str
 
 
-@dataclass(eq=False, repr=False)
-class StoreOutdatedError(TemplatedError, InputError):
+class StoreOutdatedError(
+    TemplatedError,
+    InputError,
+    template=(
+        "database schema is at revision {found}, this program needs {head}: run `calib init`"
+    ),
+):
     """The database is at an older schema revision than this program."""
 
-    TEMPLATE: ClassVar[str] = (
-        "database schema is at revision {found}, this program needs {head}: run `calib init`"
-    )
     found: str
     head: str
 
 
-@dataclass(eq=False, repr=False)
-class SchemaTooNewError(TemplatedError, InputError):
-    """The database was migrated by a newer calib; this program refuses to touch it."""
-
-    TEMPLATE: ClassVar[str] = (
+class SchemaTooNewError(
+    TemplatedError,
+    InputError,
+    template=(
         "database schema is at revision {found}, unknown to this program (newest known: {head});"
         " it was written by a newer calib: upgrade calib, the database was not changed"
-    )
+    ),
+):
+    """The database was migrated by a newer calib; this program refuses to touch it."""
+
     found: str
     head: str
 
 
-@dataclass(eq=False, repr=False)
-class FileError(TemplatedError, InputError):
+class FileError(TemplatedError, InputError, template="{file}: {reason}"):
     """A file refused as a whole, nothing stored from it: ``{file}: {reason}``."""
 
-    TEMPLATE: ClassVar[str] = "{file}: {reason}"
     file: str
     reason: str
 
@@ -215,11 +244,9 @@ class IngestFileError(FileError):
     """A file refused as a whole (unreadable, wrong columns, unknown commodity); nothing stored."""
 
 
-@dataclass(eq=False, repr=False)
-class UnknownCommodityError(TemplatedError, InputError):
+class UnknownCommodityError(TemplatedError, InputError, template="unknown commodity {codes}{hint}"):
     """A commodity code that is not registered."""
 
-    TEMPLATE: ClassVar[str] = "unknown commodity {codes}{hint}"
     codes: list[str]
     hint: str = ""
 
@@ -270,11 +297,9 @@ ROW_CONFLICT = "same key as line(s) {lines} with different values"
 ROW_REPEAT = "repeats line {line}"
 
 
-@dataclass(eq=False, repr=False)
-class StoreUnavailableError(TemplatedError, CalibError):
+class StoreUnavailableError(TemplatedError, CalibError, template="database {url}: {detail}"):
     """The database cannot be reached or used (server down, file locked, disk full)."""
 
-    TEMPLATE: ClassVar[str] = "database {url}: {detail}"
     url: str
     detail: str
 
@@ -286,45 +311,49 @@ class EstimationDataError(InputError, ValueError):
     """Curves the estimator cannot use; the message names the offending day, slot or size."""
 
 
-@dataclass(eq=False, repr=False)
-class CurveShapeError(TemplatedError, EstimationDataError):
+class CurveShapeError(TemplatedError, EstimationDataError, template="curves: {reason}"):
     """Inputs of inconsistent shapes, or dates that do not increase."""
 
-    TEMPLATE: ClassVar[str] = "curves: {reason}"
     reason: str
 
 
-@dataclass(eq=False, repr=False)
-class TooFewDaysError(TemplatedError, EstimationDataError):
+class TooFewDaysError(
+    TemplatedError,
+    EstimationDataError,
+    template="need at least {minimum} observation days, got {count}",
+):
     """Fewer observation days than the estimate needs."""
 
-    TEMPLATE: ClassVar[str] = "need at least {minimum} observation days, got {count}"
     count: int
     minimum: int
 
 
-@dataclass(eq=False, repr=False)
-class TooFewContractsError(TemplatedError, EstimationDataError):
+class TooFewContractsError(
+    TemplatedError,
+    EstimationDataError,
+    template="need at least {minimum} contracts per day, got {count}",
+):
     """Fewer contract slots than the estimate needs."""
 
-    TEMPLATE: ClassVar[str] = "need at least {minimum} contracts per day, got {count}"
     count: int
     minimum: int
 
 
-@dataclass(eq=False, repr=False)
-class EmptySlotError(TemplatedError, EstimationDataError):
+class EmptySlotError(
+    TemplatedError, EstimationDataError, template="contract slot {slot} has no price on any day"
+):
     """A contract slot without a single price: its noise cannot be estimated."""
 
-    TEMPLATE: ClassVar[str] = "contract slot {slot} has no price on any day"
     slot: int
 
 
-@dataclass(eq=False, repr=False)
-class BadPriceError(TemplatedError, EstimationDataError):
+class BadPriceError(
+    TemplatedError,
+    EstimationDataError,
+    template="{what} {value!r} on day {day} ({date}), slot {slot}: {reason}",
+):
     """A price that is not a positive finite number, or a maturity that is not ahead."""
 
-    TEMPLATE: ClassVar[str] = "{what} {value!r} on day {day} ({date}), slot {slot}: {reason}"
     what: str
     value: float
     day: int
@@ -333,43 +362,41 @@ class BadPriceError(TemplatedError, EstimationDataError):
     reason: str
 
 
-@dataclass(eq=False, repr=False)
-class FirstCurveError(TemplatedError, EstimationDataError):
+class FirstCurveError(
+    TemplatedError,
+    EstimationDataError,
+    template=("the first day ({date}) needs at least two prices of distinct maturity, got {count}"),
+):
     """The first day cannot start the filter (it needs two prices of distinct maturity)."""
 
-    TEMPLATE: ClassVar[str] = (
-        "the first day ({date}) needs at least two prices of distinct maturity, got {count}"
-    )
     date: object
     count: int
 
 
-@dataclass(eq=False, repr=False)
-class CurveGapError(TemplatedError, EstimationDataError):
+class CurveGapError(
+    TemplatedError,
+    EstimationDataError,
+    template=(
+        "gap of {days:g} days between {start} and {end} exceeds the maximum of {maximum:g} days"
+    ),
+):
     """Consecutive observation days further apart than the filter is allowed to bridge."""
 
-    TEMPLATE: ClassVar[str] = (
-        "gap of {days:g} days between {start} and {end} exceeds the maximum of {maximum:g} days"
-    )
     days: float
     start: object
     end: object
     maximum: float
 
 
-@dataclass(eq=False, repr=False)
-class QuoteTableError(TemplatedError, EstimationDataError):
+class QuoteTableError(TemplatedError, EstimationDataError, template="futures table: {reason}"):
     """A long futures table that cannot be turned into curves (duplicates, bad columns)."""
 
-    TEMPLATE: ClassVar[str] = "futures table: {reason}"
     reason: str
 
 
-@dataclass(eq=False, repr=False)
-class EstimationError(TemplatedError, CalibError):
+class EstimationError(TemplatedError, CalibError, template="maximum likelihood failed: {reason}"):
     """Maximum likelihood failed outright (no start gave a finite likelihood)."""
 
-    TEMPLATE: ClassVar[str] = "maximum likelihood failed: {reason}"
     reason: str
 
 
@@ -380,11 +407,11 @@ class EstimationWarning(CalibWarning):
 # --- fit reports and compare over time (workflows) --------------------------------------------
 
 
-@dataclass(eq=False, repr=False)
-class ReportInputError(TemplatedError, InputError, ValueError):
+class ReportInputError(
+    TemplatedError, InputError, ValueError, template="cannot build the {what}: {reason}"
+):
     """Report or compare inputs that do not hang together (lengths, empty series)."""
 
-    TEMPLATE: ClassVar[str] = "cannot build the {what}: {reason}"
     what: str
     reason: str
 
@@ -392,31 +419,31 @@ class ReportInputError(TemplatedError, InputError, ValueError):
 # --- estimates, calibration runs and approvals (storage and workflows) -------------------------
 
 
-@dataclass(eq=False, repr=False)
-class UnknownRunError(TemplatedError, InputError):
+class UnknownRunError(TemplatedError, InputError, template="no calibration run {run_id}"):
     """A calibration run id that is not stored."""
 
-    TEMPLATE: ClassVar[str] = "no calibration run {run_id}"
     run_id: int
 
 
-@dataclass(eq=False, repr=False)
-class UnknownEstimateError(TemplatedError, InputError):
+class UnknownEstimateError(
+    TemplatedError, InputError, template="no historical estimate {estimate_id}{detail}"
+):
     """A historical estimate id that is not stored, or belongs to another commodity."""
 
-    TEMPLATE: ClassVar[str] = "no historical estimate {estimate_id}{detail}"
     estimate_id: int
     detail: str = ""
 
 
-@dataclass(eq=False, repr=False)
-class NoEstimateError(TemplatedError, InputError):
-    """No converged historical estimate to hold the slow parameters at."""
-
-    TEMPLATE: ClassVar[str] = (
+class NoEstimateError(
+    TemplatedError,
+    InputError,
+    template=(
         "no converged historical estimate for {commodity}{unconverged}: run `calib estimate` or "
         "`calib estimates import`, or name one with --estimate"
-    )
+    ),
+):
+    """No converged historical estimate to hold the slow parameters at."""
+
     commodity: str
     unconverged: list[int]
 
@@ -425,24 +452,24 @@ class NoEstimateError(TemplatedError, InputError):
         return {**super().fill(), "unconverged": f" (not converged: {ids})" if ids else ""}
 
 
-@dataclass(eq=False, repr=False)
-class NotConvergedEstimateError(TemplatedError, InputError):
+class NotConvergedEstimateError(
+    TemplatedError,
+    InputError,
+    template=("historical estimate {estimate_id} did not converge ({message}); it is not used"),
+):
     """An estimate named explicitly that did not converge (never used silently)."""
 
-    TEMPLATE: ClassVar[str] = (
-        "historical estimate {estimate_id} did not converge ({message}); it is not used"
-    )
     estimate_id: int
     message: str
 
 
-@dataclass(eq=False, repr=False)
-class IllegalTransitionError(TemplatedError, InputError):
+class IllegalTransitionError(
+    TemplatedError,
+    InputError,
+    template=("run {run_id} is {current}: it cannot become {wanted} (allowed: {allowed})"),
+):
     """A status change the run's state machine does not allow."""
 
-    TEMPLATE: ClassVar[str] = (
-        "run {run_id} is {current}: it cannot become {wanted} (allowed: {allowed})"
-    )
     run_id: int
     current: str
     wanted: str
@@ -461,20 +488,20 @@ class SettingsFileError(FileError):
     """A settings file (TOML) that cannot be read or holds a bad value."""
 
 
-@dataclass(eq=False, repr=False)
-class NoQuotesError(TemplatedError, InputError):
+class NoQuotesError(TemplatedError, InputError, template="{commodity}: {what}"):
     """Nothing stored to fit or estimate from (no run is stored)."""
 
-    TEMPLATE: ClassVar[str] = "{commodity}: {what}"
     commodity: str
     what: str
 
 
-@dataclass(eq=False, repr=False)
-class InputsChangedError(TemplatedError, CalibError):
+class InputsChangedError(
+    TemplatedError,
+    CalibError,
+    template="run {run_id}: its stored inputs cannot be rebuilt: {reason}",
+):
     """Rows a stored run was made from are no longer in the store as recorded."""
 
-    TEMPLATE: ClassVar[str] = "run {run_id}: its stored inputs cannot be rebuilt: {reason}"
     run_id: int
     reason: str
 
@@ -493,11 +520,9 @@ class BackfillRangeError(InputError):
     """A backfill asked for an empty date range or no workers."""
 
 
-@dataclass(eq=False, repr=False)
-class SpreadRequestError(TemplatedError, InputError):
+class SpreadRequestError(TemplatedError, InputError, template="{commodity}: {reason}"):
     """A spread option that cannot be priced from the store as asked (nothing is priced)."""
 
-    TEMPLATE: ClassVar[str] = "{commodity}: {reason}"
     commodity: str
     reason: str
 
@@ -513,20 +538,20 @@ SPREAD_EXPIRY = "the expiry {expiry} must lie after {day} and not after the near
 # --- fit report, compare over stored runs, the demo (workflows) ------------------------------
 
 
-@dataclass(eq=False, repr=False)
-class RunNotFittedError(TemplatedError, InputError):
+class RunNotFittedError(
+    TemplatedError, InputError, template="run {run_id} failed ({reason}): it has no fit to report"
+):
     """A run that failed has no fit to report or compare."""
 
-    TEMPLATE: ClassVar[str] = "run {run_id} failed ({reason}): it has no fit to report"
     run_id: int
     reason: str
 
 
-@dataclass(eq=False, repr=False)
-class BandOptionError(TemplatedError, InputError):
+class BandOptionError(
+    TemplatedError, InputError, template="{option} {value!r}: {reason} (give LO,HI, e.g. 0.8,1.25)"
+):
     """A ``--band-*`` option that is not ``LO,HI`` with two finite numbers, ``LO <= HI``."""
 
-    TEMPLATE: ClassVar[str] = "{option} {value!r}: {reason} (give LO,HI, e.g. 0.8,1.25)"
     option: str
     value: str
     reason: str
@@ -535,20 +560,18 @@ class BandOptionError(TemplatedError, InputError):
 # --- serving: the pricers' client and the HTTP API ---------------------------------------------
 
 
-@dataclass(eq=False, repr=False)
-class NoApprovedSetError(TemplatedError, InputError):
+class NoApprovedSetError(
+    TemplatedError, InputError, template="{commodity}: no approved parameter set {when}"
+):
     """A commodity that had no approved parameter set at the time asked for."""
 
-    TEMPLATE: ClassVar[str] = "{commodity}: no approved parameter set {when}"
     commodity: str
     when: str
 
 
-@dataclass(eq=False, repr=False)
-class ApiTokenError(TemplatedError, InputError):
+class ApiTokenError(TemplatedError, InputError, template="approval token {source}: {reason}"):
     """An approval token for the HTTP API that cannot be used; the server does not start."""
 
-    TEMPLATE: ClassVar[str] = "approval token {source}: {reason}"
     MIN_LENGTH: ClassVar[int] = 16
     source: str
     reason: str
@@ -557,11 +580,9 @@ class ApiTokenError(TemplatedError, InputError):
 # --- the as_of moment (CLI and HTTP API) -------------------------------------------------------
 
 
-@dataclass(eq=False, repr=False)
-class AsOfError(TemplatedError, InputError, ValueError):
+class AsOfError(TemplatedError, InputError, ValueError, template="as of {value!r}: {reason}"):
     """An ``as_of`` that is not a wall-clock time calib reads (:mod:`calib.as_of`)."""
 
-    TEMPLATE: ClassVar[str] = "as of {value!r}: {reason}"
     value: str
     reason: str
 
@@ -569,22 +590,22 @@ class AsOfError(TemplatedError, InputError, ValueError):
 # --- rolling estimates, stability and price uncertainty (issue 15) -----------------------------
 
 
-@dataclass(eq=False, repr=False)
-class PeriodError(TemplatedError, InputError):
+class PeriodError(
+    TemplatedError,
+    InputError,
+    template=(
+        "{option} {text!r}: expected a positive whole number and a unit y, m, w or d (2y, 1m)"
+    ),
+):
     """A window length or step that is not a whole number of years, months, weeks or days."""
 
-    TEMPLATE: ClassVar[str] = (
-        "{option} {text!r}: expected a positive whole number and a unit y, m, w or d (2y, 1m)"
-    )
     option: str
     text: str
 
 
-@dataclass(eq=False, repr=False)
-class RollingRequestError(TemplatedError, InputError):
+class RollingRequestError(TemplatedError, InputError, template="{commodity}: {reason}"):
     """A rolling re-estimation or stability request that cannot be served as asked."""
 
-    TEMPLATE: ClassVar[str] = "{commodity}: {reason}"
     commodity: str
     reason: str
 
@@ -688,11 +709,13 @@ ROW_DAY_MOVE = (
 )
 
 
-@dataclass(eq=False, repr=False)
-class TextTooLongError(TemplatedError, InputError):
+class TextTooLongError(
+    TemplatedError,
+    InputError,
+    template="{what} is {found} characters long; at most {limit} are stored",
+):
     """A text value longer than the store keeps (the same limit on every engine)."""
 
-    TEMPLATE: ClassVar[str] = "{what} is {found} characters long; at most {limit} are stored"
     what: str
     found: int
     limit: int
@@ -701,11 +724,11 @@ class TextTooLongError(TemplatedError, InputError):
 # --- calibration: robustness (the fit's own block) -----------------------------------------------
 
 
-@dataclass(eq=False, repr=False)
-class CalibrationNumericalError(TemplatedError, CalibError):
+class CalibrationNumericalError(
+    TemplatedError, CalibError, template="calibration failed numerically: {reason}"
+):
     """A numerical failure inside a fit (overflow, division by zero, a singular system)."""
 
-    TEMPLATE: ClassVar[str] = "calibration failed numerically: {reason}"
     reason: str
 
 
@@ -728,17 +751,40 @@ CALIBRATION_ERRORS: tuple[type[CalibError], ...] = (
 # --- the demo's folder (issue 19) --------------------------------------------------------------
 
 
-@dataclass(eq=False, repr=False)
-class DemoFolderError(TemplatedError, InputError):
+class DemoFolderError(
+    TemplatedError,
+    InputError,
+    template=(
+        "{path} is not empty and has no {marker} (it was not made by calib demo): choose a new "
+        "or empty --dir"
+    ),
+):
     """A ``calib demo --dir`` the demo did not make and that is not empty: nothing is written
     or deleted there."""
 
-    TEMPLATE: ClassVar[str] = (
-        "{path} is not empty and has no {marker} (it was not made by calib demo): choose a new "
-        "or empty --dir"
-    )
     path: str
     marker: str
+
+
+# --- computing on a cluster (task dask) --------------------------------------------------------
+
+
+@dataclass(eq=False, repr=False)
+class ClusterError(TemplatedError, InputError):
+    """The Dask cluster named with ``--cluster`` cannot be used: dask not installed, a
+    malformed address, no answer in time, or an option that does not go with it."""
+
+    TEMPLATE: ClassVar[str] = "--cluster {address}: {detail}"
+    address: str
+    detail: str
+
+
+@dataclass(eq=False, repr=False)
+class CommoditySelectionError(TemplatedError, InputError):
+    """A command over several commodities was given none, or both names and ``--all``."""
+
+    TEMPLATE: ClassVar[str] = "{reason}"
+    reason: str
 
 
 # --- American-style quotes (amfit) -------------------------------------------------------------

@@ -16,16 +16,20 @@ import typer
 
 from calib.cli.common import (
     AsOfOption,
+    ClusterOption,
     DbOption,
     EstimateOption,
     JsonOption,
     SettingsOption,
+    WorkersOption,
     echo_json,
     open_store,
 )
 from calib.output import text
+from calib.settings import get_settings
 
 if TYPE_CHECKING:  # the store and the workflows are imported by the commands that use them
+    from calib.record.run import RunRecord
     from calib.workflows import estimates as estimate_flow
     from calib.workflows import fit as fit_flow
 
@@ -112,15 +116,8 @@ def estimate_cmd(
             show_default=False,
         ),
     ] = None,
-    workers: Annotated[
-        int | None,
-        typer.Option(
-            "--workers",
-            min=1,
-            help="With --rolling: worker processes (default: cores).",
-            show_default=False,
-        ),
-    ] = None,
+    workers: WorkersOption = None,
+    cluster: ClusterOption = None,
     db: DbOption = None,
     as_json: JsonOption = False,
 ) -> None:
@@ -128,7 +125,7 @@ def estimate_cmd(
 
     With --rolling: a rolling series (resumable: the same command again estimates only the
     windows not stored yet); its estimates are never the morning fit's default."""
-    if rolling is not None or step is not None or workers is not None:
+    if rolling is not None or step is not None or workers is not None or cluster is not None:
         from calib.cli.stability_cmds import rolling_estimate
 
         rolling_estimate(
@@ -138,6 +135,7 @@ def estimate_cmd(
             rolling,
             step,
             workers,
+            cluster=cluster,
             contracts=contracts,
             min_days=min_days,
             db=db,
@@ -373,21 +371,17 @@ def latest_cmd(
     as_json: JsonOption = False,
 ) -> None:
     """The approved parameter set in force (exit code 2 if there is none)."""
-    from calib.store.runs import approved_history, read_in_force
-
-    with open_store(db) as (store, _):
-        if history:
-            with store.sessions.begin() as session:
-                approvals = approved_history(session=session, commodity=commodity)
-            run = None
-        else:
-            run = read_in_force(store.sessions, commodity, as_of=as_of)
     if history:
+        from calib.store.runs import approved_history
+
+        with open_store(db) as (store, _), store.sessions.begin() as session:
+            approvals = approved_history(session=session, commodity=commodity)
         if as_json:
             echo_json([a.to_dict() for a in approvals])
             return
         _echo(text.history_table(approvals) if approvals else [f"{commodity}: no approvals"])
         return
+    run = _read_in_force(db, commodity, as_of)
     if run is None:
         when = "now" if as_of is None else f"at {as_of:%Y-%m-%d %H:%M:%S} UTC"
         typer.echo(f"error: {commodity}: no approved parameter set {when}", err=True)
@@ -398,6 +392,21 @@ def latest_cmd(
         when = "now" if as_of is None else f"at {as_of:%Y-%m-%d %H:%M:%S} UTC"
         typer.echo(f"{commodity}: set in force {when} (trade date {run.trade_date})")
         _echo(text.run_lines(run))
+
+
+def _read_in_force(db: str | None, commodity: str, as_of: datetime | None) -> RunRecord | None:
+    """The set in force: through sqlite3 alone when the store is an ordinary SQLite file (no
+    SQLAlchemy, no numpy: :mod:`calib.store.quick`), else through the store."""
+    from calib.store import quick
+
+    try:
+        return quick.read_in_force(get_settings(db).db_url, commodity, as_of)
+    except quick.NotReadError:
+        pass
+    from calib.store.runs import read_in_force
+
+    with open_store(db) as (store, _):
+        return read_in_force(store.sessions, commodity, as_of=as_of)
 
 
 def rerun_cmd(run_id: RunId, db: DbOption = None, as_json: JsonOption = False) -> None:

@@ -140,7 +140,7 @@ def remaining_law(
                 far=far * ones,
                 expiry=dates,
                 strike=0.0 * ones,
-                kind=ones > 0.0,
+                is_call=ones > 0.0,
                 near_price=ones,
                 far_price=ones,
                 discount=ones,

@@ -99,7 +99,7 @@ class SpreadOption:
     near, far : maturities of the near and far futures in years from today (``near <= far``).
     expiry : option expiry in years (``0 < expiry <= near``).
     strike : strike of the spread (any sign).
-    kind : ``"call"``/``"put"`` or booleans on input; stored as booleans (``True`` = call).
+    is_call : ``True`` for a call; ``"call"``/``"put"`` strings are accepted on input.
     near_price, far_price : today's futures prices ``F1``, ``F2`` (> 0).
     discount : discount factor from the premium's payment date to today (> 0).
     """
@@ -108,28 +108,37 @@ class SpreadOption:
     far: FloatArray
     expiry: FloatArray
     strike: FloatArray
-    kind: BoolArray
+    is_call: BoolArray
     near_price: FloatArray
     far_price: FloatArray
     discount: FloatArray
 
     def __post_init__(self) -> None:
-        kind = is_call(self.kind)
+        call = is_call(self.is_call)
         values = np.broadcast_arrays(
             np.atleast_1d(_f(self.near)),
             np.atleast_1d(_f(self.far)),
             np.atleast_1d(_f(self.expiry)),
             np.atleast_1d(_f(self.strike)),
-            np.atleast_1d(kind),
+            np.atleast_1d(call),
             np.atleast_1d(_f(self.near_price)),
             np.atleast_1d(_f(self.far_price)),
             np.atleast_1d(_f(self.discount)),
         )
         if values[0].ndim != 1:
             raise ParameterError("option", values[0].shape, "inputs must broadcast to 1-D")
-        names = ("near", "far", "expiry", "strike", "kind", "near_price", "far_price", "discount")
+        names = (
+            "near",
+            "far",
+            "expiry",
+            "strike",
+            "is_call",
+            "near_price",
+            "far_price",
+            "discount",
+        )
         for name, value in zip(names, values, strict=True):
-            if name != "kind" and not np.all(np.isfinite(value)):
+            if name != "is_call" and not np.all(np.isfinite(value)):
                 raise ParameterError(name, value[~np.isfinite(value)][0], "must be finite")
             object.__setattr__(self, name, readonly(value))
         checks = (
@@ -526,7 +535,7 @@ def vol_sensitivities(
     """
     law = spread_law(option, vols)
     g = spread_greeks(
-        law, option.strike, option.kind, option.discount, nodes=nodes, vol_derivatives=True
+        law, option.strike, option.is_call, option.discount, nodes=nodes, vol_derivatives=True
     )
     assert g.d_var_near is not None and g.d_var_far is not None and g.d_cov is not None
     coefs = law_coefficients(option, vols)

@@ -235,6 +235,50 @@ class PreviousSet:
     params: TwoFactorParams
 
 
+@dataclass(frozen=True, slots=True)
+class EstimateWindow:
+    """A window of a rolling series set against the estimate a run held fixed.
+
+    ``z`` is ``(window - held) / sqrt(se_window^2 + se_held^2)`` by parameter (NaN where a
+    standard error is unknown); ``flags`` names the parameters beyond ``k`` and
+    ``decay_bound`` / ``not_converged`` where they apply.
+    """
+
+    estimate_id: int
+    window_start: dt.date
+    window_end: dt.date
+    params: Mapping[str, float]
+    z: Mapping[str, float]
+    flags: tuple[str, ...]
+
+
+@dataclass(frozen=True, slots=True)
+class EstimateUsed:
+    """The historical estimate a run held fixed, and how stable the history says it is.
+
+    Attributes
+    ----------
+    estimate_id, source, window_start, window_end, converged : the stored estimate.
+    std_errors : asymptotic standard errors by parameter (``None`` where unknown).
+    series : a line naming the newest rolling series of the commodity (``None``: no series).
+    windows : that series' windows ending on or before the trade date (what was known that
+        morning), oldest first, each against the estimate.
+    k : standard errors beyond which a window is flagged.
+    recommendation : the stability view's re-estimation line over ``windows``.
+    """
+
+    estimate_id: int
+    source: str
+    window_start: dt.date
+    window_end: dt.date
+    converged: bool
+    std_errors: Mapping[str, float | None]
+    series: str | None = None
+    windows: tuple[EstimateWindow, ...] = ()
+    k: float = 3.0
+    recommendation: str | None = None
+
+
 @dataclass(frozen=True, slots=True, eq=False)
 class ReportInputs:
     """Everything a fit report shows, as plain values.
@@ -276,6 +320,8 @@ class ReportInputs:
     warnings: tuple[str, ...] = ()
     """The solver's warnings, one line each: the fit's own and those of the frontier's
     re-solves."""
+    estimate: EstimateUsed | None = None
+    """The historical estimate the run held fixed and its stability (``None``: not shown)."""
 
     def __post_init__(self) -> None:
         for name in ("buckets", "constraints", "gates", "dropped", "frontier", "warnings"):
@@ -683,6 +729,63 @@ def _section_params(inp: ReportInputs) -> str:
     return "\n".join(out)
 
 
+def _section_estimate(inp: ReportInputs) -> str:
+    """The estimate the run held fixed: its errors, and the newest rolling window against it."""
+    e = inp.estimate
+    if e is None:
+        return ""
+    age = (inp.trade_date - e.window_end).days
+    state = "converged" if e.converged else "NOT converged"
+    newest = e.windows[-1] if e.windows else None
+    head = ["parameter", "estimate", "s.e.", "-2 s.e.", "+2 s.e."]
+    if newest is not None:
+        head += [f"newest window (to {newest.window_end})", "z", f"beyond {e.k:g} s.e."]
+    rows = []
+    for name in PARAM_NAMES:
+        v, se = getattr(inp.historical, name), e.std_errors.get(name)
+        band = ("&ndash;", "&ndash;") if se is None else (_num(v - 2 * se), _num(v + 2 * se))
+        row = [f"<code>{_e(name)}</code>", _num(v), _num(se), *band]
+        if newest is not None:
+            z = newest.z[name]
+            row += [
+                _num(newest.params[name]),
+                _num(z, ".2f"),
+                _yes_no(name in newest.flags, bad_when=True),
+            ]
+        rows.append(row)
+    out = [
+        "<h2>Historical estimate held by this run</h2>",
+        f"<p>Estimate {_e(e.estimate_id)} ({_e(e.source)}), window {_e(e.window_start)} to "
+        f"{_e(e.window_end)}, {_e(state)}; its window ended {_e(age)} days before the trade "
+        "date.</p>",
+        _table(head, rows),
+    ]
+    if e.series is None:
+        out.append(
+            '<p class="note">No rolling series is stored for this commodity, so the estimate\'s '
+            f"stability is not shown: <code>calib estimate {_e(inp.commodity.code)} --rolling "
+            f"2y --step 1m</code> then <code>calib stability {_e(inp.commodity.code)}</code>.</p>"
+        )
+    elif not e.windows:
+        out.append(f"<p>{_e(e.series)}: no window ended on or before the trade date.</p>")
+    else:
+        flagged = [w for w in e.windows if w.flags]
+        latest = "; ".join(f"to {w.window_end}: {', '.join(w.flags)}" for w in flagged[-3:])
+        more = f" (latest {latest}{'; ...' if len(flagged) > 3 else ''})" if flagged else ""
+        out.append(
+            f"<p>{_e(e.series)}: {len(e.windows)} window(s) ended on or before the trade date; "
+            f"{len(flagged)} differ from this estimate by more than {e.k:g} s.e. or fail the "
+            f"decay bound{_e(more)}. Recommendation: {_e(e.recommendation or '')}.</p>"
+        )
+    out.append(
+        '<p class="note">An estimate is a statistic with an error: the +-2 s.e. band is '
+        "asymptotic (normal approximation to the likelihood), too narrow on short windows and "
+        "for poorly identified drifts. z is the window's difference from this estimate in "
+        "standard errors of the difference.</p>"
+    )
+    return "\n".join(out)
+
+
 def _section_fit(inp: ReportInputs) -> str:
     q, s, cur = inp.quotes, inp.solve, _e(inp.commodity.currency)
     vp, pr = q.vol_residual_points, q.price_residual
@@ -901,6 +1004,7 @@ def _page(inp: ReportInputs, figs: Mapping[str, Path]) -> str:
         _verdict(inp),
         f'<p class="caution"><b>Caution.</b> {_e(CAUTIONS)}</p>',
         _section_params(inp),
+        _section_estimate(inp),
         _section_fit(inp),
         "<h2>Figures</h2>",
         _section_figures(figs),

@@ -20,8 +20,8 @@ if TYPE_CHECKING:
 
 
 def parameters() -> tuple[str, ...]:
-    """The seven parameter names in the model's order (imported when printing: numpy)."""
-    from calib.model.twofactor import PARAM_NAMES
+    """The seven parameter names in the model's order."""
+    from calib.model.params import PARAM_NAMES
 
     return PARAM_NAMES
 

@@ -23,7 +23,7 @@ from collections.abc import Mapping
 from dataclasses import dataclass
 from typing import Any
 
-from calib.model.twofactor import TwoFactorParams
+from calib.model.params import TwoFactorParams
 from calib.record.codec import decode, encode
 
 SCHEMA_VERSION = 2

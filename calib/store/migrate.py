@@ -12,11 +12,9 @@ anything else goes through Alembic itself.
 
 from __future__ import annotations
 
-import re
 from collections.abc import Iterator
 from contextlib import contextmanager
 from dataclasses import dataclass
-from pathlib import Path
 from typing import TYPE_CHECKING
 
 from sqlalchemy import Connection, Engine, text
@@ -29,15 +27,10 @@ from calib.errors import (
     StoreUnavailableError,
 )
 from calib.store.engine import sqlite_file
+from calib.store.quick import MIGRATIONS_DIR, VERSION_TABLE, quick_head
 
 if TYPE_CHECKING:
     from alembic.config import Config
-
-MIGRATIONS_DIR = Path(__file__).resolve().parents[2] / "migrations"
-"""The Alembic environment (``env.py``) and its ``versions/``."""
-VERSION_TABLE = "alembic_version"
-"""Where Alembic records a database's revision (its default name)."""
-_REVISION_LINE = re.compile(r"""^(down_revision|revision)\s*(?::[^=]*)?=\s*['"]?([^'"\s]*)""", re.M)
 
 
 def alembic_config(connection: Connection | None = None) -> Config:
@@ -65,21 +58,6 @@ def current_revision(connection: Connection) -> str | None:
     from alembic.runtime.migration import MigrationContext
 
     return MigrationContext.configure(connection).get_current_revision()
-
-
-def quick_head() -> str | None:
-    """The head read from the revision files without Alembic (``None`` if not exactly one).
-
-    Each file's ``revision = "..."`` and ``down_revision = "..."`` lines; the head is the one
-    revision no other revises. :func:`head_revision` is the authority; a test keeps them equal.
-    """
-    revisions: set[str] = set()
-    revised: set[str] = set()
-    for path in (MIGRATIONS_DIR / "versions").glob("*.py"):
-        for key, value in _REVISION_LINE.findall(path.read_text(encoding="utf-8")):
-            (revisions if key == "revision" else revised).add(value)
-    heads = revisions - revised
-    return heads.pop() if len(heads) == 1 else None
 
 
 def _stored_revision(connection: Connection) -> str | None:

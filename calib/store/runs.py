@@ -18,7 +18,7 @@ import fcntl
 import json
 from collections.abc import Iterator, Mapping, Sequence
 from contextlib import AbstractContextManager, contextmanager
-from dataclasses import dataclass, field
+from dataclasses import dataclass
 from datetime import UTC, date, datetime
 from pathlib import Path
 from types import MappingProxyType
@@ -30,17 +30,22 @@ from sqlalchemy.orm import Session, sessionmaker
 
 from calib.errors import IllegalTransitionError, UnknownRunError
 from calib.model.twofactor import PARAM_NAMES, TwoFactorParams
-from calib.record.codec import decode, encode
+from calib.record.codec import decode
 from calib.record.fit import (
     SCHEMA_VERSION,
     BucketVols,
     FitRecord,
-    fit_from_columns,
     fit_to_columns,
 )
+from calib.record.run import RUN_COLUMNS, run_record
+from calib.record.run import ApprovalRecord as ApprovalRecord  # the records moved there
+from calib.record.run import ApprovedSet as ApprovedSet
+from calib.record.run import EventRecord as EventRecord
+from calib.record.run import RunRecord as RunRecord
 from calib.store.base import utc_now
 from calib.store.engine import sqlite_file
 from calib.store.models import Commodity, FuturesSettlement, OptionQuote, RateQuote
+from calib.store.quick import approval_lock_path
 from calib.store.quotes import (
     DayQuotes,
     FuturesCurve,
@@ -86,179 +91,6 @@ _residuals = cast(Table, RunResidual.__table__)
 # --- records -----------------------------------------------------------------------------------
 
 
-@dataclass(frozen=True, slots=True)
-class EventRecord:
-    """One status change of a run: to what, when, by whom and why."""
-
-    event_id: int
-    run_id: int
-    to_status: str
-    at: datetime
-    by: str
-    note: str
-
-    def to_dict(self) -> dict[str, Any]:
-        return encode(self)  # type: ignore[no-any-return]
-
-
-@dataclass(frozen=True, slots=True)
-class RunRecord:
-    """A stored calibration run with its status at a time (read-only).
-
-    ``fit`` is the stored-fit record (:class:`~calib.record.fit.FitRecord`), ``None`` for a
-    failed run. ``status`` is the status at the time the record was read for (``as_of``,
-    default now); ``approved_at`` / ``approved_by`` / ``approval_note`` / ``approval_id``
-    come from its ``approved`` event if it had one by then.
-    """
-
-    run_id: int
-    commodity: str
-    trade_date: date
-    status: str
-    outcome: str
-    fit: FitRecord | None
-    settings: Mapping[str, Any]
-    inputs: Mapping[str, Any] = field(repr=False)
-    inputs_sha256: str
-    estimate_id: int
-    mode: str
-    failure_reason: str | None
-    created_at: datetime
-    created_by: str
-    code_version: str
-    approved_at: datetime | None
-    approved_by: str | None
-    approval_note: str | None
-    approval_id: int | None
-    events: tuple[EventRecord, ...]
-
-    @property
-    def params(self) -> TwoFactorParams | None:
-        """The parameter set (``None`` for a failed run)."""
-        return None if self.fit is None else self.fit.params
-
-    @property
-    def buckets(self) -> tuple[BucketVols, ...]:
-        """The forward buckets (empty for a failed run)."""
-        return () if self.fit is None else self.fit.buckets
-
-    def to_dict(self, *, with_inputs: bool = False) -> dict[str, Any]:
-        """Plain values for JSON: the seven parameter names at the top level (null if failed),
-        ``buckets`` and ``diagnostics`` (the rest of the fit record; ``{"failure": reason}``
-        for a failed run)."""
-        diagnostics: dict[str, Any]
-        if self.fit is None:
-            params: dict[str, Any] = dict.fromkeys(PARAM_NAMES)
-            buckets: list[Any] = []
-            diagnostics = {"failure": self.failure_reason}
-        else:
-            params = self.fit.params.to_dict()
-            diagnostics = self.fit.to_dict()
-            buckets = diagnostics.pop("buckets")
-            del diagnostics["params"]
-        out: dict[str, Any] = {
-            "run_id": self.run_id,
-            "commodity": self.commodity,
-            "trade_date": self.trade_date.isoformat(),
-            "status": self.status,
-            "outcome": self.outcome,
-            **params,
-            "failure_reason": self.failure_reason,
-            "estimate_id": self.estimate_id,
-            "mode": self.mode,
-            "buckets": buckets,
-            "diagnostics": diagnostics,
-            "settings": dict(self.settings),
-            "inputs_sha256": self.inputs_sha256,
-            "created_at": self.created_at.isoformat(),
-            "created_by": self.created_by,
-            "code_version": self.code_version,
-            "approved_at": None if self.approved_at is None else self.approved_at.isoformat(),
-            "approved_by": self.approved_by,
-            "approval_note": self.approval_note,
-            "approval_id": self.approval_id,
-            "events": [e.to_dict() for e in self.events],
-        }
-        if with_inputs:
-            out["inputs"] = dict(self.inputs)
-        return out
-
-
-@dataclass(frozen=True, slots=True)
-class ApprovalRecord:
-    """One approval of a commodity's history: the set, who approved it, and until when."""
-
-    run_id: int
-    trade_date: date
-    params: TwoFactorParams
-    approved_at: datetime
-    approved_by: str
-    approval_note: str
-    approval_id: int
-    superseded_at: datetime | None
-    """When a later approval replaced it (``None``: still in force)."""
-
-    def to_dict(self) -> dict[str, Any]:
-        """Plain values for JSON: the seven parameter names at the top level."""
-        return _flat_params(encode(self))
-
-
-@dataclass(frozen=True, slots=True)
-class ApprovedSet:
-    """An approved parameter set of one commodity, as a pricer uses it (read-only).
-
-    Attributes
-    ----------
-    run_id : the calibration run the set comes from.
-    commodity : commodity code.
-    trade_date : the trading day the run was fitted to.
-    approved_at, approved_by, approval_note : the approval event (UTC time, who, why).
-    approval_id : the approval event's id (changes whenever another set comes into force).
-    mode : calibration mode (``constant``, ``forward``, ``held_rho``).
-    params : the parameter set (in forward mode the first bucket's volatilities).
-    buckets : the forward buckets, in years from the trade date (one in constant mode).
-    """
-
-    run_id: int
-    commodity: str
-    trade_date: date
-    approved_at: datetime
-    approved_by: str
-    approval_note: str
-    approval_id: int
-    mode: str
-    params: TwoFactorParams
-    buckets: tuple[BucketVols, ...]
-
-    def to_dict(self) -> dict[str, Any]:
-        """Plain values for JSON: the seven parameter names at the top level."""
-        return _flat_params(encode(self))
-
-
-def _flat_params(data: dict[str, Any]) -> dict[str, Any]:
-    """``data`` with its ``params`` object spread into the top level (the stable keys)."""
-    out: dict[str, Any] = {}
-    for key, value in data.items():
-        if key == "params":
-            out.update(value)
-        else:
-            out[key] = value
-    return out
-
-
-def _params_of(row: CalibrationRun) -> TwoFactorParams | None:
-    if row.outcome != "fitted":
-        return None
-    return TwoFactorParams(**{name: getattr(row, name) for name in PARAM_NAMES})
-
-
-def _fit_of(row: CalibrationRun) -> FitRecord | None:
-    params = _params_of(row)
-    if params is None:
-        return None
-    return fit_from_columns(params, row.buckets, row.diagnostics)
-
-
 def _event(row: RunEvent) -> EventRecord:
     return EventRecord(
         event_id=row.id,
@@ -278,30 +110,8 @@ def _events(session: Session, run_id: int, as_of: datetime | None) -> list[Event
 
 
 def _record(session: Session, row: CalibrationRun, code: str, as_of: datetime | None) -> RunRecord:
-    events = _events(session, row.id, as_of)
-    approved = next((e for e in events if e.to_status == "approved"), None)
-    return RunRecord(
-        run_id=row.id,
-        commodity=code,
-        trade_date=row.trade_date,
-        status=events[-1].to_status if events else "unknown",
-        outcome=row.outcome,
-        fit=_fit_of(row),
-        settings=MappingProxyType(row.settings),
-        inputs=MappingProxyType(row.inputs),
-        inputs_sha256=row.inputs_sha256,
-        estimate_id=row.estimate_id,
-        mode=row.mode,
-        failure_reason=row.failure_reason,
-        created_at=row.created_at,
-        created_by=row.created_by,
-        code_version=row.code_version,
-        approved_at=None if approved is None else approved.at,
-        approved_by=None if approved is None else approved.by,
-        approval_note=None if approved is None else approved.note,
-        approval_id=None if approved is None else approved.event_id,
-        events=tuple(events),
-    )
+    values = {name: getattr(row, name) for name in RUN_COLUMNS}
+    return run_record(values, code, _events(session, row.id, as_of))
 
 
 # --- writing -----------------------------------------------------------------------------------
@@ -441,7 +251,7 @@ APPROVAL_LOCK_SPACE = 0x63616C69
 def approval_lock_file(engine: Engine) -> Path | None:
     """The file whose lock guards approvals on a SQLite store (``None``: not a SQLite file)."""
     database = sqlite_file(engine.url)
-    return None if database is None else database.with_name(database.name + "-approvals.lock")
+    return None if database is None else approval_lock_path(database)
 
 
 @contextmanager
@@ -722,8 +532,7 @@ def approved_history(*, session: Session, commodity: str) -> list[ApprovalRecord
     ended = {row[0]: row[1] for row in session.execute(superseded)}
     out = []
     for event, run in approvals:
-        params = _params_of(run)
-        assert params is not None  # only fitted runs become candidates
+        params = TwoFactorParams(**{name: getattr(run, name) for name in PARAM_NAMES})
         out.append(
             ApprovalRecord(
                 run_id=run.id,

@@ -97,7 +97,7 @@ def _one(
 
     return SpreadOption(
         near=a(near), far=a(far), expiry=a(expiry), strike=a(strike),
-        kind=np.array([kind == "call"]), near_price=a(f1), far_price=a(f2), discount=a(d),
+        is_call=np.array([kind == "call"]), near_price=a(f1), far_price=a(f2), discount=a(d),
     )  # fmt: skip
 
 

@@ -231,7 +231,7 @@ def price_spread(
         far=np.array([T2]),
         expiry=np.array([t]),
         strike=np.array([strike]),
-        kind=np.array([kind == "call"]),
+        is_call=np.array([kind == "call"]),
         near_price=settles[:1],
         far_price=settles[1:],
         discount=np.array([discount]),

@@ -22,7 +22,7 @@ from __future__ import annotations
 import datetime as dt
 import warnings
 from collections.abc import Sequence
-from dataclasses import dataclass
+from dataclasses import dataclass, replace
 from pathlib import Path
 from typing import Any
 
@@ -36,6 +36,8 @@ from calib.model.twofactor import TwoFactorParams
 from calib.output.report import (
     Commodity,
     DroppedRow,
+    EstimateUsed,
+    EstimateWindow,
     FrontierRow,
     FuturesCurve,
     GateRow,
@@ -50,7 +52,13 @@ from calib.output.report import (
 from calib.policy.gates import AT_LEAST
 from calib.policy.settings import RunSettings
 from calib.record.fit import FitRecord, Gate
-from calib.store.estimates import EstimateRecord, get_estimate
+from calib.store.estimates import (
+    EstimateRecord,
+    SeriesRecord,
+    get_estimate,
+    list_series,
+    series_estimates,
+)
 from calib.store.quotes import DayQuotes, require_commodity, year_fractions
 from calib.store.runs import (
     RunRecord,
@@ -60,6 +68,7 @@ from calib.store.runs import (
     run_residuals,
 )
 from calib.workflows.fit import early_exercise, option_quotes
+from calib.workflows.stability import DEFAULT_K, assemble
 
 ANCHOR_FACTORS: tuple[float, ...] = (0.0, 0.1, 1.0, 10.0, 100.0, 1000.0)
 """Multiples of the run's anchor weight at which the frontier is re-solved (``1`` = the run)."""
@@ -159,6 +168,53 @@ def _settings(run: RunRecord, estimate: EstimateRecord) -> dict[str, Any]:
     return out
 
 
+def _known_windows(
+    session: Session, run: RunRecord
+) -> tuple[SeriesRecord | None, list[EstimateRecord]]:
+    """The commodity's newest rolling series and its windows that ended by the trade date."""
+    found = list_series(session=session, commodity=run.commodity)
+    if not found:
+        return None, []
+    windows = series_estimates(session=session, series_id=found[0].series_id)
+    return found[0], [w for w in windows if w.window_end <= run.trade_date]
+
+
+def _estimate_used(
+    estimate: EstimateRecord,
+    series: SeriesRecord | None,
+    windows: Sequence[EstimateRecord],
+    k: float = DEFAULT_K,
+) -> EstimateUsed:
+    """The report's section on the estimate a run held, with the stability view over the
+    windows of ``series`` known on the trade date (no hindsight)."""
+    used = EstimateUsed(
+        estimate_id=estimate.estimate_id,
+        source=estimate.source,
+        window_start=estimate.window_start,
+        window_end=estimate.window_end,
+        converged=estimate.converged,
+        std_errors=dict(estimate.std_errors),
+        k=k,
+    )
+    if series is None:
+        return used
+    label = (
+        f"Rolling series {series.series_id} ({series.window_length} windows every {series.step})"
+    )
+    if not windows:
+        return replace(used, series=label)
+    view = assemble(series, windows, estimate, "held fixed by this run", k)
+    return replace(
+        used,
+        series=label,
+        windows=tuple(
+            EstimateWindow(w.estimate_id, w.window_start, w.window_end, w.params, w.z, w.flags)
+            for w in view.windows
+        ),
+        recommendation=view.recommendation,
+    )
+
+
 def _solve(fit: FitRecord) -> SolveInfo:
     return SolveInfo(
         solver=fit.solver,
@@ -215,6 +271,7 @@ def report_inputs(
         residuals = run_residuals(session=session, run_id=run_id)
         day = run_quotes(session=session, run=run)
         before = approved_set(session=session, commodity=run.commodity, as_of=run.created_at)
+        series, windows = _known_windows(session, run)
     settings = RunSettings.from_dict(run.settings).calibration
     rows, weights, frontier_notes = _frontier(day, estimate.params, settings)
     by_id = {int(i): pos for pos, i in enumerate(day.options.row_id.tolist())}
@@ -251,6 +308,7 @@ def report_inputs(
         previous=None
         if before is None or before.run_id == run.run_id
         else PreviousSet(before.run_id, before.trade_date, before.params),
+        estimate=_estimate_used(estimate, series, windows),
     )
     return inputs, weights
 

@@ -13,6 +13,7 @@ drifts), and a quiet history does not promise a quiet future.
 from __future__ import annotations
 
 import csv
+from collections.abc import Sequence
 from dataclasses import dataclass
 from datetime import date
 from pathlib import Path
@@ -177,42 +178,18 @@ def _recommend(series: SeriesRecord, n: int, quiet: int, k: float, decay_bad: in
     return text
 
 
-def stability(
-    sessions: sessionmaker[Session],
-    commodity: str,
-    *,
-    series_id: int | None = None,
-    estimate_id: int | None = None,
+def assemble(
+    series: SeriesRecord,
+    records: Sequence[EstimateRecord],
+    in_use: EstimateRecord,
+    how: str,
     k: float = DEFAULT_K,
 ) -> StabilityReport:
-    """The stability view of a rolling series (default: the commodity's newest).
+    """The stability view of ``records`` (windows of ``series``, in order) against ``in_use``.
 
-    Raises
-    ------
-    RollingRequestError
-        No series, an unknown or empty series, or no estimate to compare with.
-    UnknownEstimateError, UnknownCommodityError
+    Pure: no store access. :func:`stability` reads its inputs and calls this; the fit report
+    calls it with the windows known on the run's trade date and the estimate the run held.
     """
-    with sessions.begin() as session:
-        require_commodity(session=session, code=commodity)
-        if series_id is None:
-            found = list_series(session=session, commodity=commodity)
-            if not found:
-                raise RollingRequestError(
-                    commodity, STABILITY_NO_SERIES.format(commodity=commodity)
-                )
-            series = found[0]
-        else:
-            got = get_series(session=session, series_id=series_id)
-            if got is None or got.commodity != commodity:
-                raise RollingRequestError(
-                    commodity, STABILITY_UNKNOWN_SERIES.format(series_id=series_id)
-                )
-            series = got
-        records = series_estimates(session=session, series_id=series.series_id)
-        if not records:
-            raise RollingRequestError(commodity, STABILITY_EMPTY.format(series_id=series.series_id))
-        in_use, how = _in_use(session, commodity, estimate_id)
     values = np.array([[getattr(e.params, n) for n in PARAM_NAMES] for e in records])
     se = np.array([[_se(e, n) for n in PARAM_NAMES] for e in records])
     ok = np.array([e.converged for e in records])
@@ -253,6 +230,45 @@ def stability(
         quiet_steps=quiet,
         recommendation=_recommend(series, int(ok.sum()), quiet, k, decay_bad),
     )
+
+
+def stability(
+    sessions: sessionmaker[Session],
+    commodity: str,
+    *,
+    series_id: int | None = None,
+    estimate_id: int | None = None,
+    k: float = DEFAULT_K,
+) -> StabilityReport:
+    """The stability view of a rolling series (default: the commodity's newest).
+
+    Raises
+    ------
+    RollingRequestError
+        No series, an unknown or empty series, or no estimate to compare with.
+    UnknownEstimateError, UnknownCommodityError
+    """
+    with sessions.begin() as session:
+        require_commodity(session=session, code=commodity)
+        if series_id is None:
+            found = list_series(session=session, commodity=commodity)
+            if not found:
+                raise RollingRequestError(
+                    commodity, STABILITY_NO_SERIES.format(commodity=commodity)
+                )
+            series = found[0]
+        else:
+            got = get_series(session=session, series_id=series_id)
+            if got is None or got.commodity != commodity:
+                raise RollingRequestError(
+                    commodity, STABILITY_UNKNOWN_SERIES.format(series_id=series_id)
+                )
+            series = got
+        records = series_estimates(session=session, series_id=series.series_id)
+        if not records:
+            raise RollingRequestError(commodity, STABILITY_EMPTY.format(series_id=series.series_id))
+        in_use, how = _in_use(session, commodity, estimate_id)
+    return assemble(series, records, in_use, how, k)
 
 
 CSV_COLUMNS = (

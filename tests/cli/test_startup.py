@@ -11,7 +11,8 @@ import pytest
 
 from calib.cli import backfill_cmds, price_cmds, run_cmds
 from calib.cli.backfill_cmds import rate_text
-from calib.store.migrate import head_revision, quick_head
+from calib.store.migrate import head_revision
+from calib.store.quick import quick_head
 from tests.cli.console import calib
 
 HEAVY = ("cvxpy", "scipy", "numba", "pandas", "matplotlib", "pyarrow", "clarabel")
@@ -48,6 +49,10 @@ def test_latest_loads_no_numeric_package(tmp_path: Path) -> None:
     assert _loaded("latest", "QLM", db=db) == (2, [])
     assert _loaded("latest", "QLM", "--as-of", "2033-06-01", db=db) == (2, [])
     assert _loaded("latest", "QLM", "--history", db=db) == (0, [])
+    # on an ordinary SQLite file the set in force is read through sqlite3 alone
+    light = PROBE.replace(repr(HEAVY), repr(("numpy", "sqlalchemy")))
+    done = calib("latest", "QLM", env={"CALIB_DB": db}, prelude=light)
+    assert done.returncode == 2 and done.stderr.rstrip("\n").endswith("loaded: "), done.stderr
 
 
 def test_quick_schema_check_agrees_with_alembic() -> None:

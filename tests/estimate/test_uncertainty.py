@@ -26,7 +26,7 @@ def _spread_price(params: TwoFactorParams) -> float:
     one = np.array([1.0])
     option = SpreadOption(
         near=0.55 * one, far=0.8 * one, expiry=0.5 * one, strike=0.0 * one,
-        kind=np.array([True]), near_price=60.0 * one, far_price=61.0 * one, discount=one,
+        is_call=np.array([True]), near_price=60.0 * one, far_price=61.0 * one, discount=one,
     )  # fmt: skip
     law = spread_law(option, params)
     return float(spread_greeks(law, 1.0, "call", 1.0).price[0])

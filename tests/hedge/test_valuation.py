@@ -37,7 +37,7 @@ def _spec(option: CalendarSpread, F: np.ndarray, t: float = 0.0) -> SpreadOption
         far=option.far - t,
         expiry=option.expiry - t,
         strike=np.full(n, option.strike),
-        kind=option.call,
+        is_call=option.call,
         near_price=F[:, 0],
         far_price=F[:, 1],
         discount=np.exp(-RATE * (option.expiry - t)),
@@ -46,7 +46,7 @@ def _spec(option: CalendarSpread, F: np.ndarray, t: float = 0.0) -> SpreadOption
 
 def _exact(option: CalendarSpread, vols: TwoFactorParams | ForwardVols, F: np.ndarray) -> float:
     spec = _spec(option, F)
-    return float(price_exact(spread_law(spec, vols), spec.strike, spec.kind, spec.discount)[0])
+    return float(price_exact(spread_law(spec, vols), spec.strike, spec.is_call, spec.discount)[0])
 
 
 def _spread_pricer(
@@ -54,7 +54,7 @@ def _spread_pricer(
 ) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
     """calib.model.spread's exact pricer and hedge ratios for the option seen from ``t``."""
     spec = _spec(option, F, t)
-    g = spread_greeks(spread_law(spec, SET), spec.strike, spec.kind, spec.discount)
+    g = spread_greeks(spread_law(spec, SET), spec.strike, spec.is_call, spec.discount)
     return g.price, g.delta_near, g.delta_far
 
 

@@ -57,7 +57,7 @@ def grid_option(params_far: float = 52.0) -> SpreadOption:
         far=t + T1 + 0.01 + T2,
         expiry=t,
         strike=K,
-        kind=np.arange(t.size) % 2 == 0,
+        is_call=np.arange(t.size) % 2 == 0,
         near_price=50.0,
         far_price=F2,
         discount=0.97,
@@ -144,13 +144,13 @@ def test_zero_strike_is_margrabe() -> None:
 def test_default_nodes_converged_against_many_nodes_and_quad(params: TwoFactorParams) -> None:
     opt = grid_option()
     law = spread_law(opt, params)
-    ours = price_exact(law, opt.strike, opt.kind, opt.discount)
-    many = price_exact(law, opt.strike, opt.kind, opt.discount, nodes=2000)
+    ours = price_exact(law, opt.strike, opt.is_call, opt.discount)
+    many = price_exact(law, opt.strike, opt.is_call, opt.discount, nodes=2000)
     np.testing.assert_allclose(ours, many, rtol=PRICE_REL)
     # scipy.integrate.quad (adaptive) of the conditional-Black integrand, on a subsample.
     sub = slice(0, len(opt), 7)
     sub_law = SpreadLaw(*(getattr(law, n)[sub] for n in SpreadLaw.__slots__))
-    ref = price_quad(sub_law, opt.strike[sub], opt.kind[sub], opt.discount[sub])
+    ref = price_quad(sub_law, opt.strike[sub], opt.is_call[sub], opt.discount[sub])
     np.testing.assert_allclose(ours[sub], ref, rtol=PRICE_REL)
 
 
@@ -176,8 +176,8 @@ def test_exact_close_to_kirk_for_small_strikes() -> None:
     opt = grid_option()
     law = spread_law(opt, LOOSE)
     for K in (0.0, 0.1, 0.5):
-        exact = price_exact(law, K, opt.kind, opt.discount)
-        kirk = price_kirk(law, K, opt.kind, opt.discount)
+        exact = price_exact(law, K, opt.is_call, opt.discount)
+        kirk = price_kirk(law, K, opt.is_call, opt.discount)
         if K:
             np.testing.assert_allclose(kirk, exact, rtol=0.0, atol=1e-4 * 50.0)
         else:
@@ -191,14 +191,14 @@ def test_exact_within_three_standard_errors_of_monte_carlo(far_price: float) -> 
         far=[0.75, 1.5, 1.25, 2.0],
         expiry=[0.45, 0.4, 0.9, 0.95],
         strike=[2.0, -1.0, 0.0, 6.0],
-        kind=[True, False, True, False],
+        is_call=[True, False, True, False],
         near_price=50.0,
         far_price=far_price,
         discount=0.98,
     )
     law = spread_law(opt, DECAY)
-    exact = price_exact(law, opt.strike, opt.kind, opt.discount)
-    mc, se = price_mc(law, opt.strike, opt.kind, opt.discount, n_paths=200_000, seed=8)
+    exact = price_exact(law, opt.strike, opt.is_call, opt.discount)
+    mc, se = price_mc(law, opt.strike, opt.is_call, opt.discount, n_paths=200_000, seed=8)
     assert np.all(se > 0.0)
     assert np.all(np.abs(mc - exact) <= 3.0 * se)
 
@@ -216,7 +216,7 @@ def test_law_matches_the_state_transition() -> None:
         far=T2,
         expiry=t,
         strike=1.0,
-        kind="call",
+        is_call="call",
         near_price=F1,
         far_price=F2,
         discount=1.0,
@@ -265,7 +265,7 @@ def _fd(f, x: float, h: float) -> float:  # type: ignore[no-untyped-def]
 def test_hedge_ratios_match_finite_differences() -> None:
     opt = grid_option()
     law = spread_law(opt, DECAY)
-    dn, df = hedge_ratios(law, opt.strike, opt.kind, opt.discount)
+    dn, df = hedge_ratios(law, opt.strike, opt.is_call, opt.discount)
 
     def bumped(leg: str, h: float) -> np.ndarray:
         F1 = opt.near_price * (1 + h) if leg == "near" else opt.near_price
@@ -277,7 +277,7 @@ def test_hedge_ratios_match_finite_differences() -> None:
             law.var_far,
             law.cov,
         )
-        return price_exact(moved, opt.strike, opt.kind, opt.discount)
+        return price_exact(moved, opt.strike, opt.is_call, opt.discount)
 
     h = 1e-5
     fd_near = (bumped("near", h) - bumped("near", -h)) / (2 * h * opt.near_price)
@@ -305,7 +305,7 @@ def test_vol_sensitivities_match_finite_differences(mode: str) -> None:
     h = 1e-5
 
     def value(vols: TwoFactorParams | ForwardVols) -> np.ndarray:
-        return price_exact(spread_law(opt, vols), opt.strike, opt.kind, opt.discount)
+        return price_exact(spread_law(opt, vols), opt.strike, opt.is_call, opt.discount)
 
     for name in ("sigma_spot", "sigma_yield", "rho"):
         got = getattr(sens, name)
@@ -338,12 +338,12 @@ def test_price_is_homogeneous_in_prices_and_strike() -> None:
     # Euler: V = F1 dV/dF1 + F2 dV/dF2 + K dV/dK, and scaling F1, F2, K by 2 doubles V.
     opt = grid_option()
     law = spread_law(opt, DECAY)
-    g = spread_greeks(law, opt.strike, opt.kind, opt.discount)
+    g = spread_greeks(law, opt.strike, opt.is_call, opt.discount)
     doubled = SpreadLaw(
         law.mean_near + math.log(2), law.mean_far + math.log(2), law.var_near, law.var_far, law.cov
     )
     np.testing.assert_allclose(
-        price_exact(doubled, 2 * opt.strike, opt.kind, opt.discount), 2 * g.price, rtol=1e-12
+        price_exact(doubled, 2 * opt.strike, opt.is_call, opt.discount), 2 * g.price, rtol=1e-12
     )
     assert DEFAULT_NODES == 64
 
@@ -357,7 +357,7 @@ def test_bad_inputs_are_rejected() -> None:
         far=1.0,
         expiry=0.4,
         strike=1.0,
-        kind="call",
+        is_call="call",
         near_price=50.0,
         far_price=52.0,
         discount=1.0,
@@ -369,7 +369,7 @@ def test_bad_inputs_are_rejected() -> None:
     with pytest.raises(ParameterError, match=r"near_price .* must be > 0"):
         SpreadOption(**{**kw, "near_price": -1.0})
     with pytest.raises(ParameterError, match="kind"):
-        SpreadOption(**{**kw, "kind": "straddle"})
+        SpreadOption(**{**kw, "is_call": "straddle"})
     law = SpreadLaw.black(50.0, 52.0, 0.3, 0.3, 0.9, 0.5)
     with pytest.raises(ParameterError, match="Kirk's approximation needs"):
         price_kirk(law, -60.0, "call")

@@ -15,6 +15,7 @@ from calib.api.app import create_app
 from calib.client import Client
 from calib.errors import IllegalTransitionError, NoApprovedSetError
 from calib.settings import Settings
+from calib.store import quick
 from calib.store.base import utc_now
 from calib.store.engine import Store, begin_write
 from calib.store.runs import append_event, read_in_force
@@ -103,6 +104,11 @@ def test_cli_client_and_api_agree_on_unusual_histories(
             api = answer.json()["run_id"] if answer.status_code == 200 else None
             seen = {"cli": by_cli(when), "client": by_client(client, when), "api": api}
             assert seen == dict.fromkeys(seen, run_id), when
+            # the CLI's quick SQLite read builds the very record the store does
+            stored = read_in_force(store.sessions, CODE, as_of=when)
+            assert (None if stored is None else stored.run_id) == run_id, when
+            if db_url.startswith("sqlite"):
+                assert quick.read_in_force(db_url, CODE, when) == stored, when
         # one set of names for the approval: the CLI's JSON and the API's bodies agree
         late = (t5 + timedelta(days=1)).isoformat()
         args = ("latest", CODE, "--as-of", late, "--json", "--db", db_url)
@@ -138,6 +144,9 @@ def test_the_set_in_force_at_a_past_moment_never_changes(store: Store, db_url: s
         moment = utc_now()  # after the approval's stamp, before its commit
         during_client = client.latest(CODE, as_of=moment).run_id
         during_store = read_in_force(store.sessions, CODE, as_of=moment)
+        if db_url.startswith("sqlite"):  # the CLI's quick read waits on the same lock
+            during_quick = quick.read_in_force(db_url, CODE, moment)
+            assert during_quick is not None and during_quick.run_id == second
         writer.join(timeout=60)
         after = client.latest(CODE, as_of=moment).run_id
     assert during_store is not None
