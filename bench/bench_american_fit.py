@@ -33,6 +33,7 @@ def _day(rng: np.random.Generator, style: str) -> OptionQuotes:
     if style == "european":
         return q
     r = q.rate
+    assert q.premium is not None
     vol = black76.implied_vol(q.premium, q.forward, q.strike, q.expiry, r, q.is_call)
     premium = american.price(q.forward, q.strike, q.expiry, r, vol, q.is_call)
     return replace(q, premium=premium, american=np.ones(len(q), dtype=bool))
