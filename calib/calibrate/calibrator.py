@@ -175,7 +175,7 @@ class Calibrator:
                 counts[reason] = counts.get(reason, 0) + 1
             raise TooFewQuotesError(data.n, len(quotes), s.mode, needed, counts)
         if s.mode == "held_rho":
-            result = self._fit_held(data, hist, s, quotes, lim)
+            result = self._fit_held(data, s, hist, quotes, lim)
         else:
             result = self._fit_convex(data, hist, s, quotes, lim)
         if not (
@@ -442,8 +442,8 @@ class Calibrator:
     def _fit_held(
         self,
         data: FitData,
-        hist: TwoFactorParams,
         s: CalibrationSettings,
+        hist: TwoFactorParams,
         quotes: OptionQuotes,
         lim: Limits,
     ) -> CalibrationResult:
@@ -488,18 +488,16 @@ class Calibrator:
             )
         s1 = math.sqrt(best.P)
         params = [hist.with_vols(s1, best.ratio * s1, hist.rho)]
-        edges = np.array([0.0, float(data.expiry.max())])
         var_tol = SCAN_VAR_TOL * max(best.P, 1.0)
         reports = self._reports(params, lim, None, var_tol)
-        V = best.P * (a + b * best.ratio**2 - 2.0 * c * hist.rho * best.ratio)
         return _result(
             data,
             quotes,
             hist,
             s,
-            edges,
+            np.array([0.0, float(data.expiry.max())]),  # one bucket: the edges
             params,
-            V,
+            best.P * (a + b * best.ratio**2 - 2.0 * c * hist.rho * best.ratio),  # V
             A,
             best.objective,
             reports,

@@ -34,6 +34,9 @@ from calib.types import EXERCISE_STYLES, ArrayLike, BoolArray, FloatArray, IntAr
 
 DAYS_PER_YEAR = 365.0  # ACT/365, as the inputs (DESIGN §7)
 
+CONTRACT_FIELDS = ("expiry", "maturity", "is_call", "strike", "forward", "discount")
+"""The arrays of :class:`OptionQuotes` that define each option (and of :class:`FitData`)."""
+
 
 @dataclass(frozen=True, slots=True, eq=False)
 class OptionQuotes:
@@ -185,12 +188,7 @@ class OptionQuotes:
             return None if x is None else x[i]
 
         return OptionQuotes(
-            expiry=self.expiry[i],
-            maturity=self.maturity[i],
-            is_call=self.is_call[i],
-            strike=self.strike[i],
-            forward=self.forward[i],
-            discount=self.discount[i],
+            **self.contracts(i),
             premium=pick(self.premium),
             implied_vol=pick(self.implied_vol),
             bid=pick(self.bid),
@@ -198,6 +196,10 @@ class OptionQuotes:
             labels=None if self.labels is None else tuple(self.labels[j] for j in i.tolist()),
             american=None if self.american is None else self.american[i],
         )
+
+    def contracts(self, i: IntArray) -> dict[str, npt.NDArray[Any]]:
+        """The arrays that define each option (:data:`CONTRACT_FIELDS`) at positions ``i``."""
+        return {name: getattr(self, name)[i] for name in CONTRACT_FIELDS}
 
     @property
     def rate(self) -> FloatArray:
@@ -311,10 +313,10 @@ class FitData:
     """The usable quotes of a day, in the arrays the fit works on (internal)."""
 
     index: IntArray
+    strike: FloatArray
+    is_call: BoolArray
     expiry: FloatArray
     maturity: FloatArray
-    is_call: BoolArray
-    strike: FloatArray
     forward: FloatArray
     discount: FloatArray
     price: FloatArray
@@ -461,12 +463,7 @@ def _prepare(quotes: OptionQuotes, settings: CalibrationSettings) -> FitData:
         threshold = np.maximum(threshold, 1e-300)
     return FitData(
         index=idx,
-        expiry=q.expiry[idx],
-        maturity=q.maturity[idx],
-        is_call=q.is_call[idx],
-        strike=q.strike[idx],
-        forward=q.forward[idx],
-        discount=q.discount[idx],
+        **q.contracts(idx),
         price=premium[idx],
         vol=vol[idx],
         weight=np.asarray(w, dtype=np.float64),

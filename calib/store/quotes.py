@@ -238,14 +238,8 @@ def add_commodity(
 ) -> CommodityRecord:
     """Register a commodity (``exercise``: its options' default style); returns it with its
     new id."""
-    row = Commodity(
-        code=code,
-        name=name,
-        unit=unit,
-        currency=currency,
-        calendar_rule=calendar_rule,
-        exercise=exercise,
-    )
+    row = Commodity(code=code, name=name, unit=unit, currency=currency, calendar_rule=calendar_rule)
+    row.exercise = exercise
     session.add(row)
     session.flush()
     return _record(row)

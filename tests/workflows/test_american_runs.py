@@ -16,6 +16,7 @@ import numpy as np
 from calib.model import american, black76
 from calib.store.engine import Store
 from calib.store.quotes import load_day, year_fractions
+from calib.workflows.demo.scenario import OPTIONS_COLUMNS
 from calib.workflows.estimates import import_estimate
 from calib.workflows.fit import early_exercise, fit_day
 from calib.workflows.ingest import ingest_file
@@ -44,18 +45,7 @@ def test_an_american_day_fits_reports_and_reruns_bit_identically(
     path = tmp_path / "american.csv"
     with path.open("w", newline="") as handle:
         out = csv.writer(handle)
-        out.writerow(
-            [
-                "trade_date",
-                "commodity",
-                "delivery",
-                "expiry",
-                "kind",
-                "strike",
-                "premium",
-                "exercise",
-            ]
-        )
+        out.writerow([*OPTIONS_COLUMNS[:7], "exercise"])
         for j in range(len(o)):
             out.writerow(
                 [day_date, data.code, o.delivery[j], o.expiry[j],
