@@ -55,7 +55,12 @@ from typing import Any, cast
 from sqlalchemy import Select, bindparam, func, select
 from sqlalchemy.engine import Dialect
 
-from calib.errors import NoApprovedSetError, StoreUnavailableError, UnknownCommodityError
+from calib.errors import (
+    NoApprovedSetError,
+    StoreUnavailableError,
+    StudyRunError,
+    UnknownCommodityError,
+)
 from calib.settings import get_settings
 from calib.store.base import utc_now
 from calib.store.engine import Store, make_store
@@ -290,9 +295,14 @@ class Client:
         ------
         UnknownRunError
             No run ``run_id``.
+        StudyRunError
+            The run belongs to a policy study (never served).
         """
         when = None if as_of is None else _utc(as_of)
-        return cast(RunRecord, self._session_read(require_run, run_id=run_id, as_of=when))
+        found = cast(RunRecord, self._session_read(require_run, run_id=run_id, as_of=when))
+        if found.study is not None:
+            raise StudyRunError(run_id, found.study)
+        return found
 
     def history(self, commodity: str) -> list[ApprovalRecord]:
         """Every approval of ``commodity``, oldest first, with when each was superseded.

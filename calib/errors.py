@@ -769,22 +769,35 @@ class DemoFolderError(
 # --- computing on a cluster (task dask) --------------------------------------------------------
 
 
-@dataclass(eq=False, repr=False)
-class ClusterError(TemplatedError, InputError):
+class ClusterError(TemplatedError, InputError, template="--cluster {address}: {detail}"):
     """The Dask cluster named with ``--cluster`` cannot be used: dask not installed, a
     malformed address, no answer in time, or an option that does not go with it."""
 
-    TEMPLATE: ClassVar[str] = "--cluster {address}: {detail}"
     address: str
     detail: str
 
 
-@dataclass(eq=False, repr=False)
-class CommoditySelectionError(TemplatedError, InputError):
+class CommoditySelectionError(TemplatedError, InputError, template="{reason}"):
     """A command over several commodities was given none, or both names and ``--all``."""
 
-    TEMPLATE: ClassVar[str] = "{reason}"
     reason: str
+
+
+# --- study runs and policy comparisons (hedge2) --------------------------------------------------
+
+
+class StudyRunError(
+    TemplatedError,
+    InputError,
+    template=(
+        "run {run_id} belongs to the policy study {study!r}: study runs are never approved or "
+        "served"
+    ),
+):
+    """A run of a policy study asked to be approved or served: study runs never are."""
+
+    run_id: int
+    study: str
 
 
 # --- American-style quotes (amfit) -------------------------------------------------------------

@@ -60,6 +60,7 @@ from calib.errors import (
     InputError,
     NoApprovedSetError,
     StoreUnavailableError,
+    StudyRunError,
     UnknownCommodityError,
     UnknownRunError,
 )
@@ -157,7 +158,9 @@ def create_app(settings: Settings | None = None, *, token: str | None = None) ->
     @app.exception_handler(InputError)
     async def input_error(_request: Request, exc: InputError) -> JSONResponse:
         status = 400
-        if isinstance(exc, UnknownCommodityError | UnknownRunError | NoApprovedSetError):
+        if isinstance(
+            exc, UnknownCommodityError | UnknownRunError | NoApprovedSetError | StudyRunError
+        ):
             status = 404
         elif isinstance(exc, IllegalTransitionError):
             status = 409

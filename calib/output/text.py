@@ -287,7 +287,8 @@ def verdict_line(gates: Sequence[Mapping[str, Any]], approved: bool) -> str:
 
 
 def runs_table(runs: Sequence[RunRecord]) -> list[str]:
-    """``calib runs``: one row per run under a header, vol-point RMSE first."""
+    """``calib runs``: one row per run under a header, vol-point RMSE first; a study run's
+    status names its study (never approved or served)."""
     rows = []
     for r in runs:
         values = r.params.to_dict() if r.params is not None else {}
@@ -295,7 +296,7 @@ def runs_table(runs: Sequence[RunRecord]) -> list[str]:
             [
                 str(r.run_id),
                 str(r.trade_date),
-                r.status,
+                r.status if r.study is None else f"{r.status} (study {r.study})",
                 r.mode,
                 short_quality(r),
                 *(g(values.get(n), ".4g") for n in VOLS),

@@ -60,6 +60,7 @@ from calib.store.runs import (
     latest_approved,
     lock_commodity,
     require_run,
+    study_baseline,
 )
 from calib.types import FloatArray
 from calib.workflows.approve import approve_in
@@ -329,6 +330,7 @@ def store_attempts(
     by: str,
     auto_approve: bool,
     skip_stored: Callable[[Session], Collection[date]] | None = None,
+    study: str | None = None,
 ) -> list[StoredAttempt]:
     """:func:`store_attempt` for several days of one commodity, in order, in **one** write
     transaction: all of them are stored, or (interrupted, failed) none.
@@ -337,12 +339,17 @@ def store_attempts(
     an earlier day of ``fits`` approved in this transaction. ``skip_stored`` is asked, under
     the commodity's write lock, which days already have their run (stored by another writer
     since the caller looked): those are not stored again (a backfill's claim on its days).
+
+    ``study`` stores the runs as runs of that policy study (never approved or served; the
+    name is part of their stored settings): each is gated against the study's newest earlier
+    run whose gates all passed, as if the policy had run every morning.
     """
+    assert study is None or not auto_approve, "a study run is never approved"
     if not fits:
         return []
     commodity_id = fits[0][0].commodity_id
     assert all(day.commodity_id == commodity_id for day, _ in fits), "one commodity at a time"
-    run_settings = settings.to_dict()
+    run_settings = study_settings(settings, study)
     version = code_version()
     out: list[StoredAttempt] = []
     with approvals_held(sessions), sessions.begin() as session:
@@ -355,6 +362,10 @@ def store_attempts(
             if day.trade_date in taken:
                 out.append(StoredAttempt(None, previous, False))
                 continue
+            if study is not None:
+                previous = study_baseline(
+                    session=session, commodity_id=commodity_id, study=study, before=day.trade_date
+                )
             stored = _store_in(
                 session,
                 day,
@@ -366,6 +377,7 @@ def store_attempts(
                 previous,
                 by=by,
                 auto_approve=auto_approve,
+                study=study,
             )
             out.append(stored)
             if stored.auto_approved:
@@ -385,6 +397,7 @@ def _store_in(
     *,
     by: str,
     auto_approve: bool,
+    study: str | None = None,
 ) -> StoredAttempt:
     """Write one day's run inside the caller's write transaction (which holds the lock),
     gated against ``previous``, the approved run in force."""
@@ -411,6 +424,7 @@ def _store_in(
         failure_reason=attempt.failure,
         fit=record,
         code_version=version,
+        study=study,
     )
     if result is not None:
         add_residuals(
@@ -441,6 +455,15 @@ def _store_in(
         note = "auto-approved: every gate passed"
         approve_in(session, run_id, day.commodity_id, by=by, note=note)
     return StoredAttempt(run_id, previous, approved)
+
+
+def study_settings(settings: RunSettings, study: str | None) -> dict[str, Any]:
+    """The settings stored with a run: those of ``settings``, plus ``study`` for a study run
+    (so its settings hash, the resume key, never matches a production run's)."""
+    out = settings.to_dict()
+    if study is not None:
+        out["study"] = study
+    return out
 
 
 def fit_day(
