@@ -51,6 +51,7 @@ from calib.store.quotes import (
     FuturesCurve,
     OptionChain,
     ZeroCurve,
+    american_of,
     insert_columns,
     nan_for_none,
     require_commodity,
@@ -633,6 +634,7 @@ def load_rows(
             bid=nan_for_none([r.bid for r in opt]),
             ask=nan_for_none([r.ask for r in opt]),
             row_id=readonly([r.id for r in opt], np.int64),
+            american=american_of([r.exercise for r in opt]),
         ),
         rates=ZeroCurve(
             trade_date=trade_date,

@@ -37,7 +37,7 @@ from calib.errors import (
     QuoteError,
     UnknownEstimateError,
 )
-from calib.model import black76
+from calib.model import american, black76
 from calib.model.twofactor import PARAM_NAMES, TwoFactorParams
 from calib.policy.gates import CurveMove, curve_move, evaluate_gates
 from calib.policy.settings import RunSettings, default_settings
@@ -62,6 +62,7 @@ from calib.store.runs import (
     require_run,
     study_baseline,
 )
+from calib.types import FloatArray
 from calib.workflows.approve import approve_in
 from calib.workflows.provenance import code_version, inputs_sha256
 
@@ -77,9 +78,10 @@ def option_quotes(day: DayQuotes) -> OptionQuotes:
 
     Forwards are the day's futures settlements of each option's delivery; discount factors
     come from the day's zero curve at the option expiry; times are ACT/365 from the trade
-    date. A quote with only an implied volatility gets its Black-76 premium at that
-    volatility; bid and ask are used only when every quote has both. Labels are the
-    ``option_quotes`` row ids.
+    date. A quote with only an implied volatility gets its premium at that volatility
+    (Black-76, or the American pricer for an American quote); bid and ask are used only when
+    every quote has both. Labels are the ``option_quotes`` row ids; the style is the stored
+    one (a day without American quotes is the all-European case).
 
     Raises
     ------
@@ -99,16 +101,17 @@ def option_quotes(day: DayQuotes) -> OptionQuotes:
     discount = day.rates.discount(o.expiry)
     premium = np.array(o.premium, dtype=np.float64)
     missing = np.isnan(premium)
-    if missing.any():
-        rate = -np.log(discount[missing]) / expiry[missing]
-        premium[missing] = black76.price(
-            forward[missing],
-            o.strike[missing],
-            expiry[missing],
-            rate,
-            o.implied_vol[missing],
-            o.is_call[missing],
-        )
+    for style, pricer in ((~o.american, black76.price), (o.american, american.price)):
+        fill = missing & style
+        if fill.any():
+            premium[fill] = pricer(
+                forward[fill],
+                o.strike[fill],
+                expiry[fill],
+                -np.log(discount[fill]) / expiry[fill],
+                o.implied_vol[fill],
+                o.is_call[fill],
+            )
     quoted = ~(np.isnan(o.bid) | np.isnan(o.ask))
     return OptionQuotes(
         expiry=expiry,
@@ -121,7 +124,35 @@ def option_quotes(day: DayQuotes) -> OptionQuotes:
         bid=np.asarray(o.bid) if quoted.all() else None,
         ask=np.asarray(o.ask) if quoted.all() else None,
         labels=tuple(str(i) for i in o.row_id.tolist()),
+        american=np.asarray(o.american) if o.american.any() else None,
     )
+
+
+def early_exercise(day: DayQuotes) -> FloatArray:
+    """Each stored option's early-exercise premium at its own implied volatility.
+
+    0 for a European quote; for an American one its American premium less the Black-76
+    premium at its American implied volatility (that of its premium, else the stored one).
+    NaN where there is none: no futures settlement for its delivery that day, or no American
+    implied volatility (e.g. a premium at intrinsic value).
+    """
+    o = day.options
+    out = np.zeros(len(o))
+    am = np.flatnonzero(o.american)
+    if am.size == 0:
+        return out
+    F = day.futures.settle_for(o.delivery[am])
+    T = year_fractions(day.trade_date, o.expiry[am])
+    r = -np.log(day.rates.discount(o.expiry[am])) / T
+    K, call, premium = o.strike[am], o.is_call[am], o.premium[am]
+    with np.errstate(invalid="ignore", divide="ignore"):
+        vol = np.where(
+            np.isnan(premium),
+            o.implied_vol[am],
+            american.implied_vol(premium, F, K, T, r, call),
+        )
+        out[am] = american.early_exercise_premium(F, K, T, r, vol, call)
+    return out
 
 
 def _inputs(day: DayQuotes) -> dict[str, Any]:
