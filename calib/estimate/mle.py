@@ -100,18 +100,18 @@ class _Problem:
         n_obs = int(np.count_nonzero(present[1:]))
         return cls(float(r), gap_index, gaps, tau.astype(np.float64), tau_index, y, n_obs)
 
-    def args(self) -> tuple[float, IntArray, FloatArray, FloatArray, IntArray, FloatArray]:
+    def args(self) -> kalman.Panel:
         return self.r, self.gap_index, self.gaps, self.tau, self.tau_index, self.y
 
     def loglik(self, theta: FloatArray) -> float:
-        return float(kalman.loglik(theta, *self.args()))
+        return float(kalman.loglik(theta, self.args()))
 
     def grad_u(self, u: FloatArray) -> tuple[float, FloatArray]:
-        f, g = kalman.loglik_grad_u(u, *self.args(), GRAD_STEP)
+        f, g = kalman.loglik_grad_u(u, self.args(), GRAD_STEP)
         return float(f), g
 
     def hess_u(self, u: FloatArray) -> tuple[float, FloatArray, FloatArray]:
-        f, g, h = kalman.loglik_hess_u(u, *self.args(), HESS_STEP)
+        f, g, h = kalman.loglik_hess_u(u, self.args(), HESS_STEP)
         return float(f), g, h
 
 
@@ -144,9 +144,8 @@ class States:
 
 
 def _states(problem: _Problem, theta: FloatArray) -> States:
-    r, gi, gaps, tau, ti, y = problem.args()
-    ll, a_f, p_f, a_p, p_p = kalman.filter_moments(theta, r, gi, gaps, tau, ti, y)
-    a_s, p_s = kalman.smooth_moments(theta, gi, gaps, a_f, p_f, a_p, p_p)
+    ll, a_f, p_f, a_p, p_p = kalman.filter_moments(theta, problem.args())
+    a_s, p_s = kalman.smooth_moments(theta, problem.gap_index, problem.gaps, a_f, p_f, a_p, p_p)
     return States(
         loglik=float(ll),
         filtered=readonly(a_f, np.float64),
