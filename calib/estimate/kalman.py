@@ -161,8 +161,8 @@ def _run(
 
     ``panel`` is :data:`Panel`; ``bases`` is :func:`basis` of its ``tau`` at ``theta``'s
     ``kappa``. ``a_filt, p_filt`` (``(n, 2)``, ``(n, 3)`` as ``P00, P01, P11``) receive the
-    filtered moments, ``a_pred, p_pred`` the one-step predictions (row 0: the day-0 posterior). Returns ``-inf`` where
-    the parameters make a variance non-positive.
+    filtered moments, ``a_pred, p_pred`` the one-step predictions (row 0: the day-0
+    posterior). Returns ``-inf`` where the parameters make a variance non-positive.
     """
     r, gap_index, gaps, tau, tau_index, y = panel
     n, m = y.shape

@@ -30,7 +30,7 @@ def statsmodels_run(
     the first curve, given to statsmodels as a known initial state with day 0 missing.
     """
     sm = system_matrices(params, xi, curves, rate)
-    ks = KalmanSmoother(k_endog=curves.n_slots, k_states=2)
+    ks = KalmanSmoother(k_endog=curves.n_contracts, k_states=2)
     ks.bind(sm.endog)  # time-varying matrices need the sample length first
     for name in ("design", "obs_intercept", "obs_cov", "transition", "state_intercept"):
         ks[name] = getattr(sm, name)
