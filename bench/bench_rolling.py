@@ -3,7 +3,7 @@
 Data: ten years of business days of an invented commodity, five rolling contracts, states
 simulated exactly (the curves of ``bench_kalman``). Windows of two years whose ends step by a
 month from the end of year two (96 windows), estimated in worker processes
-(:class:`calib.estimate.executor.ProcessExecutor`, two workers):
+(:class:`calib.compute.executor.ProcessExecutor`, two workers):
 
 * warm: as the workflow runs them (:func:`calib.estimate.rolling.estimate_windows`): the
   first window cold, then chunks of :data:`calib.workflows.rolling.CHUNK` consecutive windows,
@@ -26,8 +26,8 @@ from datetime import date
 import numpy as np
 
 from bench.bench_kalman import RATE, make_curves
+from calib.compute.executor import ProcessExecutor
 from calib.estimate import Curves
-from calib.estimate.executor import ProcessExecutor
 from calib.estimate.rolling import (
     ChunkTask,
     FitSettings,

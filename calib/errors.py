@@ -764,3 +764,20 @@ class DemoFolderError(
 
     path: str
     marker: str
+
+
+# --- computing on a cluster (task dask) --------------------------------------------------------
+
+
+class ClusterError(TemplatedError, InputError, template="--cluster {address}: {detail}"):
+    """The Dask cluster named with ``--cluster`` cannot be used: dask not installed, a
+    malformed address, no answer in time, or an option that does not go with it."""
+
+    address: str
+    detail: str
+
+
+class CommoditySelectionError(TemplatedError, InputError, template="{reason}"):
+    """A command over several commodities was given none, or both names and ``--all``."""
+
+    reason: str

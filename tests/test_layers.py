@@ -22,10 +22,15 @@ FORBIDDEN: dict[str, tuple[str, ...]] = {
     "inputs": ("store", "estimate", "calibrate", "policy", "output", *_ABOVE_STORE),
     "workflows": ("cli", "api"),
     "hedge": ("store", "estimate", "calibrate", "policy", "output", *_ABOVE_STORE),
+    "compute": (
+        *("model", "record", "store", "estimate", "calibrate", "policy", "output", "inputs"),
+        *("hedge", *_ABOVE_STORE),
+    ),
 }
 """``record`` (the stored-fit contract and its JSON codec) sits just above ``model``;
 ``policy`` (settings file, gates) and ``output`` (what calib shows people) are pure: no
-database; workflows, the CLI and the API use them."""
+database; workflows, the CLI and the API use them. ``compute`` (where units of work run:
+this process, local processes, a cluster) is below them all."""
 NUMERIC = ("model", "estimate", "calibrate", "hedge")
 PURE = ("record", "policy")
 """Packages that never touch the database (``policy`` reads its settings file, so files

@@ -1,4 +1,5 @@
-"""Backfill: ``calib backfill COMMODITY --from D1 --to D2 [--workers N]``.
+"""Backfill: ``calib backfill COMMODITY --from D1 --to D2 [--workers N | --cluster ADDRESS]``;
+several commodities with ``--commodity`` repeated or ``--all``.
 
 Exit codes: 0 every day fitted; 1 some days failed (stored as rejected runs, or had no
 options); 2 a user mistake, nothing stored.
@@ -8,17 +9,23 @@ from __future__ import annotations
 
 import time
 from collections.abc import Callable
-from contextlib import nullcontext
+from contextlib import closing, nullcontext
 from datetime import datetime
+from functools import partial
 from typing import TYPE_CHECKING, Annotated
 
 import typer
 
 from calib.cli.common import (
+    AllCommoditiesOption,
+    ClusterOption,
+    CommoditiesOption,
     DbOption,
     EstimateOption,
     JsonOption,
     SettingsOption,
+    WorkersOption,
+    chosen_commodities,
     echo_json,
     open_store,
 )
@@ -96,7 +103,7 @@ def _print_report(report: flow.BackfillReport) -> None:
     )
     typer.echo(
         f"  estimate {report.estimate_id}, settings {report.settings_sha256[:12]}, "
-        f"{report.workers} worker(s), {report.seconds:.1f} s"
+        f"{report.workers} worker(s) on {report.where}, {report.seconds:.1f} s"
     )
     if report.approved:
         typer.echo(f"  auto-approved: {report.approved} (in date order, each superseding the last)")
@@ -114,12 +121,15 @@ def _print_report(report: flow.BackfillReport) -> None:
 
 
 def backfill_cmd(
-    commodity: Annotated[str, typer.Argument(help="Commodity code.")],
     start: Annotated[datetime, typer.Option("--from", formats=["%Y-%m-%d"], help="First day.")],
     end: Annotated[datetime, typer.Option("--to", formats=["%Y-%m-%d"], help="Last day.")],
-    workers: Annotated[
-        int, typer.Option("--workers", min=1, help="Processes that read and fit days.")
-    ] = 1,
+    commodity: Annotated[
+        str | None, typer.Argument(help="Commodity code.", show_default=False)
+    ] = None,
+    commodities: CommoditiesOption = None,
+    every: AllCommoditiesOption = False,
+    workers: WorkersOption = None,
+    cluster: ClusterOption = None,
     settings_file: SettingsOption = None,
     estimate_id: EstimateOption = None,
     auto_approve: Annotated[
@@ -132,30 +142,31 @@ def backfill_cmd(
     """Fit every trading day from --from to --to and store the runs as candidates.
 
     Days already fitted with the same estimate and settings are skipped, so an interrupted
-    backfill resumes where it stopped. Exit code 1 if any day failed.
+    backfill resumes where it stopped. With several commodities (--commodity repeated, or
+    --all) their days are scheduled together; --json then prints {"commodities": [...]}, one
+    report each. Exit code 1 if any day failed.
     """
+    from calib.compute.executor import open_executor
     from calib.policy.settings import load_settings
     from calib.workflows import backfill as flow
 
-    settings = load_settings(settings_file, commodity)
     with open_store(db) as (store, program):
-        bar = None if as_json else _Bar()
-        with bar.bar if bar is not None else nullcontext():
-            report = flow.backfill(
-                store,
-                commodity,
-                start.date(),
-                end.date(),
-                by=program.user,
-                settings=settings,
-                estimate_id=estimate_id,
-                workers=workers,
-                auto_approve=auto_approve,
-                progress=bar,
-            )
+        codes = chosen_commodities(store, [commodity, *(commodities or [])], every)
+        jobs = [flow.BackfillJob(c, load_settings(settings_file, c), estimate_id) for c in codes]
+        with closing(open_executor(workers, cluster)) as executor:
+            bar = None if as_json else _Bar()
+            with bar.bar if bar is not None else nullcontext():
+                run = partial(flow.backfill_many, store, jobs, by=program.user, progress=bar)
+                reports = run(
+                    start.date(), end.date(), executor=executor, auto_approve=auto_approve
+                )
     if as_json:
-        echo_json(report.to_dict())
+        if len(reports) == 1 and not commodities and not every:
+            echo_json(reports[0].to_dict())
+        else:
+            echo_json({"commodities": [r.to_dict() for r in reports]})
     else:
-        _print_report(report)
-    if report.failures:
+        for report in reports:
+            _print_report(report)
+    if any(r.failures for r in reports):
         raise typer.Exit(EXIT_SOME_FAILED)

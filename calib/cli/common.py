@@ -71,6 +71,65 @@ EstimateOption = Annotated[
     ),
 ]
 
+ClusterOption = Annotated[
+    str | None,
+    typer.Option(
+        "--cluster",
+        metavar="ADDRESS",
+        help="Run the work on the Dask cluster whose scheduler is at ADDRESS "
+        "(tcp://host:8786; needs the 'cluster' extra); the store stays where --db says.",
+        show_default=False,
+    ),
+]
+"""``--cluster ADDRESS``: hand to :func:`calib.compute.executor.open_executor`."""
+WorkersOption = Annotated[
+    int | None,
+    typer.Option(
+        "--workers",
+        min=1,
+        help="Local worker processes (backfill: default 1; rolling estimates: the cores).",
+        show_default=False,
+    ),
+]
+CommoditiesOption = Annotated[
+    list[str] | None,
+    typer.Option(
+        "--commodity",
+        metavar="CODE",
+        help="A commodity (repeat for several).",
+        show_default=False,
+    ),
+]
+AllCommoditiesOption = Annotated[
+    bool, typer.Option("--all", help="Every registered commodity.", show_default=False)
+]
+
+
+def chosen_commodities(store: Store, named: list[str | None] | list[str], every: bool) -> list[str]:
+    """The commodities a command was given: those ``named`` (positional and ``--commodity``,
+    first mention first), or with ``every`` (``--all``) every registered one.
+
+    Raises
+    ------
+    CommoditySelectionError
+        None named and no ``--all``; names together with ``--all``; ``--all`` on a store
+        with no commodity.
+    """
+    from calib.errors import CommoditySelectionError
+    from calib.store.quotes import all_commodity_codes
+
+    codes = list(dict.fromkeys(c for c in named if c))
+    if every and codes:
+        raise CommoditySelectionError("name commodities or give --all, not both")
+    if every:
+        with store.sessions() as session:
+            codes = all_commodity_codes(session=session)
+        if not codes:
+            raise CommoditySelectionError("--all: no commodity is registered in the store")
+    if not codes:
+        raise CommoditySelectionError("name a commodity (COMMODITY or --commodity) or give --all")
+    return codes
+
 
 @contextmanager
 def open_store(db: str | None, *, check: bool = True) -> Iterator[tuple[Store, Settings]]:

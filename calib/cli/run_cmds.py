@@ -17,10 +17,12 @@ import typer
 
 from calib.cli.common import (
     AsOfOption,
+    ClusterOption,
     DbOption,
     EstimateOption,
     JsonOption,
     SettingsOption,
+    WorkersOption,
     echo_json,
     open_store,
 )
@@ -125,15 +127,8 @@ def estimate_cmd(
             show_default=False,
         ),
     ] = None,
-    workers: Annotated[
-        int | None,
-        typer.Option(
-            "--workers",
-            min=1,
-            help="With --rolling: worker processes (default: cores).",
-            show_default=False,
-        ),
-    ] = None,
+    workers: WorkersOption = None,
+    cluster: ClusterOption = None,
     db: DbOption = None,
     as_json: JsonOption = False,
 ) -> None:
@@ -141,7 +136,7 @@ def estimate_cmd(
 
     With --rolling: a rolling series (resumable: the same command again estimates only the
     windows not stored yet); its estimates are never the morning fit's default."""
-    if rolling is not None or step is not None or workers is not None:
+    if rolling is not None or step is not None or workers is not None or cluster is not None:
         from calib.cli.stability_cmds import rolling_estimate
 
         rolling_estimate(
@@ -151,6 +146,7 @@ def estimate_cmd(
             rolling,
             step,
             workers,
+            cluster=cluster,
             contracts=contracts,
             min_days=min_days,
             db=db,

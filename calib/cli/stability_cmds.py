@@ -7,6 +7,7 @@ Exit codes: 0 done; 2 a user mistake (bad period, unknown series or estimate), n
 from __future__ import annotations
 
 import sys
+from contextlib import closing
 from datetime import date, datetime
 from pathlib import Path
 from typing import TYPE_CHECKING, Annotated, Any, Literal
@@ -68,19 +69,21 @@ def rolling_estimate(
     step: str | None,
     workers: int | None,
     *,
+    cluster: str | None = None,
     contracts: int,
     min_days: int,
     db: str | None,
     as_json: bool,
 ) -> None:
     """``calib estimate CODE --rolling LENGTH --step STEP``: store a rolling series."""
+    from calib.compute.executor import open_executor
     from calib.errors import ROLLING_ONLY_WITH, RollingRequestError
-    from calib.estimate.executor import local_executor
     from calib.estimate.rolling import parse_period
     from calib.workflows import rolling as flow
 
     if length is None:
         option = "--step" if step is not None else "--workers"
+        option = "--cluster" if step is None and workers is None else option
         raise RollingRequestError(commodity, ROLLING_ONLY_WITH.format(option=option))
     window = parse_period("--rolling", length)
     every = parse_period("--step", step or "1m")
@@ -96,7 +99,7 @@ def rolling_estimate(
         if bar is not None and w.status != "held":
             bar.update(1)
 
-    with open_store(db) as (store, settings):
+    with open_store(db) as (store, settings), closing(open_executor(workers, cluster)) as executor:
         try:
             report = flow.estimate_rolling(
                 store.sessions,
@@ -108,7 +111,7 @@ def rolling_estimate(
                 user=settings.user,
                 n_contracts=contracts,
                 min_days=min_days,
-                executor=local_executor(workers),
+                executor=executor,
                 on_start=start,
                 on_window=done,
             )

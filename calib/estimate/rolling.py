@@ -32,9 +32,9 @@ from typing import Any, Literal
 
 import numpy as np
 
+from calib.compute.executor import Executor
 from calib.errors import EstimationDataError, EstimationError, EstimationWarning, PeriodError
 from calib.estimate.curves import Curves
-from calib.estimate.executor import Executor
 from calib.estimate.mle import Estimate, fit
 from calib.model.twofactor import TwoFactorParams
 from calib.types import FloatArray

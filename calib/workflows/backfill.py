@@ -2,29 +2,38 @@
 
 Units of work
 -------------
-Days are read :data:`DAYS_PER_TASK` at a time, in one read transaction and one query per
-quote table (:func:`calib.store.quotes.load_days`, which gives each day exactly what
-:func:`~calib.store.quotes.load_day` gives it), and fitted outside any transaction
-(:func:`calib.workflows.fit.attempt_fit`). The runs are written :data:`DAYS_PER_WRITE` days
-per write transaction (:func:`calib.workflows.fit.store_attempts`, the code
-:func:`~calib.workflows.fit.fit_day` uses for its one day): each run with its residuals and
-first event, every day of the batch or, interrupted, none of them. The progress listener
-hears of a day only once its batch is committed. A day the calibration refuses is stored as
-a failed run (status ``rejected``) with its reason; a day with futures but no options is
-reported and nothing is stored for it.
+The calling process (the client) reads the days :data:`DAYS_PER_TASK` at a time, in one read
+transaction and one query per quote table (:func:`calib.store.quotes.load_days`, which gives
+each day exactly what :func:`~calib.store.quotes.load_day` gives it), and hands each batch to
+an :class:`~calib.compute.executor.Executor` as plain data (a :class:`FitTask`: the days'
+arrays, the estimate's parameters, the calibration settings). Workers fit them
+(:func:`fit_days`, :func:`calib.workflows.fit.attempt_fit`) and never open the store. The
+runs are written :data:`DAYS_PER_WRITE` days per write transaction
+(:func:`calib.workflows.fit.store_attempts`, the code :func:`~calib.workflows.fit.fit_day`
+uses for its one day): each run with its residuals and first event, every day of the batch
+or, interrupted, none of them. The progress listener hears of a day only once its batch is
+committed. A day the calibration refuses is stored as a failed run (status ``rejected``) with
+its reason; a day with futures but no options is reported and nothing is stored for it.
 
 Workers
 -------
-With ``workers > 1`` a :class:`concurrent.futures.ProcessPoolExecutor` (``spawn`` context) reads
-and fits the tasks in parallel; each worker process builds one
-:class:`~calib.calibrate.Calibrator` per problem shape (forward mode: per number of expiry
-buckets) and re-solves it for every day it is given (a fresh solver each time, no warm
-start: a day's result does not depend on the days before it, so one worker, two, and
-:func:`calib.workflows.rerun.rerun` agree bit for bit). The calling process is the one writer:
-it stores the days strictly in date order, so with ``auto_approve`` each day is gated
-against, and supersedes, the approved set of the day before (an earlier day of the same
-batch included). SQLite admits one writer at a time (WAL), and a day's write is a small part
-of its fit, so one writer costs no parallelism.
+The executor is this process, local worker processes, or a Dask cluster: one code path. A
+worker (process, or thread of a cluster worker) keeps one :class:`~calib.calibrate.Calibrator`
+per settings and problem shape (forward mode: per number of expiry buckets) and re-solves it
+for every day it is given (a fresh solver each time, no warm start: a day's result does not
+depend on the days before it or on the worker, so one process, several, a cluster, and
+:func:`calib.workflows.rerun.rerun` agree bit for bit). The calling process is the one
+writer: it stores the days strictly in date order, so with ``auto_approve`` each day is gated
+against, and supersedes, the approved set of the day before (an earlier day of the same batch
+included). SQLite admits one writer at a time (WAL), and a day's write is a small part of its
+fit, so one writer costs no parallelism.
+
+Several commodities
+-------------------
+:func:`backfill_many` schedules the units of every commodity in one stream (commodity after
+commodity, each in date order): the workers never wait for one commodity's writes to finish
+before starting the next. Each commodity has its own estimate, settings, resume key and
+report; a batch write holds days of one commodity only.
 
 Resume
 ------
@@ -40,12 +49,10 @@ which days are stored, and skips those (they are reported as skipped).
 
 from __future__ import annotations
 
-import itertools
-import multiprocessing
+import threading
 import time
 from collections import Counter, deque
-from collections.abc import Generator, Sequence
-from concurrent.futures import Future, ProcessPoolExecutor
+from collections.abc import Iterator, Sequence
 from contextlib import closing
 from dataclasses import dataclass, field
 from datetime import date
@@ -55,26 +62,29 @@ from sqlalchemy.orm import Session
 
 from calib.calibrate import CalibrationSettings, Calibrator, OptionQuotes, bucket_edges
 from calib.calibrate.quotes import prepare
+from calib.compute.executor import AHEAD_PER_WORKER, Executor, InlineExecutor
 from calib.errors import BackfillRangeError
 from calib.model.twofactor import TwoFactorParams
 from calib.policy.settings import RunSettings, default_settings
-from calib.store.engine import Store, make_store
+from calib.store.engine import Store
 from calib.store.quotes import DayQuotes, load_days, trade_dates
 from calib.store.runs import run_keys
 from calib.workflows.fit import Attempt, attempt_fit, choose_estimate, store_attempts
 from calib.workflows.provenance import inputs_sha256
 
 DAYS_PER_TASK = 16
-"""Days a worker reads in one query per table and fits before handing them back."""
+"""Days read in one query per table and shipped to a worker as one unit."""
 
 DAYS_PER_WRITE = 16
 """Days stored per write transaction: every one of them, or (interrupted) none."""
 
-TASKS_PER_WORKER = 2
-"""Tasks handed out ahead per worker (keeps the workers busy while the writer stores)."""
+TASKS_PER_WORKER = AHEAD_PER_WORKER
+"""Units handed out ahead per worker (keeps the workers busy while the writer stores)."""
 
 OUTCOMES = ("fitted", "failed", "no_quotes")
 """Per day: stored with parameters; stored as a failed (rejected) run; nothing to fit."""
+
+NO_OPTIONS = "no options stored"
 
 
 def settings_sha256(settings: RunSettings) -> str:
@@ -86,13 +96,21 @@ def settings_sha256(settings: RunSettings) -> str:
 
 
 @dataclass(frozen=True, slots=True)
-class FittedDay:
-    """A day read and fitted by a worker, ready to be stored (``day`` is None: no quotes)."""
+class FitTask:
+    """A unit of work as shipped to a worker: plain data, no database."""
+
+    days: tuple[DayQuotes, ...]
+    historical: TwoFactorParams
+    """The estimate's parameters the fit holds fixed."""
+    settings: CalibrationSettings
+
+
+@dataclass(frozen=True, slots=True)
+class DayFit:
+    """What a worker gives back for a day (``attempt`` None: the day has no options)."""
 
     trade_date: date
-    day: DayQuotes | None
     attempt: Attempt | None
-    reason: str | None
     seconds: float
 
 
@@ -100,6 +118,7 @@ class FittedDay:
 class BackfillDay:
     """One day of a backfill as stored."""
 
+    commodity: str
     trade_date: date
     outcome: str
     """One of :data:`OUTCOMES`."""
@@ -109,6 +128,7 @@ class BackfillDay:
 
     def to_dict(self) -> dict[str, Any]:
         return {
+            "commodity": self.commodity,
             "trade_date": self.trade_date.isoformat(),
             "outcome": self.outcome,
             "run_id": self.run_id,
@@ -121,8 +141,10 @@ class BackfillDay:
 class BackfillReport:
     """What a backfill did: the days it stored, those it skipped, failures with reasons, time.
 
-    ``fit_seconds`` is the reading and fitting time summed over the workers, ``write_seconds``
-    the writer's time, ``seconds`` the wall time.
+    ``fit_seconds`` is the fitting time summed over the workers, ``read_seconds`` and
+    ``write_seconds`` the caller's time reading the days and storing the runs, ``seconds`` the
+    wall time from the start to this commodity's last write. ``workers`` is the units that
+    could run at once, ``where`` where they ran (this process, local processes, a cluster).
     """
 
     commodity: str
@@ -131,11 +153,13 @@ class BackfillReport:
     estimate_id: int
     settings_sha256: str
     workers: int
+    where: str
     trade_dates: int
     skipped: tuple[date, ...]
     days: tuple[BackfillDay, ...]
     seconds: float
     fit_seconds: float
+    read_seconds: float
     write_seconds: float
 
     def count(self, outcome: str) -> int:
@@ -167,6 +191,7 @@ class BackfillReport:
             "estimate_id": self.estimate_id,
             "settings_sha256": self.settings_sha256,
             "workers": self.workers,
+            "where": self.where,
             "trade_dates": self.trade_dates,
             "skipped": len(self.skipped),
             "fitted": self.count("fitted"),
@@ -178,6 +203,7 @@ class BackfillReport:
             "days": [d.to_dict() for d in self.days],
             "seconds": self.seconds,
             "fit_seconds": self.fit_seconds,
+            "read_seconds": self.read_seconds,
             "write_seconds": self.write_seconds,
         }
 
@@ -200,111 +226,92 @@ class _Silent:
 
 # --- the workers -------------------------------------------------------------------------------
 
+_CALIBRATORS = threading.local()
+"""Per worker thread: ``{(settings, buckets): Calibrator}`` (a calibrator is not shared
+between threads: a cluster worker may run several units at once)."""
 
-@dataclass
-class DayFitter:
-    """Reads and fits days of one commodity; one per process, its calibrators re-solved.
-
-    Parameters
-    ----------
-    url : the store's URL (each process opens its own engine).
-    commodity : commodity code.
-    historical : the estimate's parameters the fit holds fixed.
-    settings : the calibration settings.
-    """
-
-    url: str
-    commodity: str
-    historical: TwoFactorParams
-    settings: CalibrationSettings
-    _store: Store | None = field(default=None, init=False, repr=False)
-    _calibrators: dict[int, Calibrator] = field(default_factory=dict, init=False, repr=False)
-
-    def calibrator_for(self, quotes: OptionQuotes) -> Calibrator:
-        """The calibrator for this day's shape (forward mode: its number of buckets)."""
-        n = 1
-        if self.settings.mode == "forward":
-            n = max(bucket_edges(prepare(quotes, self.settings).expiry).size - 1, 1)
-        found = self._calibrators.get(n)
-        if found is None:
-            found = self._calibrators[n] = Calibrator(self.settings, n)
-        return found
-
-    def __call__(self, dates: Sequence[date]) -> list[FittedDay]:
-        """Read ``dates`` in one read transaction (:func:`~calib.store.quotes.load_days`),
-        then fit each; a day's ``seconds`` is its fit and its share of the read."""
-        started = time.perf_counter()
-        if self._store is None:
-            self._store = make_store(self.url)
-        with self._store.sessions.begin() as session:
-            days = load_days(session=session, commodity=self.commodity, dates=dates)
-        read_share = (time.perf_counter() - started) / max(len(days), 1)
-        out = []
-        for day in days:
-            t0 = time.perf_counter()
-            if not len(day.options):
-                fitted = FittedDay(day.trade_date, None, None, "no options stored", read_share)
-            else:
-                attempt = attempt_fit(
-                    day, self.historical, self.settings, calibrator_for=self.calibrator_for
-                )
-                seconds = read_share + time.perf_counter() - t0
-                fitted = FittedDay(day.trade_date, day, attempt, None, seconds)
-            out.append(fitted)
-        return out
-
-    def close(self) -> None:
-        if self._store is not None:
-            self._store.engine.dispose()
-            self._store = None
+MAX_CALIBRATORS = 64
+"""Calibrators kept per worker thread; beyond it the cache starts again (a cluster worker
+may serve many backfills with different settings over its life)."""
 
 
-_WORKER: DayFitter | None = None
-
-
-def _start_worker(fitter: DayFitter) -> None:
-    global _WORKER
-    _WORKER = fitter
-
-
-def _fit_in_worker(dates: list[date]) -> list[FittedDay]:
-    assert _WORKER is not None, "worker not initialised"
-    return _WORKER(dates)
-
-
-def _fitted_in_order(
-    fitter: DayFitter, dates: list[date], workers: int
-) -> Generator[FittedDay, None, None]:
-    """The days fitted, in date order: in this process, or by ``workers`` spawned processes,
-    :data:`DAYS_PER_TASK` days at a time."""
-    tasks = [dates[i : i + DAYS_PER_TASK] for i in range(0, len(dates), DAYS_PER_TASK)]
-    if workers <= 1:
-        try:
-            for task in tasks:
-                yield from fitter(task)
-        finally:
-            fitter.close()
-        return
-    context = multiprocessing.get_context("spawn")
-    pool = ProcessPoolExecutor(
-        max_workers=workers, mp_context=context, initializer=_start_worker, initargs=(fitter,)
+def calibrator_for(settings: CalibrationSettings, quotes: OptionQuotes) -> Calibrator:
+    """This thread's calibrator for ``settings`` and the day's shape (forward mode: its
+    number of expiry buckets), built on first use."""
+    cache: dict[tuple[CalibrationSettings, int], Calibrator] | None = getattr(
+        _CALIBRATORS, "cache", None
     )
-    pending: deque[Future[list[FittedDay]]] = deque()
-    todo = iter(tasks)
-    try:
-        for task in itertools.islice(todo, TASKS_PER_WORKER * workers):
-            pending.append(pool.submit(_fit_in_worker, task))
-        while pending:
-            done = pending.popleft().result()
-            nxt = next(todo, None)
-            if nxt is not None:
-                pending.append(pool.submit(_fit_in_worker, nxt))
-            yield from done
-    finally:
-        pool.shutdown(wait=True, cancel_futures=True)
+    if cache is None or len(cache) >= MAX_CALIBRATORS:
+        cache = _CALIBRATORS.cache = {}
+    n = 1
+    if settings.mode == "forward":
+        n = max(bucket_edges(prepare(quotes, settings).expiry).size - 1, 1)
+    found = cache.get((settings, n))
+    if found is None:
+        found = cache[(settings, n)] = Calibrator(settings, n)
+    return found
+
+
+def fit_days(task: FitTask) -> list[DayFit]:
+    """Fit each day of ``task`` in order (runs on a worker: no database)."""
+    out = []
+    for day in task.days:
+        t0 = time.perf_counter()
+        attempt = None
+        if len(day.options):
+            attempt = attempt_fit(
+                day,
+                task.historical,
+                task.settings,
+                calibrator_for=lambda quotes: calibrator_for(task.settings, quotes),
+            )
+        out.append(DayFit(day.trade_date, attempt, time.perf_counter() - t0))
+    return out
 
 
 # --- the unit of work --------------------------------------------------------------------------
+
+
+@dataclass
+class _Plan:
+    """One commodity's share of a backfill, and what the caller has done for it so far."""
+
+    commodity: str
+    settings: RunSettings
+    key: str
+    estimate_id: int
+    historical: TwoFactorParams
+    dates: list[date]
+    todo: list[date]
+    skipped: list[date]
+    days: list[BackfillDay] = field(default_factory=list)
+    fit_seconds: float = 0.0
+    read_seconds: float = 0.0
+    write_seconds: float = 0.0
+    seconds: float = 0.0
+
+    def stored_days(self, session: Session) -> set[date]:
+        """Days of the plan that have a run with its estimate and its settings."""
+        if not self.dates:
+            return set()
+        keys = run_keys(
+            session=session, commodity=self.commodity, start=self.dates[0], end=self.dates[-1]
+        )
+        return {
+            k.trade_date
+            for k in keys
+            if k.estimate_id == self.estimate_id and inputs_sha256(dict(k.settings)) == self.key
+        }
+
+
+@dataclass(frozen=True, slots=True)
+class BackfillJob:
+    """One commodity of a backfill: its settings (defaults when None) and the historical
+    estimate to hold fixed (default: its newest converged one)."""
+
+    commodity: str
+    settings: RunSettings | None = None
+    estimate_id: int | None = None
 
 
 def backfill(
@@ -316,114 +323,176 @@ def backfill(
     by: str,
     settings: RunSettings | None = None,
     estimate_id: int | None = None,
-    workers: int = 1,
+    executor: Executor | None = None,
     auto_approve: bool = False,
     progress: Progress | None = None,
 ) -> BackfillReport:
-    """Fit and store every trading day of ``start..end`` that has no run with these settings.
+    """:func:`backfill_many` of one commodity."""
+    job = BackfillJob(commodity, settings, estimate_id)
+    (report,) = backfill_many(
+        store,
+        [job],
+        start,
+        end,
+        by=by,
+        executor=executor,
+        auto_approve=auto_approve,
+        progress=progress,
+    )
+    return report
+
+
+def backfill_many(
+    store: Store,
+    jobs: Sequence[BackfillJob],
+    start: date,
+    end: date,
+    *,
+    by: str,
+    executor: Executor | None = None,
+    auto_approve: bool = False,
+    progress: Progress | None = None,
+) -> tuple[BackfillReport, ...]:
+    """Fit and store every trading day of ``start..end`` that has no run with these settings,
+    for each job's commodity; one report per job, in their order.
 
     Parameters
     ----------
-    store : the store (its URL is opened again by each worker process).
-    commodity : commodity code.
+    store : the store (only this process opens it).
+    jobs : the commodities (each once), with their settings and estimate.
     start, end : first and last trading day (inclusive); the days are those with futures.
     by : recorded as the runs' creator (and approver with ``auto_approve``).
-    settings : calibration settings and gate limits (defaults when None).
-    estimate_id : the historical estimate to hold fixed (default: newest converged).
-    workers : processes that read and fit; 1 fits in this process.
+    executor : where the days are fitted (default: this process); the caller closes it.
     auto_approve : approve each day whose gates all pass, in date order.
-    progress : told the number of days to fit and of each stored day.
+    progress : told the number of days to fit (all commodities) and of each stored day.
 
     Raises
     ------
-    BackfillRangeError : ``start`` after ``end``, or ``workers < 1``.
+    BackfillRangeError : ``start`` after ``end``, or a commodity named twice.
     UnknownCommodityError, NoEstimateError, UnknownEstimateError, NotConvergedEstimateError
     """
     if start > end:
         raise BackfillRangeError(f"--from {start} is after --to {end}")
-    if workers < 1:
-        raise BackfillRangeError(f"workers must be at least 1, not {workers}")
-    settings = settings or default_settings()
+    run = executor or InlineExecutor()
     progress = progress or _Silent()
-    key = settings_sha256(settings)
     began = time.perf_counter()
+    plans: list[_Plan] = []
+    twice = [c for c, n in Counter(j.commodity for j in jobs).items() if n > 1]
+    if twice:
+        raise BackfillRangeError(f"commodity {twice[0]} named twice")
     with store.sessions.begin() as session:
-        estimate = choose_estimate(session, commodity, estimate_id)
-        dates = trade_dates(session=session, commodity=commodity, start=start, end=end)
+        for job in jobs:
+            chosen = job.settings or default_settings()
+            estimate = choose_estimate(session, job.commodity, job.estimate_id)
+            dates = trade_dates(session=session, commodity=job.commodity, start=start, end=end)
+            plan = _Plan(
+                commodity=job.commodity,
+                settings=chosen,
+                key=settings_sha256(chosen),
+                estimate_id=estimate.estimate_id,
+                historical=estimate.params,
+                dates=dates,
+                todo=[],
+                skipped=[],
+            )
+            done = plan.stored_days(session)
+            plan.todo = [d for d in dates if d not in done]
+            plan.skipped = [d for d in dates if d in done]
+            plans.append(plan)
+    progress.start(sum(len(p.todo) for p in plans), sum(len(p.skipped) for p in plans))
+    sent: deque[tuple[_Plan, tuple[DayQuotes, ...]]] = deque()
 
-        def stored_days(session: Session) -> set[date]:
-            """Days of the range that have a run with this estimate and these settings."""
-            return {
-                k.trade_date
-                for k in run_keys(session=session, commodity=commodity, start=start, end=end)
-                if k.estimate_id == estimate.estimate_id and inputs_sha256(dict(k.settings)) == key
-            }
+    def units() -> Iterator[FitTask]:
+        """The work, read as the executor asks for it: every commodity's days in order."""
+        for plan in plans:
+            for i in range(0, len(plan.todo), DAYS_PER_TASK):
+                t0 = time.perf_counter()
+                with store.sessions.begin() as session:
+                    days = tuple(
+                        load_days(
+                            session=session,
+                            commodity=plan.commodity,
+                            dates=plan.todo[i : i + DAYS_PER_TASK],
+                        )
+                    )
+                plan.read_seconds += time.perf_counter() - t0
+                sent.append((plan, days))
+                yield FitTask(days, plan.historical, plan.settings.calibration)
 
-        done = stored_days(session)
-    todo = [d for d in dates if d not in done]
-    skipped = [d for d in dates if d in done]
-    progress.start(len(todo), len(skipped))
-    fitter = DayFitter(
-        store.engine.url.render_as_string(hide_password=False),
-        commodity,
-        estimate.params,
-        settings.calibration,
-    )
-    days: list[BackfillDay] = []
-    fit_seconds = write_seconds = 0.0
-
-    def write(batch: list[FittedDay]) -> None:
+    def write(plan: _Plan, batch: list[tuple[DayQuotes, DayFit]]) -> None:
         """Store ``batch`` in one transaction, then tell ``progress`` of each day in order."""
-        nonlocal write_seconds
         t0 = time.perf_counter()
-        fits = [(f.day, f.attempt) for f in batch if f.day is not None and f.attempt is not None]
+        fits = [(day, fit.attempt) for day, fit in batch if fit.attempt is not None]
         stored = iter(
             store_attempts(
                 store.sessions,
                 fits,
-                estimate.estimate_id,
-                settings,
+                plan.estimate_id,
+                plan.settings,
                 by=by,
                 auto_approve=auto_approve,
-                skip_stored=stored_days,
+                skip_stored=plan.stored_days,
             )
         )
-        write_seconds += time.perf_counter() - t0
-        for f in batch:
-            if f.day is None or f.attempt is None:
-                day = BackfillDay(f.trade_date, "no_quotes", None, f.reason, False)
+        plan.write_seconds += time.perf_counter() - t0
+        plan.seconds = time.perf_counter() - began
+        for day, fit in batch:
+            if fit.attempt is None:
+                done = BackfillDay(
+                    plan.commodity, day.trade_date, "no_quotes", None, NO_OPTIONS, False
+                )
             else:
-                run = next(stored)
-                if run.run_id is None:  # another backfill stored the day meanwhile
-                    skipped.append(f.trade_date)
+                record = next(stored)
+                if record.run_id is None:  # another backfill stored the day meanwhile
+                    plan.skipped.append(day.trade_date)
                     continue
-                failure = f.attempt.failure
+                failure = fit.attempt.failure
                 outcome = "failed" if failure is not None else "fitted"
-                day = BackfillDay(f.trade_date, outcome, run.run_id, failure, run.auto_approved)
-            days.append(day)
-            progress.advance(day)
+                done = BackfillDay(
+                    plan.commodity,
+                    day.trade_date,
+                    outcome,
+                    record.run_id,
+                    failure,
+                    record.auto_approved,
+                )
+            plan.days.append(done)
+            progress.advance(done)
 
-    fitted_days = _fitted_in_order(fitter, todo, workers)
-    with closing(fitted_days):  # an interruption stops the workers at once
-        batch: list[FittedDay] = []
-        for fitted in fitted_days:
-            fit_seconds += fitted.seconds
-            batch.append(fitted)
-            if len(batch) == DAYS_PER_WRITE:
-                write(batch)
-                batch = []
-        write(batch)
-    return BackfillReport(
-        commodity=commodity,
-        start=start,
-        end=end,
-        estimate_id=estimate.estimate_id,
-        settings_sha256=key,
-        workers=workers,
-        trade_dates=len(dates),
-        skipped=tuple(sorted(skipped)),
-        days=tuple(days),
-        seconds=time.perf_counter() - began,
-        fit_seconds=fit_seconds,
-        write_seconds=write_seconds,
+    fitted = run.map(fit_days, units(), ahead=TASKS_PER_WORKER * run.workers)
+    with closing(fitted):  # an interruption stops handing out work at once
+        batch: list[tuple[DayQuotes, DayFit]] = []
+        current: _Plan | None = None
+        for fits in fitted:
+            plan, days = sent.popleft()
+            if plan is not current:
+                if current is not None and batch:
+                    write(current, batch)
+                batch, current = [], plan
+            for day, fit in zip(days, fits, strict=True):
+                plan.fit_seconds += fit.seconds
+                batch.append((day, fit))
+                if len(batch) == DAYS_PER_WRITE:
+                    write(plan, batch)
+                    batch = []
+        if current is not None and batch:
+            write(current, batch)
+    return tuple(
+        BackfillReport(
+            commodity=p.commodity,
+            start=start,
+            end=end,
+            estimate_id=p.estimate_id,
+            settings_sha256=p.key,
+            workers=run.workers,
+            where=run.where,
+            trade_dates=len(p.dates),
+            skipped=tuple(sorted(p.skipped)),
+            days=tuple(p.days),
+            seconds=p.seconds if p.todo else time.perf_counter() - began,
+            fit_seconds=p.fit_seconds,
+            read_seconds=p.read_seconds,
+            write_seconds=p.write_seconds,
+        )
+        for p in plans
     )

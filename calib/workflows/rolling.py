@@ -1,7 +1,7 @@
 """Rolling re-estimation as a unit of work: one stored estimate per window end.
 
 :func:`estimate_rolling` reads every window's futures, rate and input ids in one read
-transaction, hands the windows to an :class:`~calib.estimate.executor.Executor` in chunks of
+transaction, hands the windows to an :class:`~calib.compute.executor.Executor` in chunks of
 consecutive windows (plain arrays: workers never touch the store), and writes each chunk's
 estimates in window order, one write transaction per chunk, as the results arrive.
 
@@ -30,13 +30,13 @@ from typing import Any
 import numpy as np
 from sqlalchemy.orm import Session, sessionmaker
 
+from calib.compute.executor import Executor, InlineExecutor
 from calib.errors import (
     ROLLING_NO_WINDOWS,
     EstimationDataError,
     NoQuotesError,
     RollingRequestError,
 )
-from calib.estimate.executor import Executor, InlineExecutor
 from calib.estimate.rolling import (
     FitSettings,
     Period,

@@ -10,9 +10,9 @@ from datetime import date
 import numpy as np
 import pytest
 
+from calib.compute.executor import InlineExecutor
 from calib.errors import PeriodError
 from calib.estimate import Curves, curves_from_quotes
-from calib.estimate.executor import InlineExecutor
 from calib.estimate.rolling import (
     ChunkTask,
     FitSettings,

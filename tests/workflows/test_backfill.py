@@ -10,6 +10,7 @@ from pathlib import Path
 import pytest
 from sqlalchemy import text
 
+from calib.compute.executor import ProcessExecutor
 from calib.errors import BackfillRangeError
 from calib.policy.settings import RunSettings
 from calib.store.engine import Store
@@ -247,7 +248,7 @@ def test_two_worker_processes_give_the_same_parameters(
         by="q",
         settings=priced,
         estimate_id=second.estimate_id,
-        workers=2,
+        executor=ProcessExecutor(2),
     )
     assert [d.trade_date for d in two.days] == days  # stored in date order
     with store.sessions() as s:

@@ -10,8 +10,8 @@ from pathlib import Path
 
 import pytest
 
+from calib.compute.executor import Executor, InlineExecutor, ProcessExecutor
 from calib.errors import RollingRequestError
-from calib.estimate.executor import Executor, InlineExecutor, ProcessExecutor
 from calib.estimate.rolling import parse_period
 from calib.model.twofactor import PARAM_NAMES
 from calib.store.engine import Store
