@@ -15,7 +15,7 @@ from __future__ import annotations
 import warnings
 from collections.abc import Callable, Collection, Sequence
 from dataclasses import dataclass
-from datetime import date
+from datetime import date, timedelta
 from typing import Any
 
 import numpy as np
@@ -39,7 +39,7 @@ from calib.errors import (
 )
 from calib.model import american, black76
 from calib.model.twofactor import PARAM_NAMES, TwoFactorParams
-from calib.policy.gates import evaluate_gates
+from calib.policy.gates import CurveMove, curve_move, evaluate_gates
 from calib.policy.settings import RunSettings, default_settings
 from calib.record.fit import Dropped, FitRecord, Gate
 from calib.store.base import utc_now
@@ -50,7 +50,7 @@ from calib.store.estimates import (
     latest_estimate,
     unconverged_estimate_ids,
 )
-from calib.store.quotes import DayQuotes, load_day, year_fractions
+from calib.store.quotes import DayQuotes, current_quotes, load_day, trade_dates, year_fractions
 from calib.store.runs import (
     RunRecord,
     add_residuals,
@@ -407,7 +407,10 @@ def _store_in(
     record = None
     if result is not None:
         gates = evaluate_gates(
-            result, settings.gates, None if previous is None else previous.params
+            result,
+            settings.gates,
+            None if previous is None else previous.params,
+            _curve_move(session, day),
         )
         record = fit_record(result, gates, attempt.warnings)
     run_id = add_run(
@@ -455,6 +458,30 @@ def _store_in(
         note = "auto-approved: every gate passed"
         approve_in(session, run_id, day.commodity_id, by=by, note=note)
     return StoredAttempt(run_id, previous, approved)
+
+
+def _curve_move(session: Session, day: DayQuotes) -> CurveMove | None:
+    """``day``'s futures curve against the previous stored trading day's, as known at the
+    day's ``as_of`` (``None``: no earlier day)."""
+    end = day.trade_date - timedelta(days=1)
+    before = trade_dates(session=session, commodity=day.commodity, end=end, as_of=day.as_of)
+    if not before:
+        return None
+    rows = current_quotes(
+        session=session,
+        kind="futures",
+        commodity_ids=[day.commodity_id],
+        start=before[-1],
+        end=before[-1],
+        as_of=day.as_of,
+    )
+    return curve_move(
+        day.futures.delivery,
+        day.futures.settle,
+        rows["delivery"].to_numpy().astype("datetime64[D]"),
+        rows["settle"].to_numpy(dtype=np.float64, na_value=np.nan),
+        before[-1],
+    )
 
 
 def study_settings(settings: RunSettings, study: str | None) -> dict[str, Any]:
