@@ -55,7 +55,12 @@ from typing import Any, cast
 from sqlalchemy import Select, bindparam, func, select
 from sqlalchemy.engine import Dialect
 
-from calib.errors import NoApprovedSetError, StoreUnavailableError, UnknownCommodityError
+from calib.errors import (
+    NoApprovedSetError,
+    StoreUnavailableError,
+    StudyRunError,
+    UnknownCommodityError,
+)
 from calib.settings import get_settings
 from calib.store.base import utc_now
 from calib.store.engine import Store, make_store
@@ -76,6 +81,10 @@ from calib.store.runs import (
 )
 
 _APPROVAL_ID = IN_FORCE_COLUMNS.index("approval_id")
+
+STATEMENT_TIMEOUT = "57014"
+"""PostgreSQL's SQLSTATE for a statement cancelled (by ``statement_timeout``): not a lost
+connection, so not worth a second wait."""
 
 CACHE_SIZE = 64
 """Approved sets kept per client (one per approval event seen; they never change)."""
@@ -108,6 +117,9 @@ class Client:
     ----------
     url : database URL; default ``$CALIB_DB``, else ``sqlite:///db/calib.sqlite``.
     cache_size : approved sets kept for reuse (``0``: build every answer afresh).
+    timeout : seconds a read may take on PostgreSQL (the session's ``statement_timeout``); a
+        read cancelled by it raises :class:`~calib.errors.StoreUnavailableError` at once (it
+        is not retried). ``None``: no limit.
 
     Raises
     ------
@@ -117,8 +129,10 @@ class Client:
         Not a SQLite or PostgreSQL URL.
     """
 
-    def __init__(self, url: str | None = None, *, cache_size: int = CACHE_SIZE) -> None:
-        self._store: Store = make_store(get_settings(url).db_url)
+    def __init__(
+        self, url: str | None = None, *, cache_size: int = CACHE_SIZE, timeout: float | None = None
+    ) -> None:
+        self._store: Store = make_store(get_settings(url).db_url, timeout=timeout)
         engine = self._store.engine
         check_current(engine)
         self._sqlite = engine.dialect.name == "sqlite"
@@ -180,7 +194,7 @@ class Client:
                 return self._cursor.fetchone()
             except self._lost as exc:
                 self._drop()
-                if attempt == 2:
+                if attempt == 2 or getattr(exc, "sqlstate", None) == STATEMENT_TIMEOUT:
                     detail = str(exc).strip().splitlines()[0] if str(exc) else type(exc).__name__
                     raise StoreUnavailableError(self._store.url, detail) from None
         raise AssertionError("unreachable")
@@ -290,9 +304,14 @@ class Client:
         ------
         UnknownRunError
             No run ``run_id``.
+        StudyRunError
+            The run belongs to a policy study (never served).
         """
         when = None if as_of is None else _utc(as_of)
-        return cast(RunRecord, self._session_read(require_run, run_id=run_id, as_of=when))
+        found = cast(RunRecord, self._session_read(require_run, run_id=run_id, as_of=when))
+        if found.study is not None:
+            raise StudyRunError(run_id, found.study)
+        return found
 
     def history(self, commodity: str) -> list[ApprovalRecord]:
         """Every approval of ``commodity``, oldest first, with when each was superseded.

@@ -781,3 +781,33 @@ class CommoditySelectionError(TemplatedError, InputError, template="{reason}"):
     """A command over several commodities was given none, or both names and ``--all``."""
 
     reason: str
+
+
+# --- study runs and policy comparisons (hedge2) --------------------------------------------------
+
+
+class StudyRunError(
+    TemplatedError,
+    InputError,
+    template=(
+        "run {run_id} belongs to the policy study {study!r}: study runs are never approved or "
+        "served"
+    ),
+):
+    """A run of a policy study asked to be approved or served: study runs never are."""
+
+    run_id: int
+    study: str
+
+
+# --- American-style quotes (amfit) -------------------------------------------------------------
+
+ROW_NOT_EXERCISE = "exercise must be european or american (or empty): {value!r}"
+ROW_BELOW_INTRINSIC_AMERICAN = (
+    "premium {premium:.10g} of an American option is below the undiscounted intrinsic value "
+    "{bound:.10g} (it can be exercised now; F={forward:.10g})"
+)
+ROW_ABOVE_BOUND_AMERICAN = (
+    "premium {premium:.10g} of an American option is above the no-arbitrage bound {bound:.10g}"
+    " ({what}, undiscounted)"
+)

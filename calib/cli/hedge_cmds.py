@@ -7,13 +7,25 @@ bad world file, ...), nothing simulated.
 
 from __future__ import annotations
 
+from contextlib import closing
 from datetime import date, datetime
 from pathlib import Path
-from typing import TYPE_CHECKING, Annotated, Literal
+from typing import TYPE_CHECKING, Annotated, Any, Literal
 
 import typer
 
-from calib.cli.common import AsOfOption, DbOption, JsonOption, echo_json, open_store
+from calib.cli.common import (
+    AllCommoditiesOption,
+    AsOfOption,
+    ClusterOption,
+    CommoditiesOption,
+    DbOption,
+    JsonOption,
+    WorkersOption,
+    chosen_commodities,
+    echo_json,
+    open_store,
+)
 
 if TYPE_CHECKING:
     from calib.workflows.hedge import Trade
@@ -38,6 +50,21 @@ Near = Annotated[
 ]
 Far = Annotated[datetime | None, typer.Option("--far", formats=_DAY, help="Spread: far delivery.")]
 KindOpt = Annotated[Literal["call", "put"], typer.Option("--kind", help="call or put.")]
+
+
+def _file(flag: str, help: str) -> Any:
+    """An optional output path option (no default shown)."""
+    return typer.Option(flag, help=help, show_default=False)
+
+
+def _finish(as_json: bool, data: Any, summary: str, written: list[str]) -> None:
+    """Print ``data`` as JSON, or ``summary`` and the files written."""
+    if as_json:
+        echo_json(data)
+        return
+    typer.echo(summary)
+    for path in written:
+        typer.echo(f"  wrote {path}")
 
 
 def _trade(
@@ -100,14 +127,9 @@ def sim_cmd(
     ] = 252,
     paths: Annotated[int, typer.Option("--paths", min=2, help="Simulated paths.")] = 10_000,
     seed: Annotated[int, typer.Option("--seed", help="Random seed.")] = 20261202,
-    png: Annotated[
-        Path | None, typer.Option("--png", help="Write the P&L histogram here.", show_default=False)
-    ] = None,
+    png: Annotated[Path | None, _file("--png", "Write the P&L histogram here.")] = None,
     csv_path: Annotated[
-        Path | None,
-        typer.Option(
-            "--csv", help="Write one row a path (P&L, payoff, hedge error).", show_default=False
-        ),
+        Path | None, _file("--csv", "Write one row a path (P&L, payoff, hedge error).")
     ] = None,
     db: DbOption = None,
     as_json: JsonOption = False,
@@ -135,12 +157,7 @@ def sim_cmd(
         written.append(str(flow.plot_histogram(result, png)))
     if csv_path is not None:
         written.append(str(flow.write_paths_csv(result, csv_path)))
-    if as_json:
-        echo_json(result.to_dict())
-    else:
-        typer.echo(result.summary())
-        for path in written:
-            typer.echo(f"  wrote {path}")
+    _finish(as_json, result.to_dict(), result.summary(), written)
 
 
 @hedge_app.command("replay")
@@ -166,12 +183,8 @@ def replay_cmd(
     morning: Annotated[
         str, typer.Option("--morning", metavar="HH:MM", help="The morning's time (UTC).")
     ] = "07:00",
-    png: Annotated[
-        Path | None, typer.Option("--png", help="Write the P&L path here.", show_default=False)
-    ] = None,
-    csv_path: Annotated[
-        Path | None, typer.Option("--csv", help="Write one row a day.", show_default=False)
-    ] = None,
+    png: Annotated[Path | None, _file("--png", "Write the P&L path here.")] = None,
+    csv_path: Annotated[Path | None, _file("--csv", "Write one row a day.")] = None,
     db: DbOption = None,
     as_json: JsonOption = False,
 ) -> None:
@@ -195,9 +208,77 @@ def replay_cmd(
         written.append(str(flow.plot_replay(result, png)))
     if csv_path is not None:
         written.append(str(flow.write_replay_csv(result, csv_path)))
-    if as_json:
-        echo_json(result.to_dict())
-    else:
-        typer.echo(result.summary())
-        for path in written:
-            typer.echo(f"  wrote {path}")
+    _finish(as_json, result.to_dict(), result.summary(), written)
+
+
+@hedge_app.command("policies")
+def policies_cmd(
+    expiry: Expiry,
+    strike: Strike,
+    start: Annotated[
+        datetime, typer.Option("--from", formats=_DAY, help="First possible sale day.")
+    ],
+    end: Annotated[datetime, typer.Option("--to", formats=_DAY, help="Last possible sale day.")],
+    policy: Annotated[
+        list[str],
+        typer.Option(
+            "--policy",
+            metavar="NAME=FILE",
+            help="A calibration settings file to compare (repeat; NAME defaults to the file name).",
+        ),
+    ],
+    commodity: CommoditiesOption = None,
+    every_commodity: AllCommoditiesOption = False,
+    future: Future = None,
+    near: Near = None,
+    far: Far = None,
+    kind: KindOpt = "call",
+    every: Annotated[
+        int, typer.Option("--every", min=1, help="Trading days between two sales.")
+    ] = 5,
+    workers: WorkersOption = None,
+    cluster: ClusterOption = None,
+    png: Annotated[Path | None, _file("--png", "Write the P&L figure by policy here.")] = None,
+    csv_path: Annotated[Path | None, _file("--csv", "Write one row per policy here.")] = None,
+    html_dir: Annotated[
+        Path | None, _file("--html", "Write the page (index.html and its figure) here.")
+    ] = None,
+    db: DbOption = None,
+    as_json: JsonOption = False,
+) -> None:
+    """Compare calibration policies by hedge P&L on the stored history: fit each policy's
+    study runs (never approved or served; resumable), then replay the same option sold every
+    --every trading days under each policy."""
+    from calib.compute.executor import open_executor
+    from calib.output import hedge as show
+    from calib.workflows import hedge_policies as flow
+
+    trade = _trade(expiry, strike, kind, future, near, far)
+    policies = [flow.Policy.parse(p) for p in policy]
+    with open_store(db) as (store, program):
+        codes = chosen_commodities(store, commodity or [], every_commodity)
+        local = workers if cluster is not None else (workers or 1)
+        with closing(open_executor(local, cluster)) as run:
+            result = flow.compare_policies(
+                store,
+                codes,
+                policies,
+                trade,
+                start=start.date(),
+                end=end.date(),
+                every=every,
+                by=program.user,
+                executor=run,
+            )
+    rows = result.to_list()
+    title = (
+        f"{trade.describe()}; sold every {every} trading days, {start:%Y-%m-%d} to {end:%Y-%m-%d}"
+    )
+    written = []
+    if png is not None:
+        written.append(str(show.plot_policies(rows, title, png)))
+    if csv_path is not None:
+        written.append(str(show.write_policy_csv(rows, csv_path)))
+    if html_dir is not None:
+        written.append(str(show.render_policy_page(rows, title, html_dir)[0]))
+    _finish(as_json, rows, "\n".join([title, *show.policy_lines(rows)]), written)

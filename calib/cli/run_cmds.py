@@ -345,13 +345,14 @@ def runs_cmd(
 def show_cmd(run_id: RunId, db: DbOption = None, as_json: JsonOption = False) -> None:
     """Show a run: parameters, fit, gates, events and per-quote residuals."""
     from calib.store.runs import require_run, run_quotes, run_residuals
+    from calib.workflows.fit import early_exercise
 
     with open_store(db) as (store, _), store.sessions.begin() as session:
         run = require_run(session=session, run_id=run_id)
         frame = run_residuals(session=session, run_id=run_id)
         residuals = cast("list[dict[str, Any]]", frame.to_dict(orient="records"))
-        chain = run_quotes(session=session, run=run).options if residuals else None
-    contracts = {} if chain is None else text.option_contracts(chain)
+        day = run_quotes(session=session, run=run) if residuals else None
+    contracts = {} if day is None else text.option_contracts(day.options, early_exercise(day))
     rows = [{**r, **contracts.get(int(r["quote_id"]), text.NO_CONTRACT)} for r in residuals]
     if as_json:
         echo_json({**run.to_dict(with_inputs=True), "residuals": rows})

@@ -63,6 +63,9 @@ class RunRecord:
     approval_note: str | None
     approval_id: int | None
     events: tuple[EventRecord, ...]
+    study: str | None = None
+    """The policy study the run belongs to (``None``: a production run); a study run is
+    never approved or served."""
 
     @property
     def params(self) -> TwoFactorParams | None:
@@ -110,6 +113,7 @@ class RunRecord:
             "approval_note": self.approval_note,
             "approval_id": self.approval_id,
             "events": [e.to_dict() for e in self.events],
+            "study": self.study,
         }
         if with_inputs:
             out["inputs"] = dict(self.inputs)
@@ -194,6 +198,7 @@ RUN_COLUMNS: tuple[str, ...] = (
     "created_at",
     "created_by",
     "code_version",
+    "study",
 )
 """The columns of ``calibration_runs`` a :class:`RunRecord` is built from (:func:`run_record`)."""
 
@@ -233,4 +238,5 @@ def run_record(
         approval_note=None if approved is None else approved.note,
         approval_id=None if approved is None else approved.event_id,
         events=tuple(events),
+        study=v["study"],
     )

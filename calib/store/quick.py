@@ -46,7 +46,7 @@ JSON_COLUMNS = frozenset({"settings", "inputs", "buckets", "diagnostics"})
 
 IN_FORCE_SQL = """
 SELECT e.run_id FROM run_events AS e JOIN calibration_runs AS r ON r.id = e.run_id
-WHERE e.commodity_id = :cid AND e.to_status = 'approved' AND e.at <= :t
+WHERE e.commodity_id = :cid AND e.to_status = 'approved' AND e.at <= :t AND r.study IS NULL
   AND NOT EXISTS (
     SELECT 1 FROM run_events AS ended
     WHERE ended.run_id = e.run_id AND ended.to_status = 'superseded' AND ended.at <= :t

@@ -12,7 +12,9 @@ Every row here is written once and never updated or deleted.
   fixed, mode and settings, inputs (ids of the quote rows and batches used) with their
   sha256, outcome ``fitted`` or ``failed`` (with the reason), the seven parameters (NULL when
   failed), forward buckets, diagnostics (fit quality, constraints, solver, gates) and code
-  version. ``run_residuals`` holds one row per fitted quote, keyed to ``option_quotes``.
+  version; ``study`` names the policy study of a run that may never be approved or served
+  (NULL: a production run). ``run_residuals`` holds one row per fitted quote, keyed to
+  ``option_quotes``.
 * ``run_events``: the status history, append-only: ``candidate``, then ``approved`` or
   ``rejected``; an approved run becomes ``superseded`` when a newer run of the same commodity
   is approved (both events in one transaction). A run's status at time ``t`` is its newest
@@ -192,6 +194,9 @@ class CalibrationRun(Base):
     """The rest of the stored-fit record (:class:`calib.record.fit.FitRecord`, with its
     ``schema_version``); ``{"failure": reason}`` for a failed run."""
     code_version: Mapped[str] = mapped_column(String(64))
+    study: Mapped[str | None] = mapped_column(String(64))
+    """The policy study the run belongs to (``calib hedge policies``); NULL for a production
+    run. A study run is never approved or served."""
 
 
 class RunResidual(Base):

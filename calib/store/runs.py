@@ -28,7 +28,7 @@ import numpy as np
 from sqlalchemy import Engine, Select, Table, and_, bindparam, exists, func, select
 from sqlalchemy.orm import Session, sessionmaker
 
-from calib.errors import IllegalTransitionError, UnknownRunError
+from calib.errors import IllegalTransitionError, StudyRunError, UnknownRunError
 from calib.model.twofactor import PARAM_NAMES, TwoFactorParams
 from calib.record.codec import decode
 from calib.record.fit import (
@@ -51,6 +51,7 @@ from calib.store.quotes import (
     FuturesCurve,
     OptionChain,
     ZeroCurve,
+    american_of,
     insert_columns,
     nan_for_none,
     require_commodity,
@@ -109,8 +110,12 @@ def _events(session: Session, run_id: int, as_of: datetime | None) -> list[Event
 
 
 def _record(session: Session, row: CalibrationRun, code: str, as_of: datetime | None) -> RunRecord:
+    return _record_of(row, code, _events(session, row.id, as_of))
+
+
+def _record_of(row: CalibrationRun, code: str, events: list[EventRecord]) -> RunRecord:
     values = {name: getattr(row, name) for name in RUN_COLUMNS}
-    return run_record(values, code, _events(session, row.id, as_of))
+    return run_record(values, code, events)
 
 
 # --- writing -----------------------------------------------------------------------------------
@@ -131,11 +136,12 @@ def add_run(
     failure_reason: str | None,
     fit: FitRecord | None,
     code_version: str,
+    study: str | None = None,
 ) -> int:
     """Insert a run row (no events, no residuals); returns its id.
 
     ``fit`` is the stored-fit record of a fitted run; ``None`` stores a failed run with
-    ``failure_reason``.
+    ``failure_reason``. ``study`` names the policy study of a run never to be approved.
     """
     if fit is None:
         assert failure_reason is not None, "a failed run needs its reason"
@@ -160,6 +166,7 @@ def add_run(
         buckets=buckets,
         diagnostics=diagnostics,
         code_version=code_version,
+        study=study,
         **values,
     )
     session.add(row)
@@ -202,10 +209,14 @@ def append_event(
         No run ``run_id``.
     IllegalTransitionError
         The run's current status does not allow ``to_status`` (the message lists what does).
+    StudyRunError
+        ``to_status`` is ``approved`` and the run belongs to a policy study.
     """
     run = session.get(CalibrationRun, run_id)
     if run is None:
         raise UnknownRunError(run_id)
+    if to_status == "approved" and run.study is not None:
+        raise StudyRunError(run_id, run.study)
     events = _events(session, run_id, None)
     if events:
         current = events[-1].to_status
@@ -335,6 +346,7 @@ def in_force_stmt() -> Select[Any]:
             events.c.commodity_id == bindparam("cid"),
             events.c.to_status == "approved",
             events.c.at <= t,
+            runs.c.study.is_(None),  # a study run is never served (nor ever approved)
             ~exists().where(
                 and_(
                     ended.c.run_id == events.c.run_id,
@@ -622,6 +634,7 @@ def load_rows(
             bid=nan_for_none([r.bid for r in opt]),
             ask=nan_for_none([r.ask for r in opt]),
             row_id=readonly([r.id for r in opt], np.int64),
+            american=american_of([r.exercise for r in opt]),
         ),
         rates=ZeroCurve(
             trade_date=trade_date,
@@ -662,6 +675,53 @@ def run_keys(*, session: Session, commodity: str, start: date, end: date) -> lis
         .order_by(CalibrationRun.id)
     )
     return [RunKey(*row) for row in session.execute(stmt)]
+
+
+def study_runs(
+    *, session: Session, commodity: str, study: str, start: date, end: date
+) -> list[RunRecord]:
+    """The runs of policy study ``study`` of ``commodity`` fitted in ``start..end``, by trade
+    date then id, with their current status (two queries: the runs, then their events)."""
+    cid = require_commodity(session=session, code=commodity).id
+    stmt = (
+        select(CalibrationRun)
+        .where(
+            CalibrationRun.commodity_id == cid,
+            CalibrationRun.study == study,
+            CalibrationRun.trade_date.between(start, end),
+        )
+        .order_by(CalibrationRun.trade_date, CalibrationRun.id)
+    )
+    rows = list(session.scalars(stmt))
+    events: dict[int, list[EventRecord]] = {r.id: [] for r in rows}
+    if rows:
+        found = select(RunEvent).where(RunEvent.run_id.in_(list(events)))
+        for e in session.scalars(found.order_by(RunEvent.at, RunEvent.id)):
+            events[e.run_id].append(_event(e))
+    return [_record_of(row, commodity, events[row.id]) for row in rows]
+
+
+def study_baseline(
+    *, session: Session, commodity_id: int, study: str, before: date
+) -> RunRecord | None:
+    """The newest run of policy study ``study`` fitted before ``before`` whose gates all
+    passed (what the policy would have had in force), or ``None``."""
+    stmt = (
+        select(CalibrationRun)
+        .where(
+            CalibrationRun.commodity_id == commodity_id,
+            CalibrationRun.study == study,
+            CalibrationRun.outcome == "fitted",
+            CalibrationRun.trade_date < before,
+        )
+        .order_by(CalibrationRun.trade_date.desc(), CalibrationRun.id.desc())
+    )
+    code = session.scalars(select(Commodity.code).where(Commodity.id == commodity_id)).one()
+    for row in session.scalars(stmt):
+        record = _record_of(row, code, [])
+        if record.fit is not None and record.fit.all_gates_pass:
+            return _record(session, row, code, None)
+    return None
 
 
 def newest_trade_date(*, session: Session, commodity: str) -> date | None:

@@ -69,7 +69,13 @@ from calib.policy.settings import RunSettings, default_settings
 from calib.store.engine import Store
 from calib.store.quotes import DayQuotes, load_days, trade_dates
 from calib.store.runs import run_keys
-from calib.workflows.fit import Attempt, attempt_fit, choose_estimate, store_attempts
+from calib.workflows.fit import (
+    Attempt,
+    attempt_fit,
+    choose_estimate,
+    store_attempts,
+    study_settings,
+)
 from calib.workflows.provenance import inputs_sha256
 
 DAYS_PER_TASK = 16
@@ -280,6 +286,7 @@ class _Plan:
     settings: RunSettings
     key: str
     estimate_id: int
+    study: str | None
     historical: TwoFactorParams
     dates: list[date]
     todo: list[date]
@@ -312,6 +319,9 @@ class BackfillJob:
     commodity: str
     settings: RunSettings | None = None
     estimate_id: int | None = None
+    study: str | None = None
+    """Store the runs as runs of this policy study (never approved or served; the name is
+    part of their stored settings and so of the resume key)."""
 
 
 def backfill(
@@ -377,9 +387,9 @@ def backfill_many(
     progress = progress or _Silent()
     began = time.perf_counter()
     plans: list[_Plan] = []
-    twice = [c for c, n in Counter(j.commodity for j in jobs).items() if n > 1]
+    twice = [c for c, n in Counter((j.commodity, j.study) for j in jobs).items() if n > 1]
     if twice:
-        raise BackfillRangeError(f"commodity {twice[0]} named twice")
+        raise BackfillRangeError(f"commodity {twice[0][0]} named twice")
     with store.sessions.begin() as session:
         for job in jobs:
             chosen = job.settings or default_settings()
@@ -388,8 +398,9 @@ def backfill_many(
             plan = _Plan(
                 commodity=job.commodity,
                 settings=chosen,
-                key=settings_sha256(chosen),
+                key=inputs_sha256(study_settings(chosen, job.study)),
                 estimate_id=estimate.estimate_id,
+                study=job.study,
                 historical=estimate.params,
                 dates=dates,
                 todo=[],
@@ -430,8 +441,9 @@ def backfill_many(
                 plan.estimate_id,
                 plan.settings,
                 by=by,
-                auto_approve=auto_approve,
+                auto_approve=auto_approve and plan.study is None,
                 skip_stored=plan.stored_days,
+                study=plan.study,
             )
         )
         plan.write_seconds += time.perf_counter() - t0

@@ -45,7 +45,7 @@ from calib.errors import (
     ParameterError,
 )
 from calib.hedge.engine import HedgeResult, hedge_paths
-from calib.hedge.history import book_history
+from calib.hedge.history import HistoryBook, book_history
 from calib.hedge.instruments import CalendarSpread, HedgedOption, VanillaOption, remaining_law
 from calib.hedge.stats import QUANTILES, PnlStats, pnl_stats
 from calib.hedge.valuation import value_and_ratios
@@ -550,7 +550,7 @@ class HedgeReplay:
         return "\n".join(lines)
 
 
-def _weekdays(start: date, end: date) -> list[date]:
+def weekdays(start: date, end: date) -> list[date]:
     days = [start + timedelta(days=i) for i in range((end - start).days + 1)]
     return [d for d in days if d.weekday() < 5]
 
@@ -630,13 +630,15 @@ def replay(
             session=session, start=start - timedelta(days=CURVE_LOOKBACK), end=trade.expiry
         )
         settled = {d for d in stored if d < trade.expiry}  # weekend sessions included
-        days = sorted(set(_weekdays(start, trade.expiry)) | settled | {start, trade.expiry})
+        days = sorted(set(weekdays(start, trade.expiry)) | settled | {start, trade.expiry})
         days = [d for d in days if d < trade.expiry] + [trade.expiry]
         chosen = _sets_by_day(session, commodity, days[:-1], sets, morning)
     if not stored or stored[-1] < trade.expiry:
         last = stored[-1] if stored else start
         raise HedgeRequestError(commodity, HEDGE_REPLAY_END.format(expiry=trade.expiry, last=last))
-    return _replay_days(commodity, trade, sets, morning, days, set(stored), futures, curves, chosen)
+    F, expiry_note = leg_table(futures, trade, days, set(stored))
+    valued = value_days(trade, days, set(stored), F, expiry_note, curves, chosen)
+    return _replay_days(commodity, sets, morning, valued)
 
 
 def _leg_prices(futures: Any, legs: tuple[date, ...], days: list[date]) -> FloatArray:
@@ -647,30 +649,63 @@ def _leg_prices(futures: Any, legs: tuple[date, ...], days: list[date]) -> Float
     return np.array(table.reindex(index=index, columns=wanted).to_numpy(dtype=np.float64))
 
 
-def _replay_days(
-    commodity: str,
-    trade: Trade,
-    sets: str,
-    morning: time,
-    days: list[date],
-    stored: set[date],
-    futures: Any,
-    curves: dict[date, ZeroCurve],
-    chosen: dict[date, tuple[RunRecord | None, str | None]],
-) -> HedgeReplay:
+def leg_table(
+    futures: Any, trade: Trade, days: list[date], stored: set[date]
+) -> tuple[FloatArray, str | None]:
+    """The legs' settlements on ``days`` (the last one the expiry) from a futures history
+    frame; a leg with no settlement on the expiry is settled on its last one before it (the
+    note says which)."""
     legs = trade.legs
     F = _leg_prices(futures, legs, days)
-    notes: list[list[str]] = [[] for _ in days]
     expiry_row = F[-1]
-    if np.any(np.isnan(expiry_row)):  # settle on each leg's last settlement before expiry
-        before = _leg_prices(futures, legs, sorted(d for d in stored if d <= trade.expiry))
-        taken = []
-        for j in np.flatnonzero(np.isnan(expiry_row)):
-            col = before[:, j]
-            ok = np.flatnonzero(np.isfinite(col))
-            expiry_row[j] = col[ok[-1]]
-            taken.append(str(legs[j]))
-        notes[-1].append(EXPIRY_FROM.format(legs=", ".join(taken), day="the last settlement"))
+    if not np.any(np.isnan(expiry_row)):
+        return F, None
+    before = _leg_prices(futures, legs, sorted(d for d in stored if d <= trade.expiry))
+    taken = []
+    for j in np.flatnonzero(np.isnan(expiry_row)):
+        col = before[:, j]
+        ok = np.flatnonzero(np.isfinite(col))
+        expiry_row[j] = col[ok[-1]]
+        taken.append(str(legs[j]))
+    return F, EXPIRY_FROM.format(legs=", ".join(taken), day="the last settlement")
+
+
+@dataclass(frozen=True, slots=True)
+class ValuedDays:
+    """An option valued on each day of a history, before any account is booked.
+
+    ``values``, ``ratios``, ``rates``, ``run_ids`` cover ``days[:-1]`` (NaN where the option
+    could not be valued: no set, or a leg without a settlement); ``futures`` and ``notes``
+    cover every day, the last the expiry. A replay sold on ``days[k]`` books ``[k:]``: a day's
+    value, ratios and rate do not depend on the sale day.
+    """
+
+    trade: Trade
+    days: tuple[date, ...]
+    futures: FloatArray
+    values: FloatArray
+    ratios: FloatArray
+    rates: FloatArray
+    run_ids: tuple[int | None, ...]
+    notes: tuple[tuple[str, ...], ...]
+
+
+def value_days(
+    trade: Trade,
+    days: list[date],
+    stored: set[date],
+    F: FloatArray,
+    expiry_note: str | None,
+    curves: dict[date, ZeroCurve],
+    chosen: dict[date, tuple[RunRecord | None, str | None]],
+) -> ValuedDays:
+    """Value ``trade`` and take its hedge ratios on each day of ``days[:-1]`` with the day's
+    chosen set, the legs' settlements ``F`` (:func:`leg_table`) and the day's zero curve (or
+    the last one before it); what is missing is noted on the day."""
+    legs = trade.legs
+    notes: list[list[str]] = [[] for _ in days]
+    if expiry_note is not None:
+        notes[-1].append(expiry_note)
     t = np.array([_years(days[0], d) for d in days])
     n = len(days) - 1
     values = np.full(n, np.nan)
@@ -716,32 +751,64 @@ def _replay_days(
             discount,
         )
         values[k], ratios[k] = value[0], ratio[0]
-    if np.isnan(values[0]):
-        reason = "; ".join(notes[0]) or NO_SET
+    return ValuedDays(
+        trade=trade,
+        days=tuple(days),
+        futures=F,
+        values=values,
+        ratios=ratios,
+        rates=rates,
+        run_ids=tuple(run_ids),
+        notes=tuple(tuple(x) for x in notes),
+    )
+
+
+def book_from(commodity: str, valued: ValuedDays, first: int = 0) -> tuple[HistoryBook, float]:
+    """The account of the option sold on ``valued.days[first]``, and its payoff.
+
+    Raises
+    ------
+    HedgeRequestError
+        The option has no value on the sale day (no set, or a leg without a settlement).
+    """
+    days = valued.days[first:]
+    if np.isnan(valued.values[first]):
+        reason = "; ".join(valued.notes[first]) or NO_SET
         raise HedgeRequestError(commodity, HEDGE_REPLAY_START.format(day=days[0], reason=reason))
+    trade = valued.trade
+    F = valued.futures[first:]
     option0 = option_for(trade, days[0])
-    payoff = float(option0.payoff(expiry_row[None, :])[0])
-    book = book_history(t, F, values, ratios, payoff, rates)
-    run_ids.append(None)
+    payoff = float(option0.payoff(F[-1][None, :])[0])
+    t = np.array([_years(days[0], d) for d in days])
+    book = book_history(
+        t, F, valued.values[first:], valued.ratios[first:], payoff, valued.rates[first:]
+    )
+    return book, payoff
+
+
+def _replay_days(commodity: str, sets: str, morning: time, valued: ValuedDays) -> HedgeReplay:
+    book, payoff = book_from(commodity, valued)
+    F, n = valued.futures, len(valued.days) - 1
+    run_ids = [*valued.run_ids, None]
     out = tuple(
         ReplayDay(
             day=day,
             run_id=run_ids[k],
             futures=tuple(float(f) for f in F[k]),
-            value=float(values[k]) if k < n else payoff,
+            value=float(valued.values[k]) if k < n else payoff,
             positions=tuple(float(p) for p in book.positions[k]),
             carried=bool(book.carried[k]),
             margin=float(book.margin[k]),
             cash=float(book.cash[k]),
             marked=float(book.marked[k]),
             hedge_error=float(book.hedge_error[k]),
-            notes=tuple(notes[k]),
+            notes=valued.notes[k],
         )
-        for k, day in enumerate(days)
+        for k, day in enumerate(valued.days)
     )
     return HedgeReplay(
         commodity=commodity,
-        trade=trade,
+        trade=valued.trade,
         sets=sets,
         morning=morning,
         days=out,

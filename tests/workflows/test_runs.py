@@ -54,6 +54,7 @@ def test_fit_gates_approve_supersede_and_rerun(store: Store, loaded: Loaded) -> 
         "jump_rho",
         "constraints",
         "identified",
+        "curve_move",
     ]
     with store.sessions() as s:
         residuals = run_residuals(session=s, run_id=first.run.run_id)
@@ -73,7 +74,7 @@ def test_fit_gates_approve_supersede_and_rerun(store: Store, loaded: Loaded) -> 
     jumps = {g.name: g for g in second.gates if g.name.startswith("jump")}
     spot_jump = abs(second.run.params.sigma_spot / first.run.params.sigma_spot - 1)  # type: ignore[union-attr]
     assert jumps["jump_sigma_spot"].value == pytest.approx(spot_jump, rel=1e-12)
-    assert second.auto_approved and all(g.passed for g in second.gates)
+    assert second.auto_approved and all(g.passed for g in second.gates), second.gates
     with store.sessions() as s:
         assert run_status(session=s, run_id=first.run.run_id) == "superseded"
         past = latest_approved(session=s, commodity=loaded.code, as_of=second.run.created_at)
