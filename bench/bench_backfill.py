@@ -20,6 +20,8 @@ import json
 import resource
 import tempfile
 import time
+from collections.abc import Iterator
+from contextlib import contextmanager
 from dataclasses import dataclass, replace
 from datetime import date
 from pathlib import Path
@@ -64,6 +66,22 @@ class Prepared:
     estimate_file: Path
 
 
+@contextmanager
+def prepared_store(spec: ScenarioSpec, n_dates: int) -> Iterator[Prepared]:
+    """:func:`prepare_store` in a temporary folder, its set-up time printed; removed after."""
+    with tempfile.TemporaryDirectory() as tmp:
+        t0 = time.perf_counter()
+        prepared = prepare_store(Path(tmp), spec, n_dates)
+        print(
+            f"setup (generate, ingest {len(prepared.scenario.options):,} options): "
+            f"{time.perf_counter() - t0:.1f} s; {len(prepared.dates)} trade dates"
+        )
+        try:
+            yield prepared
+        finally:
+            prepared.store.engine.dispose()
+
+
 def prepare_store(folder: Path, spec: ScenarioSpec, n_dates: int) -> Prepared:
     """Generate ``spec`` under ``folder``, ingest it, import its parameters as the estimate;
     the first ``n_dates`` trade dates."""
@@ -86,15 +104,9 @@ def prepare_store(folder: Path, spec: ScenarioSpec, n_dates: int) -> Prepared:
 
 def main() -> None:
     settings = RunSettings.from_dict({})
-    with tempfile.TemporaryDirectory() as tmp:
-        t0 = time.perf_counter()
-        prepared = prepare_store(Path(tmp), SPEC, N_DATES)
-        store, scenario, code = prepared.store, prepared.scenario, prepared.code
+    with prepared_store(SPEC, N_DATES) as prepared:
+        store, code = prepared.store, prepared.code
         estimate, dates = prepared.estimate, prepared.dates
-        print(
-            f"setup (generate, ingest {len(scenario.options):,} options): "
-            f"{time.perf_counter() - t0:.1f} s; {len(dates)} trade dates"
-        )
 
         cpu0 = _cpu_seconds()
         report = backfill(
@@ -142,7 +154,6 @@ def main() -> None:
             f"note: refit_costs=False, fresh fit per day: "
             f"{1e3 * (time.perf_counter() - t2) / len(sample):.1f} ms/day"
         )
-        store.engine.dispose()
 
 
 if __name__ == "__main__":

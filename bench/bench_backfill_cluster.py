@@ -18,12 +18,10 @@ from __future__ import annotations
 
 import logging
 import os
-import tempfile
 import time
 from contextlib import closing
-from pathlib import Path
 
-from bench.bench_backfill import prepare_store
+from bench.bench_backfill import prepared_store
 from calib.compute.cluster import connect
 from calib.compute.executor import Executor, ProcessExecutor
 from calib.policy.settings import RunSettings
@@ -43,11 +41,8 @@ def main() -> None:
     from distributed import LocalCluster
 
     settings = RunSettings.from_dict({})
-    with tempfile.TemporaryDirectory() as tmp:
-        t0 = time.perf_counter()
-        prepared = prepare_store(Path(tmp), SPEC, N_DATES)
+    with prepared_store(SPEC, N_DATES) as prepared:
         store, code, dates = prepared.store, prepared.code, prepared.dates
-        print(f"setup (generate, ingest): {time.perf_counter() - t0:.1f} s; {len(dates)} days")
 
         def run(executor: Executor, estimate_id: int) -> tuple[BackfillReport, float]:
             began = time.perf_counter()
@@ -88,7 +83,6 @@ def main() -> None:
             )
         print(f"same parameters every day: {same}")
         print(f"ratio peer / own: {local_s / remote_s:.2f} (target >= {TARGET_RATIO})")
-        store.engine.dispose()
 
 
 if __name__ == "__main__":
