@@ -82,6 +82,10 @@ from calib.store.runs import (
 
 _APPROVAL_ID = IN_FORCE_COLUMNS.index("approval_id")
 
+STATEMENT_TIMEOUT = "57014"
+"""PostgreSQL's SQLSTATE for a statement cancelled (by ``statement_timeout``): not a lost
+connection, so not worth a second wait."""
+
 CACHE_SIZE = 64
 """Approved sets kept per client (one per approval event seen; they never change)."""
 
@@ -113,6 +117,9 @@ class Client:
     ----------
     url : database URL; default ``$CALIB_DB``, else ``sqlite:///db/calib.sqlite``.
     cache_size : approved sets kept for reuse (``0``: build every answer afresh).
+    timeout : seconds a read may take on PostgreSQL (the session's ``statement_timeout``); a
+        read cancelled by it raises :class:`~calib.errors.StoreUnavailableError` at once (it
+        is not retried). ``None``: no limit.
 
     Raises
     ------
@@ -122,8 +129,10 @@ class Client:
         Not a SQLite or PostgreSQL URL.
     """
 
-    def __init__(self, url: str | None = None, *, cache_size: int = CACHE_SIZE) -> None:
-        self._store: Store = make_store(get_settings(url).db_url)
+    def __init__(
+        self, url: str | None = None, *, cache_size: int = CACHE_SIZE, timeout: float | None = None
+    ) -> None:
+        self._store: Store = make_store(get_settings(url).db_url, timeout=timeout)
         engine = self._store.engine
         check_current(engine)
         self._sqlite = engine.dialect.name == "sqlite"
@@ -185,7 +194,7 @@ class Client:
                 return self._cursor.fetchone()
             except self._lost as exc:
                 self._drop()
-                if attempt == 2:
+                if attempt == 2 or getattr(exc, "sqlstate", None) == STATEMENT_TIMEOUT:
                     detail = str(exc).strip().splitlines()[0] if str(exc) else type(exc).__name__
                     raise StoreUnavailableError(self._store.url, detail) from None
         raise AssertionError("unreachable")

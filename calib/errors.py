@@ -798,3 +798,16 @@ class StudyRunError(
 
     run_id: int
     study: str
+
+
+# --- American-style quotes (amfit) -------------------------------------------------------------
+
+ROW_NOT_EXERCISE = "exercise must be european or american (or empty): {value!r}"
+ROW_BELOW_INTRINSIC_AMERICAN = (
+    "premium {premium:.10g} of an American option is below the undiscounted intrinsic value "
+    "{bound:.10g} (it can be exercised now; F={forward:.10g})"
+)
+ROW_ABOVE_BOUND_AMERICAN = (
+    "premium {premium:.10g} of an American option is above the no-arbitrage bound {bound:.10g}"
+    " ({what}, undiscounted)"
+)

@@ -31,3 +31,8 @@ def readonly(values: Any, dtype: npt.DTypeLike | None = None) -> npt.NDArray[Any
     out = np.array(values, dtype=dtype, copy=True)
     out.flags.writeable = False
     return out
+
+
+EXERCISE_STYLES = ("european", "american")
+"""An option's exercise style as files, the store and outputs spell it: at expiry only, or any
+day up to expiry."""

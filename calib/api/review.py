@@ -45,7 +45,7 @@ from fastapi.security import HTTPAuthorizationCredentials, HTTPBearer
 from jinja2 import Environment, PackageLoader, StrictUndefined
 
 from calib import __version__
-from calib.api.schemas import ApproveRequest, ErrorBody, RunBody
+from calib.api.schemas import ApproveRequest, ErrorBody, PageCode, RunBody, RunId
 from calib.as_of import parse_as_of
 from calib.client import ApprovedSet, Client
 from calib.errors import (
@@ -188,18 +188,19 @@ def _guard(token: str) -> Callable[..., None]:
     return authorised
 
 
-def review_router(settings: Settings, token: str | None) -> APIRouter:
+def review_router(settings: Settings, token: str | None, timeout: float | None = None) -> APIRouter:
     """The review pages on ``settings.db_url``; deciding is offered only when ``token`` is set.
 
     The store and a pricers' :class:`~calib.client.Client` (for the as-of view: exactly what a
-    pricer reads) are opened when the server starts and closed when it stops.
+    pricer reads) are opened when the server starts and closed when it stops; ``timeout``
+    bounds each statement (:mod:`calib.api.timeouts`).
     """
     opened: dict[str, Any] = {}
 
     @asynccontextmanager
     async def lifespan(_app: FastAPI) -> AsyncIterator[None]:
-        opened["store"] = make_store(settings.db_url)
-        opened["client"] = Client(settings.db_url)
+        opened["store"] = make_store(settings.db_url, timeout=timeout)
+        opened["client"] = Client(settings.db_url, timeout=timeout)
         try:
             yield
         finally:
@@ -245,7 +246,7 @@ def review_router(settings: Settings, token: str | None) -> APIRouter:
         return page("overview.html", items=views.overview(store().sessions))
 
     @router.get("/runs/{run_id}", response_class=HTMLResponse)
-    def run_page(run_id: int) -> HTMLResponse:
+    def run_page(run_id: RunId) -> HTMLResponse:
         try:
             view = views.run_view(store().sessions, run_id)
         except UnknownRunError as exc:
@@ -255,7 +256,7 @@ def review_router(settings: Settings, token: str | None) -> APIRouter:
         return page("run.html", view=view, report=report, figures=names, notes=notes)
 
     @router.get("/runs/{run_id}/figures/{name}.png")
-    def run_figure(run_id: int, name: str) -> Response:
+    def run_figure(run_id: RunId, name: str) -> Response:
         try:
             report = report_of(run_id)
         except UnknownRunError:
@@ -265,7 +266,7 @@ def review_router(settings: Settings, token: str | None) -> APIRouter:
         return png(figures.get((run_id, name), lambda: _drawn(figure_png, report, name)))
 
     @router.get("/commodities/{code}", response_class=HTMLResponse)
-    def commodity_page(code: str, as_of: str | None = None) -> HTMLResponse:
+    def commodity_page(code: PageCode, as_of: str | None = None) -> HTMLResponse:
         try:
             hist = views.history(store().sessions, code)
         except UnknownCommodityError as exc:
@@ -284,7 +285,7 @@ def review_router(settings: Settings, token: str | None) -> APIRouter:
         )
 
     @router.get("/commodities/{code}/compare.png")
-    def commodity_chart(code: str) -> Response:
+    def commodity_chart(code: PageCode) -> Response:
         try:
             hist = views.history(store().sessions, code)
         except UnknownCommodityError as exc:
@@ -311,7 +312,7 @@ def review_router(settings: Settings, token: str | None) -> APIRouter:
             include_in_schema=True,
             summary="Reject a candidate run",
         )
-        def reject(run_id: int, decision: ApproveRequest) -> JSONResponse:
+        def reject(run_id: RunId, decision: ApproveRequest) -> JSONResponse:
             record = approve_flow.reject(
                 store().sessions, run_id, by=decision.by, note=decision.note
             )
@@ -320,6 +321,8 @@ def review_router(settings: Settings, token: str | None) -> APIRouter:
     return router
 
 
-def include_review(app: FastAPI, settings: Settings, token: str | None) -> None:
+def include_review(
+    app: FastAPI, settings: Settings, token: str | None, timeout: float | None = None
+) -> None:
     """Add the review pages (and, with a token, the reject route) to the API ``app``."""
-    app.include_router(review_router(settings, token))
+    app.include_router(review_router(settings, token, timeout))

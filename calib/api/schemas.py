@@ -17,15 +17,37 @@ import types
 import typing
 from collections.abc import Mapping
 from datetime import date, datetime
-from typing import Any, get_args, get_origin
+from typing import Annotated, Any, get_args, get_origin
 
+from fastapi import Path
 from pydantic import BaseModel, Field, create_model
 
+from calib.inputs.rules import CODE
 from calib.model.twofactor import TwoFactorParams
 from calib.record.fit import DERIVED_KEYS, BucketVols, FitRecord
 from calib.store.runs import ApprovalRecord, ApprovedSet, EventRecord, RunRecord
 
 _MODELS: dict[type, type[BaseModel]] = {}
+
+MAX_ID = 2**31 - 1
+"""The largest id the store's id columns hold on every engine (``INTEGER``: 32-bit signed on
+PostgreSQL; SQLite would take 64 bits, the same limit is kept on both)."""
+
+_NO_NUL = r"^[^\x00]*$"
+"""Free text: anything but NUL, which PostgreSQL cannot store (refused the same everywhere)."""
+
+RunId = Annotated[int, Path(ge=1, le=MAX_ID, description="A stored run's id.")]
+PageCode = Annotated[str, Path(pattern=_NO_NUL, description="A commodity code.")]
+"""A commodity code on the review pages: any stored text but NUL (a page shows the store as
+it is, escaped)."""
+CommodityCode = Annotated[
+    str,
+    Path(
+        pattern=f"^{CODE.pattern}$",
+        description="A commodity code as quote files carry it.",
+        examples=["QLM"],
+    ),
+]
 
 
 def _attribute_docs(cls: type) -> dict[str, str]:
@@ -136,8 +158,8 @@ ApprovedBody = create_model(
 class ApproveRequest(BaseModel):
     """Who approves a run, and why (recorded on the approval event)."""
 
-    by: str = Field(min_length=1, max_length=128)
-    note: str = Field(min_length=1)
+    by: str = Field(min_length=1, max_length=128, pattern=_NO_NUL)
+    note: str = Field(min_length=1, pattern=_NO_NUL)
 
 
 class ErrorBody(BaseModel):

@@ -42,7 +42,7 @@ from calib.calibrate.constraints import (
 from calib.calibrate.objective import errors, fit_term
 from calib.calibrate.penalties import Anchor
 from calib.calibrate.problem import SOLVER, ConvexStep, Solved, huber_capacity
-from calib.calibrate.quotes import FitData, OptionQuotes, prepare
+from calib.calibrate.quotes import FitData, OptionQuotes, equivalent_vol, prepare
 from calib.calibrate.result import BucketVols, CalibrationResult, ConstraintReport, FrontierPoint
 from calib.calibrate.settings import CalibrationSettings
 from calib.calibrate.uncertainty import (
@@ -64,7 +64,7 @@ from calib.errors import (
 )
 from calib.model import black76
 from calib.model.twofactor import TwoFactorParams, bucket_coefficients, variance_coefficients
-from calib.types import FloatArray
+from calib.types import FloatArray, readonly
 
 __all__ = ["BIND_TOL", "Calibrator", "bucket_edges", "check_feasible", "fit", "frontier"]
 
@@ -175,7 +175,7 @@ class Calibrator:
                 counts[reason] = counts.get(reason, 0) + 1
             raise TooFewQuotesError(data.n, len(quotes), s.mode, needed, counts)
         if s.mode == "held_rho":
-            result = self._fit_held(data, hist, s, quotes, lim)
+            result = self._fit_held(data, s, hist, quotes, lim)
         else:
             result = self._fit_convex(data, hist, s, quotes, lim)
         if not (
@@ -442,8 +442,8 @@ class Calibrator:
     def _fit_held(
         self,
         data: FitData,
-        hist: TwoFactorParams,
         s: CalibrationSettings,
+        hist: TwoFactorParams,
         quotes: OptionQuotes,
         lim: Limits,
     ) -> CalibrationResult:
@@ -488,18 +488,16 @@ class Calibrator:
             )
         s1 = math.sqrt(best.P)
         params = [hist.with_vols(s1, best.ratio * s1, hist.rho)]
-        edges = np.array([0.0, float(data.expiry.max())])
         var_tol = SCAN_VAR_TOL * max(best.P, 1.0)
         reports = self._reports(params, lim, None, var_tol)
-        V = best.P * (a + b * best.ratio**2 - 2.0 * c * hist.rho * best.ratio)
         return _result(
             data,
             quotes,
             hist,
             s,
-            edges,
+            np.array([0.0, float(data.expiry.max())]),  # one bucket: the edges
             params,
-            V,
+            best.P * (a + b * best.ratio**2 - 2.0 * c * hist.rho * best.ratio),  # V
             A,
             best.objective,
             reports,
@@ -599,6 +597,19 @@ def _result(
         data.forward, data.strike, std, data.is_call
     )
     model_vol = std / np.sqrt(data.expiry)
+    fitted = quotes.take(data.index)
+    early = np.zeros(data.n)
+    am, prices = data.american, data.american_prices
+    if am is not None and prices is not None:
+        # the American pricer at the constant-volatility equivalent (as the objective priced)
+        model_price[am] = prices.price(equivalent_vol(V[am], data.expiry[am]))
+        # the quote's early-exercise premium: its premium less Black-76's at its implied vol
+        early[am] = data.price[am] - data.discount[am] * black76.undiscounted_price(
+            data.forward[am],
+            data.strike[am],
+            data.vol[am] * np.sqrt(data.expiry[am]),
+            data.is_call[am],
+        )
     price_res = model_price - data.price
     vol_res = model_vol - data.vol
     err = price_res if s.error_measure == "price" else vol_res
@@ -655,6 +666,8 @@ def _result(
         not_identified=unc.not_identified,
         not_identified_reason=unc.reason,
         residual_variance=float(unc.residual_variance),
+        american=readonly(fitted.is_american, np.bool_),
+        early_exercise=ro(early),
     )
 
 

@@ -1,4 +1,17 @@
-"""One day's option quotes, and the filters and weights that turn them into fit data."""
+"""One day's option quotes, and the filters and weights that turn them into fit data.
+
+Exercise styles
+---------------
+A quote is European (Black-76) or American (:mod:`calib.model.american`). An American quote's
+market volatility is its American implied volatility, its vega the American one, and the fit
+prices it with the American pricer at the model's total variance ``V`` taken as a constant
+volatility ``sqrt(V / T)`` over the option's life. The two-factor futures volatility is not
+constant in time (it rises towards the future's maturity), and the early-exercise premium
+depends a little on how the variance is spread over the life, not only on its total: this is
+the constant-volatility-equivalent approximation (common practice). Its size was measured
+against a Crank-Nicolson solution with the model's time-dependent volatility
+(``tests/calibrate/test_american_fit.py``): see the README's figures.
+"""
 
 from __future__ import annotations
 
@@ -10,16 +23,24 @@ import numpy as np
 import numpy.typing as npt
 
 from calib.calibrate.settings import CalibrationSettings
-from calib.errors import IMPLIED_VOL_REASONS, CalibrationNumericalError, QuoteError
-from calib.model import black76
-from calib.types import ArrayLike, BoolArray, FloatArray, IntArray, readonly
+from calib.errors import (
+    AMERICAN_IMPLIED_VOL_REASONS,
+    IMPLIED_VOL_REASONS,
+    CalibrationNumericalError,
+    QuoteError,
+)
+from calib.model import american, black76
+from calib.types import EXERCISE_STYLES, ArrayLike, BoolArray, FloatArray, IntArray, readonly
 
 DAYS_PER_YEAR = 365.0  # ACT/365, as the inputs (DESIGN §7)
+
+CONTRACT_FIELDS = ("expiry", "maturity", "is_call", "strike", "forward", "discount")
+"""The arrays of :class:`OptionQuotes` that define each option (and of :class:`FitData`)."""
 
 
 @dataclass(frozen=True, slots=True, eq=False)
 class OptionQuotes:
-    """A day's European options on futures (frozen; arrays are read-only copies).
+    """A day's options on futures, European or American (frozen; arrays are read-only copies).
 
     Attributes
     ----------
@@ -32,6 +53,8 @@ class OptionQuotes:
     implied_vol : Black volatility, or ``None`` when ``premium`` is given.
     bid, ask : optional premiums (both or neither), used by spread weighting.
     labels : optional quote ids, carried into the result.
+    american : ``True`` for an American-style quote; ``None`` (the default) for a day of
+        European quotes only.
 
     Use :meth:`from_arrays` to build from a rate instead of a discount factor.
     """
@@ -47,6 +70,7 @@ class OptionQuotes:
     bid: FloatArray | None = None
     ask: FloatArray | None = None
     labels: tuple[str, ...] | None = None
+    american: BoolArray | None = None
 
     def __post_init__(self) -> None:
         t = np.atleast_1d(np.asarray(self.expiry, dtype=np.float64))
@@ -101,6 +125,11 @@ class OptionQuotes:
             if len(labels) != n:
                 raise QuoteError("labels", f"has {len(labels)} entries, expected {n}")
             set_(self, "labels", labels)
+        if self.american is not None:
+            style = np.atleast_1d(np.asarray(self.american))
+            if style.dtype != np.bool_:
+                raise QuoteError("american", "must be booleans (True = American)")
+            set_(self, "american", arr("american", style, np.bool_))
 
     @classmethod
     def from_arrays(
@@ -118,10 +147,12 @@ class OptionQuotes:
         bid: ArrayLike | None = None,
         ask: ArrayLike | None = None,
         labels: tuple[str, ...] | list[str] | None = None,
+        american: ArrayLike | None = None,
     ) -> OptionQuotes:
         """Build from array-likes; give ``discount`` or a continuously compounded ``rate``.
 
-        ``is_call`` may also be ``"call"``/``"put"`` strings.
+        ``is_call`` may also be ``"call"``/``"put"`` strings, ``american`` booleans or
+        ``"american"``/``"european"`` strings.
         """
         if (discount is None) == (rate is None):
             raise QuoteError("discount", "give exactly one of discount and rate")
@@ -143,6 +174,7 @@ class OptionQuotes:
             bid=opt(bid),
             ask=opt(ask),
             labels=None if labels is None else tuple(labels),
+            american=None if american is None else is_american(american),
         )
 
     def __len__(self) -> int:
@@ -156,18 +188,18 @@ class OptionQuotes:
             return None if x is None else x[i]
 
         return OptionQuotes(
-            expiry=self.expiry[i],
-            maturity=self.maturity[i],
-            is_call=self.is_call[i],
-            strike=self.strike[i],
-            forward=self.forward[i],
-            discount=self.discount[i],
+            **self.contracts(i),
             premium=pick(self.premium),
             implied_vol=pick(self.implied_vol),
             bid=pick(self.bid),
             ask=pick(self.ask),
             labels=None if self.labels is None else tuple(self.labels[j] for j in i.tolist()),
+            american=None if self.american is None else self.american[i],
         )
+
+    def contracts(self, i: IntArray) -> dict[str, npt.NDArray[Any]]:
+        """The arrays that define each option (:data:`CONTRACT_FIELDS`) at positions ``i``."""
+        return {name: getattr(self, name)[i] for name in CONTRACT_FIELDS}
 
     @property
     def rate(self) -> FloatArray:
@@ -177,6 +209,94 @@ class OptionQuotes:
     def label(self, i: int) -> str:
         """The quote's label, or its index as text."""
         return self.labels[i] if self.labels is not None else str(i)
+
+    @property
+    def is_american(self) -> BoolArray:
+        """``True`` for each American-style quote (all ``False`` for a European day)."""
+        if self.american is None:
+            return np.zeros(len(self), dtype=np.bool_)
+        return self.american
+
+
+def is_american(style: ArrayLike) -> BoolArray:
+    """Booleans (True = American) from booleans or ``"american"``/``"european"`` strings."""
+    a = np.atleast_1d(np.asarray(style))
+    if a.dtype == np.bool_:
+        return a
+    text = np.char.lower(a.astype(str))
+    bad = ~np.isin(text, EXERCISE_STYLES)
+    if bad.any():
+        raise QuoteError(
+            "american",
+            f"exercise style {a[np.argmax(bad)]!r} is not one of {', '.join(EXERCISE_STYLES)}",
+        )
+    return np.asarray(text == "american")
+
+
+TINY_VARIANCE = 1e-300
+"""Floor of a total variance in the fit: keeps derivatives finite at ``V = 0`` (a degenerate,
+zero-vol model)."""
+
+
+def equivalent_vol(V: FloatArray, T: FloatArray) -> FloatArray:
+    """The constant volatility with total variance ``V`` over ``T`` years (``V`` floored)."""
+    return np.asarray(np.sqrt(np.maximum(V, TINY_VARIANCE)) / np.sqrt(T))
+
+
+class AmericanPrices:
+    """A day's American quotes priced at constant volatilities, each result remembered.
+
+    The fit prices the same quotes at the same volatilities more than once (the objective at
+    a point, then its slope there; the final point in the result and the standard errors), and
+    an American premium costs about a thousand Black-76 ones. Results are kept per volatility
+    array (its bytes), the last :attr:`KEEP` of them; the pricer is deterministic, so a
+    remembered premium is the very one a new pricing would give.
+    """
+
+    KEEP = 8
+
+    def __init__(
+        self, F: FloatArray, K: FloatArray, T: FloatArray, r: FloatArray, call: BoolArray
+    ) -> None:
+        self.args = (F, K, T, r)
+        self.call = call
+        self._memo: dict[tuple[tuple[int, ...], bytes], tuple[FloatArray, FloatArray | None]] = {}
+
+    def _key(self, vol: FloatArray) -> tuple[tuple[int, ...], bytes]:
+        return vol.shape, np.ascontiguousarray(vol).tobytes()
+
+    def _keep(
+        self, key: tuple[tuple[int, ...], bytes], value: tuple[FloatArray, FloatArray | None]
+    ) -> None:
+        if len(self._memo) >= self.KEEP:
+            del self._memo[next(iter(self._memo))]
+        self._memo[key] = value
+
+    def remember(self, vol: FloatArray, price: FloatArray, vega: FloatArray) -> None:
+        """Keep premiums and vegas priced elsewhere at ``vol`` by the same pricer."""
+        self._keep(self._key(vol), (price, vega))
+
+    def price(self, vol: FloatArray) -> FloatArray:
+        """Premiums at ``vol`` (quotes on the last axis)."""
+        key = self._key(vol)
+        hit = self._memo.get(key)
+        if hit is not None:
+            return hit[0]
+        value = american.price(*self.args, vol, self.call)
+        self._keep(key, (value, None))
+        return value
+
+    def price_vega(self, vol: FloatArray) -> tuple[FloatArray, FloatArray]:
+        """Premiums and vegas (per unit vol, :func:`calib.model.american.greeks`)."""
+        key = self._key(vol)
+        hit = self._memo.get(key)
+        if hit is not None and hit[1] is not None:
+            return hit[0], hit[1]
+        known = None if hit is None else hit[0]
+        g = american.greeks(*self.args, vol, self.call, delta=False, value=known)
+        value, vega = g["price"], g["vega"]
+        self._keep(key, (value, vega))
+        return value, vega
 
 
 @dataclass(frozen=True, slots=True)
@@ -193,10 +313,10 @@ class FitData:
     """The usable quotes of a day, in the arrays the fit works on (internal)."""
 
     index: IntArray
+    strike: FloatArray
+    is_call: BoolArray
     expiry: FloatArray
     maturity: FloatArray
-    is_call: BoolArray
-    strike: FloatArray
     forward: FloatArray
     discount: FloatArray
     price: FloatArray
@@ -208,6 +328,15 @@ class FitData:
     """Market vega per unit of ``scale``: the price error of one unit of volatility."""
     threshold: FloatArray | None
     """Huber thresholds per quote in the error measure's units (``None``: squared loss)."""
+    american: IntArray | None = None
+    """Positions (in these arrays) of the American quotes; ``None`` when there is none."""
+    american_prices: AmericanPrices | None = None
+    """Their pricer at constant volatilities (remembering what it priced)."""
+
+    @property
+    def rate(self) -> FloatArray:
+        """Continuously compounded rate implied by the discount factor, ``-ln D / T``."""
+        return np.asarray(-np.log(self.discount) / self.expiry)
 
     @property
     def n(self) -> int:
@@ -266,13 +395,16 @@ def _prepare(quotes: OptionQuotes, settings: CalibrationSettings) -> FitData:
                 dtype=object,
             )
         g = black76.greeks(q.forward, q.strike, q.expiry, r, np.nan_to_num(vol), q.is_call)
-        vega_f = g["vega"] / q.forward
+        vega = g["vega"]
+        am = np.flatnonzero(q.is_american)
+        seed = None
+        if am.size:  # American quotes: their own premium, implied vol and vega
+            premium, vol, vega, seed = _american_quotes(q, am, premium, vol, reasons, vega)
+        vega_f = vega / q.forward
         m = q.strike / q.forward
     days = q.expiry * DAYS_PER_YEAR
     lo, hi = settings.moneyness_band
-    representable = (
-        np.isfinite(premium) & np.isfinite(vega_f) & np.isfinite(g["vega"]) & np.isfinite(m)
-    )
+    representable = np.isfinite(premium) & np.isfinite(vega_f) & np.isfinite(vega) & np.isfinite(m)
     checks: list[tuple[BoolArray, str]] = [
         (~representable, "values not representable in float64 (price or vega overflows)"),
         (
@@ -314,10 +446,10 @@ def _prepare(quotes: OptionQuotes, settings: CalibrationSettings) -> FitData:
             w = vega_f[idx]
         else:
             assert spread is not None
-            s = spread[idx] / (scale if settings.error_measure == "price" else g["vega"][idx])
+            s = spread[idx] / (scale if settings.error_measure == "price" else vega[idx])
             w = 1.0 / (s * s)
         w = w / w.sum() if idx.size else w
-        nu = np.asarray(g["vega"][idx] / scale, dtype=np.float64)
+        nu = np.asarray(vega[idx] / scale, dtype=np.float64)
     if not (np.all(np.isfinite(w)) and np.all(np.isfinite(nu)) and math.isfinite(scale)):
         raise CalibrationNumericalError(
             "weights or vegas of the usable quotes are not finite (prices far outside float64 "
@@ -331,12 +463,7 @@ def _prepare(quotes: OptionQuotes, settings: CalibrationSettings) -> FitData:
         threshold = np.maximum(threshold, 1e-300)
     return FitData(
         index=idx,
-        expiry=q.expiry[idx],
-        maturity=q.maturity[idx],
-        is_call=q.is_call[idx],
-        strike=q.strike[idx],
-        forward=q.forward[idx],
-        discount=q.discount[idx],
+        **q.contracts(idx),
         price=premium[idx],
         vol=vol[idx],
         weight=np.asarray(w, dtype=np.float64),
@@ -344,7 +471,57 @@ def _prepare(quotes: OptionQuotes, settings: CalibrationSettings) -> FitData:
         dropped=dropped,
         vega=nu,
         threshold=threshold,
+        american=None if seed is None else np.flatnonzero(q.is_american[idx]),
+        american_prices=None if seed is None else _seeded(q, idx, *seed),
     )
+
+
+def _seeded(
+    q: OptionQuotes, idx: IntArray, key: FloatArray, price: FloatArray, vega: FloatArray
+) -> AmericanPrices:
+    """The fitted American quotes' pricer, remembering their premiums and vegas at the market
+    (the fit's first linearisation point); ``key``, ``price``, ``vega`` are per quote of
+    ``q`` (NaN for the European ones)."""
+    kept = idx[q.is_american[idx]]
+    prices = AmericanPrices(
+        q.forward[kept], q.strike[kept], q.expiry[kept], q.rate[kept], q.is_call[kept]
+    )
+    prices.remember(key[kept], price[kept], vega[kept])
+    return prices
+
+
+def _american_quotes(
+    q: OptionQuotes,
+    am: IntArray,
+    premium: FloatArray,
+    vol: FloatArray,
+    reasons: npt.NDArray[np.object_],
+    vega: FloatArray,
+) -> tuple[FloatArray, FloatArray, FloatArray, tuple[FloatArray, FloatArray, FloatArray]]:
+    """Premium, implied vol and vega with the American quotes ``am`` replaced by their own
+    (American pricer); ``reasons`` of those quotes is set to theirs. Last, the volatilities
+    the fit will first price them at (:func:`equivalent_vol` of the market variance) with
+    their premiums and vegas there, per quote (NaN for the European ones)."""
+    premium, vol, vega = (np.array(x, dtype=np.float64) for x in (premium, vol, vega))
+    F, K, T, r, call = q.forward[am], q.strike[am], q.expiry[am], q.rate[am], q.is_call[am]
+    if q.implied_vol is not None:
+        premium[am] = american.price(F, K, T, r, vol[am], call)
+        reasons[am] = ""
+    else:
+        vol[am], codes = american.implied_vol_detail(premium[am], F, K, T, r, call)
+        reasons[am] = [
+            ""
+            if c == black76.ImpliedVolCode.OK
+            else "no implied volatility: "
+            + AMERICAN_IMPLIED_VOL_REASONS[black76.ImpliedVolCode(int(c)).name]
+            for c in codes
+        ]
+    key, at_key, vega_key = (np.full(len(q), np.nan) for _ in range(3))
+    key[am] = equivalent_vol(np.nan_to_num(vol[am]) ** 2 * T, T)
+    g = american.greeks(F, K, T, r, key[am], call, delta=False)
+    at_key[am], vega_key[am] = g["price"], g["vega"]
+    vega[am] = vega_key[am]  # the vega at the market vol, to rounding
+    return premium, vol, vega, (key, at_key, vega_key)
 
 
 SCREENED = "screened"

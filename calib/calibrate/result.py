@@ -10,7 +10,7 @@ from calib.calibrate.quotes import SCREENED, DroppedQuote
 from calib.calibrate.settings import CalibrationSettings
 from calib.model.twofactor import TwoFactorParams
 from calib.record.fit import BucketVols, ConstraintReport
-from calib.types import FloatArray, IntArray
+from calib.types import BoolArray, FloatArray, IntArray
 
 __all__ = ["BucketVols", "CalibrationResult", "ConstraintReport", "FrontierPoint"]
 
@@ -51,6 +51,10 @@ class CalibrationResult:
     not_identified : parameters the quotes do not identify (warned), ``not_identified_reason``
         says why; the buckets carry the standard errors.
     residual_variance : ``sum_i w_i e_i^2 / (n - p)``, the scale of the standard errors.
+    american : per fitted quote, ``True`` for an American-style one (priced by
+        :mod:`calib.model.american` at the model's constant-volatility equivalent).
+    early_exercise : per fitted quote, its early-exercise premium at its market implied vol
+        (American premium less Black-76 premium; 0 for a European quote).
     """
 
     params: TwoFactorParams
@@ -85,6 +89,8 @@ class CalibrationResult:
     not_identified: tuple[str, ...] = ()
     not_identified_reason: str = ""
     residual_variance: float = float("nan")
+    american: BoolArray | None = None
+    early_exercise: FloatArray | None = None
 
     @property
     def final_optimal(self) -> bool:
@@ -143,6 +149,19 @@ class CalibrationResult:
                 "price_residual": self.price_residual.tolist(),
                 "vol_residual": self.vol_residual.tolist(),
                 "weight": self.weight.tolist(),
+                "exercise": [
+                    "american" if a else "european"
+                    for a in (
+                        self.american.tolist()
+                        if self.american is not None
+                        else [False] * len(self.labels)
+                    )
+                ],
+                "early_exercise": (
+                    self.early_exercise.tolist()
+                    if self.early_exercise is not None
+                    else [0.0] * len(self.labels)
+                ),
             },
             "objective": self.objective,
             "fit": self.fit,

@@ -12,6 +12,7 @@ from typing import Annotated
 
 import typer
 
+from calib.api.timeouts import DEFAULT_TIMEOUT, TIMEOUT_ENV
 from calib.api.tokens import TOKEN_ENV, TOKEN_FILE_ENV, read_token, token_from_env
 from calib.cli.common import DbOption, open_store
 
@@ -47,6 +48,16 @@ def serve_cmd(
             show_default=False,
         ),
     ] = None,
+    timeout: Annotated[
+        float,
+        typer.Option(
+            "--timeout",
+            min=0.001,
+            metavar="SECONDS",
+            help="Longest a database statement may run before the request answers 503 "
+            f"(or set ${TIMEOUT_ENV}).",
+        ),
+    ] = DEFAULT_TIMEOUT,
     access_log: Annotated[
         bool, typer.Option("--access-log", help="Log every request (costs throughput).")
     ] = False,
@@ -63,6 +74,7 @@ def serve_cmd(
         os.environ[TOKEN_FILE_ENV] = str(token_file.resolve())
     token = token_from_env()
     os.environ["CALIB_DB"] = url  # the workers build the app from the environment
+    os.environ[TIMEOUT_ENV] = repr(timeout)
     approve = "on (bearer token)" if token else "off (no token configured)"
     typer.echo(f"calib API on http://{host}:{port} ({store.url}); approval {approve}", err=True)
     typer.echo(f"review pages: open http://{host}:{port}/ in a browser", err=True)

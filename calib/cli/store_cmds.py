@@ -31,6 +31,13 @@ SHOWN_PROBLEMS = 5
 """Row problems printed per file (all are in the quarantine table and in ``--json``)."""
 
 
+class Exercise(StrEnum):
+    """An option's exercise style."""
+
+    european = "european"
+    american = "american"
+
+
 class QuoteKind(StrEnum):
     """What an ingested file holds."""
 
@@ -100,6 +107,13 @@ def ingest_cmd(
     unit: Annotated[str, typer.Option(help="Unit of a commodity registered by --create.")] = "unit",
     currency: Annotated[str, typer.Option(help="Its quote currency.")] = "USD",
     calendar: Annotated[str, typer.Option(help="Its contract calendar rule.")] = "monthly",
+    exercise: Annotated[
+        Exercise,
+        typer.Option(
+            help="Its options' default exercise style (an options file's exercise column, "
+            "where given, says per row)."
+        ),
+    ] = Exercise.european,
     settle_band: Annotated[
         float | None,
         typer.Option(
@@ -126,7 +140,11 @@ def ingest_cmd(
     from calib.inputs.rules import Bands
     from calib.workflows.ingest import NewCommodity, ingest_file
 
-    new = NewCommodity(unit=unit, currency=currency, calendar_rule=calendar) if create else None
+    new = (
+        NewCommodity(unit=unit, currency=currency, calendar_rule=calendar, exercise=exercise.value)
+        if create
+        else None
+    )
     usual = Bands()
     try:
         bands = Bands(
@@ -186,7 +204,7 @@ def _nan_none(values: Any) -> list[float | None]:
     return [None if v != v else v for v in values.tolist()]
 
 
-def _day_json(day: DayQuotes) -> dict[str, Any]:
+def _day_json(day: DayQuotes, early: list[float]) -> dict[str, Any]:
     f, o, r = day.futures, day.options, day.rates
     return {
         "commodity": day.commodity,
@@ -207,6 +225,8 @@ def _day_json(day: DayQuotes) -> dict[str, Any]:
                 "implied_vol": _nan_none(o.implied_vol[j : j + 1])[0],
                 "bid": _nan_none(o.bid[j : j + 1])[0],
                 "ask": _nan_none(o.ask[j : j + 1])[0],
+                "exercise": "american" if o.american[j] else "european",
+                "early_exercise": None if math.isnan(early[j]) else early[j],
                 "row_id": int(o.row_id[j]),
             }
             for j in range(len(o))
@@ -229,13 +249,15 @@ def quotes_cmd(
 ) -> None:
     """Show the futures, options and zero curve stored for a commodity on a day."""
     from calib.store.quotes import load_day
+    from calib.workflows.fit import early_exercise
 
     with open_store(db) as (store, _), store.sessions.begin() as session:
         day = load_day(
             session=session, commodity=commodity, trade_date=trade_date.date(), as_of=as_of
         )
+    early = early_exercise(day).tolist()
     if as_json:
-        echo_json(_day_json(day))
+        echo_json(_day_json(day, early))
         return
     f, o, r = day.futures, day.options, day.rates
     typer.echo(
@@ -256,10 +278,23 @@ def quotes_cmd(
                 _number(o.implied_vol[j]),
                 _number(o.bid[j]),
                 _number(o.ask[j]),
+                "american" if o.american[j] else "european",
+                _number(early[j]),
             ]
             for j in range(len(o))
         ]
-        headers = ["delivery", "expiry", "kind", "strike", "premium", "implied_vol", "bid", "ask"]
+        headers = [
+            "delivery",
+            "expiry",
+            "kind",
+            "strike",
+            "premium",
+            "implied_vol",
+            "bid",
+            "ask",
+            "exercise",
+            "early_exercise",
+        ]
         typer.echo("\noptions\n" + _table(headers, rows))
     if len(r):
         rows = [[str(m), _number(z)] for m, z in zip(r.maturity, r.zero_rate, strict=True)]

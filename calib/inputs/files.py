@@ -53,7 +53,7 @@ REQUIRED_COLUMNS: dict[FileKind, tuple[str, ...]] = {
 }
 OPTIONAL_COLUMNS: dict[FileKind, tuple[str, ...]] = {
     "futures": (),
-    "options": ("premium", "implied_vol", "bid", "ask"),
+    "options": ("premium", "implied_vol", "bid", "ask", "exercise"),
     "rates": (),
 }
 

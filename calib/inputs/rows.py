@@ -148,6 +148,18 @@ class RowCheck:
         self.reject(~good[codes], name, self.value_reason(name, template))
         return codes, uniques
 
+    def optional_choice(
+        self, name: str, choices: tuple[str, ...], template: str
+    ) -> ObjArray | None:
+        """An optional column of ``choices`` (case-insensitive): each row's value, lower case,
+        ``""`` where empty; other values are refused. ``None`` when the file lacks the column."""
+        if not self.table.has(name):
+            return None
+        codes, uniques = self._factor(name, lower=True)
+        good = np.array([u in choices or u == "" for u in uniques] + [True], dtype=np.bool_)
+        self.reject(~good[codes], name, self.value_reason(name, template))
+        return np.asarray(np.array([*uniques, ""], dtype=object)[codes])
+
     def problems(self) -> list[RowProblem]:
         """The refused rows with their reasons, in file order (read-time refusals included)."""
         bad = np.flatnonzero(~self.ok)
@@ -185,6 +197,11 @@ def lookup(reasons: dict[int, str]) -> Callable[[IntArray], Iterable[str]]:
     return lambda idx: (reasons[int(i)] for i in idx)
 
 
+def _comparable(value: Any) -> Any:
+    """A value as rows are compared: NaN equal to NaN (as ``-inf``), text as itself."""
+    return value if isinstance(value, str) else np.nan_to_num(value, nan=-np.inf)
+
+
 def key_hash(keys: Sequence[npt.NDArray[Any]]) -> npt.NDArray[np.uint64]:
     """A 64-bit hash of each row's key (the columns ``keys``): equal keys hash alike, so
     repeated keys are found among the repeated hashes in little memory."""
@@ -217,7 +234,7 @@ def duplicate_reasons(
         groups.setdefault(tuple(k[i] for k in keys), []).append(int(i))
     found: dict[int, str] = {}
     for members in groups.values():
-        signature = [tuple(np.nan_to_num(v[i], nan=-np.inf) for v in values) for i in members]
+        signature = [tuple(_comparable(v[i]) for v in values) for i in members]
         at = [int(lines[i]) for i in members]
         if len(set(signature)) > 1:
             for i, line in zip(members, at, strict=True):

@@ -14,7 +14,9 @@ Rules (each row; the first failure found is the one recorded)
   when given, prices at most :data:`PRICE_MAX`; ``trade_date <= expiry <= delivery``; the
   underlying future has a settlement stored for that trade date, and the strike lies within a
   factor :data:`STRIKE_RATIO_MAX` of it; a premium lies within the no-arbitrage bounds (below)
-  and is at least :data:`PREMIUM_MIN_RATIO` of ``max(F, K)``;
+  and is at least :data:`PREMIUM_MIN_RATIO` of ``max(F, K)``; ``exercise``, when the file has
+  the column, is ``european`` or ``american`` (any case); an empty value takes the
+  commodity's default style;
 * rates: ``|zero_rate| <=`` :data:`ZERO_RATE_LIMIT`, ``maturity > trade_date``;
 * inside one file, rows with the same key and different values are all refused; an exact
   repeat of an earlier row is refused as a repeat (the first one lands);
@@ -32,6 +34,13 @@ linear in the zero rate, flat beyond its ends) and ``tol =`` :data:`PREMIUM_BOUN
 .. math::
     D \\max(F - K, 0) - tol \\le C \\le D F + tol, \\qquad
     D \\max(K - F, 0) - tol \\le P \\le D K + tol.
+
+An American option (exercisable any day up to expiry) can be exercised now for the
+*undiscounted* intrinsic value, and is worth at most what exercising into the future at once
+could ever pay (common practice):
+
+.. math::
+    \\max(F - K, 0) - tol \\le C \\le F + tol, \\qquad \\max(K - F, 0) - tol \\le P \\le K + tol.
 
 The curve should be stored before the options of its day: on a day without one the bounds
 are checked with ``D = 1`` (r = 0; a row's reason says so), the day is listed in
@@ -53,7 +62,7 @@ import pandas as pd
 from calib import errors as msg
 from calib.inputs.files import listed
 from calib.inputs.rows import DateArray, RowCheck, days, each
-from calib.types import BoolArray, FloatArray, IntArray
+from calib.types import EXERCISE_STYLES, BoolArray, FloatArray, IntArray
 
 IMPLIED_VOL_MAX = 5.0
 """Largest implied volatility accepted (500% a year): beyond it a quote is taken as a typo."""
@@ -187,8 +196,14 @@ def check_futures(rows: RowCheck, cid: IntArray) -> Checked:
 
 
 def check_options(
-    rows: RowCheck, cid: IntArray, forwards: Forwards, discounts: Discounts
+    rows: RowCheck,
+    cid: IntArray,
+    forwards: Forwards,
+    discounts: Discounts,
+    default_american: BoolArray | None = None,
 ) -> Checked:
+    """The option rules; ``default_american`` is each row's commodity default style (``True``
+    for American; default: every commodity European), taken where the row gives none."""
     trade = rows.date("trade_date")
     delivery = rows.date("delivery")
     expiry = rows.date("expiry")
@@ -199,6 +214,10 @@ def check_options(
     vol = rows.number("implied_vol", required=False)
     bid = rows.number("bid", required=False)
     ask = rows.number("ask", required=False)
+    style = rows.optional_choice("exercise", EXERCISE_STYLES, msg.ROW_NOT_EXERCISE)
+    am = np.zeros(rows.n, np.bool_) if default_american is None else default_american.copy()
+    if style is not None:
+        am = np.where(style == "", am, style == "american")
 
     rows.reject(strike <= 0, "strike", rows.value_reason("strike", msg.ROW_NOT_POSITIVE))
     _price_range(rows, strike, "strike", PRICE_MIN)
@@ -274,9 +293,14 @@ def check_options(
             for i in idx
         )
 
-    low, high = disc * intrinsic, disc * cap
-    rows.reject(premium < low - tol, "premium", bound_reason(msg.ROW_BELOW_INTRINSIC, low))
-    rows.reject(premium > high + tol, "premium", bound_reason(msg.ROW_ABOVE_BOUND, high))
+    # an American option's bounds are undiscounted: it can be exercised now
+    low, high = np.where(am, 1.0, disc) * intrinsic, np.where(am, 1.0, disc) * cap
+    for sel, below, above in (
+        (~am, msg.ROW_BELOW_INTRINSIC, msg.ROW_ABOVE_BOUND),
+        (am, msg.ROW_BELOW_INTRINSIC_AMERICAN, msg.ROW_ABOVE_BOUND_AMERICAN),
+    ):
+        rows.reject(sel & (premium < low - tol), "premium", bound_reason(below, low))
+        rows.reject(sel & (premium > high + tol), "premium", bound_reason(above, high))
     rows.reject(
         premium < PREMIUM_MIN_RATIO * scale,
         "premium",
@@ -294,6 +318,7 @@ def check_options(
         implied_vol=vol,
         bid=bid,
         ask=ask,
+        exercise=np.where(am, "american", "european").astype(object),
     )
     checked.no_curve = no_curve
     return checked
@@ -329,7 +354,7 @@ KEYS: dict[str, tuple[str, ...]] = {
 """The key of each file kind's rows (a later batch's row supersedes an earlier one by it)."""
 VALUES: dict[str, tuple[str, ...]] = {
     "futures": ("settle",),
-    "options": ("premium", "implied_vol", "bid", "ask"),
+    "options": ("premium", "implied_vol", "bid", "ask", "exercise"),
     "rates": ("zero_rate",),
 }
 """The values a row carries besides its key."""

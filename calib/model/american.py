@@ -525,8 +525,16 @@ def greeks(
     r: ArrayLike,
     vol: ArrayLike,
     kind: Kind | ArrayLike,
+    *,
+    delta: bool = True,
+    value: FloatArray | None = None,
 ) -> dict[str, FloatArray]:
     """Price, delta (in the futures price) and vega (per unit vol).
+
+    ``delta=False`` leaves delta out (no ``"delta"`` key): price and vega in one vectorised
+    pass, what a fit linearises with. ``value``: the premiums at ``vol`` when already priced
+    (by :func:`price`, same arguments), returned as given (only the vega's two bumps are
+    priced).
 
     Notes
     -----
@@ -540,18 +548,24 @@ def greeks(
     discretised price is smooth in ``vol`` (fixed nodes, fixed sweeps), so the difference is
     accurate to about ``1e-8`` of vega; it is exactly Black-76's where ``r <= 0``.
     """
-    vol_ = np.asarray(vol, dtype=np.float64)
-    value, delta = _values(F, K, T, r, vol_, kind)
+    call = is_call(kind)
+    shapes = (np.shape(F), np.shape(K), np.shape(T), np.shape(r), np.shape(vol), call.shape)
+    vol_ = np.broadcast_to(np.asarray(vol, dtype=np.float64), np.broadcast_shapes(*shapes))
     bump = VEGA_BUMP * vol_
-    up = price(F, K, T, r, vol_ + bump, kind)
-    down = price(F, K, T, r, vol_ - bump, kind)
+    out: dict[str, FloatArray] = {}
+    if delta:
+        value, out["delta"] = _values(F, K, T, r, vol_, call)
+    if value is None:
+        value, up, down = price(F, K, T, r, np.stack([vol_, vol_ + bump, vol_ - bump]), call)
+    else:
+        up, down = price(F, K, T, r, np.stack([vol_ + bump, vol_ - bump]), call)
     with np.errstate(divide="ignore", invalid="ignore"):
         vega = np.where(bump > 0.0, (up - down) / (2.0 * bump), 0.0)
     euro_vega = black76.greeks(F, K, T, r, vol_, kind)["vega"]
     vega = np.where(np.asarray(r, dtype=np.float64) <= 0.0, euro_vega, vega)
     return {
-        "price": value,
-        "delta": delta,
+        "price": np.asarray(value, dtype=np.float64),
+        **out,
         "vega": np.asarray(vega, dtype=np.float64),
     }
 

@@ -74,8 +74,12 @@ class QuoteFits:
     kind : ``"call"`` or ``"put"``.
     strike : in currency per unit.
     time_to_expiry : ACT/365 years from the trade date.
-    market_vol, model_vol : Black-76 implied volatilities, decimal.
+    market_vol, model_vol : implied volatilities, decimal (Black-76, or American for an
+        American quote).
     market_price, model_price : premiums, currency per unit.
+    exercise : ``"european"`` or ``"american"`` per quote (empty: every quote European).
+    early_exercise : early-exercise premium per quote at its market vol (0 for a European
+        quote; ``None``: every quote European).
 
     Arrays are copied to read-only float64.
     """
@@ -90,12 +94,18 @@ class QuoteFits:
     model_vol: FloatArray
     market_price: FloatArray
     model_price: FloatArray
+    exercise: tuple[str, ...] = ()
+    early_exercise: FloatArray | None = None
 
     def __post_init__(self) -> None:
         n = len(self.label)
         if n == 0:
             raise ReportInputError("report", "a fit report needs at least one fitted quote")
-        for name in ("expiry", "delivery", "kind"):
+        if not self.exercise:
+            object.__setattr__(self, "exercise", ("european",) * n)
+        if self.early_exercise is None:
+            object.__setattr__(self, "early_exercise", np.zeros(n))
+        for name in ("expiry", "delivery", "kind", "exercise"):
             seq = tuple(getattr(self, name))
             if len(seq) != n:
                 raise ReportInputError("report", f"quotes.{name} has {len(seq)} entries, not {n}")
@@ -108,6 +118,7 @@ class QuoteFits:
             "model_vol",
             "market_price",
             "model_price",
+            "early_exercise",
         ):
             a = _array(f"quotes.{name}", getattr(self, name))
             if a.size != n:
@@ -805,7 +816,40 @@ def _section_fit(inp: ReportInputs) -> str:
             "</div>",
             '<p class="note">Errors are model minus market over the fitted quotes; one vol '
             "point is 0.01 of implied volatility.</p>",
+            _american_quotes(q, cur),
             f"<h3>Solver warnings</h3><ul>{warned}</ul>" if warned else "",
+        ]
+    )
+
+
+def _american_quotes(q: QuoteFits, cur: str) -> str:
+    """The American-style quotes with their early-exercise premiums ("" when none)."""
+    am = [i for i, style in enumerate(q.exercise) if style == "american"]
+    if not am:
+        return ""
+    assert q.early_exercise is not None
+    rows = [
+        [
+            _e(q.label[i]),
+            _e(q.kind[i]),
+            _num(float(q.strike[i]), "g"),
+            _e(q.expiry[i]),
+            _num(float(q.market_price[i]), ".4f"),
+            _num(float(q.early_exercise[i]), ".4f"),
+            _num(100 * float(q.market_vol[i]), ".2f"),
+            _num(100 * float(q.model_vol[i]), ".2f"),
+        ]
+        for i in am
+    ]
+    head = ["quote", "kind", "strike", "expiry", "premium", "early exercise", "vol %", "model %"]
+    return "\n".join(
+        [
+            f'<h3 id="american">American-style quotes ({len(am)} of {len(q)})</h3>',
+            _table(head, rows),
+            f'<p class="note">Premiums and early-exercise premiums in {cur} per unit; vols are '
+            "American implied volatilities; the model prices an American quote at the constant "
+            "volatility with the model's total variance to expiry (an approximation: see the "
+            "README).</p>",
         ]
     )
 

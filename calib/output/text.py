@@ -16,6 +16,7 @@ if TYPE_CHECKING:
     from calib.store.estimates import EstimateRecord
     from calib.store.quotes import OptionChain
     from calib.store.runs import ApprovalRecord, RunRecord
+    from calib.types import FloatArray
 
 
 def parameters() -> tuple[str, ...]:
@@ -160,18 +161,32 @@ def run_lines(run: RunRecord) -> list[str]:
     return lines
 
 
-NO_CONTRACT: Mapping[str, Any] = {"delivery": None, "expiry": None, "kind": None, "strike": None}
+NO_CONTRACT: Mapping[str, Any] = {
+    "delivery": None,
+    "expiry": None,
+    "kind": None,
+    "strike": None,
+    "exercise": None,
+    "early_exercise": None,
+}
 """The contract keys of a residual whose quote row is no longer stored."""
 
 
-def option_contracts(chain: OptionChain) -> dict[int, dict[str, Any]]:
-    """Quote id -> its ``delivery``, ``expiry`` (ISO dates), ``kind`` and ``strike``."""
+def option_contracts(
+    chain: OptionChain, early_exercise: FloatArray | None = None
+) -> dict[int, dict[str, Any]]:
+    """Quote id -> its ``delivery``, ``expiry`` (ISO dates), ``kind``, ``strike``,
+    ``exercise`` (``european``/``american``) and ``early_exercise`` (its early-exercise
+    premium, per option of ``chain``; ``None`` where not given or not computable)."""
+    early = [math.nan] * len(chain) if early_exercise is None else early_exercise.tolist()
     return {
         int(chain.row_id[j]): {
             "delivery": str(chain.delivery[j]),
             "expiry": str(chain.expiry[j]),
             "kind": "call" if chain.is_call[j] else "put",
             "strike": float(chain.strike[j]),
+            "exercise": "american" if chain.american[j] else "european",
+            "early_exercise": None if math.isnan(early[j]) else float(early[j]),
         }
         for j in range(len(chain))
     }
@@ -207,12 +222,14 @@ def residual_table(
                 str(c.get("delivery", "-")),
                 str(c.get("expiry", "-")),
                 str(c.get("kind", "-")),
+                str(c.get("exercise") or "-")[:2],
                 g(c.get("strike"), "g"),
                 g(r["market_price"], ".4f"),
                 g(r["model_price"], ".4f"),
                 g(100 * r["market_vol"], ".2f"),
                 g(100 * r["model_vol"], ".2f"),
                 g(100 * r["vol_residual"], "+.3f"),
+                g(c.get("early_exercise"), ".4f"),
             ]
         )
     headers = [
@@ -220,15 +237,20 @@ def residual_table(
         "delivery",
         "expiry",
         "kind",
+        "ex",
         "strike",
         "premium mkt",
         "premium model",
         "vol % mkt",
         "vol % model",
         "resid vp",
+        "early ex",
     ]
-    title = "residuals, model minus market (vp = vol points, 0.01 of Black vol):"
-    return [title, *("  " + line for line in table(headers, rows, ">>>>>>>>>>"))]
+    title = (
+        "residuals, model minus market (vp = vol points, 0.01 of implied vol; ex = exercise "
+        "style, eu/am; early ex = early-exercise premium at the market vol):"
+    )
+    return [title, *("  " + line for line in table(headers, rows, ">>>>>>>>>>>>"))]
 
 
 def gate_lines(gates: Sequence[Mapping[str, Any]]) -> list[str]:

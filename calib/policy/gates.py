@@ -10,8 +10,11 @@ earlier sub-solve flagged inaccurate is shown but does not fail it), ``decay_bou
 ``jump_sigma_spot``, ``jump_sigma_yield`` (relative change) and ``jump_rho`` (absolute change)
 against the approved set in force (with no approved set yet they pass with no value),
 ``constraints`` (every constraint the solver used holds within its tolerance; value = the
-number that do not) and ``identified`` (the quotes identify every fitted parameter).
-``--auto-approve`` approves only when every gate passes.
+number that do not), ``identified`` (the quotes identify every fitted parameter) and
+``curve_move`` (the day's futures curve against the previous stored trading day's: the largest
+``|ln(F / F_previous)|`` over the deliveries both days carry, so a settle typed x10 or /10
+moves it by ln 10 = 2.3 either way; with no earlier day, or no delivery in common, it passes
+with no value). ``--auto-approve`` approves only when every gate passes.
 """
 
 from __future__ import annotations
@@ -19,9 +22,11 @@ from __future__ import annotations
 import math
 from collections.abc import Mapping
 from dataclasses import asdict, dataclass, fields
+from datetime import date
 from typing import TYPE_CHECKING, Any
 
 import numpy as np
+import numpy.typing as npt
 
 from calib.errors import SettingError
 from calib.model.twofactor import TwoFactorParams
@@ -48,6 +53,9 @@ class GateLimits:
     max_jump_sigma_spot, max_jump_sigma_yield : relative change against the approved set.
     max_jump_rho : absolute change of the correlation against the approved set.
     decay_tolerance : slack below zero still accepted by the decay-bound gate (solver noise).
+    max_curve_move : largest ``|ln(F / F_previous)|`` of one delivery's settle against the
+        previous stored trading day (0.2: about +22% / -18%; a day-on-day move of a futures
+        settle beyond that is rare outside a market shock, common practice).
     """
 
     max_rmse_vol_points: float = 1.0
@@ -56,6 +64,7 @@ class GateLimits:
     max_jump_sigma_yield: float = 0.25
     max_jump_rho: float = 0.2
     decay_tolerance: float = 1e-8
+    max_curve_move: float = 0.2
 
     def __post_init__(self) -> None:
         for f in fields(self):
@@ -78,14 +87,85 @@ class GateLimits:
         return cls(**dict(data))
 
 
+@dataclass(frozen=True, slots=True)
+class CurveMove:
+    """The day's futures curve against the previous stored trading day's (see
+    :func:`curve_move`).
+
+    Attributes
+    ----------
+    previous_day : the trading day compared with.
+    common : deliveries both days carry.
+    size : largest ``|ln(F / F_previous)|`` over them (``inf`` where a settle is not a positive
+        number; ``None`` when there is no delivery in common).
+    delivery : where that largest move is (``None`` with no delivery in common).
+    previous, settle : the two settles there.
+    """
+
+    previous_day: date
+    common: int
+    size: float | None
+    delivery: date | None
+    previous: float
+    settle: float
+
+
+def curve_move(
+    delivery: npt.ArrayLike,
+    settle: npt.ArrayLike,
+    previous_delivery: npt.ArrayLike,
+    previous_settle: npt.ArrayLike,
+    previous_day: date,
+) -> CurveMove:
+    """The move of a futures curve (``delivery``, ``settle``) from the previous day's, per
+    delivery both carry (vectorised; either curve in any order)."""
+    today = np.asarray(delivery, dtype="datetime64[D]")
+    before = np.asarray(previous_delivery, dtype="datetime64[D]")
+    common, i, j = np.intersect1d(today, before, return_indices=True)
+    if common.size == 0:
+        return CurveMove(previous_day, 0, None, None, math.nan, math.nan)
+    new = np.asarray(settle, dtype=np.float64)[i]
+    old = np.asarray(previous_settle, dtype=np.float64)[j]
+    usable = np.isfinite(new) & np.isfinite(old) & (new > 0.0) & (old > 0.0)
+    with np.errstate(divide="ignore", invalid="ignore"):
+        size = np.where(usable, np.abs(np.log(np.where(usable, new / old, 1.0))), np.inf)
+    k = int(np.argmax(size))
+    return CurveMove(
+        previous_day,
+        int(common.size),
+        float(size[k]),
+        common[k].astype(date),
+        float(old[k]),
+        float(new[k]),
+    )
+
+
+def _curve_gate(move: CurveMove | None, limit: float) -> Gate:
+    if move is None:
+        return Gate("curve_move", None, limit, True, "no earlier trading day stored")
+    if move.size is None:
+        return Gate(
+            "curve_move", None, limit, True, f"no delivery in common with {move.previous_day}"
+        )
+    detail = (
+        f"|ln(F/F_prev)| at delivery {move.delivery} against {move.previous_day}: "
+        f"{move.previous:.6g} -> {move.settle:.6g} ({move.common} deliveries compared)"
+    )
+    return Gate("curve_move", move.size, limit, move.size <= limit, detail)
+
+
 def _relative(new: float, old: float) -> float:
     return abs(new - old) / abs(old) if old != 0.0 else (0.0 if new == old else math.inf)
 
 
 def evaluate_gates(
-    result: CalibrationResult, limits: GateLimits, approved: TwoFactorParams | None
+    result: CalibrationResult,
+    limits: GateLimits,
+    approved: TwoFactorParams | None,
+    move: CurveMove | None = None,
 ) -> tuple[Gate, ...]:
-    """The gates of the module notes for ``result``, against the ``approved`` set in force."""
+    """The gates of the module notes for ``result``, against the ``approved`` set in force;
+    ``move`` is the day's curve against the previous stored day (``None``: no earlier day)."""
     flags = f" ({', '.join(result.flags)})" if result.flags else ""
     earlier = (
         f"{result.inaccurate_steps} earlier sub-solve(s) inaccurate, final solve judged"
@@ -175,6 +255,7 @@ def evaluate_gates(
             result.not_identified_reason,
         )
     )
+    gates.append(_curve_gate(move, limits.max_curve_move))
     return tuple(gates)
 
 

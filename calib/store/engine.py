@@ -9,7 +9,9 @@ wrote first. ``postgresql://`` URLs use psycopg 3.
 
 from __future__ import annotations
 
+import functools
 import hashlib
+import math
 import os
 import sqlite3
 from collections.abc import Iterator
@@ -70,7 +72,9 @@ def sqlite_file(url: URL) -> Path | None:
     return Path(str(url.database))
 
 
-def create_store_engine(url: str, *, echo: bool = False, read_only: bool = False) -> Engine:
+def create_store_engine(
+    url: str, *, echo: bool = False, read_only: bool = False, timeout: float | None = None
+) -> Engine:
     """A new engine for ``url``, configured for calib's store.
 
     Parameters
@@ -82,6 +86,10 @@ def create_store_engine(url: str, *, echo: bool = False, read_only: bool = False
         file is opened with ``mode=ro``, or ``immutable=1`` when its folder cannot be written
         (a read-only mount, where even a reader cannot make WAL side files; nothing can write
         there either); no pragma that writes is run. PostgreSQL: every transaction is read-only.
+    timeout : seconds one statement may run (PostgreSQL ``statement_timeout``; the database
+        then cancels it with SQLSTATE 57014) and a writer waits for SQLite's write lock (its
+        busy timeout; default :data:`SQLITE_BUSY_TIMEOUT_MS`). ``None``: no statement timeout
+        on PostgreSQL.
 
     Notes
     -----
@@ -92,26 +100,31 @@ def create_store_engine(url: str, *, echo: bool = False, read_only: bool = False
     correct transactional DDL and locking.
     """
     parsed = parse_url(url)
+    if timeout is not None and not (math.isfinite(timeout) and timeout > 0):
+        raise ValueError(f"timeout must be a positive number of seconds, got {timeout!r}")
+    busy_ms = SQLITE_BUSY_TIMEOUT_MS if timeout is None else max(1, round(timeout * 1000))
     if parsed.get_backend_name() == "sqlite" and read_only:
-        return _sqlite_reader(parsed, echo)
+        return _sqlite_reader(parsed, echo, busy_ms)
     if parsed.get_backend_name() == "sqlite":
-        engine = create_engine(
-            parsed, echo=echo, connect_args={"timeout": SQLITE_BUSY_TIMEOUT_MS / 1000}
-        )
-        event.listen(engine, "connect", _sqlite_on_connect)
+        engine = create_engine(parsed, echo=echo, connect_args={"timeout": busy_ms / 1000})
+        event.listen(engine, "connect", functools.partial(_sqlite_on_connect, busy_ms=busy_ms))
         event.listen(engine, "begin", _sqlite_on_begin)
         return engine
-    if read_only:
-        return create_engine(
-            parsed,
-            echo=echo,
-            pool_pre_ping=True,
-            execution_options={"postgresql_readonly": True},
-        )
-    return create_engine(parsed, echo=echo, pool_pre_ping=True)
+    options = {"postgresql_readonly": True} if read_only else {}
+    engine = create_engine(parsed, echo=echo, pool_pre_ping=True, execution_options=options)
+    if timeout is not None:
+        event.listen(engine, "connect", functools.partial(_pg_on_connect, timeout_ms=busy_ms))
+    return engine
 
 
-def _sqlite_reader(parsed: URL, echo: bool) -> Engine:
+def _pg_on_connect(dbapi_connection: Any, _record: Any, *, timeout_ms: int) -> None:
+    """``statement_timeout`` for the whole session (committed, so it outlives this transaction)."""
+    with dbapi_connection.cursor() as cursor:
+        cursor.execute(f"SET statement_timeout = {int(timeout_ms)}")
+    dbapi_connection.commit()
+
+
+def _sqlite_reader(parsed: URL, echo: bool, busy_ms: int = SQLITE_BUSY_TIMEOUT_MS) -> Engine:
     """A read-only SQLite engine (``mode=ro``, or ``immutable=1`` on a read-only folder)."""
     path = sqlite_file(parsed)
     if path is None:
@@ -121,34 +134,29 @@ def _sqlite_reader(parsed: URL, echo: bool) -> Engine:
     target = f"file:{quote(str(path.resolve()))}?{flag}"
 
     def connect() -> sqlite3.Connection:
-        return sqlite3.connect(
-            target, uri=True, timeout=SQLITE_BUSY_TIMEOUT_MS / 1000, check_same_thread=False
-        )
+        return sqlite3.connect(target, uri=True, timeout=busy_ms / 1000, check_same_thread=False)
 
     engine = create_engine("sqlite://", echo=echo, creator=connect)
-    event.listen(engine, "connect", _sqlite_reader_on_connect)
+    event.listen(
+        engine, "connect", functools.partial(_sqlite_on_connect, busy_ms=busy_ms, wal=False)
+    )
     event.listen(engine, "begin", _sqlite_on_begin)
     return engine
 
 
-def _sqlite_reader_on_connect(dbapi_connection: sqlite3.Connection, _record: Any) -> None:
+def _sqlite_on_connect(
+    dbapi_connection: sqlite3.Connection, _record: Any, *, busy_ms: int, wal: bool = True
+) -> None:
+    """Pragmas of every connection; a reader (``wal=False``) runs none that writes."""
     dbapi_connection.isolation_level = None
     cursor = dbapi_connection.cursor()
     try:
+        if wal:
+            cursor.execute("PRAGMA journal_mode=WAL")
         cursor.execute("PRAGMA foreign_keys=ON")
-        cursor.execute(f"PRAGMA busy_timeout={SQLITE_BUSY_TIMEOUT_MS}")
-    finally:
-        cursor.close()
-
-
-def _sqlite_on_connect(dbapi_connection: sqlite3.Connection, _record: Any) -> None:
-    dbapi_connection.isolation_level = None
-    cursor = dbapi_connection.cursor()
-    try:
-        cursor.execute("PRAGMA journal_mode=WAL")
-        cursor.execute("PRAGMA foreign_keys=ON")
-        cursor.execute("PRAGMA synchronous=NORMAL")
-        cursor.execute(f"PRAGMA busy_timeout={SQLITE_BUSY_TIMEOUT_MS}")
+        if wal:
+            cursor.execute("PRAGMA synchronous=NORMAL")
+        cursor.execute(f"PRAGMA busy_timeout={busy_ms}")
     finally:
         cursor.close()
 
@@ -194,10 +202,12 @@ class Store:
         return self.engine.url.render_as_string(hide_password=True)
 
 
-def make_store(url: str, *, echo: bool = False, read_only: bool = False) -> Store:
+def make_store(
+    url: str, *, echo: bool = False, read_only: bool = False, timeout: float | None = None
+) -> Store:
     """A :class:`Store` for ``url`` (no connection is opened yet); see
-    :func:`create_store_engine` for ``read_only``."""
-    engine = create_store_engine(url, echo=echo, read_only=read_only)
+    :func:`create_store_engine` for ``read_only`` and ``timeout``."""
+    engine = create_store_engine(url, echo=echo, read_only=read_only, timeout=timeout)
     return Store(engine=engine, sessions=sessionmaker(engine, expire_on_commit=False))
 
 

@@ -39,6 +39,7 @@ from calib.store.base import (
     UtcDateTime,
     in_check,
 )
+from calib.types import EXERCISE_STYLES
 
 BATCH_KINDS = ("futures", "options", "rates")
 """What an ingest batch holds; one file is one kind."""
@@ -51,6 +52,7 @@ class Commodity(Base):
     """A commodity whose futures and options are quoted (code is what files carry)."""
 
     __tablename__ = "commodities"
+    __table_args__ = (CheckConstraint(in_check("exercise", EXERCISE_STYLES), name="exercise"),)
 
     id: Mapped[int] = mapped_column(Integer, primary_key=True)
     code: Mapped[str] = mapped_column(String(CODE_CHARS), unique=True)
@@ -59,6 +61,8 @@ class Commodity(Base):
     currency: Mapped[str] = mapped_column(String(CURRENCY_CHARS))
     calendar_rule: Mapped[str] = mapped_column(Text)
     """Free text naming the contract calendar (e.g. ``monthly``); read by people, not code."""
+    exercise: Mapped[str] = mapped_column(String(8), server_default="european")
+    """The style of its options where an options file does not say (``european``/``american``)."""
 
 
 class IngestBatch(Base):
@@ -109,6 +113,7 @@ class OptionQuote(Base):
             "commodity_id", "trade_date", "delivery", "expiry", "is_call", "strike", "batch_id"
         ),
         CheckConstraint("premium IS NOT NULL OR implied_vol IS NOT NULL", name="price_given"),
+        CheckConstraint(in_check("exercise", EXERCISE_STYLES), name="exercise"),
     )
 
     id: Mapped[int] = mapped_column(Integer, primary_key=True)
@@ -124,6 +129,8 @@ class OptionQuote(Base):
     bid: Mapped[float | None] = mapped_column(Float)
     ask: Mapped[float | None] = mapped_column(Float)
     line: Mapped[int] = mapped_column(Integer)
+    exercise: Mapped[str] = mapped_column(String(8), server_default="european")
+    """``european`` (Black-76) or ``american`` (exercisable any day up to expiry)."""
 
 
 class RateQuote(Base):

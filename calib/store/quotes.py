@@ -99,7 +99,9 @@ class OptionChain:
     """One day's option quotes, sorted by (delivery, expiry, put before call, strike).
 
     ``premium``, ``implied_vol``, ``bid`` and ``ask`` are NaN where the file gave none (every
-    row has a premium or an implied volatility or both). Arrays are read-only.
+    row has a premium or an implied volatility or both); ``american`` is ``True`` for an
+    American-style quote (its premium and implied volatility are American ones). Arrays are
+    read-only.
     """
 
     delivery: DateArray
@@ -111,6 +113,7 @@ class OptionChain:
     bid: FloatArray
     ask: FloatArray
     row_id: IntArray
+    american: BoolArray
 
     def __len__(self) -> int:
         return len(self.strike)
@@ -168,6 +171,8 @@ class CommodityRecord:
     unit: str
     currency: str
     calendar_rule: str
+    exercise: str = "european"
+    """The style of its options where an options file does not say."""
 
 
 # --- commodities and batches -------------------------------------------------------------------
@@ -181,6 +186,7 @@ def _record(row: Commodity) -> CommodityRecord:
         unit=row.unit,
         currency=row.currency,
         calendar_rule=row.calendar_rule,
+        exercise=row.exercise,
     )
 
 
@@ -214,11 +220,26 @@ def all_commodity_codes(*, session: Session) -> list[str]:
     return list(session.scalars(select(Commodity.code).order_by(Commodity.code)))
 
 
+def commodity_american(*, session: Session, ids: Sequence[int]) -> dict[int, bool]:
+    """Id -> ``True`` where the commodity's default exercise style is American."""
+    rows = session.execute(select(Commodity.id, Commodity.exercise).where(Commodity.id.in_(ids)))
+    return {int(id_): style == "american" for id_, style in rows}
+
+
 def add_commodity(
-    *, session: Session, code: str, name: str, unit: str, currency: str, calendar_rule: str
+    *,
+    session: Session,
+    code: str,
+    name: str,
+    unit: str,
+    currency: str,
+    calendar_rule: str,
+    exercise: str = "european",
 ) -> CommodityRecord:
-    """Register a commodity; returns it with its new id."""
+    """Register a commodity (``exercise``: its options' default style); returns it with its
+    new id."""
     row = Commodity(code=code, name=name, unit=unit, currency=currency, calendar_rule=calendar_rule)
+    row.exercise = exercise
     session.add(row)
     session.flush()
     return _record(row)
@@ -507,6 +528,11 @@ def zero_curves(
     }
 
 
+def american_of(styles: Sequence[str] | npt.NDArray[Any]) -> BoolArray:
+    """Stored exercise styles as a read-only boolean array (``True`` = American)."""
+    return np.asarray(readonly([s == "american" for s in styles], np.bool_))
+
+
 def nan_for_none(values: Sequence[float | None]) -> FloatArray:
     """A read-only float array with NaN where a stored value is NULL."""
     return np.asarray(readonly([np.nan if v is None else v for v in values], np.float64))
@@ -543,6 +569,7 @@ _DAY_COLUMNS: Mapping[str, Mapping[str, npt.DTypeLike]] = {
         "implied_vol": np.float64,
         "bid": np.float64,
         "ask": np.float64,
+        "exercise": np.object_,
     },
     "rates": {"maturity": "datetime64[D]", "zero_rate": np.float64},
 }
@@ -643,7 +670,9 @@ def load_days(
                     delivery=fut["delivery"], settle=fut["settle"], row_id=fut["id"]
                 ),
                 options=OptionChain(
-                    **{name: opt[name] for name in _DAY_COLUMNS["options"]}, row_id=opt["id"]
+                    **{name: opt[name] for name in _DAY_COLUMNS["options"] if name != "exercise"},
+                    row_id=opt["id"],
+                    american=american_of(opt["exercise"]),
                 ),
                 rates=ZeroCurve(
                     trade_date=d,

@@ -15,7 +15,7 @@ from __future__ import annotations
 import warnings
 from collections.abc import Callable, Collection, Sequence
 from dataclasses import dataclass
-from datetime import date
+from datetime import date, timedelta
 from typing import Any
 
 import numpy as np
@@ -37,9 +37,9 @@ from calib.errors import (
     QuoteError,
     UnknownEstimateError,
 )
-from calib.model import black76
+from calib.model import american, black76
 from calib.model.twofactor import PARAM_NAMES, TwoFactorParams
-from calib.policy.gates import evaluate_gates
+from calib.policy.gates import CurveMove, curve_move, evaluate_gates
 from calib.policy.settings import RunSettings, default_settings
 from calib.record.fit import Dropped, FitRecord, Gate
 from calib.store.base import utc_now
@@ -50,7 +50,7 @@ from calib.store.estimates import (
     latest_estimate,
     unconverged_estimate_ids,
 )
-from calib.store.quotes import DayQuotes, load_day, year_fractions
+from calib.store.quotes import DayQuotes, current_quotes, load_day, trade_dates, year_fractions
 from calib.store.runs import (
     RunRecord,
     add_residuals,
@@ -62,6 +62,7 @@ from calib.store.runs import (
     require_run,
     study_baseline,
 )
+from calib.types import FloatArray
 from calib.workflows.approve import approve_in
 from calib.workflows.provenance import code_version, inputs_sha256
 
@@ -77,9 +78,10 @@ def option_quotes(day: DayQuotes) -> OptionQuotes:
 
     Forwards are the day's futures settlements of each option's delivery; discount factors
     come from the day's zero curve at the option expiry; times are ACT/365 from the trade
-    date. A quote with only an implied volatility gets its Black-76 premium at that
-    volatility; bid and ask are used only when every quote has both. Labels are the
-    ``option_quotes`` row ids.
+    date. A quote with only an implied volatility gets its premium at that volatility
+    (Black-76, or the American pricer for an American quote); bid and ask are used only when
+    every quote has both. Labels are the ``option_quotes`` row ids; the style is the stored
+    one (a day without American quotes is the all-European case).
 
     Raises
     ------
@@ -99,16 +101,17 @@ def option_quotes(day: DayQuotes) -> OptionQuotes:
     discount = day.rates.discount(o.expiry)
     premium = np.array(o.premium, dtype=np.float64)
     missing = np.isnan(premium)
-    if missing.any():
-        rate = -np.log(discount[missing]) / expiry[missing]
-        premium[missing] = black76.price(
-            forward[missing],
-            o.strike[missing],
-            expiry[missing],
-            rate,
-            o.implied_vol[missing],
-            o.is_call[missing],
-        )
+    for style, pricer in ((~o.american, black76.price), (o.american, american.price)):
+        fill = missing & style
+        if fill.any():
+            premium[fill] = pricer(
+                forward[fill],
+                o.strike[fill],
+                expiry[fill],
+                -np.log(discount[fill]) / expiry[fill],
+                o.implied_vol[fill],
+                o.is_call[fill],
+            )
     quoted = ~(np.isnan(o.bid) | np.isnan(o.ask))
     return OptionQuotes(
         expiry=expiry,
@@ -121,7 +124,35 @@ def option_quotes(day: DayQuotes) -> OptionQuotes:
         bid=np.asarray(o.bid) if quoted.all() else None,
         ask=np.asarray(o.ask) if quoted.all() else None,
         labels=tuple(str(i) for i in o.row_id.tolist()),
+        american=np.asarray(o.american) if o.american.any() else None,
     )
+
+
+def early_exercise(day: DayQuotes) -> FloatArray:
+    """Each stored option's early-exercise premium at its own implied volatility.
+
+    0 for a European quote; for an American one its American premium less the Black-76
+    premium at its American implied volatility (that of its premium, else the stored one).
+    NaN where there is none: no futures settlement for its delivery that day, or no American
+    implied volatility (e.g. a premium at intrinsic value).
+    """
+    o = day.options
+    out = np.zeros(len(o))
+    am = np.flatnonzero(o.american)
+    if am.size == 0:
+        return out
+    F = day.futures.settle_for(o.delivery[am])
+    T = year_fractions(day.trade_date, o.expiry[am])
+    r = -np.log(day.rates.discount(o.expiry[am])) / T
+    K, call, premium = o.strike[am], o.is_call[am], o.premium[am]
+    with np.errstate(invalid="ignore", divide="ignore"):
+        vol = np.where(
+            np.isnan(premium),
+            o.implied_vol[am],
+            american.implied_vol(premium, F, K, T, r, call),
+        )
+        out[am] = american.early_exercise_premium(F, K, T, r, vol, call)
+    return out
 
 
 def _inputs(day: DayQuotes) -> dict[str, Any]:
@@ -376,7 +407,10 @@ def _store_in(
     record = None
     if result is not None:
         gates = evaluate_gates(
-            result, settings.gates, None if previous is None else previous.params
+            result,
+            settings.gates,
+            None if previous is None else previous.params,
+            _curve_move(session, day),
         )
         record = fit_record(result, gates, attempt.warnings)
     run_id = add_run(
@@ -424,6 +458,30 @@ def _store_in(
         note = "auto-approved: every gate passed"
         approve_in(session, run_id, day.commodity_id, by=by, note=note)
     return StoredAttempt(run_id, previous, approved)
+
+
+def _curve_move(session: Session, day: DayQuotes) -> CurveMove | None:
+    """``day``'s futures curve against the previous stored trading day's, as known at the
+    day's ``as_of`` (``None``: no earlier day)."""
+    end = day.trade_date - timedelta(days=1)
+    before = trade_dates(session=session, commodity=day.commodity, end=end, as_of=day.as_of)
+    if not before:
+        return None
+    rows = current_quotes(
+        session=session,
+        kind="futures",
+        commodity_ids=[day.commodity_id],
+        start=before[-1],
+        end=before[-1],
+        as_of=day.as_of,
+    )
+    return curve_move(
+        day.futures.delivery,
+        day.futures.settle,
+        rows["delivery"].to_numpy().astype("datetime64[D]"),
+        rows["settle"].to_numpy(dtype=np.float64, na_value=np.nan),
+        before[-1],
+    )
 
 
 def study_settings(settings: RunSettings, study: str | None) -> dict[str, Any]:

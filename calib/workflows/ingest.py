@@ -70,6 +70,7 @@ from calib.store.quotes import (
     add_batch,
     add_commodity,
     all_commodity_codes,
+    commodity_american,
     current_quotes,
     find_loaded_batch,
     finish_batch,
@@ -78,7 +79,7 @@ from calib.store.quotes import (
     zero_curves,
 )
 from calib.store.quotes import commodity_ids as stored_commodity_ids
-from calib.types import FloatArray, IntArray
+from calib.types import EXERCISE_STYLES, FloatArray, IntArray
 
 MAX_REPORTED = 20
 """How many row problems a report carries (the quarantine table has them all)."""
@@ -91,10 +92,16 @@ class NewCommodity:
     unit: str = "unit"
     currency: str = "USD"
     calendar_rule: str = "monthly"
+    exercise: str = "european"
+    """The default exercise style of its options (``european`` or ``american``)."""
 
     def __post_init__(self) -> None:
         check_text("the unit", self.unit, UNIT_CHARS)
         check_text("the currency", self.currency, CURRENCY_CHARS)
+        if self.exercise not in EXERCISE_STYLES:
+            raise ValueError(
+                f"exercise must be one of {', '.join(EXERCISE_STYLES)}, not {self.exercise!r}"
+            )
 
 
 @dataclass(frozen=True)
@@ -222,8 +229,10 @@ class _Run:
             if self.kind == "futures":
                 checked = check_futures(rows, cid)
             else:
+                styles = commodity_american(session=self.session, ids=np.unique(cid).tolist())
+                default = np.array([styles.get(int(c), False) for c in cid], dtype=np.bool_)
                 checked = check_options(
-                    rows, cid, _forwards(self.session), _discounts(self.session)
+                    rows, cid, _forwards(self.session), _discounts(self.session), default
                 )
                 self.no_curve.update(checked.no_curve)
         self.rows_read += rows.n + len(table.early)
@@ -250,6 +259,7 @@ class _Run:
                     unit=self.create.unit,
                     currency=self.create.currency,
                     calendar_rule=self.create.calendar_rule,
+                    exercise=self.create.exercise,
                 )
                 known[code] = record.id
                 self.created.append(code)

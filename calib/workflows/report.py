@@ -67,7 +67,7 @@ from calib.store.runs import (
     run_quotes,
     run_residuals,
 )
-from calib.workflows.fit import option_quotes
+from calib.workflows.fit import early_exercise, option_quotes
 from calib.workflows.stability import DEFAULT_K, assemble
 
 ANCHOR_FACTORS: tuple[float, ...] = (0.0, 0.1, 1.0, 10.0, 100.0, 1000.0)
@@ -139,6 +139,8 @@ def _quote_fits(day: DayQuotes, residuals: pd.DataFrame) -> QuoteFits:
         model_vol=residuals["model_vol"].to_numpy(),
         market_price=residuals["market_price"].to_numpy(),
         model_price=residuals["model_price"].to_numpy(),
+        exercise=tuple("american" if a else "european" for a in o.american[pos]),
+        early_exercise=early_exercise(day)[pos],
     )
 
 

@@ -101,3 +101,34 @@ def test_commands_need_an_initialised_database(
     code, out, _ = run(capsys, monkeypatch, "init", "--json")
     assert code == 0 and json.loads(out)["after"] == head_revision()
     assert (tmp_path / "db" / "calib.sqlite").exists()
+
+
+def test_american_commodity_quotes_list_style_and_early_exercise(
+    db_url: str, tmp_path: Path, capsys: pytest.CaptureFixture[str], monkeypatch: pytest.MonkeyPatch
+) -> None:
+    """``--exercise american`` on registration makes the options American unless a row says
+    otherwise; ``calib quotes`` lists each style and early-exercise premium (``--json`` too)."""
+    fut = tmp_path / "f.csv"
+    fut.write_text(FUTURES)
+    args = ("--create", "--exercise", "american", "--db", db_url)
+    assert run(capsys, monkeypatch, "ingest", "futures", str(fut), *args)[0] == 0
+    rates = tmp_path / "r.csv"
+    rates.write_text("trade_date,maturity,zero_rate\n2031-03-03,2032-03-03,0.08\n")
+    assert run(capsys, monkeypatch, "ingest", "rates", str(rates), "--db", db_url)[0] == 0
+    opt = tmp_path / "o.csv"
+    opt.write_text(
+        "trade_date,commodity,delivery,expiry,kind,strike,premium,exercise\n"
+        "2031-03-03,QRX,2031-05-01,2031-04-25,put,60,10.2,\n"  # the commodity's default
+        "2031-03-03,QRX,2031-05-01,2031-04-25,call,50,2.1,european\n"
+    )
+    code, out, _ = run(capsys, monkeypatch, "ingest", "options", str(opt), "--db", db_url)
+    assert code == 0, out
+    code, out, _ = run(capsys, monkeypatch, "quotes", "QRX", "--date", "2031-03-03", "--db", db_url)
+    assert code == 0 and "exercise" in out and "early_exercise" in out
+    assert "american" in out and "european" in out
+    code, out, _ = run(
+        capsys, monkeypatch, "quotes", "QRX", "--date", "2031-03-03", "--json", "--db", db_url
+    )
+    put, call = json.loads(out)["options"]
+    assert put["exercise"] == "american" and put["early_exercise"] > 0.0
+    assert call["exercise"] == "european" and call["early_exercise"] == 0.0

@@ -152,22 +152,24 @@ def test_residuals_by_contract_in_vol_points() -> None:
         is_call=np.array([False, True]),
         strike=np.array([1350.0, 1700.0]),
         premium=nan, implied_vol=nan, bid=nan, ask=nan,
-        row_id=np.array([11, 12]),
+        row_id=np.array([11, 12]), american=np.array([False, True]),
     )  # fmt: skip
-    contracts = text.option_contracts(chain)
+    contracts = text.option_contracts(chain, np.array([0.0, 0.0123]))
     assert contracts[12] == {
-        "delivery": "2033-07-12", "expiry": "2033-07-05", "kind": "call", "strike": 1700.0
+        "delivery": "2033-07-12", "expiry": "2033-07-05", "kind": "call", "strike": 1700.0,
+        "exercise": "american", "early_exercise": 0.0123,
     }  # fmt: skip
     lines = text.residual_table(residuals, contracts)
-    assert "vol points" in lines[0]
-    assert lines[1].split()[-6:] == ["mkt", "vol", "%", "model", "resid", "vp"]
+    assert "vol points" in lines[0] and "early-exercise premium" in lines[0]
+    assert lines[1].split()[-8:] == ["mkt", "vol", "%", "model", "resid", "vp", "early", "ex"]
     # by expiry then strike; a quote whose row is gone last, with dashes
     assert lines[2].split() == [
-        "11", "2033-07-12", "2033-07-05", "put", "1350", "0.5000", "0.2800", "26.17", "24.32",
-        "-1.850",
+        "11", "2033-07-12", "2033-07-05", "put", "eu", "1350", "0.5000", "0.2800", "26.17",
+        "24.32", "-1.850", "0.0000",
     ]  # fmt: skip
-    assert lines[3].split()[0] == "12" and lines[3].split()[-1] == "+0.220"
-    assert lines[4].split()[:5] == ["13", "-", "-", "-", "-"]
+    assert lines[3].split()[0] == "12" and lines[3].split()[-2:] == ["+0.220", "0.0123"]
+    assert lines[3].split()[4] == "am"
+    assert lines[4].split()[:6] == ["13", "-", "-", "-", "-", "-"]
 
 
 def test_spread_sensitivities_state_their_unit() -> None:

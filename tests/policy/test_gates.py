@@ -2,13 +2,18 @@
 
 from __future__ import annotations
 
+import math
 from dataclasses import replace
+from datetime import date
 
+import numpy as np
 import pytest
 
 from calib.calibrate import CalibrationResult, fit
+from calib.errors import SettingError
 from calib.model.twofactor import TwoFactorParams
-from calib.policy.gates import GateLimits, evaluate_gates
+from calib.policy.gates import CurveMove, GateLimits, curve_move, evaluate_gates
+from calib.record.fit import Gate
 from tests.calibrate.quotes_from_model import make_quotes
 
 TRUE = TwoFactorParams(
@@ -64,3 +69,49 @@ def test_a_parameter_the_quotes_do_not_identify_fails_its_gate(clean: Calibratio
     vague = replace(clean, not_identified=("sigma_yield",), not_identified_reason="one expiry")
     gates = {g.name: g for g in evaluate_gates(vague, GateLimits(), None)}
     assert not gates["identified"].passed and gates["identified"].detail == "one expiry"
+
+
+# --- the day's curve move against the previous stored day -------------------------------------
+
+DAYS = np.array(["2031-02-11", "2031-03-11", "2031-04-08"], dtype="datetime64[D]")
+BEFORE = np.array([1621.0, 1630.5, 1641.0])
+
+
+def _curve_gate(
+    clean: CalibrationResult, move: CurveMove | None, limits: GateLimits | None = None
+) -> Gate:
+    gates = evaluate_gates(clean, limits or GateLimits(), None, move)
+    (gate,) = [g for g in gates if g.name == "curve_move"]
+    return gate
+
+
+def test_a_settle_typed_ten_times_fails_the_curve_move_gate(clean: CalibrationResult) -> None:
+    def _curve(settle: list[float], limits: GateLimits | None = None) -> Gate:
+        move = curve_move(DAYS, np.array(settle), DAYS[::-1], BEFORE[::-1], date(2031, 1, 10))
+        return _curve_gate(clean, move, limits)
+
+    typo = _curve([16210.0, 1631.0, 1640.0])  # 1621.0 typed as 16210.0
+    assert not typo.passed and typo.value == pytest.approx(math.log(10.0), rel=1e-12)
+    assert "2031-02-11" in typo.detail and "2031-01-10" in typo.detail
+    shrunk = _curve([1621.0, 163.05, 1641.0])  # a digit lost: the same size the other way
+    assert not shrunk.passed and shrunk.value == pytest.approx(math.log(10.0), rel=1e-12)
+    usual = _curve([1625.0, 1633.0, 1639.5])
+    assert usual.passed and usual.value == pytest.approx(math.log(1625.0 / 1621.0), rel=1e-12)
+    wide = GateLimits.from_dict({"max_curve_move": 3.0})  # the band is the settings file's
+    assert _curve([16210.0, 1631.0, 1640.0], wide).passed
+
+
+def test_curve_move_with_nothing_to_compare_passes_without_a_value(
+    clean: CalibrationResult,
+) -> None:
+    gate = _curve_gate(clean, None)
+    assert gate.passed and gate.value is None and "no earlier trading day" in gate.detail
+    apart = curve_move(DAYS, BEFORE, DAYS + 1, BEFORE, date(2031, 1, 10))
+    assert apart.size is None and apart.common == 0
+    negative = curve_move(DAYS, np.array([-1.0, 1630.5, 1641.0]), DAYS, BEFORE, date(2031, 1, 10))
+    assert negative.size == math.inf  # not a price: the gate cannot pass it
+
+
+def test_the_curve_move_band_is_checked_like_the_other_limits() -> None:
+    with pytest.raises(SettingError, match="max_curve_move"):
+        GateLimits.from_dict({"max_curve_move": -0.1})
