@@ -17,6 +17,7 @@ from __future__ import annotations
 import datetime as dt
 import json
 import os
+import pickle
 import tempfile
 import time
 from collections.abc import Callable, Generator, Iterable
@@ -24,9 +25,10 @@ from dataclasses import replace
 from pathlib import Path
 from typing import TypeVar
 
+from bench.serve_seed import seeded_fit
 from calib.compute.executor import InlineExecutor
 from calib.policy.settings import load_settings
-from calib.record.fit import BucketVols, FitRecord, Gate
+from calib.record.fit import Gate
 from calib.store.engine import Store, create_store_engine, make_store
 from calib.store.migrate import upgrade
 from calib.store.quotes import require_commodity, trade_dates
@@ -81,20 +83,8 @@ def _store_studies(
             cid = require_commodity(session=session, code=code).id
             for k, day in enumerate(days):
                 passed = k % 7 != 3
-                fit = FitRecord(
-                    params=params,
-                    buckets=(BucketVols(0.0, 5.0, params),),
-                    rmse=0.004,
-                    max_error=0.01,
-                    error_measure="vol",
-                    objective=1e-5,
-                    fit=1e-5,
-                    solver="stored by the benchmark",
-                    status="optimal",
-                    iterations=1,
-                    converged=True,
-                    gates=(Gate("rmse_vol", 0.4 if passed else 1.4, 1.0, passed, ""),),
-                )
+                gate = Gate("rmse_vol", 0.4 if passed else 1.4, 1.0, passed, "")
+                fit = replace(seeded_fit(params), gates=(gate,))
                 run_id = add_run(
                     session=session,
                     commodity_id=cid,
@@ -114,18 +104,20 @@ def _store_studies(
                 append_event(session=session, run_id=run_id, to_status="candidate", by="b", note="")
 
 
-class _Recording(InlineExecutor):
-    """This process, keeping the units it was given (the naive peer re-runs one)."""
+class Recording(InlineExecutor):
+    """This process, keeping the units it was given; with ``ship`` each goes through pickle
+    first, as any backend ships it (the policy tests use that)."""
 
-    def __init__(self) -> None:
+    def __init__(self, *, ship: bool = False) -> None:
         self.items: list[object] = []
+        self.ship = ship
 
     def map(
         self, fn: Callable[[T], R], items: Iterable[T], *, ahead: int | None = None
     ) -> Generator[R, None, None]:
         for item in items:
             self.items.append(item)
-            yield fn(item)
+            yield fn(pickle.loads(pickle.dumps(item)) if self.ship else item)
 
 
 def _naive(unit: ReplayUnit, sample: list[int]) -> float:
@@ -171,7 +163,7 @@ def main() -> None:
         _store_studies(store, code, policies, window, estimate_id)
         setup = time.perf_counter() - t0
         load = os.getloadavg()[0]
-        recorded = _Recording()
+        recorded = Recording()
         c0 = time.process_time()
         t0 = time.perf_counter()
         result = compare_policies(
