@@ -196,7 +196,7 @@ def estimates_cmd(
         return
     if commodity is not None:
         raise typer.BadParameter(f"unexpected argument {commodity!r} (did you mean `import`?)")
-    with open_store(db) as (store, _), store.sessions.begin() as session:
+    with open_store(db, read_only=True) as (store, _), store.sessions.begin() as session:
         records = list_estimates(session=session, commodity=what)
     if as_json:
         echo_json([r.to_dict() for r in records])
@@ -320,7 +320,7 @@ def runs_cmd(
     """List a commodity's runs, newest first, with their current status."""
     from calib.store.runs import list_runs
 
-    with open_store(db) as (store, _), store.sessions.begin() as session:
+    with open_store(db, read_only=True) as (store, _), store.sessions.begin() as session:
         runs = list_runs(
             session=session,
             commodity=commodity,
@@ -338,7 +338,7 @@ def show_cmd(run_id: RunId, db: DbOption = None, as_json: JsonOption = False) ->
     from calib.store.runs import require_run, run_quotes, run_residuals
     from calib.workflows.fit import early_exercise
 
-    with open_store(db) as (store, _), store.sessions.begin() as session:
+    with open_store(db, read_only=True) as (store, _), store.sessions.begin() as session:
         run = require_run(session=session, run_id=run_id)
         frame = run_residuals(session=session, run_id=run_id)
         residuals = cast("list[dict[str, Any]]", frame.to_dict(orient="records"))
@@ -374,7 +374,7 @@ def latest_cmd(
     if history:
         from calib.store.runs import approved_history
 
-        with open_store(db) as (store, _), store.sessions.begin() as session:
+        with open_store(db, read_only=True) as (store, _), store.sessions.begin() as session:
             approvals = approved_history(session=session, commodity=commodity)
         if as_json:
             echo_json([a.to_dict() for a in approvals])
@@ -405,7 +405,7 @@ def _read_in_force(db: str | None, commodity: str, as_of: datetime | None) -> Ru
         pass
     from calib.store.runs import read_in_force
 
-    with open_store(db) as (store, _):
+    with open_store(db, read_only=True) as (store, _):
         return read_in_force(store.sessions, commodity, as_of=as_of)
 
 
@@ -416,7 +416,7 @@ def rerun_cmd(run_id: RunId, db: DbOption = None, as_json: JsonOption = False) -
     """
     from calib.workflows import rerun as rerun_flow
 
-    with open_store(db) as (store, _):
+    with open_store(db, read_only=True) as (store, _):
         result = rerun_flow.rerun(store.sessions, run_id)
     if as_json:
         echo_json(result.to_dict())
