@@ -20,16 +20,20 @@ import json
 import resource
 import tempfile
 import time
-from dataclasses import replace
+from collections.abc import Iterator
+from contextlib import contextmanager
+from dataclasses import dataclass, replace
+from datetime import date
 from pathlib import Path
 
 from calib.compute.executor import ProcessExecutor
 from calib.policy.settings import RunSettings
-from calib.store.engine import make_store
+from calib.store.engine import Store, make_store
+from calib.store.estimates import EstimateRecord
 from calib.store.migrate import upgrade
 from calib.store.quotes import load_day, trade_dates
 from calib.workflows.backfill import backfill
-from calib.workflows.demo.scenario import ScenarioSpec, generate, write_csv
+from calib.workflows.demo.scenario import Scenario, ScenarioSpec, generate, write_csv
 from calib.workflows.estimates import import_estimate
 from calib.workflows.fit import attempt_fit
 from calib.workflows.ingest import NewCommodity, ingest_file
@@ -50,36 +54,59 @@ def _cpu_seconds() -> float:
     return total
 
 
+@dataclass(frozen=True)
+class Prepared:
+    """A temporary SQLite store with the scenario ingested and its true parameters imported."""
+
+    store: Store
+    scenario: Scenario
+    code: str
+    estimate: EstimateRecord
+    dates: list[date]
+    estimate_file: Path
+
+
+@contextmanager
+def prepared_store(spec: ScenarioSpec, n_dates: int) -> Iterator[Prepared]:
+    """:func:`prepare_store` in a temporary folder, its set-up time printed; removed after."""
+    with tempfile.TemporaryDirectory() as tmp:
+        t0 = time.perf_counter()
+        prepared = prepare_store(Path(tmp), spec, n_dates)
+        print(
+            f"setup (generate, ingest {len(prepared.scenario.options):,} options): "
+            f"{time.perf_counter() - t0:.1f} s; {len(prepared.dates)} trade dates"
+        )
+        try:
+            yield prepared
+        finally:
+            prepared.store.engine.dispose()
+
+
+def prepare_store(folder: Path, spec: ScenarioSpec, n_dates: int) -> Prepared:
+    """Generate ``spec`` under ``folder``, ingest it, import its parameters as the estimate;
+    the first ``n_dates`` trade dates."""
+    scenario = generate(spec)
+    paths = write_csv(scenario, folder)
+    store = make_store(f"sqlite:///{folder / 'bench.sqlite'}")
+    upgrade(store.engine)
+    new = NewCommodity(unit="tonne", currency="USD", calendar_rule="monthly")
+    for kind in ("futures", "rates", "options"):
+        ingest_file(store.sessions, paths[kind], kind, user="bench", create=new)
+    estimate_file = folder / "estimate.json"
+    window = {"window_start": "2031-01-06", "window_end": "2031-12-31"}
+    estimate_file.write_text(json.dumps({**scenario.params.to_dict(), **window}))
+    code = scenario.commodity["code"]
+    estimate = import_estimate(store.sessions, code, estimate_file, user="bench")
+    with store.sessions() as s:
+        dates = trade_dates(session=s, commodity=code)[:n_dates]
+    return Prepared(store, scenario, code, estimate, dates, estimate_file)
+
+
 def main() -> None:
     settings = RunSettings.from_dict({})
-    with tempfile.TemporaryDirectory() as tmp:
-        folder = Path(tmp)
-        t0 = time.perf_counter()
-        scenario = generate(SPEC)
-        paths = write_csv(scenario, folder)
-        store = make_store(f"sqlite:///{folder / 'bench.sqlite'}")
-        upgrade(store.engine)
-        new = NewCommodity(unit="tonne", currency="USD", calendar_rule="monthly")
-        for kind in ("futures", "rates", "options"):
-            ingest_file(store.sessions, paths[kind], kind, user="bench", create=new)
-        estimate_file = folder / "estimate.json"
-        estimate_file.write_text(
-            json.dumps(
-                {
-                    **scenario.params.to_dict(),
-                    "window_start": "2031-01-06",
-                    "window_end": "2031-12-31",
-                }
-            )
-        )
-        code = scenario.commodity["code"]
-        estimate = import_estimate(store.sessions, code, estimate_file, user="bench")
-        with store.sessions() as s:
-            dates = trade_dates(session=s, commodity=code)[:N_DATES]
-        print(
-            f"setup (generate, ingest {len(scenario.options):,} options): "
-            f"{time.perf_counter() - t0:.1f} s; {len(dates)} trade dates"
-        )
+    with prepared_store(SPEC, N_DATES) as prepared:
+        store, code = prepared.store, prepared.code
+        estimate, dates = prepared.estimate, prepared.dates
 
         cpu0 = _cpu_seconds()
         report = backfill(
@@ -127,7 +154,6 @@ def main() -> None:
             f"note: refit_costs=False, fresh fit per day: "
             f"{1e3 * (time.perf_counter() - t2) / len(sample):.1f} ms/day"
         )
-        store.engine.dispose()
 
 
 if __name__ == "__main__":

@@ -101,11 +101,11 @@ def best_time(f: Callable[[], object], repeat: int) -> float:
 
 def main() -> None:
     curves = make_curves()
-    print(f"data: {curves.n_days} days x {curves.n_slots} contracts, {curves.n_obs} prices")
+    print(f"data: {curves.n_days} days x {curves.n_contracts} contracts, {curves.n_obs} prices")
 
     # one log-likelihood
     sm = system_matrices(TRUTH, NOISE_SD, curves, RATE)
-    kf = KalmanFilter(k_endog=curves.n_slots, k_states=2)
+    kf = KalmanFilter(k_endog=curves.n_contracts, k_states=2)
     kf.bind(sm.endog)
     _set(kf, sm)
     ours_ll = log_likelihood(TRUTH, NOISE_SD, curves, RATE)

@@ -4,6 +4,9 @@
 from __future__ import annotations
 
 from datetime import UTC, date, datetime, timedelta
+from typing import Any
+
+from sqlalchemy.orm import Session
 
 from calib.model.twofactor import TwoFactorParams
 from calib.record.fit import BucketVols, FitRecord
@@ -25,25 +28,32 @@ def commodity(store: Store, code: str = CODE) -> tuple[int, int]:
         cid = add_commodity(
             session=s, code=code, name="Quellium", unit="t", currency="USD", calendar_rule="m"
         ).id
-        eid = add_estimate(
-            session=s,
-            commodity_id=cid,
-            created_at=T0,
-            created_by="tester",
-            source="imported",
-            window_start=date(2030, 1, 2),
-            window_end=date(2030, 12, 30),
-            params=PARAMS,
-            converged=True,
-            message="imported",
-            std_errors={},
-            noise_sd=[],
-            inputs={"file": "e.json"},
-            inputs_sha256="0" * 64,
-            settings={},
-            code_version="test",
-        )
+        eid = seeded_estimate(s, cid)
     return cid, eid
+
+
+IMPORTED: dict[str, Any] = {
+    "created_at": T0,
+    "created_by": "tester",
+    "source": "imported",
+    "window_start": date(2030, 1, 2),
+    "window_end": date(2030, 12, 30),
+    "params": PARAMS,
+    "converged": True,
+    "message": "imported",
+    "std_errors": {},
+    "noise_sd": [],
+    "inputs": {"file": "e.json"},
+    "inputs_sha256": "0" * 64,
+    "settings": {},
+    "code_version": "test",
+}
+"""The columns of a made-up imported estimate (:func:`seeded_estimate`)."""
+
+
+def seeded_estimate(session: Session, commodity_id: int, **changes: Any) -> int:
+    """Store :data:`IMPORTED` for the commodity, with ``changes``; the estimate's id."""
+    return add_estimate(session=session, commodity_id=commodity_id, **{**IMPORTED, **changes})
 
 
 def seeded_fit(params: TwoFactorParams, buckets: tuple[BucketVols, ...] = ()) -> FitRecord:

@@ -104,3 +104,22 @@ def store(db_url: str) -> Iterator[Store]:
     made = make_store(db_url)
     yield made
     made.engine.dispose()
+
+
+# --- the command line in this process, on the test's database -----------------------------------
+
+from collections.abc import Callable  # noqa: E402
+
+Cli = Callable[..., tuple[int, str, str]]
+"""``cli(*ARGS)``: ``calib ARGS... --db <the test's database>``; (exit code, stdout, stderr)."""
+
+
+@pytest.fixture
+def cli(db_url: str, capsys: pytest.CaptureFixture[str], monkeypatch: pytest.MonkeyPatch) -> Cli:
+    """Run ``calib`` in this process on ``db_url`` (see :data:`Cli`)."""
+    from tests.cli.test_store_cmds import run
+
+    def call(*args: str) -> tuple[int, str, str]:
+        return run(capsys, monkeypatch, *args, "--db", db_url)  # type: ignore[no-any-return]
+
+    return call

@@ -8,6 +8,7 @@ mistake (unknown commodity or run, bad file, illegal status change), nothing sto
 from __future__ import annotations
 
 import time
+from collections.abc import Callable, Sequence
 from datetime import datetime
 from pathlib import Path
 from typing import TYPE_CHECKING, Annotated, Any, NoReturn, cast
@@ -75,6 +76,16 @@ def register(app: typer.Typer) -> None:
 
 def _echo(lines: list[str]) -> None:
     typer.echo("\n".join(lines))
+
+
+def _echo_list(
+    records: Sequence[Any], as_json: bool, table: Callable[[Sequence[Any]], list[str]], empty: str
+) -> None:
+    """Records as a JSON list, else ``table(records)`` (``empty`` when there are none)."""
+    if as_json:
+        echo_json([r.to_dict() for r in records])
+    else:
+        _echo(table(records) if records else [empty])
 
 
 # --- estimates ---------------------------------------------------------------------------------
@@ -198,10 +209,7 @@ def estimates_cmd(
         raise typer.BadParameter(f"unexpected argument {commodity!r} (did you mean `import`?)")
     with open_store(db, read_only=True) as (store, _), store.sessions.begin() as session:
         records = list_estimates(session=session, commodity=what)
-    if as_json:
-        echo_json([r.to_dict() for r in records])
-        return
-    _echo(text.estimates_table(records) if records else [f"{what}: no estimates stored"])
+    _echo_list(records, as_json, text.estimates_table, f"{what}: no estimates stored")
 
 
 # --- runs --------------------------------------------------------------------------------------
@@ -279,30 +287,34 @@ def approve_cmd(
     run_id: RunId, by: ByOpt, note: NoteOpt, db: DbOption = None, as_json: JsonOption = False
 ) -> None:
     """Approve a candidate run; the commodity's previous approved set becomes superseded."""
-    from calib.workflows import approve as approve_flow
-
-    with open_store(db) as (store, _):
-        result = approve_flow.approve(store.sessions, run_id, by=by, note=note)
-    if as_json:
-        echo_json({**result.run.to_dict(), "superseded_run_id": result.superseded})
-        return
-    typer.echo(f"run {run_id} approved by {by}")
-    if result.superseded is not None:
-        typer.echo(f"run {result.superseded} superseded")
+    _decide("approved", run_id, by, note, db, as_json)
 
 
 def reject_cmd(
     run_id: RunId, by: ByOpt, note: NoteOpt, db: DbOption = None, as_json: JsonOption = False
 ) -> None:
     """Reject a candidate run."""
+    _decide("rejected", run_id, by, note, db, as_json)
+
+
+def _decide(to: str, run_id: int, by: str, note: str, db: str | None, as_json: bool) -> None:
+    """Approve or reject (``to``) a candidate run and print what changed."""
     from calib.workflows import approve as approve_flow
 
+    superseded = None
     with open_store(db) as (store, _):
-        run = approve_flow.reject(store.sessions, run_id, by=by, note=note)
+        if to == "approved":
+            result = approve_flow.approve(store.sessions, run_id, by=by, note=note)
+            run, superseded = result.run, result.superseded
+        else:
+            run = approve_flow.reject(store.sessions, run_id, by=by, note=note)
     if as_json:
-        echo_json(run.to_dict())
-    else:
-        typer.echo(f"run {run_id} rejected by {by}")
+        extra = {"superseded_run_id": superseded} if to == "approved" else {}
+        echo_json({**run.to_dict(), **extra})
+        return
+    typer.echo(f"run {run_id} {to} by {by}")
+    if superseded is not None:
+        typer.echo(f"run {superseded} superseded")
 
 
 def runs_cmd(
@@ -327,10 +339,7 @@ def runs_cmd(
             trade_date=None if on is None else on.date(),
             limit=limit,
         )
-    if as_json:
-        echo_json([r.to_dict() for r in runs])
-        return
-    _echo(text.runs_table(runs) if runs else [f"{commodity}: no runs stored"])
+    _echo_list(runs, as_json, text.runs_table, f"{commodity}: no runs stored")
 
 
 def show_cmd(run_id: RunId, db: DbOption = None, as_json: JsonOption = False) -> None:
@@ -376,10 +385,7 @@ def latest_cmd(
 
         with open_store(db, read_only=True) as (store, _), store.sessions.begin() as session:
             approvals = approved_history(session=session, commodity=commodity)
-        if as_json:
-            echo_json([a.to_dict() for a in approvals])
-            return
-        _echo(text.history_table(approvals) if approvals else [f"{commodity}: no approvals"])
+        _echo_list(approvals, as_json, text.history_table, f"{commodity}: no approvals")
         return
     run = _read_in_force(db, commodity, as_of)
     if run is None:

@@ -2,7 +2,7 @@
 
 Pure numerics (numpy, scipy, numba): curves in, a frozen :class:`Estimate` out.
 
-* :class:`Curves`, :func:`curves_from_quotes`: the (n_days, n_slots) panel of log futures
+* :class:`Curves`, :func:`curves_from_quotes`: the (n_days, n_contracts) panel of log futures
   prices and times to maturity, from arrays or from a long table of settlements.
 * :func:`log_likelihood`, :func:`filter_states`: the exact Gaussian likelihood and the
   filtered / smoothed states at given parameters.

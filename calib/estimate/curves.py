@@ -43,10 +43,10 @@ class Curves:
     ----------
     dates : (n_days,) ``datetime64[D]`` (gaps in ACT/365 years) or float years; strictly
         increasing.
-    tau : (n_days, n_slots) years from the day to the contract's maturity (> 0 where a price
+    tau : (n_days, n_contracts) years from the day to the contract's maturity (> 0 where a price
         is present).
-    log_price : (n_days, n_slots) log futures prices, NaN where missing.
-    delivery : optional (n_days, n_slots) ``datetime64[D]`` delivery of each slot's contract.
+    log_price : (n_days, n_contracts) log futures prices, NaN where missing.
+    delivery : optional (n_days, n_contracts) ``datetime64[D]`` delivery of each slot's contract.
 
     The arrays are copied and made read-only. Every day-0 curve needs two prices of distinct
     maturity (it starts the filter, see :mod:`calib.estimate.kalman`).
@@ -63,7 +63,7 @@ class Curves:
         y = np.asarray(self.log_price, dtype=np.float64)
         if dates.ndim != 1 or y.ndim != 2 or tau.shape != y.shape or y.shape[0] != dates.size:
             raise CurveShapeError(
-                f"need dates (n_days,) and tau, log_price (n_days, n_slots); got "
+                f"need dates (n_days,) and tau, log_price (n_days, n_contracts); got "
                 f"{dates.shape}, {tau.shape}, {y.shape}"
             )
         if dates.size and np.any(np.diff(dates) <= np.zeros(1, dtype=np.diff(dates).dtype)):
@@ -125,7 +125,8 @@ class Curves:
         return int(self.log_price.shape[0])
 
     @property
-    def n_slots(self) -> int:
+    def n_contracts(self) -> int:
+        """Contract slots a day (columns of the panel: the j-th nearest contract)."""
         return int(self.log_price.shape[1])
 
     @property
@@ -155,8 +156,8 @@ class Curves:
         """
         if self.n_days < min_days:
             raise TooFewDaysError(self.n_days, min_days)
-        if self.n_slots < min_contracts:
-            raise TooFewContractsError(self.n_slots, min_contracts)
+        if self.n_contracts < min_contracts:
+            raise TooFewContractsError(self.n_contracts, min_contracts)
         gap_days = self.gaps * DAYS_PER_YEAR
         too_long = gap_days > max_gap_days * (1.0 + 1e-12)
         if too_long.any():

@@ -48,6 +48,11 @@ from numba import njit
 
 from calib.types import FloatArray, IntArray
 
+Panel = tuple[float, IntArray, FloatArray, FloatArray, IntArray, FloatArray]
+"""What the filter reads, ``(r, gap_index, gaps, tau, tau_index, y)``: the rate, each day's
+step into ``gaps`` (the distinct day gaps in years), the distinct maturities ``tau`` and each
+price's position in it (``(n, m)``), and the ``(n, m)`` log prices (NaN where missing)."""
+
 N_MODEL = 7
 """Number of model parameters ahead of the noise standard deviations in ``theta``."""
 
@@ -144,13 +149,8 @@ def basis(kappa: float, tau: FloatArray) -> FloatArray:
 @njit(cache=True, error_model="numpy")
 def _run(
     theta: FloatArray,
-    r: float,
-    gap_index: IntArray,
-    gaps: FloatArray,
-    tau: FloatArray,
-    tau_index: IntArray,
+    panel: Panel,
     bases: FloatArray,
-    y: FloatArray,
     store: bool,
     a_filt: FloatArray,
     p_filt: FloatArray,
@@ -159,12 +159,12 @@ def _run(
 ) -> float:
     """Log-likelihood ``log p(y_1..y_{n-1} | y_0)``; with ``store`` also the moments.
 
-    ``tau`` holds the distinct maturities, ``tau_index`` (``(n, m)``) each price's position
-    in it, ``bases`` is :func:`basis` of ``tau`` at ``theta``'s ``kappa``. ``a_filt, p_filt``
-    (``(n, 2)``, ``(n, 3)`` as ``P00, P01, P11``) receive the filtered moments, ``a_pred,
-    p_pred`` the one-step predictions (row 0: the day-0 posterior). Returns ``-inf`` where
-    the parameters make a variance non-positive.
+    ``panel`` is :data:`Panel`; ``bases`` is :func:`basis` of its ``tau`` at ``theta``'s
+    ``kappa``. ``a_filt, p_filt`` (``(n, 2)``, ``(n, 3)`` as ``P00, P01, P11``) receive the
+    filtered moments, ``a_pred, p_pred`` the one-step predictions (row 0: the day-0
+    posterior). Returns ``-inf`` where the parameters make a variance non-positive.
     """
+    r, gap_index, gaps, tau, tau_index, y = panel
     n, m = y.shape
     kappa, alpha, lam = theta[1], theta[2], theta[3]
     s1, s2, rho = theta[4], theta[5], theta[6]
@@ -259,32 +259,15 @@ def _run(
 
 
 @njit(cache=True, error_model="numpy")
-def _loglik_b(
-    theta: FloatArray,
-    r: float,
-    gap_index: IntArray,
-    gaps: FloatArray,
-    tau: FloatArray,
-    tau_index: IntArray,
-    bases: FloatArray,
-    y: FloatArray,
-) -> float:
+def _loglik_b(theta: FloatArray, panel: Panel, bases: FloatArray) -> float:
     e = np.empty((0, 3))
-    return _run(theta, r, gap_index, gaps, tau, tau_index, bases, y, False, e, e, e, e)
+    return _run(theta, panel, bases, False, e, e, e, e)
 
 
 @njit(cache=True, error_model="numpy")
-def loglik(
-    theta: FloatArray,
-    r: float,
-    gap_index: IntArray,
-    gaps: FloatArray,
-    tau: FloatArray,
-    tau_index: IntArray,
-    y: FloatArray,
-) -> float:
+def loglik(theta: FloatArray, panel: Panel) -> float:
     """Log-likelihood at natural parameters ``theta`` (``-inf`` outside the domain)."""
-    return _loglik_b(theta, r, gap_index, gaps, tau, tau_index, basis(theta[1], tau), y)
+    return _loglik_b(theta, panel, basis(theta[1], panel[3]))
 
 
 @njit(cache=True)
@@ -339,19 +322,9 @@ def _steps(u: FloatArray, step: float) -> FloatArray:
 
 
 @njit(cache=True, error_model="numpy")
-def _loglik_u(
-    w: FloatArray,
-    k_index: int,
-    bases: FloatArray,
-    r: float,
-    gap_index: IntArray,
-    gaps: FloatArray,
-    tau: FloatArray,
-    tau_index: IntArray,
-    y: FloatArray,
-) -> float:
+def _loglik_u(w: FloatArray, k_index: int, bases: FloatArray, panel: Panel) -> float:
     """Log-likelihood at ``u = w`` whose ``log kappa`` is step ``k_index`` of ``bases``."""
-    return _loglik_b(to_natural(w), r, gap_index, gaps, tau, tau_index, bases[k_index], y)
+    return _loglik_b(to_natural(w), panel, bases[k_index])
 
 
 @njit(cache=True, error_model="numpy")
@@ -366,42 +339,25 @@ def _kappa_bases(u: FloatArray, h: FloatArray, tau: FloatArray) -> FloatArray:
 
 @njit(cache=True, error_model="numpy")
 def _axis_steps(
-    u: FloatArray,
-    h: FloatArray,
-    bases: FloatArray,
-    r: float,
-    gap_index: IntArray,
-    gaps: FloatArray,
-    tau: FloatArray,
-    tau_index: IntArray,
-    y: FloatArray,
+    u: FloatArray, h: FloatArray, bases: FloatArray, panel: Panel
 ) -> tuple[float, FloatArray, FloatArray]:
     """``f(u)`` and ``f(u +- h_i e_i)`` for every axis ``i``."""
     p = u.shape[0]
-    f0 = _loglik_u(u, 0, bases, r, gap_index, gaps, tau, tau_index, y)
+    f0 = _loglik_u(u, 0, bases, panel)
     fp = np.empty(p)
     fm = np.empty(p)
     w = u.copy()
     for i in range(p):
         w[i] = u[i] + h[i]
-        fp[i] = _loglik_u(w, 1 if i == 1 else 0, bases, r, gap_index, gaps, tau, tau_index, y)
+        fp[i] = _loglik_u(w, 1 if i == 1 else 0, bases, panel)
         w[i] = u[i] - h[i]
-        fm[i] = _loglik_u(w, 2 if i == 1 else 0, bases, r, gap_index, gaps, tau, tau_index, y)
+        fm[i] = _loglik_u(w, 2 if i == 1 else 0, bases, panel)
         w[i] = u[i]
     return f0, fp, fm
 
 
 @njit(cache=True, error_model="numpy")
-def loglik_grad_u(
-    u: FloatArray,
-    r: float,
-    gap_index: IntArray,
-    gaps: FloatArray,
-    tau: FloatArray,
-    tau_index: IntArray,
-    y: FloatArray,
-    step: float,
-) -> tuple[float, FloatArray]:
+def loglik_grad_u(u: FloatArray, panel: Panel, step: float) -> tuple[float, FloatArray]:
     """Log-likelihood and its gradient in the unconstrained parameters ``u``.
 
     Central differences with step ``step * max(1, |u_i|)`` (``step ~ eps^(1/3)`` balances
@@ -409,22 +365,13 @@ def loglik_grad_u(
     ``kappa``-dependent measurement basis is computed for the three ``kappa`` values only.
     """
     h = _steps(u, step)
-    bases = _kappa_bases(u, h, tau)
-    f0, fp, fm = _axis_steps(u, h, bases, r, gap_index, gaps, tau, tau_index, y)
+    bases = _kappa_bases(u, h, panel[3])
+    f0, fp, fm = _axis_steps(u, h, bases, panel)
     return f0, (fp - fm) / (2.0 * h)
 
 
 @njit(cache=True, error_model="numpy")
-def loglik_hess_u(
-    u: FloatArray,
-    r: float,
-    gap_index: IntArray,
-    gaps: FloatArray,
-    tau: FloatArray,
-    tau_index: IntArray,
-    y: FloatArray,
-    step: float,
-) -> tuple[float, FloatArray, FloatArray]:
+def loglik_hess_u(u: FloatArray, panel: Panel, step: float) -> tuple[float, FloatArray, FloatArray]:
     """Log-likelihood, gradient and Hessian in ``u`` by central (second) differences.
 
     ``H_ii = (f(+h_i) - 2 f + f(-h_i)) / h_i^2`` and
@@ -432,8 +379,8 @@ def loglik_hess_u(
     """
     p = u.shape[0]
     h = _steps(u, step)
-    bases = _kappa_bases(u, h, tau)
-    f0, fp, fm = _axis_steps(u, h, bases, r, gap_index, gaps, tau, tau_index, y)
+    bases = _kappa_bases(u, h, panel[3])
+    f0, fp, fm = _axis_steps(u, h, bases, panel)
     w = u.copy()
     grad = (fp - fm) / (2.0 * h)
     hess = np.empty((p, p))
@@ -450,7 +397,7 @@ def loglik_hess_u(
                         kk = 1 if si > 0 else 2
                     elif j == 1:
                         kk = 1 if sj > 0 else 2
-                    s += si * sj * _loglik_u(w, kk, bases, r, gap_index, gaps, tau, tau_index, y)
+                    s += si * sj * _loglik_u(w, kk, bases, panel)
             w[i] = u[i]
             w[j] = u[j]
             hess[i, j] = hess[j, i] = s / (4.0 * h[i] * h[j])
@@ -459,22 +406,15 @@ def loglik_hess_u(
 
 @njit(cache=True)
 def filter_moments(
-    theta: FloatArray,
-    r: float,
-    gap_index: IntArray,
-    gaps: FloatArray,
-    tau: FloatArray,
-    tau_index: IntArray,
-    y: FloatArray,
+    theta: FloatArray, panel: Panel
 ) -> tuple[float, FloatArray, FloatArray, FloatArray, FloatArray]:
     """Log-likelihood, filtered means/covariances and one-step predictions (see :func:`_run`)."""
-    n = y.shape[0]
+    n = panel[5].shape[0]
     a_f = np.empty((n, 2))
     p_f = np.empty((n, 3))
     a_p = np.empty((n, 2))
     p_p = np.empty((n, 3))
-    bases = basis(theta[1], tau)
-    ll = _run(theta, r, gap_index, gaps, tau, tau_index, bases, y, True, a_f, p_f, a_p, p_p)
+    ll = _run(theta, panel, basis(theta[1], panel[3]), True, a_f, p_f, a_p, p_p)
     return ll, a_f, p_f, a_p, p_p
 
 

@@ -63,9 +63,9 @@ _U_BOUNDS: tuple[tuple[float, float], ...] = (
 _XI_BOUNDS = (math.log(1e-6), 0.0)
 
 
-def noise_names(n_slots: int) -> tuple[str, ...]:
+def noise_names(n_contracts: int) -> tuple[str, ...]:
     """Names of the measurement-noise standard deviations: ``xi_1 .. xi_n``."""
-    return tuple(f"xi_{j + 1}" for j in range(n_slots))
+    return tuple(f"xi_{j + 1}" for j in range(n_contracts))
 
 
 def _theta(params: TwoFactorParams, noise_sd: ArrayLike) -> FloatArray:
@@ -100,18 +100,18 @@ class _Problem:
         n_obs = int(np.count_nonzero(present[1:]))
         return cls(float(r), gap_index, gaps, tau.astype(np.float64), tau_index, y, n_obs)
 
-    def args(self) -> tuple[float, IntArray, FloatArray, FloatArray, IntArray, FloatArray]:
+    def args(self) -> kalman.Panel:
         return self.r, self.gap_index, self.gaps, self.tau, self.tau_index, self.y
 
     def loglik(self, theta: FloatArray) -> float:
-        return float(kalman.loglik(theta, *self.args()))
+        return float(kalman.loglik(theta, self.args()))
 
     def grad_u(self, u: FloatArray) -> tuple[float, FloatArray]:
-        f, g = kalman.loglik_grad_u(u, *self.args(), GRAD_STEP)
+        f, g = kalman.loglik_grad_u(u, self.args(), GRAD_STEP)
         return float(f), g
 
     def hess_u(self, u: FloatArray) -> tuple[float, FloatArray, FloatArray]:
-        f, g, h = kalman.loglik_hess_u(u, *self.args(), HESS_STEP)
+        f, g, h = kalman.loglik_hess_u(u, self.args(), HESS_STEP)
         return float(f), g, h
 
 
@@ -144,9 +144,8 @@ class States:
 
 
 def _states(problem: _Problem, theta: FloatArray) -> States:
-    r, gi, gaps, tau, ti, y = problem.args()
-    ll, a_f, p_f, a_p, p_p = kalman.filter_moments(theta, r, gi, gaps, tau, ti, y)
-    a_s, p_s = kalman.smooth_moments(theta, gi, gaps, a_f, p_f, a_p, p_p)
+    ll, a_f, p_f, a_p, p_p = kalman.filter_moments(theta, problem.args())
+    a_s, p_s = kalman.smooth_moments(theta, problem.gap_index, problem.gaps, a_f, p_f, a_p, p_p)
     return States(
         loglik=float(ll),
         filtered=readonly(a_f, np.float64),
@@ -164,12 +163,12 @@ def log_likelihood(
     Parameters
     ----------
     params : the model parameters (real-world drifts for the transition, ``lam`` for ``A``).
-    noise_sd : (n_slots,) measurement-noise standard deviation of each slot (> 0).
+    noise_sd : (n_contracts,) measurement-noise standard deviation of each slot (> 0).
     curves : the data; day 0 conditions the filter.
     rate : constant continuously compounded interest rate in ``A``.
     """
     theta = _theta(params, noise_sd)
-    _check_noise(theta, curves.n_slots)
+    _check_noise(theta, curves.n_contracts)
     return _Problem.of(curves, rate).loglik(theta)
 
 
@@ -178,16 +177,16 @@ def filter_states(
 ) -> States:
     """Kalman-filtered and Rauch-Tung-Striebel-smoothed states at given parameters."""
     theta = _theta(params, noise_sd)
-    _check_noise(theta, curves.n_slots)
+    _check_noise(theta, curves.n_contracts)
     return _states(_Problem.of(curves, rate), theta)
 
 
-def _check_noise(theta: FloatArray, n_slots: int) -> None:
+def _check_noise(theta: FloatArray, n_contracts: int) -> None:
     from calib.errors import ParameterError
 
     xi = theta[kalman.N_MODEL :]
-    if xi.size != n_slots:
-        raise ParameterError("noise_sd", xi.tolist(), f"need one per slot ({n_slots})")
+    if xi.size != n_contracts:
+        raise ParameterError("noise_sd", xi.tolist(), f"need one per slot ({n_contracts})")
     if not np.all(np.isfinite(xi) & (xi > 0.0)):
         raise ParameterError("noise_sd", xi.tolist(), "must be positive and finite")
 
@@ -202,7 +201,7 @@ class Estimate:
     Attributes
     ----------
     params : the estimated parameter set.
-    noise_sd : (n_slots,) measurement-noise standard deviations ``xi_j``.
+    noise_sd : (n_contracts,) measurement-noise standard deviations ``xi_j``.
     std_errors : standard error by name (``PARAM_NAMES`` then ``xi_1..xi_n``); NaN when the
         observed information is not positive definite.
     covariance : (p, p) asymptotic covariance of ``(params..., xi...)`` in that order.
@@ -263,7 +262,7 @@ def default_starts(curves: Curves, rate: float) -> list[tuple[TwoFactorParams, F
         slope = (y[rows, jl] - y[:, 0]) / (tau[rows, jl] - tau[:, 0])
     slope = slope[np.isfinite(slope)]
     alpha = float(rate - np.median(slope)) if slope.size else 0.0
-    xi = np.full(curves.n_slots, 0.01)
+    xi = np.full(curves.n_contracts, 0.01)
     out = []
     for kappa, rho in ((0.5, 0.5), (2.0, -0.3), (6.0, 0.5)):
         p = TwoFactorParams(
@@ -324,7 +323,7 @@ def fit(
     start_list = list(starts) if starts is not None else default_starts(curves, rate)
     if not start_list:
         raise EstimationError("no starting point given")
-    bounds = list(_U_BOUNDS) + [_XI_BOUNDS] * curves.n_slots
+    bounds = list(_U_BOUNDS) + [_XI_BOUNDS] * curves.n_contracts
 
     def objective(u: FloatArray) -> tuple[float, FloatArray]:
         f, g = problem.grad_u(u)
@@ -348,7 +347,7 @@ def fit(
     reached: list[tuple[float, FloatArray]] = []
     for params, xi in start_list:
         theta0 = _theta(params, xi)
-        _check_noise(theta0, curves.n_slots)
+        _check_noise(theta0, curves.n_contracts)
         u0 = np.clip(kalman.to_unconstrained(theta0), *np.array(bounds).T)
         res = run(u0, global_iterations, 1e-12)
         iterations += int(res.nit)
@@ -375,7 +374,7 @@ def fit(
     theta = kalman.to_natural(u)
     jac = kalman.jacobian_diag(u)
     cov = jac[:, None] * np.linalg.inv(info) * jac[None, :] if pd else np.full(info.shape, np.nan)
-    names = PARAM_NAMES + noise_names(curves.n_slots)
+    names = PARAM_NAMES + noise_names(curves.n_contracts)
     se = MappingProxyType(
         {
             n: float(math.sqrt(v)) if v >= 0 else math.nan
@@ -393,7 +392,7 @@ def fit(
         loglik=float(ll),
         n_obs=problem.n_obs,
         n_days=curves.n_days,
-        n_contracts=curves.n_slots,
+        n_contracts=curves.n_contracts,
         window_start=curves.dates[0],
         window_end=curves.dates[-1],
         rate=float(rate),

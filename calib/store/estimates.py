@@ -9,11 +9,11 @@ point of a stability study, see :mod:`calib.workflows.rolling`).
 
 from __future__ import annotations
 
-from collections.abc import Mapping, Sequence
+from collections.abc import Callable, Mapping, Sequence
 from dataclasses import dataclass
 from datetime import date, datetime
 from types import MappingProxyType
-from typing import Any, cast
+from typing import Any, TypeVar, cast
 
 import pandas as pd
 from sqlalchemy import Table, select
@@ -200,19 +200,33 @@ def _code(session: Session, commodity_id: int) -> str:
 
 def get_estimate(*, session: Session, estimate_id: int) -> EstimateRecord | None:
     """The estimate ``estimate_id``, or ``None``."""
-    row = session.get(HistoricalEstimate, estimate_id)
-    return None if row is None else _record(row, _code(session, row.commodity_id))
+    return _get(session, HistoricalEstimate, estimate_id, _record)
 
 
 def list_estimates(*, session: Session, commodity: str) -> list[EstimateRecord]:
     """Every estimate of ``commodity``, newest first."""
+    return _newest_first(session, HistoricalEstimate, commodity, _record)
+
+
+_Row = TypeVar("_Row", HistoricalEstimate, RollingSeries)
+_Record = TypeVar("_Record")
+
+
+def _get(
+    session: Session, model: type[_Row], row_id: int, build: Callable[[_Row, str], _Record]
+) -> _Record | None:
+    """The record of the row ``row_id`` of ``model``, or ``None``."""
+    row = session.get(model, row_id)
+    return None if row is None else build(row, _code(session, row.commodity_id))
+
+
+def _newest_first(
+    session: Session, model: type[_Row], commodity: str, build: Callable[[_Row, str], _Record]
+) -> list[_Record]:
+    """The records of every row of ``model`` of ``commodity``, newest first."""
     cid = require_commodity(session=session, code=commodity).id
-    stmt = (
-        select(HistoricalEstimate)
-        .where(HistoricalEstimate.commodity_id == cid)
-        .order_by(HistoricalEstimate.id.desc())
-    )
-    return [_record(row, commodity) for row in session.scalars(stmt)]
+    stmt = select(model).where(model.commodity_id == cid).order_by(model.id.desc())
+    return [build(row, commodity) for row in session.scalars(stmt)]
 
 
 def latest_estimate(
@@ -340,19 +354,12 @@ def add_series(
 
 def get_series(*, session: Session, series_id: int) -> SeriesRecord | None:
     """The series ``series_id``, or ``None``."""
-    row = session.get(RollingSeries, series_id)
-    return None if row is None else _series(row, _code(session, row.commodity_id))
+    return _get(session, RollingSeries, series_id, _series)
 
 
 def list_series(*, session: Session, commodity: str) -> list[SeriesRecord]:
     """The commodity's rolling series, newest first."""
-    cid = require_commodity(session=session, code=commodity).id
-    stmt = (
-        select(RollingSeries)
-        .where(RollingSeries.commodity_id == cid)
-        .order_by(RollingSeries.id.desc())
-    )
-    return [_series(row, commodity) for row in session.scalars(stmt)]
+    return _newest_first(session, RollingSeries, commodity, _series)
 
 
 def series_estimates(*, session: Session, series_id: int) -> list[EstimateRecord]:

@@ -222,7 +222,7 @@ def estimate(
         )
     curves = window.curves
     progress(
-        f"maximising the likelihood: {curves.n_days} days x {curves.n_slots} contracts, "
+        f"maximising the likelihood: {curves.n_days} days x {curves.n_contracts} contracts, "
         f"r = {window.rate:.4%}"
     )
     result = fit_window(window.task(), FitSettings(min_days=min_days), None)

@@ -14,7 +14,7 @@ from calib.policy.settings import RunSettings
 from calib.store.engine import Store
 from calib.workflows.approve import approve
 from calib.workflows.fit import fit_day
-from tests.cli.test_store_cmds import run
+from tests.conftest import Cli
 from tests.workflows.small_day import Loaded, load_with_estimate
 
 FAST = RunSettings.from_dict({"calibration": {"refit_costs": False}})
@@ -66,26 +66,20 @@ def _years(a: dt.date, b: dt.date) -> float:
     return (b - a).days / 365.0
 
 
-def test_price_spread_end_to_end(
-    store: Store,
-    db_url: str,
-    loaded: Loaded,
-    capsys: pytest.CaptureFixture[str],
-    monkeypatch: pytest.MonkeyPatch,
-) -> None:
+def test_price_spread_end_to_end(store: Store, loaded: Loaded, cli: Cli) -> None:
     day = loaded.days[-5]
     futures = _day_futures(loaded, day)
     near, far = sorted(futures)[1], sorted(futures)[3]
     expiry = near - dt.timedelta(days=7)
     args = ["price", "spread", loaded.code, "--near", str(near), "--far", str(far)]
-    args += ["--expiry", str(expiry), "--strike", "10", "--db", db_url]
+    args += ["--expiry", str(expiry), "--strike", "10"]
 
-    code, _, err = run(capsys, monkeypatch, *args)
+    code, _, err = cli(*args)
     assert code == 2 and err.count("\n") == 1 and "no approved parameter set" in err
 
     fitted = fit_day(store.sessions, loaded.code, day, by="q", settings=FAST)
     approve(store.sessions, fitted.run.run_id, by="risk", note="ok")
-    code, out, _ = run(capsys, monkeypatch, *args, "--json")
+    code, out, _ = cli(*args, "--json")
     assert code == 0
     payload = json.loads(out)
     assert set(payload) == KEYS
@@ -122,7 +116,7 @@ def test_price_spread_end_to_end(
     # a call on far - near: long the far future, short the near one
     assert payload["delta_far"] > 0 > payload["delta_near"]
 
-    code, out, _ = run(capsys, monkeypatch, *args)
+    code, out, _ = cli(*args)
     assert code == 0 and f"price        {exact:.6f}" in out and "Monte Carlo" in out
 
 
@@ -136,13 +130,7 @@ def _forward_fit_works(loaded: Loaded, day: dt.date) -> bool:
     return bool(round(t, 12) * (1.0 + 1e-12) >= t)
 
 
-def test_forward_buckets_and_clear_errors(
-    store: Store,
-    db_url: str,
-    loaded: Loaded,
-    capsys: pytest.CaptureFixture[str],
-    monkeypatch: pytest.MonkeyPatch,
-) -> None:
+def test_forward_buckets_and_clear_errors(store: Store, loaded: Loaded, cli: Cli) -> None:
     day = next(d for d in reversed(loaded.days[:-4]) if _forward_fit_works(loaded, d))
     futures = _day_futures(loaded, day)
     near, far = sorted(futures)[0], sorted(futures)[2]
@@ -150,9 +138,9 @@ def test_forward_buckets_and_clear_errors(
     forward = RunSettings.from_dict({"calibration": {"mode": "forward", "refit_costs": False}})
     fitted = fit_day(store.sessions, loaded.code, day, by="q", settings=forward)
     rid = str(fitted.run.run_id)
-    base = ["price", "spread", loaded.code, "--run", rid, "--db", db_url, "--strike", "5"]
+    base = ["price", "spread", loaded.code, "--run", rid, "--strike", "5"]
     ok = [*base, "--near", str(near), "--far", str(far), "--expiry", str(expiry)]
-    code, out, _ = run(capsys, monkeypatch, *ok, "--kind", "put", "--json")
+    code, out, _ = cli(*ok, "--kind", "put", "--json")
     assert code == 0
     payload = json.loads(out)
     assert payload["vols"] == "forward" and payload["run_status"] == "candidate"
@@ -201,7 +189,7 @@ def test_forward_buckets_and_clear_errors(
         ),
     ]
     for extra, message in cases:
-        code, _, err = run(capsys, monkeypatch, *base, *extra)
+        code, _, err = cli(*base, *extra)
         assert code == 2 and err.count("\n") == 1 and message in err, (extra, err)
-    code, _, err = run(capsys, monkeypatch, *ok[:4], "999", *ok[5:])
+    code, _, err = cli(*ok[:4], "999", *ok[5:])
     assert code == 2 and "999" in err

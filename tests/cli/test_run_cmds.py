@@ -10,23 +10,15 @@ import pytest
 
 from calib.model.twofactor import PARAM_NAMES
 from calib.store.engine import Store
-from tests.cli.test_store_cmds import run
+from tests.conftest import Cli
 from tests.workflows.small_day import load_scenario, write_estimate_file
 
 
 @pytest.mark.slow
-def test_morning_run_from_the_command_line(
-    store: Store,
-    db_url: str,
-    tmp_path: Path,
-    capsys: pytest.CaptureFixture[str],
-    monkeypatch: pytest.MonkeyPatch,
-) -> None:
+def test_morning_run_from_the_command_line(store: Store, tmp_path: Path, cli: Cli) -> None:
     data = load_scenario(store, tmp_path)
     day, before = str(data.days[-1]), str(data.days[-2])
-
-    def calib(*args: str) -> tuple[int, str, str]:
-        return run(capsys, monkeypatch, *args, "--db", db_url)  # type: ignore[no-any-return]
+    calib = cli
 
     code, _, err = calib("fit", "QLM", "--date", day)
     assert code == 2 and err.count("\n") == 1 and "no converged historical estimate" in err

@@ -30,7 +30,7 @@ def statsmodels_run(
     the first curve, given to statsmodels as a known initial state with day 0 missing.
     """
     sm = system_matrices(params, xi, curves, rate)
-    ks = KalmanSmoother(k_endog=curves.n_slots, k_states=2)
+    ks = KalmanSmoother(k_endog=curves.n_contracts, k_states=2)
     ks.bind(sm.endog)  # time-varying matrices need the sample length first
     for name in ("design", "obs_intercept", "obs_cov", "transition", "state_intercept"):
         ks[name] = getattr(sm, name)
@@ -94,7 +94,7 @@ def test_gradient_matches_statsmodels_differences() -> None:
     theta = _theta(OFF, OFF_XI)
     u = kalman.to_unconstrained(theta)
     problem = _Problem.of(curves, RATE)
-    _, grad_u = kalman.loglik_grad_u(u, *problem.args(), GRAD_STEP)
+    _, grad_u = kalman.loglik_grad_u(u, problem.args(), GRAD_STEP)
     ours = grad_u / kalman.jacobian_diag(u)
     ref = np.empty_like(theta)
     for i in range(theta.size):
@@ -118,7 +118,7 @@ def test_outside_domain_is_minus_infinity(case: Curves) -> None:
     problem = _Problem.of(case, RATE)
     theta = _theta(TRUTH, NOISE_SD)
     theta[6] = 1.5  # |rho| > 1: an indefinite step covariance
-    assert kalman.loglik(theta, *problem.args()) == -np.inf
+    assert kalman.loglik(theta, problem.args()) == -np.inf
 
 
 def test_series_and_direct_branches_of_the_basis_agree() -> None:

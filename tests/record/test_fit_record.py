@@ -9,7 +9,7 @@ from datetime import UTC, date, datetime
 
 import pytest
 
-from calib.model.twofactor import TwoFactorParams
+from bench.serve_seed import PARAMS
 from calib.record.codec import decode, encode
 from calib.record.fit import (
     SCHEMA_VERSION,
@@ -23,9 +23,6 @@ from calib.record.fit import (
     fit_to_columns,
 )
 
-PARAMS = TwoFactorParams(
-    mu=0.05, kappa=1.2, alpha=0.06, lam=0.02, sigma_spot=0.3, sigma_yield=0.2, rho=0.7
-)
 FRONT = PARAMS.with_vols(0.32, 0.21, 0.71)
 
 

@@ -25,10 +25,9 @@ import pytest
 from calib.policy.settings import RunSettings
 from calib.store.engine import Store
 from calib.workflows.approve import approve, reject
-from calib.workflows.estimates import import_estimate
 from calib.workflows.fit import fit_day
 from tests.serving.poller import START_TIMEOUT, poll
-from tests.workflows.small_day import load_scenario, write_estimate_file
+from tests.workflows.small_day import load_with_estimate
 
 READERS = 8
 FITS = int(os.environ.get("CALIB_TEST_READER_FITS", "12"))
@@ -107,13 +106,7 @@ def _receive(
 def test_eight_readers_poll_while_a_writer_fits_and_approves(
     store: Store, db_url: str, tmp_path: Path
 ) -> None:
-    data = load_scenario(store, tmp_path)
-    import_estimate(
-        store.sessions,
-        data.code,
-        write_estimate_file(tmp_path / "e.json", data.scenario),
-        user="tester",
-    )
+    data = load_with_estimate(store, tmp_path)
     days = data.days[-30:]
     first = fit_day(store.sessions, data.code, days[0], by="writer", settings=HELD)
     approve(store.sessions, first.run.run_id, by="writer", note="the first set")

@@ -8,13 +8,12 @@ import numpy as np
 import pytest
 from sqlalchemy import inspect
 
-from bench.serve_seed import seeded_fit
+from bench.serve_seed import seeded_estimate, seeded_fit
 from calib.errors import IllegalTransitionError, UnknownRunError
 from calib.model.twofactor import TwoFactorParams
 from calib.store.engine import Store, begin_write
 from calib.store.estimates import (
     StatesIn,
-    add_estimate,
     estimate_states,
     latest_estimate,
     list_estimates,
@@ -38,23 +37,18 @@ PARAMS = TwoFactorParams(
 
 def _estimate(store: Store, cid: int, converged: bool, at: datetime) -> int:
     with store.sessions.begin() as s:
-        return add_estimate(
-            session=s,
-            commodity_id=cid,
+        return seeded_estimate(
+            s,
+            cid,
             created_at=at,
-            created_by="tester",
             source="kalman",
-            window_start=date(2030, 1, 2),
-            window_end=date(2030, 12, 30),
             params=PARAMS,
             converged=converged,
             message="converged" if converged else "not converged",
             std_errors={"kappa": 0.1, "rho": None},
             noise_sd=[0.01, 0.02],
             inputs={"batch_ids": [1]},
-            inputs_sha256="0" * 64,
             settings={"n_contracts": 2},
-            code_version="test",
             n_contracts=2,
             n_days=2,
             states=StatesIn(

@@ -9,10 +9,14 @@ of the workflow, the pricer has its outside checks in tests/model/test_american.
 from __future__ import annotations
 
 import csv
+import json
+import sys
 from pathlib import Path
 
 import numpy as np
+import pytest
 
+from calib.cli import main
 from calib.model import american, black76
 from calib.store.engine import Store
 from calib.store.quotes import load_day, year_fractions
@@ -26,7 +30,11 @@ from tests.workflows.small_day import load_scenario, write_estimate_file
 
 
 def test_an_american_day_fits_reports_and_reruns_bit_identically(
-    store: Store, tmp_path: Path
+    store: Store,
+    db_url: str,
+    tmp_path: Path,
+    capsys: pytest.CaptureFixture[str],
+    monkeypatch: pytest.MonkeyPatch,
 ) -> None:
     data = load_scenario(store, tmp_path)
     import_estimate(
@@ -77,3 +85,18 @@ def test_an_american_day_fits_reports_and_reruns_bit_identically(
 
     again = rerun(store.sessions, run.run_id)
     assert again.identical and not again.differences
+
+    # calib show: each residual names its style and early-exercise premium (text and --json)
+    for extra in ((), ("--json",)):
+        monkeypatch.setattr(sys, "argv", ["calib", "show", str(run.run_id), "--db", db_url, *extra])
+        with pytest.raises(SystemExit) as done:
+            main()
+            raise SystemExit(0)
+        assert (done.value.code or 0) == 0
+        out = capsys.readouterr().out
+        if extra:
+            rows = json.loads(out)["residuals"]
+            assert {r["exercise"] for r in rows} == {"american"}
+            assert all(r["early_exercise"] >= 0.0 for r in rows)
+        else:
+            assert "early ex" in out and " am " in out

@@ -27,7 +27,7 @@ from calib.workflows.price_uncertainty import (
 )
 from calib.workflows.pricing import price_spread
 from calib.workflows.rolling import estimate_rolling
-from tests.cli.test_store_cmds import run
+from tests.conftest import Cli
 from tests.workflows.small_day import load_scenario, load_with_estimate
 
 
@@ -43,13 +43,7 @@ def _deliveries(store: Store, code: str, day: date) -> list[date]:
     return [date.fromisoformat(str(d)) for d in quotes.futures.delivery.astype("datetime64[D]")]
 
 
-def test_vanilla_price_and_its_uncertainty(
-    store: Store,
-    db_url: str,
-    tmp_path: Path,
-    capsys: pytest.CaptureFixture[str],
-    monkeypatch: pytest.MonkeyPatch,
-) -> None:
+def test_vanilla_price_and_its_uncertainty(store: Store, tmp_path: Path, cli: Cli) -> None:
     data = load_scenario(store, tmp_path)
     day = data.days[-1]
     single = estimate(store.sessions, data.code, data.days[0], day, user="q", min_days=100)
@@ -103,17 +97,16 @@ def test_vanilla_price_and_its_uncertainty(
     # against sampling is tests/estimate/test_uncertainty.py (2000 draws)
     assert su.delta.se > 0.0 and su.ratio is not None and 0.5 < su.ratio < 2.0
 
-    code, printed, err = run(
-        capsys, monkeypatch, "price", "vanilla", data.code, "--future", str(future),
-        "--expiry", str(expiry), "--strike", "2000", "--uncertainty", "--draws", "5",
-        "--db", db_url, "--json",
+    code, printed, err = cli(
+        "price", "vanilla", data.code, "--future", str(future), "--expiry", str(expiry),
+        "--strike", "2000", "--uncertainty", "--draws", "5", "--json",
     )  # fmt: skip
     assert code == 0, err
     shown = json.loads(printed)
     assert shown["price"] == pytest.approx(got.price) and shown["uncertainty"]["draws"] == 5
-    code, printed, _ = run(
-        capsys, monkeypatch, "price", "vanilla", data.code, "--future", str(future),
-        "--expiry", str(expiry), "--strike", "2000", "--kind", "put", "--db", db_url,
+    code, printed, _ = cli(
+        "price", "vanilla", data.code, "--future", str(future), "--expiry", str(expiry),
+        "--strike", "2000", "--kind", "put",
     )  # fmt: skip
     assert code == 0 and "put on the" in printed and "price" in printed
 

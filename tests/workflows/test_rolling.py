@@ -24,7 +24,7 @@ from calib.store.estimates import (
 from calib.workflows.estimates import estimate
 from calib.workflows.rolling import RollingReport, RollingWindow, estimate_rolling
 from calib.workflows.stability import stability, write_csv, write_png
-from tests.cli.test_store_cmds import run
+from tests.conftest import Cli
 from tests.workflows.small_day import load_scenario
 
 LENGTH = parse_period("--rolling", "6m")
@@ -160,18 +160,12 @@ def test_rolling_and_stability_requests_that_cannot_be_served(store: Store, tmp_
 
 @pytest.mark.slow
 def test_rolling_and_stability_from_the_command_line(
-    store: Store,
-    db_url: str,
-    tmp_path: Path,
-    capsys: pytest.CaptureFixture[str],
-    monkeypatch: pytest.MonkeyPatch,
+    store: Store, db_url: str, tmp_path: Path, cli: Cli
 ) -> None:
     if not db_url.startswith("sqlite"):
         pytest.skip("the command line is engine-blind; the workflow tests run on both engines")
     data = load_scenario(store, tmp_path)
-
-    def calib(*args: str) -> tuple[int, str, str]:
-        return run(capsys, monkeypatch, *args, "--db", db_url)  # type: ignore[no-any-return]
+    calib = cli
 
     args = (
         "estimate",

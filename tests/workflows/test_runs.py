@@ -19,24 +19,17 @@ from calib.store.run_models import CalibrationRun, RunResidual
 from calib.store.runs import latest_approved, run_residuals, run_status
 from calib.workflows.approve import approve
 from calib.workflows.estimates import import_estimate
-from calib.workflows.fit import fit_day
+from calib.workflows.fit import FitOutcome, fit_day
 from calib.workflows.rerun import rerun
 from tests.hooks import PAUSE_LINE, PAUSED_CLI
-from tests.workflows.small_day import Loaded, load_scenario, write_estimate_file
+from tests.workflows.small_day import Loaded, load_scenario, load_with_estimate, write_estimate_file
 
 REPO = Path(__file__).resolve().parents[2]
 
 
 @pytest.fixture
 def loaded(store: Store, tmp_path: Path) -> Loaded:
-    data = load_scenario(store, tmp_path)
-    import_estimate(
-        store.sessions,
-        data.code,
-        write_estimate_file(tmp_path / "e.json", data.scenario),
-        user="tester",
-    )
-    return data
+    return load_with_estimate(store, tmp_path)
 
 
 def _latest_id(store: Store, code: str) -> int | None:
@@ -97,20 +90,20 @@ def test_tight_gates_block_auto_approval(store: Store, loaded: Loaded, tmp_path:
     toml.write_text("[gates]\nmax_rmse_vol_points = 5.0\n[gates.QLM]\nmax_rmse_vol_points = 0.0\n")
     settings = load_settings(toml, loaded.code)
     assert settings.gates.max_rmse_vol_points == 0.0  # the commodity's own table wins
-    outcome = fit_day(
-        store.sessions,
-        loaded.code,
-        loaded.days[-1],
-        by="q",
-        settings=settings,
-        auto_approve=True,
-    )
+    outcome = _auto_approved_last_day(store, loaded, settings)
     failed = [g.name for g in outcome.gates if not g.passed]
     assert "rmse_vol" in failed and not outcome.auto_approved
     assert outcome.run.status == "candidate" and _latest_id(store, loaded.code) is None
     toml.write_text("[calibration]\nmode = 'sideways'\n")
     with pytest.raises(SettingsFileError, match="mode = 'sideways' is invalid"):
         load_settings(toml, loaded.code)
+
+
+def _auto_approved_last_day(store: Store, loaded: Loaded, settings: RunSettings) -> FitOutcome:
+    """The last day fitted with ``settings``, approved if its gates pass."""
+    return fit_day(
+        store.sessions, loaded.code, loaded.days[-1], by="q", settings=settings, auto_approve=True
+    )
 
 
 def test_failed_fit_is_stored_rejected_and_never_replaces_the_approved_set(
@@ -120,14 +113,7 @@ def test_failed_fit_is_stored_rejected_and_never_replaces_the_approved_set(
     approve(store.sessions, good.run.run_id, by="risk", note="ok")
     # every quote is under a year to expiry, so this filter leaves none: TooFewQuotesError
     settings = RunSettings.from_dict({"calibration": {"min_days_to_expiry": 400.0}})
-    bad = fit_day(
-        store.sessions,
-        loaded.code,
-        loaded.days[-1],
-        by="q",
-        settings=settings,
-        auto_approve=True,
-    )
+    bad = _auto_approved_last_day(store, loaded, settings)
     assert bad.run.outcome == "failed" and bad.run.status == "rejected"
     assert bad.run.params is None and "TooFewQuotesError" in (bad.run.failure_reason or "")
     assert [e.to_status for e in bad.run.events] == ["rejected"]
