@@ -26,6 +26,7 @@ from sqlalchemy.orm import Session, sessionmaker
 
 from calib.errors import IllegalTransitionError, StudyRunError, UnknownRunError
 from calib.model.twofactor import PARAM_NAMES, TwoFactorParams
+from calib.record.codec import copy_fields
 from calib.record.fit import (
     SCHEMA_VERSION,
     FitRecord,
@@ -96,14 +97,7 @@ _residuals = cast(Table, RunResidual.__table__)
 
 
 def _event(row: RunEvent) -> EventRecord:
-    return EventRecord(
-        event_id=row.id,
-        run_id=row.run_id,
-        to_status=row.to_status,
-        at=row.at,
-        by=row.by,
-        note=row.note,
-    )
+    return copy_fields(EventRecord, row, event_id=row.id)
 
 
 def _events(session: Session, run_id: int, as_of: datetime | None) -> list[EventRecord]:
