@@ -132,11 +132,16 @@ def chosen_commodities(store: Store, named: list[str | None] | list[str], every:
 
 
 @contextmanager
-def open_store(db: str | None, *, check: bool = True) -> Iterator[tuple[Store, Settings]]:
+def open_store(
+    db: str | None, *, check: bool = True, read_only: bool = False
+) -> Iterator[tuple[Store, Settings]]:
     """The store named by ``--db`` (or the settings) and the settings, for a ``with`` block.
 
     With ``check`` (the default) the database must be at this program's schema revision
-    (:func:`calib.store.migrate.check_current`). A database that cannot be reached raises
+    (:func:`calib.store.migrate.check_current`). A command that only reads passes
+    ``read_only``: the store is opened for reading only (SQLite: no write, no ``-wal``/``-shm``
+    file where the file or its folder is read-only, so it works on a read-only mount; see
+    :func:`calib.store.engine.create_store_engine`). A database that cannot be reached raises
     :class:`~calib.errors.StoreUnavailableError` (one line, no traceback).
     """
     from sqlalchemy.exc import OperationalError
@@ -144,7 +149,7 @@ def open_store(db: str | None, *, check: bool = True) -> Iterator[tuple[Store, S
     from calib.store.engine import store_for
 
     settings = get_settings(db)
-    with store_for(settings.db_url) as store:
+    with store_for(settings.db_url, read_only=read_only) as store:
         try:
             if check:
                 from calib.store.migrate import check_current

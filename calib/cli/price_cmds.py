@@ -103,7 +103,7 @@ def spread_cmd(
     With --uncertainty: the price's standard error from the historical estimate."""
     from calib.workflows import pricing as flow
 
-    with open_store(db) as (store, _):
+    with open_store(db, read_only=True) as (store, _):
         result = flow.price_spread(
             store.sessions,
             commodity,

@@ -50,7 +50,7 @@ def report_cmd(
     futures curve and vol term structure, anchor frontier, constraints, gates, inputs)."""
     from calib.workflows.report import write_report
 
-    with open_store(db) as (store, _):
+    with open_store(db, read_only=True) as (store, _):
         result = write_report(store.sessions, run_id, out)
     for note in result.warnings:  # one plain line each; the page shows them too
         typer.echo(f"warning: {note}", err=True)
@@ -146,7 +146,7 @@ def compare_cmd(
         rho=parse_band("--band-rho", band_rho, default.rho),
     )
     selection = Selection(commodity, start.date(), end.date(), every_fit)
-    with open_store(db) as (store, _):
+    with open_store(db, read_only=True) as (store, _):
         table = compare_runs(store.sessions, selection, bands)
     written: dict[str, str] = {}
     if csv_file is not None:
@@ -258,6 +258,11 @@ def _summary_lines(s: DemoSummary) -> list[str]:
         f"  calib rerun {s.report_run_id} {db}",
         f"  calib quotes QLM --date {last} {db}",
         f"  calib estimates QLM {db}",
+        "",
+        "Calibration policies compared by hedge P&L (calendar-spread calls sold and hedged "
+        "daily; % of premium):",
+        *(f"  {line}" for line in s.policy_table),
+        f"  page: {s.policy_page}",
         "",
         f"Caution. {text.DEMO_CAUTION}",
     ]

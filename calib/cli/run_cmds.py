@@ -207,7 +207,7 @@ def estimates_cmd(
         return
     if commodity is not None:
         raise typer.BadParameter(f"unexpected argument {commodity!r} (did you mean `import`?)")
-    with open_store(db) as (store, _), store.sessions.begin() as session:
+    with open_store(db, read_only=True) as (store, _), store.sessions.begin() as session:
         records = list_estimates(session=session, commodity=what)
     _echo_list(records, as_json, text.estimates_table, f"{what}: no estimates stored")
 
@@ -332,7 +332,7 @@ def runs_cmd(
     """List a commodity's runs, newest first, with their current status."""
     from calib.store.runs import list_runs
 
-    with open_store(db) as (store, _), store.sessions.begin() as session:
+    with open_store(db, read_only=True) as (store, _), store.sessions.begin() as session:
         runs = list_runs(
             session=session,
             commodity=commodity,
@@ -347,7 +347,7 @@ def show_cmd(run_id: RunId, db: DbOption = None, as_json: JsonOption = False) ->
     from calib.store.runs import require_run, run_quotes, run_residuals
     from calib.workflows.fit import early_exercise
 
-    with open_store(db) as (store, _), store.sessions.begin() as session:
+    with open_store(db, read_only=True) as (store, _), store.sessions.begin() as session:
         run = require_run(session=session, run_id=run_id)
         frame = run_residuals(session=session, run_id=run_id)
         residuals = cast("list[dict[str, Any]]", frame.to_dict(orient="records"))
@@ -383,7 +383,7 @@ def latest_cmd(
     if history:
         from calib.store.runs import approved_history
 
-        with open_store(db) as (store, _), store.sessions.begin() as session:
+        with open_store(db, read_only=True) as (store, _), store.sessions.begin() as session:
             approvals = approved_history(session=session, commodity=commodity)
         _echo_list(approvals, as_json, text.history_table, f"{commodity}: no approvals")
         return
@@ -411,7 +411,7 @@ def _read_in_force(db: str | None, commodity: str, as_of: datetime | None) -> Ru
         pass
     from calib.store.runs import read_in_force
 
-    with open_store(db) as (store, _):
+    with open_store(db, read_only=True) as (store, _):
         return read_in_force(store.sessions, commodity, as_of=as_of)
 
 
@@ -422,7 +422,7 @@ def rerun_cmd(run_id: RunId, db: DbOption = None, as_json: JsonOption = False) -
     """
     from calib.workflows import rerun as rerun_flow
 
-    with open_store(db) as (store, _):
+    with open_store(db, read_only=True) as (store, _):
         result = rerun_flow.rerun(store.sessions, run_id)
     if as_json:
         echo_json(result.to_dict())

@@ -280,7 +280,7 @@ def vanilla_cmd(
     """Price a European option on one future: Black-76 with the model's total variance."""
     from calib.workflows import price_uncertainty as flow
 
-    with open_store(db) as (store, _):
+    with open_store(db, read_only=True) as (store, _):
         result = flow.price_vanilla(
             store.sessions,
             commodity,

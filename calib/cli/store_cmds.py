@@ -251,7 +251,7 @@ def quotes_cmd(
     from calib.store.quotes import load_day
     from calib.workflows.fit import early_exercise
 
-    with open_store(db) as (store, _), store.sessions.begin() as session:
+    with open_store(db, read_only=True) as (store, _), store.sessions.begin() as session:
         day = load_day(
             session=session, commodity=commodity, trade_date=trade_date.date(), as_of=as_of
         )

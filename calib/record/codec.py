@@ -50,6 +50,13 @@ def encode(value: Any) -> Any:
     raise TypeError(f"cannot encode {type(value).__name__}")
 
 
+def copy_fields(cls: type[T], source: object, **given: Any) -> T:
+    """An instance of the dataclass ``cls``: each field ``given``, else ``source``'s attribute of
+    the same name (a record built from a row or from another record)."""
+    names = [f.name for f in dataclasses.fields(cast(Any, cls)) if f.init]
+    return cls(**{n: given[n] if n in given else getattr(source, n) for n in names})
+
+
 @cache
 def _hints(cls: type) -> dict[str, Any]:
     return typing.get_type_hints(cls)

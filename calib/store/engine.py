@@ -12,7 +12,6 @@ from __future__ import annotations
 import functools
 import hashlib
 import math
-import os
 import sqlite3
 from collections.abc import Iterator
 from contextlib import contextmanager
@@ -27,6 +26,7 @@ from sqlalchemy.exc import ArgumentError
 from sqlalchemy.orm import Session, sessionmaker
 
 from calib.errors import StoreURLError
+from calib.store.quick import sqlite_read_flag
 
 SQLITE_BUSY_TIMEOUT_MS = 10_000
 """How long a SQLite writer waits for another writer's lock before giving up."""
@@ -125,18 +125,17 @@ def _pg_on_connect(dbapi_connection: Any, _record: Any, *, timeout_ms: int) -> N
 
 
 def _sqlite_reader(parsed: URL, echo: bool, busy_ms: int = SQLITE_BUSY_TIMEOUT_MS) -> Engine:
-    """A read-only SQLite engine (``mode=ro``, or ``immutable=1`` on a read-only folder)."""
+    """A read-only SQLite engine (``mode=ro``, or ``immutable=1`` where nothing can write:
+    :func:`sqlite_read_flag`). Its URL names the file, so the approval lock beside it is found."""
     path = sqlite_file(parsed)
     if path is None:
         raise StoreURLError(str(parsed), "an in-memory database cannot be opened read-only")
-    writable = os.access(path.parent if str(path.parent) else Path("."), os.W_OK)
-    flag = "mode=ro" if writable else "immutable=1"
-    target = f"file:{quote(str(path.resolve()))}?{flag}"
 
     def connect() -> sqlite3.Connection:
+        target = f"file:{quote(str(path.resolve()))}?{sqlite_read_flag(path)}"
         return sqlite3.connect(target, uri=True, timeout=busy_ms / 1000, check_same_thread=False)
 
-    engine = create_engine("sqlite://", echo=echo, creator=connect)
+    engine = create_engine(parsed, echo=echo, creator=connect)
     event.listen(
         engine, "connect", functools.partial(_sqlite_on_connect, busy_ms=busy_ms, wal=False)
     )

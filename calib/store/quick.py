@@ -20,6 +20,7 @@ from __future__ import annotations
 
 import fcntl
 import json
+import os
 import re
 import sqlite3
 from collections.abc import Iterator
@@ -94,12 +95,29 @@ def approval_lock_path(database: Path) -> Path:
     return database.with_name(database.name + "-approvals.lock")
 
 
+def sqlite_read_flag(path: Path) -> str:
+    """How a reader opens the SQLite file ``path``: ``immutable=1`` when nothing can write it
+    (a read-only mount, or neither the file nor its folder has a write bit, or this process
+    may not write the folder) and no write-ahead log is pending, so that no ``-wal``/``-shm``
+    file is needed or made; else ``mode=ro`` (the side files are shared with the writers)."""
+    folder = path.parent if str(path.parent) else Path(".")
+    try:
+        mount_read_only = bool(os.statvfs(folder).f_flag & os.ST_RDONLY)
+        no_write_bits = not (path.stat().st_mode & 0o222 and folder.stat().st_mode & 0o222)
+        wal = path.with_name(path.name + "-wal")
+        pending = wal.exists() and wal.stat().st_size > 0
+    except OSError:  # a file that is not there: mode=ro says so when connecting
+        return "mode=ro"
+    frozen = mount_read_only or no_write_bits or not os.access(folder, os.W_OK)
+    return "immutable=1" if frozen and not pending else "mode=ro"
+
+
 @contextmanager
 def _shared_lock(database: Path) -> Iterator[None]:
-    """The approval lock held shared (skipped where the folder cannot be written: nothing can
-    approve through a read-only folder)."""
+    """The approval lock held shared (skipped where the lock file is not there, and so no
+    approval is being written, or cannot be opened: a reader never makes it)."""
     try:
-        handle = approval_lock_path(database).open("a")
+        handle = approval_lock_path(database).open("r")
     except OSError:
         yield
         return
@@ -167,7 +185,9 @@ def read_in_force(url: str, commodity: str, as_of: datetime | None = None) -> Ru
         raise NotReadError
     when = as_of or datetime.now(UTC)
     try:
-        db = sqlite3.connect(f"{path.resolve().as_uri()}?mode=ro", uri=True, isolation_level=None)
+        db = sqlite3.connect(
+            f"{path.resolve().as_uri()}?{sqlite_read_flag(path)}", uri=True, isolation_level=None
+        )
     except sqlite3.Error:
         raise NotReadError from None
     try:

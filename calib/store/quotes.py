@@ -27,6 +27,7 @@ from sqlalchemy.exc import DBAPIError, OperationalError
 from sqlalchemy.orm import Session
 
 from calib.errors import UnknownCommodityError
+from calib.record.codec import copy_fields
 from calib.store.base import utc_now
 from calib.store.models import (
     Commodity,
@@ -179,15 +180,7 @@ class CommodityRecord:
 
 
 def _record(row: Commodity) -> CommodityRecord:
-    return CommodityRecord(
-        id=row.id,
-        code=row.code,
-        name=row.name,
-        unit=row.unit,
-        currency=row.currency,
-        calendar_rule=row.calendar_rule,
-        exercise=row.exercise,
-    )
+    return copy_fields(CommodityRecord, row)
 
 
 def get_commodity(*, session: Session, code: str) -> CommodityRecord | None:

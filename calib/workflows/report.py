@@ -51,6 +51,7 @@ from calib.output.report import (
 )
 from calib.policy.gates import AT_LEAST
 from calib.policy.settings import RunSettings
+from calib.record.codec import copy_fields
 from calib.record.fit import FitRecord, Gate
 from calib.store.estimates import (
     EstimateRecord,
@@ -216,16 +217,7 @@ def _estimate_used(
 
 
 def _solve(fit: FitRecord) -> SolveInfo:
-    return SolveInfo(
-        solver=fit.solver,
-        status=fit.status,
-        iterations=fit.iterations,
-        converged=fit.converged,
-        rmse=fit.rmse,
-        max_error=fit.max_error,
-        error_measure=fit.error_measure,
-        flags=fit.flags,
-    )
+    return copy_fields(SolveInfo, fit)
 
 
 def _frontier(

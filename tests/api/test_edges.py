@@ -14,6 +14,8 @@ from sqlalchemy import create_engine, text
 
 from bench.serve_seed import CODE, candidate, commodity
 from calib.api.app import create_app
+from calib.api.timeouts import DEFAULT_TIMEOUT, TIMEOUT_ENV, timeout_from_env
+from calib.errors import SettingError
 from calib.settings import Settings
 from calib.store.engine import Store
 from calib.workflows.approve import approve
@@ -163,3 +165,18 @@ def _wait_for_a_blocked_statement(lock: object) -> None:
             return
         time.sleep(0.01)
     raise AssertionError("the read never reached the lock")
+
+
+def test_the_server_timeout_comes_from_the_environment_and_is_checked(
+    monkeypatch: pytest.MonkeyPatch,
+) -> None:
+    monkeypatch.delenv(TIMEOUT_ENV, raising=False)
+    assert timeout_from_env() == DEFAULT_TIMEOUT
+    monkeypatch.setenv(TIMEOUT_ENV, " 2.5 ")
+    assert timeout_from_env() == 2.5
+    for bad in ("0", "-1", "nan", "inf", "soon"):
+        monkeypatch.setenv(TIMEOUT_ENV, bad)
+        with pytest.raises(SettingError, match=r"\$CALIB_API_TIMEOUT = .* seconds above zero"):
+            timeout_from_env()
+    with pytest.raises(SettingError, match="timeout"):
+        create_app(Settings(db_url="sqlite:///unused.sqlite"), timeout=0.0)
