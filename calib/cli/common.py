@@ -87,7 +87,7 @@ WorkersOption = Annotated[
     typer.Option(
         "--workers",
         min=1,
-        help="Local worker processes (backfill: default 1; rolling estimates: the cores).",
+        help="Local worker processes (default: 1; rolling estimates: the cores).",
         show_default=False,
     ),
 ]

@@ -259,6 +259,11 @@ def _summary_lines(s: DemoSummary) -> list[str]:
         f"  calib quotes QLM --date {last} {db}",
         f"  calib estimates QLM {db}",
         "",
+        "Calibration policies compared by hedge P&L (calendar-spread calls sold and hedged "
+        "daily; % of premium):",
+        *(f"  {line}" for line in s.policy_table),
+        f"  page: {s.policy_page}",
+        "",
         f"Caution. {text.DEMO_CAUTION}",
     ]
     return lines

@@ -95,38 +95,31 @@ def book_history(
     if not np.all(np.isfinite(F[-1])):
         raise ParameterError("futures", F[-1].tolist(), "the expiry needs every leg's price")
     growth = np.exp(r * np.diff(t))
+    grown = np.concatenate([[1.0], np.cumprod(growth)])  # G_k: cash growth from day 0 to k
+    steps = np.arange(n + 1)
     priced = np.all(np.isfinite(F), axis=1)
-    positions = np.empty((n + 1, F.shape[1]))
-    carried = np.zeros(n + 1, dtype=bool)
+    rehedged = np.zeros(n + 1, dtype=bool)  # a new position is taken on the day
+    rehedged[:n] = np.all(np.isfinite(D), axis=1) & priced[:n]
+    source = np.maximum.accumulate(np.where(rehedged, steps, 0))  # the day a position is from
+    positions = D[np.minimum(source, n - 1)]
+    carried = ~rehedged
+    carried[n] = False
+    # margin on a settled day: the position held since the day before, times the move since
+    # the last settled day (a gap's whole move is paid on the next settled day)
+    last_priced = np.maximum.accumulate(np.where(priced, steps, 0))
     margin = np.zeros(n + 1)
-    cash = np.empty(n + 1)
-    cash[0] = V[0]
-    last_price = F[0].copy()
-    held = D[0].copy()  # the position since the last settled day
-    positions[0] = held
-    for k in range(1, n + 1):
-        cash[k] = cash[k - 1] * growth[k - 1]
-        if priced[k]:
-            margin[k] = float(held @ (F[k] - last_price))
-            cash[k] += margin[k]
-            last_price = F[k].copy()
-        if k < n and np.all(np.isfinite(D[k])) and priced[k]:
-            held = D[k].copy()
-        else:
-            carried[k] = k < n
-        positions[k] = held
+    k = np.flatnonzero(priced[1:]) + 1
+    margin[k] = np.einsum("ij,ij->i", positions[k - 1], F[k] - F[last_priced[k - 1]])
+    cash = grown * (V[0] + np.cumsum(margin / grown))
     known = np.concatenate([np.isfinite(V), [True]])
     value = np.concatenate([V, [payoff]])
     marked = np.where(known, cash - value, np.nan)
     errors = np.full(n + 1, np.nan)
     errors[0] = 0.0
-    last = 0
-    grown = 1.0
-    for k in range(1, n + 1):
-        grown *= growth[k - 1]
-        if known[k]:
-            errors[k] = marked[k] - marked[last] * grown
-            last, grown = k, 1.0
+    last_known = np.maximum.accumulate(np.where(known, steps, 0))
+    j = np.flatnonzero(known[1:]) + 1
+    before = last_known[j - 1]
+    errors[j] = marked[j] - marked[before] * grown[j] / grown[before]
     return HistoryBook(
         positions=readonly(positions),
         carried=readonly(carried),

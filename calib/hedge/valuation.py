@@ -53,8 +53,7 @@ path's futures level; hedge ratios, futures per option, absolute) for the larger
 _SQRT_HALF = math.sqrt(0.5)
 
 
-@numba.njit(cache=True, parallel=True)
-def _spread_kernel(
+def _spread_body(
     f_outer: FloatArray,
     f_inner: FloatArray,
     a: FloatArray,
@@ -92,6 +91,17 @@ def _spread_kernel(
         d_outer[p] = -disc * sg * s_outer
 
 
+_spread_kernel = numba.njit(cache=True, parallel=True)(_spread_body)
+"""The kernel over many paths, spread over the cores."""
+
+_spread_kernel_serial = numba.njit(cache=True)(_spread_body)
+"""The same loop in the calling thread, for a few paths (a replay values one history): the
+parallel kernel's start-up per call would cost more than the work."""
+
+SERIAL_BELOW = 256
+"""Paths below which the serial kernel runs."""
+
+
 @dataclass(frozen=True, slots=True)
 class _SpreadStep:
     """One date's spread integrand: conditioning on the outer leg (module Notes)."""
@@ -115,7 +125,8 @@ class _SpreadStep:
         fo = self.f_outer if rows is None else self.f_outer[rows]
         fi = self.f_inner if rows is None else self.f_inner[rows]
         out = (np.empty(fo.size), np.empty(fo.size), np.empty(fo.size))
-        _spread_kernel(fo, fi, a, b, w, self.abs_strike, self.sc, self.sg, self.discount, *out)
+        kernel = _spread_kernel_serial if fo.size < SERIAL_BELOW else _spread_kernel
+        kernel(fo, fi, a, b, w, self.abs_strike, self.sc, self.sg, self.discount, *out)
         return out
 
 

@@ -28,6 +28,7 @@ from calib.store.engine import make_store
 from calib.store.run_models import CalibrationRun, HistoricalEstimate, RunResidual
 from calib.workflows import report as report_flow
 from calib.workflows.demo import MARKER, QUICK_PLAN
+from calib.workflows.demo.policies import POLICIES
 from calib.workflows.report import ANCHOR_FACTORS, report_inputs
 from tests.cli.test_store_cmds import run
 from tests.output.test_report import _parse
@@ -85,14 +86,22 @@ def test_demo_runs_the_whole_chain(demo: Demo) -> None:
     # every morning of the last month was fitted and stored; some approved by the gates
     start, end = (QUICK_PLAN.spec.start.isoformat(), s["fit_window"][1])
     assert s["fit_window"][0] > s["estimate_window"][1] > start and end.startswith("2032-01")
-    assert n_runs == len(demo.runs) == s["days_fitted"] + s["days_failed"] > 10
+    mornings = [r for r in demo.runs if r["study"] is None]
+    assert len(mornings) == s["days_fitted"] + s["days_failed"] > 10
     assert s["days_failed"] == 0 and n_residuals and n_residuals >= 10 * n_runs
-    approved = [r for r in demo.runs if _ever_approved(r)]
+    # the policy comparison's study runs: one a day per policy, never approved
+    studies = [r for r in demo.runs if r["study"] is not None]
+    assert n_runs == len(mornings) + len(studies)
+    assert {r["study"] for r in studies} == set(POLICIES) == {p["policy"] for p in s["policies"]}
+    assert {r["status"] for r in studies} <= {"candidate", "rejected"}
+    assert all(p["trades"] + p["not_sold"] >= 1 for p in s["policies"])
+    assert Path(s["policy_page"]).is_file()
+    approved = [r for r in mornings if _ever_approved(r)]
     assert len(approved) == s["days_approved"] > 0
-    statuses = {r["status"] for r in demo.runs}
+    statuses = {r["status"] for r in mornings}
     assert "approved" in statuses and statuses <= {"approved", "superseded", "candidate"}
     # exactly one approved set is in force, the latest approval, and it is the reported run
-    in_force = [r for r in demo.runs if r["status"] == "approved"]
+    in_force = [r for r in mornings if r["status"] == "approved"]
     assert len(in_force) == 1 and in_force[0]["run_id"] == s["report_run_id"]
     # the files
     for key in ("report", "compare_csv", "compare_png"):

@@ -263,3 +263,32 @@ def test_commodity_choice_is_refused_when_empty_or_double(
     assert code == 2 and "not both" in err
     code, _, err = run(capsys, monkeypatch, "backfill", "--all", *span)
     assert code == 2 and "no commodity is registered" in err
+
+
+def test_a_policy_study_on_a_cluster_matches_local_processes(
+    tmp_path: Path, on_cluster: DaskExecutor
+) -> None:
+    from calib.store.runs import list_runs
+    from tests.workflows.test_hedge_policies import Setup, _compare
+
+    rows: dict[str, list[dict[str, Any]]] = {}
+    runs: dict[str, list[tuple[Any, ...]]] = {}
+    for name, executor in (("local", ProcessExecutor(2)), ("cluster", on_cluster)):
+        folder = tmp_path / name
+        folder.mkdir()
+        store = make_store(f"sqlite:///{folder / 'study.sqlite'}")
+        upgrade(store.engine)
+        setup = Setup(load_with_estimate(store, folder), folder)
+        # each policy's row, but for the settings file's path (a folder per run here)
+        rows[name] = [
+            {k: v for k, v in row.items() if k != "settings_file"}
+            for row in _compare(store, setup, executor).to_list()
+        ]
+        with store.sessions() as s:
+            found = list_runs(session=s, commodity=setup.loaded.code, limit=10_000)
+        runs[name] = sorted(
+            (r.study, r.trade_date, r.outcome, r.fit, r.failure_reason) for r in found
+        )
+        store.engine.dispose()
+    assert runs["cluster"] == runs["local"] and len(runs["local"]) > 0  # the same study runs
+    assert rows["cluster"] == rows["local"]  # the same P&L, trade by trade, bit for bit

@@ -13,15 +13,14 @@ from __future__ import annotations
 import datetime as dt
 import json
 import math
-import pickle
-from collections.abc import Callable, Generator, Iterable, Sequence
+from collections.abc import Callable, Sequence
 from pathlib import Path
 from typing import TypeVar
 
 import numpy as np
 import pytest
 
-from calib.compute.executor import InlineExecutor
+from bench.bench_hedge_policies import Recording
 from calib.model.spread import SpreadOption, spread_greeks, spread_law
 from calib.output.hedge import CSV_KEYS, policy_lines
 from calib.record.run import RunRecord
@@ -186,20 +185,6 @@ def _slow_sale(
     raise AssertionError("the loop ends at expiry")
 
 
-class _Pickling(InlineExecutor):
-    """In this process, each unit through pickle first (what any backend does to ship it)."""
-
-    def __init__(self) -> None:
-        self.units: list[object] = []
-
-    def map(
-        self, fn: Callable[[T], R], items: Iterable[T], *, ahead: int | None = None
-    ) -> Generator[R, None, None]:
-        for item in items:
-            self.units.append(item)
-            yield fn(pickle.loads(pickle.dumps(item)))
-
-
 def test_policy_table_equals_a_slow_loop_over_stored_runs(
     store: Store,
     db_url: str,
@@ -211,9 +196,9 @@ def test_policy_table_equals_a_slow_loop_over_stored_runs(
     if not db_url.startswith("sqlite"):
         pytest.skip("the arithmetic does not depend on the engine (resume runs on both)")
     s = setup
-    shipped = _Pickling()
+    shipped = Recording(ship=True)
     rows = _compare(store, s, shipped).to_list()
-    assert {type(u) for u in shipped.units} == {FitTask, flow.ReplayUnit}
+    assert {type(u) for u in shipped.items} == {FitTask, flow.ReplayUnit}
     assert [r["policy"] for r in rows] == ["loose", "strict"]
     with store.sessions.begin() as session:
         runs = list_runs(session=session, commodity=s.loaded.code, limit=10_000)

@@ -36,6 +36,7 @@ from typing import Any
 from calib.errors import DemoFolderError, ParameterError, RunNotFittedError
 from calib.inputs.files import FileKind
 from calib.output import compare as compare_out
+from calib.output.hedge import policy_table
 from calib.output.report import CAUTIONS
 from calib.policy.settings import RunSettings, load_settings
 from calib.store.engine import Store, begin_write, store_for
@@ -43,6 +44,7 @@ from calib.store.estimates import EstimateRecord
 from calib.store.migrate import upgrade
 from calib.store.quotes import add_commodity
 from calib.workflows.compare import Selection, compare_runs
+from calib.workflows.demo.policies import compare_demo_policies
 from calib.workflows.demo.scenario import Scenario, ScenarioSpec, generate, write_csv
 from calib.workflows.estimates import MIN_DAYS, estimate
 from calib.workflows.fit import FitOutcome, fit_day
@@ -79,6 +81,8 @@ class DemoPlan:
     fit_months : the last so many months of trade dates are fitted, one morning at a time.
     min_days : fewest trading days the estimate accepts.
     settings : calibration settings and gate limits of the mornings.
+    policy_days, policy_every : trading days of the policy comparison's window (the option
+        is sold on every ``policy_every``-th of them; :mod:`calib.workflows.demo.policies`).
     """
 
     spec: ScenarioSpec = field(default_factory=ScenarioSpec)
@@ -86,6 +90,8 @@ class DemoPlan:
     fit_months: int = 3
     min_days: int = MIN_DAYS
     settings: RunSettings = field(default_factory=lambda: load_settings(None, "QLM"))
+    policy_days: int = 40
+    policy_every: int = 5
 
     def __post_init__(self) -> None:
         for name in ("estimate_months", "fit_months"):
@@ -105,6 +111,8 @@ QUICK_PLAN = DemoPlan(
     estimate_months=10,
     fit_months=1,
     min_days=150,
+    policy_days=12,
+    policy_every=3,
 )
 """A reduced demo that runs in seconds (the tests' and ``calib demo --quick``'s)."""
 
@@ -148,6 +156,11 @@ class DemoSummary:
     flagged_days: int
     seconds: float
     cautions: str = DEMO_CAUTIONS
+    policy_table: tuple[str, ...] = ()
+    """The policy comparison's table (:func:`calib.output.hedge.policy_table`)."""
+    policy_rows: tuple[dict[str, Any], ...] = ()
+    """Its rows (the keys of ``calib hedge policies --json``, without the sales)."""
+    policy_page: Path | None = None
 
     def to_dict(self) -> dict[str, Any]:
         rmse = self.rmse_vol_points
@@ -176,6 +189,8 @@ class DemoSummary:
             "flagged_days": self.flagged_days,
             "seconds": self.seconds,
             "cautions": self.cautions,
+            "policies": list(self.policy_rows),
+            "policy_page": None if self.policy_page is None else str(self.policy_page),
         }
 
 
@@ -367,6 +382,13 @@ def run_demo(
         rep = write_report(store.sessions, shown, directory / "report")
         progress(f"report of run {shown}: {rep.files.index}")
 
+        progress("policy comparison: fitting each policy's study runs, then replaying")
+        policies = compare_demo_policies(
+            store, code, days, (plan.policy_days, plan.policy_every), directory / "policies", USER
+        )
+        rows = policies.to_list()
+        progress(f"policy comparison: {directory / 'policies' / 'index.html'}")
+
     gates_failed: Counter[str] = Counter(g.name for o in fitted for g in o.gates if not g.passed)
     rmse_all = tuple(
         r for r in (_rmse_vol(o) for o in fitted) if r is not None and math.isfinite(r)
@@ -394,6 +416,9 @@ def run_demo(
         else 0.0,
         flagged_days=int(table.any_flag.sum()),
         seconds=time.monotonic() - started,
+        policy_table=tuple(policy_table(rows)),
+        policy_rows=tuple({k: v for k, v in r.items() if k != "trade_list"} for r in rows),
+        policy_page=directory / "policies" / "index.html",
     )
     (directory / "summary.json").write_text(
         json.dumps(summary.to_dict(), indent=2, default=str) + "\n", encoding="utf-8"
