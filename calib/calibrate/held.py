@@ -106,9 +106,13 @@ class HeldProblem:
                 tau = np.where(worse, 0.5 * tau, tau)
                 J_new = np.where(worse, self.objective(P + tau * d, r), J_new)
             accept = J_new <= J
+            # a point is done when its step vanished, or when no step along it decreases the
+            # objective at floating-point precision (its Gauss-Newton target lies within
+            # rounding of P: the optimum to the precision the objective can be evaluated at)
+            done = (np.abs(d) <= self.step_tol) | ~(J_new < J)
             P = np.where(accept, P + tau * d, P)
             J = np.where(accept, J_new, J)
-            if float(np.max(np.abs(d))) <= self.step_tol:
+            if bool(np.all(done)):
                 converged = True
                 break
         return P, np.where(feasible, J, np.inf), it, converged

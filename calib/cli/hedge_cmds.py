@@ -7,10 +7,11 @@ bad world file, ...), nothing simulated.
 
 from __future__ import annotations
 
+from collections.abc import Callable
 from contextlib import closing
 from datetime import date, datetime
 from pathlib import Path
-from typing import TYPE_CHECKING, Annotated, Any, Literal
+from typing import TYPE_CHECKING, Annotated, Any, Literal, TypeVar
 
 import typer
 
@@ -38,6 +39,8 @@ hedge_app = typer.Typer(
 
 _DAY = ["%Y-%m-%d"]
 
+R = TypeVar("R")
+
 
 Commodity = Annotated[str, typer.Argument(help="Commodity code.")]
 Expiry = Annotated[datetime, typer.Option("--expiry", formats=_DAY, help="Option expiry.")]
@@ -55,6 +58,11 @@ KindOpt = Annotated[Literal["call", "put"], typer.Option("--kind", help="call or
 def _file(flag: str, help: str) -> Any:
     """An optional output path option (no default shown)."""
     return typer.Option(flag, help=help, show_default=False)
+
+
+def _files(result: R, outputs: list[tuple[Path | None, Callable[[R, Path], Path]]]) -> list[str]:
+    """Write ``result`` with each writer whose path was given; the paths written."""
+    return [str(write(result, path)) for path, write in outputs if path is not None]
 
 
 def _finish(as_json: bool, data: Any, summary: str, written: list[str]) -> None:
@@ -152,11 +160,7 @@ def sim_cmd(
             paths=paths,
             seed=seed,
         )
-    written = []
-    if png is not None:
-        written.append(str(flow.plot_histogram(result, png)))
-    if csv_path is not None:
-        written.append(str(flow.write_paths_csv(result, csv_path)))
+    written = _files(result, [(png, flow.plot_histogram), (csv_path, flow.write_paths_csv)])
     _finish(as_json, result.to_dict(), result.summary(), written)
 
 
@@ -203,11 +207,7 @@ def replay_cmd(
         result = flow.replay(
             store.sessions, commodity, trade, start=start.date(), sets=sets, morning=at
         )
-    written = []
-    if png is not None:
-        written.append(str(flow.plot_replay(result, png)))
-    if csv_path is not None:
-        written.append(str(flow.write_replay_csv(result, csv_path)))
+    written = _files(result, [(png, flow.plot_replay), (csv_path, flow.write_replay_csv)])
     _finish(as_json, result.to_dict(), result.summary(), written)
 
 

@@ -51,6 +51,7 @@ def _run(**changes: Any) -> Any:
         "buckets": [{"start": 0.0, "end": 0.9, "params": PARAMS.to_dict()}],
         "approved_at": None,
         "approved_by": None,
+        "study": None,
     }
     run = {**fields, **changes}
     # the printers read a run's fit through its stored record (``run.fit.to_dict()``)
