@@ -326,8 +326,8 @@ def test_disk_full_during_the_bulk_insert_is_one_line(
     assert cli("init")[0] == 0
     original = engine_module._sqlite_on_connect
 
-    def nearly_full(connection: sqlite3.Connection, record: Any) -> None:
-        original(connection, record)
+    def nearly_full(connection: sqlite3.Connection, record: Any, **options: Any) -> None:
+        original(connection, record, **options)
         pages = connection.execute("PRAGMA page_count").fetchone()[0]
         connection.execute(f"PRAGMA max_page_count={pages + 2}")
 
