@@ -33,8 +33,10 @@ lint: $(DEV)
 typecheck: $(DEV)
 	$(PY) -m mypy
 
+# one test process per core (pytest-xdist): databases are per test (SQLite files, PostgreSQL
+# schemas with random names), so processes never share one
 unit: $(DEV)
-	$(PY) -m pytest -q
+	$(PY) -m pytest -q -n auto
 
 test: lint typecheck unit
 
