@@ -29,6 +29,8 @@ entire integrand), and the paths where they disagree are priced again with the f
 from __future__ import annotations
 
 import math
+import types
+from collections.abc import Callable
 from dataclasses import dataclass
 
 import numba
@@ -91,10 +93,21 @@ def _spread_body(
         d_outer[p] = -disc * sg * s_outer
 
 
+def _named(fn: Callable[..., None], name: str) -> Callable[..., None]:
+    """``fn`` as another function object named ``name``: numba's on-disk cache keys a compiled
+    function by its qualified name and argument types, not by ``parallel``, so two kernels
+    compiled from one function object would load each other's machine code."""
+    copy = types.FunctionType(
+        fn.__code__.replace(co_name=name, co_qualname=name), fn.__globals__, name
+    )
+    copy.__qualname__ = name
+    return copy
+
+
 _spread_kernel = numba.njit(cache=True, parallel=True)(_spread_body)
 """The kernel over many paths, spread over the cores."""
 
-_spread_kernel_serial = numba.njit(cache=True)(_spread_body)
+_spread_kernel_serial = numba.njit(cache=True)(_named(_spread_body, "_spread_body_serial"))
 """The same loop in the calling thread, for a few paths (a replay values one history): the
 parallel kernel's start-up per call would cost more than the work."""
 

@@ -198,3 +198,15 @@ def test_adaptive_node_count_matches_the_full_count_on_every_path(
     # check runs on probe paths only)
     np.testing.assert_allclose(fewer[0], full[0], rtol=0, atol=10 * NODE_TOL * F.max())
     np.testing.assert_allclose(fewer[1], full[1], rtol=0, atol=10 * NODE_TOL)
+
+
+def test_serial_and_parallel_kernels_keep_apart_in_the_compiled_cache() -> None:
+    # numba keys its on-disk cache by qualified name and argument types, not by ``parallel``:
+    # one function object under both would have the many-path study load the serial code
+    from calib.hedge import valuation
+
+    names = {
+        valuation._spread_kernel.py_func.__qualname__,
+        valuation._spread_kernel_serial.py_func.__qualname__,
+    }
+    assert len(names) == 2
