@@ -1,4 +1,5 @@
-"""Shared test set-up: hypothesis profiles and seeded random generators."""
+"""Shared test set-up: hypothesis profiles, the kernel cache of a parallel run, seeded random
+generators, databases on each engine, the command line in this process."""
 
 from __future__ import annotations
 
@@ -13,6 +14,48 @@ settings.register_profile(
     "ci", max_examples=200, deadline=None, suppress_health_check=[HealthCheck.too_slow]
 )
 settings.load_profile(os.environ.get("HYPOTHESIS_PROFILE", "dev"))
+
+
+# --- a parallel run (pytest -n N): calib's compiled kernels made once, before the test processes
+
+import subprocess  # noqa: E402
+import sys  # noqa: E402
+import time  # noqa: E402
+
+WARMUP_PROCESSES = (("estimate",), ("options", "hedge"))
+"""The groups of :mod:`tests.numba_warmup`, one process each: about 30 s and 25 s of CPU on a
+fresh checkout (compiling), 2-3 s each once cached (imports and loading)."""
+
+
+def pytest_configure(config: pytest.Config) -> None:
+    """In the controller of a parallel run, before the test processes start: compile calib's
+    numba kernels into their cache once, in two processes (see :mod:`tests.numba_warmup`),
+    instead of in every test process that reaches them first. A failed warm-up is reported
+    and the run goes on (each test then compiles what it needs, as without it)."""
+    if not getattr(config.option, "numprocesses", None) or hasattr(config, "workerinput"):
+        return
+    root = Path(__file__).resolve().parents[1]
+    path = [str(root), *filter(None, [os.environ.get("PYTHONPATH")])]
+    env = {**os.environ, "PYTHONPATH": os.pathsep.join(path)}
+    t0 = time.monotonic()
+    started = [
+        subprocess.Popen(
+            [sys.executable, "-m", "tests.numba_warmup", *groups],
+            cwd=root,
+            env=env,
+            stdout=subprocess.PIPE,
+            stderr=subprocess.STDOUT,
+            text=True,
+        )
+        for groups in WARMUP_PROCESSES
+    ]
+    for groups, process in zip(WARMUP_PROCESSES, started, strict=True):
+        out, _ = process.communicate()
+        if process.returncode != 0:
+            tail = "\n".join(out.splitlines()[-15:])
+            name = " ".join(groups)
+            sys.stderr.write(f"numba warm-up {name} failed (the tests compile):\n{tail}\n")
+    sys.stderr.write(f"numba kernels compiled or loaded in {time.monotonic() - t0:.0f} s\n")
 
 
 @pytest.fixture

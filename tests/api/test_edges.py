@@ -19,7 +19,7 @@ from calib.errors import SettingError
 from calib.settings import Settings
 from calib.store.engine import Store
 from calib.workflows.approve import approve
-from tests.serving.test_api import TOKEN, serving
+from tests.serving.test_api import HANG_SECONDS, TOKEN, serving
 
 LATEST = f"/v1/commodities/{CODE}/latest"
 AUTH = {"Authorization": f"Bearer {TOKEN}"}
@@ -159,7 +159,7 @@ def _wait_for_a_blocked_statement(lock: object) -> None:
         "SELECT count(*) FROM pg_stat_activity WHERE wait_event_type = 'Lock' "
         "AND pid <> pg_backend_pid() AND query LIKE '%run_events%'"
     )
-    deadline = time.monotonic() + 20
+    deadline = time.monotonic() + HANG_SECONDS  # only a hang reaches it, not a slow machine
     while time.monotonic() < deadline:
         if lock.execute(query).scalar():  # type: ignore[attr-defined]
             return

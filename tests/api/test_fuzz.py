@@ -19,7 +19,7 @@ from calib.api.app import create_app
 from calib.settings import Settings
 from calib.store.engine import Store
 from calib.workflows.approve import approve
-from tests.serving.test_api import TOKEN, serving
+from tests.serving.test_api import HANG_SECONDS, TOKEN, serving
 
 EXAMPLES = 10
 """Examples per operation, generation mode and token setting: the strategies draw the edge
@@ -40,7 +40,7 @@ def _fuzz(base_url: str, operation: Any, mode: GenerationMode, headers: dict[str
     )
     @given(case=operation.as_strategy(generation_mode=mode))
     def check(case: schemathesis.Case[Any]) -> None:
-        answer = case.call(base_url=base_url, headers=headers, timeout=10)
+        answer = case.call(base_url=base_url, headers=headers, timeout=HANG_SECONDS)
         where = f"{case.method} {case.formatted_path} query={case.query!r}"
         assert answer.status_code < 500, f"{where}: {answer.status_code} {answer.text[:200]}"
         if answer.status_code >= 400 and answer.status_code != 405:

@@ -20,7 +20,9 @@ TRUE = TwoFactorParams(
     mu=0.05, kappa=1.5, alpha=0.02, lam=0.0, sigma_spot=0.35, sigma_yield=0.25, rho=0.7
 )
 N_BOOT = 200  # the bootstrap's own standard error of a spread is about 1/sqrt(2 N) = 5 %
-SE_TOL = 0.2  # standard errors against the bootstrap spread (issue 18's check)
+# standard errors against the bootstrap spread, relative: four times the spread's own error
+# (5 %, above), the rest left to the linearisation behind the standard errors
+SE_TOL = 0.2
 
 
 def _quotes(**kw: object) -> OptionQuotes:

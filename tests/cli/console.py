@@ -14,6 +14,9 @@ from pathlib import Path
 ROOT = Path(__file__).resolve().parents[2]
 """The repository root: the subprocess imports calib from here."""
 
+HANG_SECONDS = 300.0
+"""Bound on one command's run: only a hung command reaches it, a loaded machine does not."""
+
 SCRIPT = "import sys\nfrom calib.cli import main\nsys.argv[0] = 'calib'\nsys.exit(main())\n"
 """What the installed ``calib`` wrapper runs."""
 
@@ -30,6 +33,6 @@ def calib(
         text=True,
         cwd=cwd or ROOT,
         env=environment,
-        timeout=120,
+        timeout=HANG_SECONDS,
         check=False,
     )

@@ -12,7 +12,7 @@ from pathlib import Path
 
 import pytest
 
-from tests.cli.console import ROOT, calib
+from tests.cli.console import HANG_SECONDS, ROOT, calib
 
 README = (ROOT / "README.md").read_text(encoding="utf-8")
 LEFT_OUT = ("calib serve",)
@@ -64,7 +64,7 @@ def test_readme_examples_run_as_written(tmp_path: Path) -> None:
         text=True,
         cwd=tmp_path,
         env={"PYTHONPATH": str(ROOT), "PATH": "/usr/bin:/bin"},
-        timeout=120,
+        timeout=HANG_SECONDS,
         check=False,
     )
     assert done.returncode == 0, done.stderr
