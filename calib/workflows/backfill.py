@@ -297,12 +297,18 @@ class _Plan:
     write_seconds: float = 0.0
     seconds: float = 0.0
 
-    def stored_days(self, session: Session) -> set[date]:
-        """Days of the plan that have a run with its estimate and its settings."""
+    def stored_days(
+        self, session: Session, start: date | None = None, end: date | None = None
+    ) -> set[date]:
+        """Days of the plan (within ``start..end`` when given) that have a run with its
+        estimate and its settings."""
         if not self.dates:
             return set()
         keys = run_keys(
-            session=session, commodity=self.commodity, start=self.dates[0], end=self.dates[-1]
+            session=session,
+            commodity=self.commodity,
+            start=start or self.dates[0],
+            end=end or self.dates[-1],
         )
         return {
             k.trade_date
@@ -442,7 +448,10 @@ def backfill_many(
                 plan.settings,
                 by=by,
                 auto_approve=auto_approve and plan.study is None,
-                skip_stored=plan.stored_days,
+                # only the batch's days: the check costs the same on the last batch as on the first
+                skip_stored=lambda session: plan.stored_days(
+                    session, batch[0][0].trade_date, batch[-1][0].trade_date
+                ),
                 study=plan.study,
             )
         )
