@@ -57,6 +57,10 @@ path's futures level; hedge ratios, futures per option, absolute) for the larger
 
 _SQRT_HALF = math.sqrt(0.5)
 
+_BLOCK = 128
+"""Paths the kernel takes date by date together: a date's node tables are read from cache by
+all of them (one path through every date would sweep all the dates' tables each time)."""
+
 
 @numba.njit(cache=True)
 def _rule(
@@ -114,25 +118,27 @@ def _spread_body(
     alone, or (adaptive) rule 0 where it agrees with rule 1 within ``tol`` and rule 2 (if any)
     where it does not."""
     rules = a.shape[0]
-    for p in numba.prange(futures.shape[0]):
-        for k in range(value.shape[1]):
-            fo = futures[p, k, outer]
-            fi = futures[p, k, inner]
+    n_paths = futures.shape[0]
+    for block in numba.prange((n_paths + _BLOCK - 1) // _BLOCK):
+        for k in range(value.shape[1]):  # one date's tables stay in cache for the block
             sc_k = sc[k]
             disc_k = disc[k]
-            v, d_o, d_i = _rule(fo, fi, a, b, w, m, 0, k, abs_strike, sc_k, sg, disc_k)
-            if rules > 1:
-                cv, cd_o, cd_i = _rule(fo, fi, a, b, w, m, 1, k, abs_strike, sc_k, sg, disc_k)
-                agree = (
-                    abs(v - cv) / max(fo, fi) <= tol
-                    and abs(d_o - cd_o) <= tol
-                    and abs(d_i - cd_i) <= tol
-                )
-                if rules > 2 and not agree:  # NaN disagrees too
-                    v, d_o, d_i = _rule(fo, fi, a, b, w, m, 2, k, abs_strike, sc_k, sg, disc_k)
-            value[p, k] = v
-            ratios[p, k, outer] = d_o
-            ratios[p, k, inner] = d_i
+            for p in range(block * _BLOCK, min((block + 1) * _BLOCK, n_paths)):
+                fo = futures[p, k, outer]
+                fi = futures[p, k, inner]
+                v, d_o, d_i = _rule(fo, fi, a, b, w, m, 0, k, abs_strike, sc_k, sg, disc_k)
+                if rules > 1:
+                    cv, cd_o, cd_i = _rule(fo, fi, a, b, w, m, 1, k, abs_strike, sc_k, sg, disc_k)
+                    agree = (
+                        abs(v - cv) / max(fo, fi) <= tol
+                        and abs(d_o - cd_o) <= tol
+                        and abs(d_i - cd_i) <= tol
+                    )
+                    if rules > 2 and not agree:  # NaN disagrees too
+                        v, d_o, d_i = _rule(fo, fi, a, b, w, m, 2, k, abs_strike, sc_k, sg, disc_k)
+                value[p, k] = v
+                ratios[p, k, outer] = d_o
+                ratios[p, k, inner] = d_i
 
 
 def _named(fn: Callable[..., None], name: str) -> Callable[..., None]:
