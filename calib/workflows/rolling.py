@@ -274,15 +274,17 @@ def estimate_rolling(
             runs.append([i])
     for part in runs:
         prev = held.get(ends[part[0] - 1].isoformat()) if part[0] > 0 else None
-        warm = None
+        warm, warm_cov = None, None
         if prev is not None and prev.converged:
             warm = (prev.params, np.asarray(prev.noise_sd, dtype=np.float64))
+            if prev.covariance is not None:  # None entries (not stored) become NaN: unused
+                warm_cov = np.array(prev.covariance, dtype=np.float64)
         tasks = [
             windows[i].task(i, check_cold=cold_every > 0 and i % cold_every == cold_every // 2)
             for i in part
         ]
         for fits in estimate_windows(
-            tasks, FitSettings(min_days=min_days), run, chunk=chunk, warm=warm
+            tasks, FitSettings(min_days=min_days), run, chunk=chunk, warm=warm, warm_cov=warm_cov
         ):
             cold_checked += sum(1 for f in fits if f.cold_loglik is not None)
             stored_now = _store_chunk(sessions, cid, user, series_id, length, step, windows, fits)
