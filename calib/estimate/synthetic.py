@@ -21,6 +21,9 @@ from calib.types import FloatArray
 QUOTED_YEARS = 1.5
 """A contract is quoted from this many years before its delivery."""
 
+FIRST_SPOT = 60.0
+"""Spot price on the first day (the convenience yield starts at ``alpha``)."""
+
 
 def business_days(n_days: int, start: np.datetime64) -> np.ndarray[Any, Any]:
     """The first ``n_days`` weekdays from ``start`` on, as ``datetime64[D]``."""
@@ -35,7 +38,6 @@ def simulated_curves(
     params: TwoFactorParams,
     noise_sd: FloatArray,
     rate: float,
-    spot: float = 60.0,
     missing: float = 0.0,
 ) -> Curves:
     """Curves on ``days`` (``datetime64[D]``) of a market whose true parameters are ``params``.
@@ -46,13 +48,12 @@ def simulated_curves(
     seed : seeds the states, then the noise, then the missing prices.
     params, rate : the two-factor parameters (real-world drifts for the states) and the rate.
     noise_sd : ``(n_contracts,)`` standard deviation of each slot's log-price noise.
-    spot : spot price on the first day (the convenience yield starts at ``alpha``).
     missing : probability that a price is missing (never on the first day, which starts the
         filter).
     """
     rng = np.random.default_rng(seed)
     years = (days - days[0]).astype(np.float64) / DAYS_PER_YEAR
-    paths = simulate_states(params, years, np.log(spot), params.alpha, 1, rng=rng)
+    paths = simulate_states(params, years, np.log(FIRST_SPOT), params.alpha, 1, rng=rng)
     first = days[0].astype("datetime64[M]")
     months = np.arange(first, days[-1].astype("datetime64[M]") + 24, 2)
     deliveries = months.astype("datetime64[D]") + 19
