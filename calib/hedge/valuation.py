@@ -212,7 +212,7 @@ def _spread(
     serial = n_paths * n_dates < SERIAL_BELOW
     kernel = _spread_kernel_serial if serial else _spread_kernel
     outer, inner = (0, 1) if near_out else (1, 0)
-    sg = 1.0 if option.call == near_out else -1.0
+    sg = 1.0 if option.is_call == near_out else -1.0
     kernel(
         futures,
         outer,
@@ -238,11 +238,11 @@ def _vanilla(
     F = futures[:, :, 0]
     std = np.sqrt(np.maximum(var, 0.0))
     live = std > 0.0
-    value = discount * undiscounted_price(F, option.strike, std, option.call)
+    value = discount * undiscounted_price(F, option.strike, std, option.is_call)
     with np.errstate(divide="ignore", invalid="ignore"):  # dates at expiry: not used
         d1 = np.log(F / option.strike) / std + 0.5 * std
     n1 = np.where(live, ndtr(d1), (option.strike < F).astype(np.float64))
-    delta = discount * (n1 if option.call else n1 - 1.0)
+    delta = discount * (n1 if option.is_call else n1 - 1.0)
     return np.asarray(value), np.asarray(delta)[:, :, None]
 
 
