@@ -81,13 +81,15 @@ def _rule(
     s_price = 0.0
     s_inner = 0.0
     s_outer = 0.0
+    inv_sc = 1.0 / sc if sc > 0.0 else 0.0  # a product in the loop, not a division
+    scale = -sg * _SQRT_HALF  # N(sg x) = erfc(scale x) / 2
     for j in range(m[r, k]):
         k_j = fo * a[r, k, j] + abs_strike
         fc = fi * b[r, k, j]
         if sc > 0.0:
-            d1 = math.log(fc / k_j) / sc + 0.5 * sc
-            n1 = 0.5 * math.erfc(-sg * d1 * _SQRT_HALF)
-            n2 = 0.5 * math.erfc(-sg * (d1 - sc) * _SQRT_HALF)
+            d1 = math.log(fc / k_j) * inv_sc + 0.5 * sc
+            n1 = 0.5 * math.erfc(scale * d1)
+            n2 = 0.5 * math.erfc(scale * (d1 - sc))
         else:  # the inner leg is a point given the outer one
             n1 = 1.0 if sg * (fc - k_j) > 0.0 else 0.0
             n2 = n1
