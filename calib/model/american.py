@@ -62,7 +62,13 @@ from scipy.special import erfcx
 
 from calib.errors import AMERICAN_IMPLIED_VOL_REASONS, IMPLIED_VOL_REASONS
 from calib.model import black76
-from calib.model.black76 import ImpliedVolCode, Kind, is_call
+from calib.model.black76 import (
+    ImpliedVolCode,
+    Kind,
+    flat_arrays,
+    is_call,
+    raising_implied_vol,
+)
 from calib.types import ArrayLike, BoolArray, FloatArray, IntArray
 
 __all__ = [
@@ -221,7 +227,7 @@ def _ncdf_e(x: float, e: float) -> float:
     low = (c[0] + c[1] * s) + s2 * (c[2] + c[3] * s)
     mid = (c[4] + c[5] * s) + s2 * (c[6] + c[7] * s)
     high = (c[8] + c[9] * s) + s2 * (c[10] + c[11] * s)
-    tail = _INV_SQRT_2PI * e * (low + s4 * (mid + s4 * high))
+    tail = float(_INV_SQRT_2PI * e * (low + s4 * (mid + s4 * high)))
     return tail if x < 0.0 else 1.0 - tail
 
 
@@ -469,11 +475,7 @@ _put_value = numba.njit(cache=True, error_model="numpy")(_put_value)
 
 
 def _value_loop(
-    F: FloatArray,
-    K: FloatArray,
-    T: FloatArray,
-    r: FloatArray,
-    vol: FloatArray,
+    options: FloatArray,
     call: BoolArray,
     valid: BoolArray,
     value: FloatArray,
@@ -481,10 +483,11 @@ def _value_loop(
     tab: Tables,
     want_delta: bool,
 ) -> None:
+    """Premiums and deltas of ``options`` (rows ``F, K, T, r, vol``)."""
     work = np.empty(_work_size(tab))
     last_t = last_r = last_v = np.nan  # the boundary in `work` (NaN: none)
-    for i in range(F.size):
-        f, k, t, rr, v = F[i], K[i], T[i], r[i], vol[i]
+    for i in range(call.size):
+        f, k, t, rr, v = options[0, i], options[1, i], options[2, i], options[3, i], options[4, i]
         if not valid[i]:
             value[i] = np.nan
             delta[i] = np.nan
@@ -507,15 +510,6 @@ _VALUE_KERNEL: Callable[..., None] = numba.njit(cache=True, nogil=True, error_mo
 )
 
 
-def _flat(
-    kind: Kind | ArrayLike, *values: ArrayLike
-) -> tuple[tuple[int, ...], BoolArray, list[FloatArray]]:
-    """Broadcast shape, flat call flags and flat float64 copies of ``values``."""
-    arrays = np.broadcast_arrays(is_call(kind), *(np.asarray(a, dtype=np.float64) for a in values))
-    flat = [np.ascontiguousarray(a).reshape(-1) for a in arrays]
-    return arrays[0].shape, flat[0], flat[1:]
-
-
 def _values(
     F: ArrayLike,
     K: ArrayLike,
@@ -526,14 +520,14 @@ def _values(
     want_delta: bool = True,
 ) -> tuple[FloatArray, FloatArray]:
     """Premiums and (with ``want_delta``, else NaN where the boundary is solved) deltas."""
-    shape, call, flat = _flat(kind, F, K, T, r, vol)
+    shape, call, flat = flat_arrays(kind, F, K, T, r, vol)
     F_, K_, T_, r_, vol_ = flat
     with np.errstate(invalid="ignore"):
         valid = np.isfinite(flat).all(axis=0) & (F_ > 0.0) & (K_ > 0.0) & (T_ >= 0.0)
         valid &= vol_ >= 0.0
     value = np.empty(flat[0].size)
     delta = np.empty(flat[0].size)
-    _VALUE_KERNEL(*flat, call, valid, value, delta, _TABLES, want_delta)
+    _VALUE_KERNEL(np.stack(flat), call, valid, value, delta, _TABLES, want_delta)
     euro = valid & (r_ * T_ <= _NEGLIGIBLE_RT) & (vol_ > 0.0) & (T_ > 0.0)
     if euro.any():  # Black-76's own figures where no early exercise is worth anything
         g = black76.greeks(F_[euro], K_[euro], T_[euro], r_[euro], vol_[euro], call[euro])
@@ -770,22 +764,15 @@ _put_vol = numba.njit(cache=True, error_model="numpy")(_put_vol)
 
 
 def _implied_vol_loop(
-    premium: FloatArray,
-    F: FloatArray,
-    K: FloatArray,
-    T: FloatArray,
-    r: FloatArray,
-    call: BoolArray,
-    vol: FloatArray,
-    code: IntArray,
-    tab: Tables,
+    quotes: FloatArray, call: BoolArray, vol: FloatArray, code: IntArray, tab: Tables
 ) -> None:
+    """Implied vols of ``quotes`` (rows: premium, ``F, K, T, r``) where ``code`` is OK."""
     work = np.empty(_work_size(tab))
-    for i in range(premium.size):
+    for i in range(call.size):
         vol[i] = np.nan
         if code[i] != _OK:  # screened before the loop
             continue
-        p, f, k, t, rr = premium[i], F[i], K[i], T[i], r[i]
+        p, f, k, t, rr = quotes[0, i], quotes[1, i], quotes[2, i], quotes[3, i], quotes[4, i]
         s, x = (k, f) if call[i] else (f, k)  # a call is the put with F and K swapped
         intrinsic = max(x - s, 0.0)
         if p < intrinsic:
@@ -837,7 +824,7 @@ def implied_vol_detail(
     that of :func:`price` itself, so a round trip recovers the volatility to about
     ``eps * premium / vega`` (at most 8e-13 measured).
     """
-    shape, call, flat = _flat(kind, premium, F, K, T, r)
+    shape, call, flat = flat_arrays(kind, premium, F, K, T, r)
     _, F_, K_, T_, r_ = flat
     code = np.full(call.size, _OK, dtype=np.int64)
     with np.errstate(invalid="ignore"):
@@ -846,30 +833,19 @@ def implied_vol_detail(
     euro = (code == _OK) & (r_ <= 0.0)
     code[euro] = _EUROPEAN
     vol = np.empty(call.size)
-    _IV_KERNEL(*flat, call, vol, code, _TABLES)
+    _IV_KERNEL(np.stack(flat), call, vol, code, _TABLES)
     if euro.any():  # the premium is a Black-76 one
         p_, F_, K_, T_, r_ = (a[euro] for a in flat)
         vol[euro], code[euro] = black76.implied_vol_detail(p_, F_, K_, T_, r_, call[euro])
     return vol.reshape(shape), code.reshape(shape)
 
 
-def implied_vol(
-    premium: ArrayLike,
-    F: ArrayLike,
-    K: ArrayLike,
-    T: ArrayLike,
-    r: ArrayLike,
-    kind: Kind | ArrayLike,
-) -> FloatArray:
-    """American implied volatility of each premium (NaN where none exists).
-
-    For arrays, an element without an implied volatility is NaN (see
-    :func:`implied_vol_detail` for the reason codes). A scalar call (every argument a scalar)
-    raises :class:`calib.errors.ImpliedVolError` naming the reason instead.
-    """
-    vol, code = implied_vol_detail(premium, F, K, T, r, kind)
-    if vol.ndim != 0:
-        return vol
-    european = float(np.asarray(r, dtype=np.float64)) <= 0.0
-    reasons = IMPLIED_VOL_REASONS if european else AMERICAN_IMPLIED_VOL_REASONS
-    return black76.scalar_checked(vol, code, premium, reasons)
+implied_vol = raising_implied_vol(
+    implied_vol_detail,
+    lambda r: (
+        IMPLIED_VOL_REASONS
+        if float(np.asarray(r, dtype=np.float64)) <= 0.0  # a Black-76 premium
+        else AMERICAN_IMPLIED_VOL_REASONS
+    ),
+    "American",
+)
