@@ -45,6 +45,10 @@ fine) updates every node from the previous boundary (Jacobi). A fixed discretisa
 sweep count make the premium a smooth function of its inputs, which the finite-difference vega
 and the implied-volatility solver rely on.
 
+The boundary in units of the strike depends on ``T, r, vol`` alone, so consecutive options
+sharing them (a chain's strikes, calls and puts at one volatility) solve it once; the normal
+probabilities come from the densities at hand times Mills' ratio (see :func:`_ncdf_e`).
+
 Two guards keep the bounds exact where the few sweeps leave the boundary off: at rates near
 zero the start lies far above the boundary, so in the exercise region the premium is the
 larger of intrinsic and European; and a premium a discretisation error below intrinsic just
