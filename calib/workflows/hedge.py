@@ -326,7 +326,7 @@ def simulate(
         if np.isnan(value):
             raise HedgeRequestError(commodity, SPREAD_NOT_QUOTED.format(delivery=delivery, day=day))
     option = option_for(trade, day)
-    t = option.expiry
+    t = option.t_expiry
     discount = float(quotes.rates.discount(np.array([trade.expiry], dtype="datetime64[D]"))[0])
     rate = -math.log(discount) / t
     vols: TwoFactorParams | ForwardVols = run_vols(run, day, t)
@@ -336,7 +336,7 @@ def simulate(
     steps = max(1, round(steps_per_year * t))
     times = np.linspace(0.0, t, steps + 1)
     futures = simulate_futures(
-        world_params, option.maturities, times, settles, state0, rate, paths, rng=seed
+        world_params, option.t_legs, times, settles, state0, rate, paths, rng=seed
     )
     result = hedge_paths(option, vols, times, futures, rate)
     return HedgeSimulation(
@@ -740,7 +740,7 @@ def value_days(
         if run is None or np.any(np.isnan(F[k])):
             continue
         option = option_for(trade, day)
-        vols = run_vols(run, day, option.expiry)
+        vols = run_vols(run, day, option.t_expiry)
         law = remaining_law(option, vols, np.zeros(1))
         value, ratio = value_and_ratios(
             option,
