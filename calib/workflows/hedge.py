@@ -16,7 +16,6 @@ settlement. Rebalancing dates are ``N = round(steps_per_year * t)`` (at least 1)
 
 from __future__ import annotations
 
-import csv
 import json
 import math
 from dataclasses import dataclass
@@ -352,69 +351,6 @@ def simulate(
         result=result,
         stats=pnl_stats(result.pnl_pct, seed=seed + 1),
     )
-
-
-def write_paths_csv(sim: HedgeSimulation, path: Path) -> Path:
-    """One row a path: P&L in currency and % of premium, payoff, RMS step hedge error."""
-    path = Path(path)
-    path.parent.mkdir(parents=True, exist_ok=True)
-    r = sim.result
-    rms = np.sqrt(np.mean(r.hedge_error**2, axis=1))
-    with path.open("w", newline="", encoding="utf-8") as fh:
-        out = csv.writer(fh)
-        out.writerow(["path", "pnl", "pnl_pct", "payoff", "hedge_error_rms"])
-        for i in range(r.n_paths):
-            out.writerow(
-                [
-                    i,
-                    f"{r.pnl[i]:.10g}",
-                    f"{r.pnl_pct[i]:.10g}",
-                    f"{r.payoff[i]:.10g}",
-                    f"{rms[i]:.10g}",
-                ]
-            )
-    return path
-
-
-def plot_histogram(sim: HedgeSimulation, path: Path) -> Path:
-    """PNG histogram of the P&L in % of premium (central 99 % of paths drawn, the rest counted),
-    with the mean and the 5 % quantile marked."""
-    from matplotlib.backends.backend_agg import FigureCanvasAgg
-    from matplotlib.figure import Figure
-
-    path = Path(path)
-    path.parent.mkdir(parents=True, exist_ok=True)
-    fig = Figure(figsize=(8.0, 4.5), layout="constrained")
-    FigureCanvasAgg(fig)
-    ax = fig.subplots()
-    pct = sim.result.pnl_pct
-    lo, hi = np.quantile(pct, [0.005, 0.995])
-    pad = 0.05 * max(hi - lo, 1e-12)
-    shown = (pct >= lo - pad) & (pct <= hi + pad)
-    outside = int(pct.size - shown.sum())
-    ax.hist(
-        pct[shown],
-        bins=80,
-        color="#6baed6",
-        edgecolor="#2171b5",
-        lw=0.4,
-        label=f"{outside} paths beyond the 0.5-99.5 % range not drawn" if outside else None,
-    )
-    s = sim.stats
-    ax.axvline(s.mean.value, color="#08306b", lw=1.5, label=f"mean {s.mean.value:+.2f} %")
-    q5 = s.quantiles["5"].value
-    ax.axvline(q5, color="#cb181d", lw=1.2, ls="--", label=f"5 % quantile {q5:+.2f} %")
-    ax.set_xlabel("P&L at expiry, % of premium (seller, hedged)")
-    ax.set_ylabel("paths")
-    ax.set_title(
-        f"{sim.commodity} {sim.trade.describe()}\n"
-        f"run {sim.run.run_id}, world: {sim.world_source}; "
-        f"{sim.result.n_paths} paths x {sim.result.steps} rebalancings",
-        fontsize=9,
-    )
-    ax.legend(fontsize=8)
-    fig.savefig(path, dpi=110)
-    return path
 
 
 # --- replay on stored history ------------------------------------------------------------------
@@ -816,79 +752,3 @@ def _replay_days(commodity: str, sets: str, morning: time, valued: ValuedDays) -
         payoff=payoff,
         pnl=book.pnl,
     )
-
-
-def write_replay_csv(result: HedgeReplay, path: Path) -> Path:
-    """One row a day: set, settlements, value, positions, margin, cash, P&L, error, notes."""
-    path = Path(path)
-    path.parent.mkdir(parents=True, exist_ok=True)
-    n_legs = len(result.trade.legs)
-    with path.open("w", newline="", encoding="utf-8") as fh:
-        out = csv.writer(fh)
-        out.writerow(
-            ["day", "run_id"]
-            + [f"future_{i + 1}" for i in range(n_legs)]
-            + ["value"]
-            + [f"position_{i + 1}" for i in range(n_legs)]
-            + ["carried", "margin", "cash", "pnl_marked", "hedge_error", "notes"]
-        )
-        for d in result.days:
-            out.writerow(
-                [d.day.isoformat(), "" if d.run_id is None else d.run_id]
-                + [_cell(f) for f in d.futures]
-                + [_cell(d.value)]
-                + [_cell(p) for p in d.positions]
-                + [
-                    int(d.carried),
-                    _cell(d.margin),
-                    _cell(d.cash),
-                    _cell(d.marked),
-                    _cell(d.hedge_error),
-                    "; ".join(d.notes),
-                ]
-            )
-    return path
-
-
-def _cell(x: float) -> str:
-    return "" if math.isnan(x) else f"{x:.10g}"
-
-
-def plot_replay(result: HedgeReplay, path: Path) -> Path:
-    """PNG of the marked P&L (cash less the option's model value) day by day, carried days
-    marked, and the final P&L."""
-    from matplotlib.backends.backend_agg import FigureCanvasAgg
-    from matplotlib.figure import Figure
-
-    path = Path(path)
-    path.parent.mkdir(parents=True, exist_ok=True)
-    fig = Figure(figsize=(9.0, 4.5), layout="constrained")
-    FigureCanvasAgg(fig)
-    ax = fig.subplots()
-    days = np.array([d.day for d in result.days], dtype="datetime64[D]")
-    marked = np.array([d.marked for d in result.days])
-    ax.plot(days, marked, color="#08519c", marker=".", ms=4, lw=1.2, label="P&L marked to model")
-    carried = np.array([d.carried for d in result.days])
-    known = ~np.isnan(marked)
-    if carried.any():  # drawn on the line between the neighbouring marked days
-        x = days.astype(np.float64)
-        on_line = np.interp(x[carried], x[known], marked[known])
-        ax.plot(
-            days[carried],
-            on_line,
-            ls="none",
-            marker="x",
-            color="#cb181d",
-            label="hedge carried (no set or no price)",
-        )
-    ax.axhline(0.0, color="#777777", lw=0.8)
-    ax.tick_params(axis="x", labelrotation=30)
-    ax.set_ylabel(f"{result.commodity} per option")
-    ax.set_title(
-        f"{result.commodity} {result.trade.describe()}\nsold {result.days[0].day}, sets "
-        f"{result.sets}; final P&L {result.pnl:+.4f} ({result.pnl_pct:+.2f} % of premium)",
-        fontsize=9,
-    )
-    ax.legend(fontsize=8)
-    fig.savefig(path, dpi=110)
-    return path
