@@ -170,18 +170,20 @@ def stability_cmd(
 ) -> None:
     """Each parameter of a rolling series over time with its ±2 s.e. band, against the
     estimate in use: flags (beyond --k s.e., decay bound failing) and how often to re-estimate."""
+    from calib.output import stability as show
     from calib.workflows import stability as flow
 
     with open_store(db) as (store, _):
         report = flow.stability(
             store.sessions, commodity, series_id=series_id, estimate_id=estimate_id, k=k
         )
+    data = report.to_dict()
     if png is not None:
-        flow.write_png(report, png)
+        show.write_png(data, png)
     if csv_path is not None:
-        flow.write_csv(report, csv_path)
+        show.write_csv(data, csv_path)
     if as_json:
-        echo_json(report.to_dict())
+        echo_json(data)
         return
     s, use = report.series, report.in_use
     typer.echo(
