@@ -10,14 +10,15 @@ from __future__ import annotations
 import json
 from collections.abc import Iterator
 from contextlib import contextmanager
-from datetime import date, datetime
+from datetime import datetime
 from pathlib import Path
-from typing import TYPE_CHECKING, Annotated, Any
+from typing import TYPE_CHECKING, Annotated
 
 import typer
 
 from calib.as_of import AS_OF_HELP, parse_as_of
 from calib.errors import AsOfError, StoreUnavailableError
+from calib.record.codec import encode
 from calib.settings import Settings, get_settings
 
 if TYPE_CHECKING:
@@ -161,14 +162,6 @@ def open_store(
             raise StoreUnavailableError(store.url, detail) from None
 
 
-def _default(value: object) -> Any:
-    if isinstance(value, date | datetime):
-        return value.isoformat()
-    if hasattr(value, "tolist"):
-        return value.tolist()
-    raise TypeError(f"not JSON serialisable: {type(value).__name__}")
-
-
 def echo_json(payload: object) -> None:
     """Print ``payload`` as indented JSON (dates in ISO form, numpy values as numbers)."""
-    typer.echo(json.dumps(payload, indent=2, default=_default, allow_nan=False))
+    typer.echo(json.dumps(payload, indent=2, default=encode, allow_nan=False))
