@@ -20,6 +20,7 @@ import json
 import math
 from dataclasses import dataclass
 from datetime import UTC, date, datetime, time, timedelta
+from functools import partial
 from pathlib import Path
 from typing import Any
 
@@ -36,7 +37,6 @@ from calib.errors import (
     HEDGE_WORLD_FILE,
     HEDGE_WORLD_RUN,
     SPREAD_EXPIRY,
-    SPREAD_NOT_QUOTED,
     SPREAD_ORDER,
     SPREAD_RUN_FAILED,
     SPREAD_RUN_OTHER,
@@ -64,7 +64,7 @@ from calib.store.quotes import (
 )
 from calib.store.runs import RunRecord, approved_history, latest_approved, require_run
 from calib.types import FloatArray
-from calib.workflows.pricing import run_vols
+from calib.workflows.pricing import discount_to, quoted_settlements, run_vols
 
 STEPS_PER_YEAR = 252
 """Default rebalancings per year (daily)."""
@@ -319,14 +319,10 @@ def simulate(
         raise HedgeRequestError(
             commodity, SPREAD_EXPIRY.format(expiry=trade.expiry, day=day, near=first)
         )
-    legs = np.array(trade.legs, dtype="datetime64[D]")
-    settles = quotes.futures.settle_for(legs)
-    for delivery, value in zip(trade.legs, settles, strict=True):
-        if np.isnan(value):
-            raise HedgeRequestError(commodity, SPREAD_NOT_QUOTED.format(delivery=delivery, day=day))
+    settles = quoted_settlements(quotes, trade.legs, partial(HedgeRequestError, commodity))
     option = option_for(trade, day)
     t = option.expiry
-    discount = float(quotes.rates.discount(np.array([trade.expiry], dtype="datetime64[D]"))[0])
+    discount = discount_to(quotes, trade.expiry)
     rate = -math.log(discount) / t
     vols: TwoFactorParams | ForwardVols = run_vols(run, day, t)
     curve_taus = year_fractions(day, quotes.futures.delivery)

@@ -28,6 +28,7 @@ import math
 from collections.abc import Callable
 from dataclasses import dataclass, replace
 from datetime import date, timedelta
+from functools import partial
 from typing import Any
 
 import numpy as np
@@ -37,7 +38,6 @@ from calib.calibrate import Calibrator
 from calib.calibrate.calibrator import bucket_edges
 from calib.calibrate.quotes import prepare
 from calib.errors import (
-    SPREAD_NOT_QUOTED,
     UNCERTAINTY_NO_COVARIANCE,
     VANILLA_EXPIRY,
     VANILLA_STRIKE,
@@ -50,11 +50,17 @@ from calib.model.spread import ForwardVols, SpreadOption, spread_greeks, spread_
 from calib.model.twofactor import TwoFactorParams
 from calib.policy.settings import RunSettings
 from calib.store.estimates import EstimateRecord, get_estimate, list_series, series_estimates
-from calib.store.quotes import DAYS_PER_YEAR, load_day
+from calib.store.quotes import DAYS_PER_YEAR
 from calib.store.runs import RunRecord, run_quotes
 from calib.workflows.estimates import none_if_nan
 from calib.workflows.fit import attempt_fit, option_quotes
-from calib.workflows.pricing import SpreadPrice, choose_run, run_vols
+from calib.workflows.pricing import (
+    SpreadPrice,
+    discount_to,
+    pricing_day,
+    quoted_settlements,
+    run_vols,
+)
 
 DRAWS = 200
 """Default draws from the estimate's asymptotic law (the sampling check)."""
@@ -173,20 +179,18 @@ def price_vanilla(
         No approved set, a failed or foreign run, the future not quoted that day, an expiry
         outside ``(day, future]``, a strike that is not positive.
     """
-    with sessions.begin() as session:
-        run = choose_run(session, commodity, run_id)
-        day = on or run.trade_date
-        quotes = load_day(session=session, commodity=commodity, trade_date=day)
+    run, quotes = pricing_day(sessions, commodity, run_id, on)
+    day = quotes.trade_date
     if not (math.isfinite(strike) and strike > 0.0):
         raise VanillaRequestError(commodity, VANILLA_STRIKE.format(strike=strike))
     if not day < expiry <= future:
         raise VanillaRequestError(
             commodity, VANILLA_EXPIRY.format(expiry=expiry, day=day, future=future)
         )
-    settle = float(quotes.futures.settle_for(np.array([future], dtype="datetime64[D]"))[0])
-    if math.isnan(settle):
-        raise VanillaRequestError(commodity, SPREAD_NOT_QUOTED.format(delivery=future, day=day))
-    discount = float(quotes.rates.discount(np.array([expiry], dtype="datetime64[D]"))[0])
+    settle = float(
+        quoted_settlements(quotes, (future,), partial(VanillaRequestError, commodity))[0]
+    )
+    discount = discount_to(quotes, expiry)
     t, T = _years(day, expiry), _years(day, future)
     vols = run_vols(run, day, t)
     premium, variance = vanilla_value(vols, settle, strike, t, T, discount, kind)
