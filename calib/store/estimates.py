@@ -20,6 +20,7 @@ from sqlalchemy import Table, select
 from sqlalchemy.orm import Session
 
 from calib.model.twofactor import PARAM_NAMES, TwoFactorParams
+from calib.record.codec import copy_fields
 from calib.store.models import Commodity
 from calib.store.quotes import DateArray, insert_columns, require_commodity
 from calib.store.run_models import EstimateState, HistoricalEstimate, RollingSeries
@@ -87,28 +88,15 @@ class EstimateRecord:
 
 
 def _record(row: HistoricalEstimate, code: str) -> EstimateRecord:
-    return EstimateRecord(
+    return copy_fields(
+        EstimateRecord,
+        row,
         estimate_id=row.id,
         commodity=code,
-        created_at=row.created_at,
-        created_by=row.created_by,
-        source=row.source,
-        window_start=row.window_start,
-        window_end=row.window_end,
-        n_contracts=row.n_contracts,
-        n_days=row.n_days,
-        n_obs=row.n_obs,
-        loglik=row.loglik,
-        rate=row.rate,
-        converged=row.converged,
-        message=row.message,
         params=TwoFactorParams(**{n: getattr(row, n) for n in PARAM_NAMES}),
         std_errors=MappingProxyType(dict(row.std_errors)),
         noise_sd=tuple(row.noise_sd),
-        inputs_sha256=row.inputs_sha256,
         settings=MappingProxyType(dict(row.settings)),
-        code_version=row.code_version,
-        series_id=row.series_id,
         covariance=None
         if row.covariance is None
         else tuple(tuple(None if v is None else float(v) for v in r) for r in row.covariance),
@@ -298,17 +286,12 @@ class SeriesRecord:
 
 
 def _series(row: RollingSeries, code: str) -> SeriesRecord:
-    return SeriesRecord(
+    return copy_fields(
+        SeriesRecord,
+        row,
         series_id=row.id,
         commodity=code,
-        created_at=row.created_at,
-        created_by=row.created_by,
-        window_length=row.window_length,
-        step=row.step,
-        first_end=row.first_end,
-        last_end=row.last_end,
         settings=MappingProxyType(dict(row.settings)),
-        settings_sha256=row.settings_sha256,
     )
 
 
