@@ -12,7 +12,7 @@ from collections.abc import Iterator
 from contextlib import contextmanager
 from datetime import datetime
 from pathlib import Path
-from typing import TYPE_CHECKING, Annotated
+from typing import TYPE_CHECKING, Annotated, Any
 
 import typer
 
@@ -54,6 +54,11 @@ AsOfOption = Annotated[
     ),
 ]
 """``--as-of TIME``: parsed by :func:`calib.as_of.parse_as_of` to a UTC datetime."""
+
+
+def output_file(flag: str, help: str) -> Any:
+    """An optional ``Path`` option naming a file a command writes (no default shown)."""
+    return typer.Option(flag, help=help, show_default=False)
 
 
 SettingsOption = Annotated[

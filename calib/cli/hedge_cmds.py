@@ -26,6 +26,7 @@ from calib.cli.common import (
     chosen_commodities,
     echo_json,
     open_store,
+    output_file,
 )
 
 if TYPE_CHECKING:
@@ -50,11 +51,6 @@ Near = Annotated[
 ]
 Far = Annotated[datetime | None, typer.Option("--far", formats=_DAY, help="Spread: far delivery.")]
 KindOpt = Annotated[Literal["call", "put"], typer.Option("--kind", help="call or put.")]
-
-
-def _file(flag: str, help: str) -> Any:
-    """An optional output path option (no default shown)."""
-    return typer.Option(flag, help=help, show_default=False)
 
 
 def _files(outputs: list[tuple[Path | None, Callable[[Path], Path]]]) -> list[str]:
@@ -132,9 +128,9 @@ def sim_cmd(
     ] = 252,
     paths: Annotated[int, typer.Option("--paths", min=2, help="Simulated paths.")] = 10_000,
     seed: Annotated[int, typer.Option("--seed", help="Random seed.")] = 20261202,
-    png: Annotated[Path | None, _file("--png", "Write the P&L histogram here.")] = None,
+    png: Annotated[Path | None, output_file("--png", "Write the P&L histogram here.")] = None,
     csv_path: Annotated[
-        Path | None, _file("--csv", "Write one row a path (P&L, payoff, hedge error).")
+        Path | None, output_file("--csv", "Write one row a path (P&L, payoff, hedge error).")
     ] = None,
     db: DbOption = None,
     as_json: JsonOption = False,
@@ -191,8 +187,8 @@ def replay_cmd(
     morning: Annotated[
         str, typer.Option("--morning", metavar="HH:MM", help="The morning's time (UTC).")
     ] = "07:00",
-    png: Annotated[Path | None, _file("--png", "Write the P&L path here.")] = None,
-    csv_path: Annotated[Path | None, _file("--csv", "Write one row a day.")] = None,
+    png: Annotated[Path | None, output_file("--png", "Write the P&L path here.")] = None,
+    csv_path: Annotated[Path | None, output_file("--csv", "Write one row a day.")] = None,
     db: DbOption = None,
     as_json: JsonOption = False,
 ) -> None:
@@ -249,10 +245,12 @@ def policies_cmd(
     ] = 5,
     workers: WorkersOption = None,
     cluster: ClusterOption = None,
-    png: Annotated[Path | None, _file("--png", "Write the P&L figure by policy here.")] = None,
-    csv_path: Annotated[Path | None, _file("--csv", "Write one row per policy here.")] = None,
+    png: Annotated[
+        Path | None, output_file("--png", "Write the P&L figure by policy here.")
+    ] = None,
+    csv_path: Annotated[Path | None, output_file("--csv", "Write one row per policy here.")] = None,
     html_dir: Annotated[
-        Path | None, _file("--html", "Write the page (index.html and its figure) here.")
+        Path | None, output_file("--html", "Write the page (index.html and its figure) here.")
     ] = None,
     db: DbOption = None,
     as_json: JsonOption = False,
