@@ -8,13 +8,52 @@ from __future__ import annotations
 
 import sys
 from contextlib import closing
-from datetime import date
+from datetime import date, datetime
 from pathlib import Path
-from typing import Annotated, Any
+from typing import TYPE_CHECKING, Annotated, Any, Literal
 
 import typer
 
 from calib.cli.common import DbOption, JsonOption, echo_json, open_store, output_file
+
+if TYPE_CHECKING:
+    from sqlalchemy.orm import Session, sessionmaker
+
+    from calib.workflows.price_uncertainty import PriceUncertainty, VanillaPrice
+    from calib.workflows.pricing import SpreadPrice
+
+UncertaintyOption = Annotated[
+    bool,
+    typer.Option(
+        "--uncertainty",
+        help="Also the price's standard error from the historical estimate (delta method, "
+        "checked by sampling) and its range under the rolling windows of the last year.",
+    ),
+]
+PricingRunOption = Annotated[
+    int | None,
+    typer.Option("--run", help="Run id (default: latest approved set).", show_default=False),
+]
+PricingDayOption = Annotated[
+    datetime | None,
+    typer.Option(
+        "--date",
+        formats=["%Y-%m-%d"],
+        help="Pricing day (default: the run's trade date).",
+        show_default=False,
+    ),
+]
+DrawsOption = Annotated[
+    int, typer.Option("--draws", min=2, help="With --uncertainty: draws of the sampling check.")
+]
+SeriesOption = Annotated[
+    int | None,
+    typer.Option(
+        "--series",
+        help="With --uncertainty: the rolling series (default: newest).",
+        show_default=False,
+    ),
+]
 
 
 def register(app: typer.Typer) -> None:
@@ -166,3 +205,107 @@ def stability_cmd(
     for path in (png, csv_path):
         if path is not None:
             typer.echo(f"  wrote {path}")
+
+
+# --- price uncertainty and the vanilla price ---------------------------------------------------
+
+
+def with_uncertainty(
+    sessions: sessionmaker[Session],
+    result: SpreadPrice | VanillaPrice,
+    draws: int,
+    series_id: int | None,
+) -> PriceUncertainty:
+    """The uncertainty of a priced spread or vanilla (see calib.workflows.price_uncertainty)."""
+    from calib.workflows import price_uncertainty as flow
+
+    if isinstance(result, flow.VanillaPrice):
+        return flow.vanilla_uncertainty(sessions, result, draws=draws, series_id=series_id)
+    return flow.spread_uncertainty(sessions, result, draws=draws, series_id=series_id)
+
+
+def print_uncertainty(u: PriceUncertainty) -> None:
+    """The uncertainty lines under a price."""
+    e, s, d = u.estimate, u.sampled, u.delta
+    typer.echo(
+        f"  historical estimate {e.estimate_id} ({e.window_start}..{e.window_end}) held fixed; "
+        f"refitted at it: {u.refit_price:.6f}"
+    )
+    ratio = f"{s.sd / d.se:.3f}" if d.se > 0 else "-"
+    typer.echo(
+        f"  standard error {d.se:.6f} (delta method); sampling {s.sd:.6f} from "
+        f"{s.values.size} of {s.n_draws} draws (ratio {ratio}, seed {s.seed}; "
+        f"{s.outside_domain} outside the domain, {s.failed} refits failed)"
+    )
+    if u.note:
+        typer.echo(f"  NOTE: {u.note}")
+    shares = sorted(d.contribution.items(), key=lambda kv: -abs(kv[1]))[:3]
+    typer.echo("  variance from   " + ", ".join(f"{n} {v:.0%}" for n, v in shares))
+    window = u.window_range
+    if u.series_id is None:
+        typer.echo("  rolling windows: no rolling series stored")
+    elif window is None:
+        typer.echo(f"  rolling windows: none of series {u.series_id} ended in the last year")
+    else:
+        typer.echo(
+            f"  rolling windows: {len(u.windows)} of series {u.series_id} in the last year: "
+            f"min {window[0]:.6f}, max {window[1]:.6f}"
+        )
+    from calib.workflows.price_uncertainty import CAUTION
+
+    typer.echo(f"  caution: {CAUTION}")
+
+
+def vanilla_cmd(
+    commodity: Annotated[str, typer.Argument(help="Commodity code.")],
+    future: Annotated[
+        datetime, typer.Option("--future", formats=["%Y-%m-%d"], help="Delivery of the future.")
+    ],
+    expiry: Annotated[
+        datetime, typer.Option("--expiry", formats=["%Y-%m-%d"], help="Option expiry.")
+    ],
+    strike: Annotated[float, typer.Option("--strike", help="Strike.")],
+    kind: Annotated[Literal["call", "put"], typer.Option("--kind", help="call or put.")] = "call",
+    run_id: PricingRunOption = None,
+    on: PricingDayOption = None,
+    uncertainty: UncertaintyOption = False,
+    draws: DrawsOption = 200,
+    series_id: SeriesOption = None,
+    db: DbOption = None,
+    as_json: JsonOption = False,
+) -> None:
+    """Price a European option on one future: Black-76 with the model's total variance."""
+    from calib.workflows import price_uncertainty as flow
+
+    with open_store(db, read_only=True) as (store, _):
+        result = flow.price_vanilla(
+            store.sessions,
+            commodity,
+            future=future.date(),
+            expiry=expiry.date(),
+            strike=strike,
+            kind=kind,
+            run_id=run_id,
+            on=None if on is None else on.date(),
+        )
+        extra = with_uncertainty(store.sessions, result, draws, series_id) if uncertainty else None
+    if as_json:
+        echo_json({**result.to_dict(), **({"uncertainty": extra.to_dict()} if extra else {})})
+        return
+    r, run = result, result.run
+    out = r.to_dict()
+    typer.echo(
+        f"{run.commodity} {r.kind} on the {r.future} future, strike {r.strike:g}, expiry "
+        f"{r.expiry}; priced on {r.pricing_date}"
+    )
+    typer.echo(
+        f"  parameters: run {run.run_id} ({run.status}, fitted {run.trade_date}, "
+        f"{'forward buckets' if out['vols'] == 'forward' else 'constant volatilities'})"
+    )
+    typer.echo(
+        f"  future {r.future_price:g}; discount {r.discount:.6f}; t = {r.years[0]:.4f} y; "
+        f"model vol {out['implied_vol']:.4%}"
+    )
+    typer.echo(f"  price        {r.price:.6f}")
+    if extra is not None:
+        print_uncertainty(extra)
