@@ -52,6 +52,7 @@ from calib.hedge.world import initial_state, simulate_futures
 from calib.model.black76 import Kind
 from calib.model.spread import ForwardVols
 from calib.model.twofactor import TwoFactorParams
+from calib.record.codec import encode
 from calib.store.quotes import (
     DAYS_PER_YEAR,
     ZeroCurve,
@@ -384,27 +385,14 @@ class ReplayDay:
     carried: bool
     margin: float
     cash: float
-    marked: float
+    pnl_marked: float
+    """Cash less the option's model value."""
     hedge_error: float
     notes: tuple[str, ...]
 
     def to_dict(self) -> dict[str, Any]:
-        def num(x: float) -> float | None:
-            return None if math.isnan(x) else x
-
-        return {
-            "day": self.day.isoformat(),
-            "run_id": self.run_id,
-            "futures": [num(f) for f in self.futures],
-            "value": num(self.value),
-            "positions": list(self.positions),
-            "carried": self.carried,
-            "margin": self.margin,
-            "cash": self.cash,
-            "pnl_marked": num(self.marked),
-            "hedge_error": num(self.hedge_error),
-            "notes": list(self.notes),
-        }
+        """Plain values for JSON (a NaN, where a day had no price or value, as ``null``)."""
+        return encode(self)  # type: ignore[no-any-return]
 
 
 @dataclass(frozen=True, slots=True)
@@ -470,7 +458,7 @@ class HedgeReplay:
             run = "-" if d.run_id is None else str(d.run_id)
             row = f"{d.day.isoformat():<10} {run:>5} " + " ".join(f"{f:>10.4f}" for f in d.futures)
             row += f" {d.value:>10.4f} " + " ".join(f"{p:>+8.4f}" for p in d.positions)
-            row += f" {d.margin:>+10.4f} {d.marked:>+10.4f}  " + "; ".join(d.notes)
+            row += f" {d.margin:>+10.4f} {d.pnl_marked:>+10.4f}  " + "; ".join(d.notes)
             lines.append(row.replace("nan", "  -"))
         c = self.counts()
         lines.append(
@@ -732,7 +720,7 @@ def _replay_days(commodity: str, sets: str, morning: time, valued: ValuedDays) -
             carried=bool(book.carried[k]),
             margin=float(book.margin[k]),
             cash=float(book.cash[k]),
-            marked=float(book.marked[k]),
+            pnl_marked=float(book.marked[k]),
             hedge_error=float(book.hedge_error[k]),
             notes=valued.notes[k],
         )
