@@ -136,7 +136,7 @@ class ApprovalRecord:
 
     def to_dict(self) -> dict[str, Any]:
         """Plain values for JSON: the seven parameter names at the top level."""
-        return _flat_params(encode(self))
+        return flat_params(encode(self))
 
 
 @dataclass(frozen=True, slots=True)
@@ -168,10 +168,10 @@ class ApprovedSet:
 
     def to_dict(self) -> dict[str, Any]:
         """Plain values for JSON: the seven parameter names at the top level."""
-        return _flat_params(encode(self))
+        return flat_params(encode(self))
 
 
-def _flat_params(data: dict[str, Any]) -> dict[str, Any]:
+def flat_params(data: dict[str, Any]) -> dict[str, Any]:
     """``data`` with its ``params`` object spread into the top level (the stable keys)."""
     out: dict[str, Any] = {}
     for key, value in data.items():

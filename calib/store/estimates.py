@@ -20,7 +20,8 @@ from sqlalchemy import Table, select
 from sqlalchemy.orm import Session
 
 from calib.model.twofactor import PARAM_NAMES, TwoFactorParams
-from calib.record.codec import copy_fields
+from calib.record.codec import copy_fields, encode
+from calib.record.run import flat_params
 from calib.store.models import Commodity
 from calib.store.quotes import DateArray, insert_columns, require_commodity
 from calib.store.run_models import EstimateState, HistoricalEstimate, RollingSeries
@@ -61,30 +62,7 @@ class EstimateRecord:
 
     def to_dict(self) -> dict[str, Any]:
         """Plain values for JSON, the seven parameter names at the top level."""
-        return {
-            "estimate_id": self.estimate_id,
-            "commodity": self.commodity,
-            "source": self.source,
-            **self.params.to_dict(),
-            "std_errors": dict(self.std_errors),
-            "noise_sd": list(self.noise_sd),
-            "window_start": self.window_start.isoformat(),
-            "window_end": self.window_end.isoformat(),
-            "n_contracts": self.n_contracts,
-            "n_days": self.n_days,
-            "n_obs": self.n_obs,
-            "loglik": self.loglik,
-            "rate": self.rate,
-            "converged": self.converged,
-            "message": self.message,
-            "inputs_sha256": self.inputs_sha256,
-            "settings": dict(self.settings),
-            "created_at": self.created_at.isoformat(),
-            "created_by": self.created_by,
-            "code_version": self.code_version,
-            "series_id": self.series_id,
-            "covariance": None if self.covariance is None else [list(r) for r in self.covariance],
-        }
+        return flat_params(encode(self))
 
 
 def _record(row: HistoricalEstimate, code: str) -> EstimateRecord:
@@ -272,17 +250,7 @@ class SeriesRecord:
     settings_sha256: str
 
     def to_dict(self) -> dict[str, Any]:
-        return {
-            "series_id": self.series_id,
-            "commodity": self.commodity,
-            "window_length": self.window_length,
-            "step": self.step,
-            "first_end": self.first_end.isoformat(),
-            "last_end": self.last_end.isoformat(),
-            "settings": dict(self.settings),
-            "created_at": self.created_at.isoformat(),
-            "created_by": self.created_by,
-        }
+        return encode(self)  # type: ignore[no-any-return]
 
 
 def _series(row: RollingSeries, code: str) -> SeriesRecord:

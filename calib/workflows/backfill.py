@@ -66,6 +66,7 @@ from calib.compute.executor import AHEAD_PER_WORKER, Executor, InlineExecutor
 from calib.errors import BackfillRangeError
 from calib.model.twofactor import TwoFactorParams
 from calib.policy.settings import RunSettings, default_settings
+from calib.record.codec import encode
 from calib.store.engine import Store
 from calib.store.quotes import DayQuotes, load_days, trade_dates
 from calib.store.runs import run_keys
@@ -133,14 +134,7 @@ class BackfillDay:
     auto_approved: bool
 
     def to_dict(self) -> dict[str, Any]:
-        return {
-            "commodity": self.commodity,
-            "trade_date": self.trade_date.isoformat(),
-            "outcome": self.outcome,
-            "run_id": self.run_id,
-            "reason": self.reason,
-            "auto_approved": self.auto_approved,
-        }
+        return encode(self)  # type: ignore[no-any-return]
 
 
 @dataclass(frozen=True, slots=True)

@@ -49,6 +49,7 @@ from calib.model.black76 import Kind, undiscounted_price
 from calib.model.spread import ForwardVols, SpreadOption, spread_greeks, spread_law
 from calib.model.twofactor import TwoFactorParams
 from calib.policy.settings import RunSettings
+from calib.record.codec import encode
 from calib.store.estimates import EstimateRecord, get_estimate, list_series, series_estimates
 from calib.store.quotes import DAYS_PER_YEAR
 from calib.store.runs import RunRecord, run_quotes
@@ -222,11 +223,7 @@ class WindowPrice:
     price: float | None
 
     def to_dict(self) -> dict[str, Any]:
-        return {
-            "estimate_id": self.estimate_id,
-            "window_end": self.window_end.isoformat(),
-            "price": self.price,
-        }
+        return encode(self)  # type: ignore[no-any-return]
 
 
 @dataclass(frozen=True, slots=True, eq=False)

@@ -45,6 +45,7 @@ from calib.estimate.rolling import (
     window_ends,
     window_start,
 )
+from calib.record.codec import encode
 from calib.store.base import utc_now
 from calib.store.engine import begin_write
 from calib.store.estimates import add_series, find_series, series_estimates
@@ -84,17 +85,7 @@ class RollingWindow:
     detail: str | None = None
 
     def to_dict(self) -> dict[str, Any]:
-        return {
-            "index": self.index,
-            "start": self.start.isoformat(),
-            "end": self.end.isoformat(),
-            "status": self.status,
-            "estimate_id": self.estimate_id,
-            "converged": self.converged,
-            "started": self.started,
-            "local_optimum": self.local_optimum,
-            "detail": self.detail,
-        }
+        return encode(self)  # type: ignore[no-any-return]
 
 
 @dataclass(frozen=True, slots=True)

@@ -30,6 +30,8 @@ from calib.errors import (
 from calib.estimate.rolling import parse_period
 from calib.estimate.stability import decay_slack, drift_z, longest_quiet_interval
 from calib.model.twofactor import PARAM_NAMES
+from calib.record.codec import encode
+from calib.record.run import flat_params
 from calib.store.estimates import (
     EstimateRecord,
     SeriesRecord,
@@ -41,7 +43,6 @@ from calib.store.estimates import (
 )
 from calib.store.quotes import require_commodity
 from calib.store.runs import latest_approved
-from calib.workflows.estimates import none_if_nan
 
 DEFAULT_K = 3.0
 """Standard errors of the difference beyond which a window is flagged (``--k``)."""
@@ -77,18 +78,8 @@ class StabilityWindow:
     in_use: bool
 
     def to_dict(self) -> dict[str, Any]:
-        return {
-            "estimate_id": self.estimate_id,
-            "window_start": self.window_start.isoformat(),
-            "window_end": self.window_end.isoformat(),
-            "converged": self.converged,
-            **self.params,
-            "std_errors": {n: none_if_nan(v) for n, v in self.std_errors.items()},
-            "z": {n: none_if_nan(v) for n, v in self.z.items()},
-            "flags": list(self.flags),
-            "decay_slack": none_if_nan(self.decay_slack),
-            "in_use": self.in_use,
-        }
+        """Plain values for JSON (a NaN as ``null``), the parameters at the top level."""
+        return flat_params(encode(self))
 
 
 @dataclass(frozen=True, slots=True)
