@@ -14,12 +14,12 @@ from types import MappingProxyType
 from typing import Any
 
 from calib.model.params import PARAM_NAMES, TwoFactorParams
-from calib.record.codec import encode
+from calib.record.codec import Encoded, encode
 from calib.record.fit import BucketVols, FitRecord, fit_from_columns
 
 
 @dataclass(frozen=True, slots=True)
-class EventRecord:
+class EventRecord(Encoded):
     """One status change of a run: to what, when, by whom and why."""
 
     event_id: int
@@ -28,9 +28,6 @@ class EventRecord:
     at: datetime
     by: str
     note: str
-
-    def to_dict(self) -> dict[str, Any]:
-        return encode(self)  # type: ignore[no-any-return]
 
 
 @dataclass(frozen=True, slots=True)

@@ -20,7 +20,7 @@ from sqlalchemy import Table, select
 from sqlalchemy.orm import Session
 
 from calib.model.twofactor import PARAM_NAMES, TwoFactorParams
-from calib.record.codec import copy_fields, encode
+from calib.record.codec import Encoded, copy_fields, encode
 from calib.record.run import flat_params
 from calib.store.models import Commodity
 from calib.store.quotes import DateArray, insert_columns, require_commodity
@@ -235,7 +235,7 @@ def estimate_states(*, session: Session, estimate_id: int) -> pd.DataFrame:
 
 
 @dataclass(frozen=True, slots=True)
-class SeriesRecord:
+class SeriesRecord(Encoded):
     """A stored rolling series (read-only)."""
 
     series_id: int
@@ -248,9 +248,6 @@ class SeriesRecord:
     last_end: date
     settings: Mapping[str, Any]
     settings_sha256: str
-
-    def to_dict(self) -> dict[str, Any]:
-        return encode(self)  # type: ignore[no-any-return]
 
 
 def _series(row: RollingSeries, code: str) -> SeriesRecord:

@@ -52,7 +52,7 @@ from calib.hedge.world import initial_state, simulate_futures
 from calib.model.black76 import Kind
 from calib.model.spread import ForwardVols
 from calib.model.twofactor import TwoFactorParams
-from calib.record.codec import encode
+from calib.record.codec import Encoded
 from calib.store.quotes import (
     DAYS_PER_YEAR,
     ZeroCurve,
@@ -374,7 +374,7 @@ OLD_CURVE = "zero curve of {day} used"
 
 
 @dataclass(frozen=True, slots=True)
-class ReplayDay:
+class ReplayDay(Encoded):
     """One day of a replay: what was used, and the account after it."""
 
     day: date
@@ -389,10 +389,6 @@ class ReplayDay:
     """Cash less the option's model value."""
     hedge_error: float
     notes: tuple[str, ...]
-
-    def to_dict(self) -> dict[str, Any]:
-        """Plain values for JSON (a NaN, where a day had no price or value, as ``null``)."""
-        return encode(self)  # type: ignore[no-any-return]
 
 
 @dataclass(frozen=True, slots=True)

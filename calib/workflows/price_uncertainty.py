@@ -49,7 +49,7 @@ from calib.model.black76 import Kind, undiscounted_price
 from calib.model.spread import ForwardVols, SpreadOption, spread_greeks, spread_law
 from calib.model.twofactor import TwoFactorParams
 from calib.policy.settings import RunSettings
-from calib.record.codec import encode
+from calib.record.codec import Encoded
 from calib.store.estimates import EstimateRecord, get_estimate, list_series, series_estimates
 from calib.store.quotes import DAYS_PER_YEAR
 from calib.store.runs import RunRecord, run_quotes
@@ -215,15 +215,12 @@ def price_vanilla(
 
 
 @dataclass(frozen=True, slots=True)
-class WindowPrice:
+class WindowPrice(Encoded):
     """The price with one rolling window's estimate held fixed (``None``: the refit failed)."""
 
     estimate_id: int
     window_end: date
     price: float | None
-
-    def to_dict(self) -> dict[str, Any]:
-        return encode(self)  # type: ignore[no-any-return]
 
 
 @dataclass(frozen=True, slots=True, eq=False)
