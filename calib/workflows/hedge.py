@@ -38,7 +38,6 @@ from calib.errors import (
     HEDGE_WORLD_RUN,
     SPREAD_EXPIRY,
     SPREAD_ORDER,
-    SPREAD_RUN_FAILED,
     SPREAD_RUN_OTHER,
     HedgeRequestError,
     ParameterError,
@@ -65,7 +64,7 @@ from calib.store.quotes import (
 )
 from calib.store.runs import RunRecord, approved_history, latest_approved, require_run
 from calib.types import FloatArray
-from calib.workflows.pricing import discount_to, quoted_settlements, run_vols
+from calib.workflows.pricing import discount_to, fitted_run, quoted_settlements, run_vols
 
 STEPS_PER_YEAR = 252
 """Default rebalancings per year (daily)."""
@@ -228,14 +227,7 @@ def _run_in_force(
             when = "now" if as_of is None else f"as of {as_of.isoformat()}"
             raise HedgeRequestError(commodity, HEDGE_NO_SET.format(when=when))
         return found
-    run = require_run(session=session, run_id=run_id)
-    if run.commodity != commodity:
-        raise HedgeRequestError(
-            commodity, SPREAD_RUN_OTHER.format(run_id=run_id, other=run.commodity)
-        )
-    if run.params is None:
-        raise HedgeRequestError(commodity, SPREAD_RUN_FAILED.format(run_id=run_id))
-    return run
+    return fitted_run(session, commodity, run_id, partial(HedgeRequestError, commodity))
 
 
 def _world_from_file(commodity: str, path: Path) -> TwoFactorParams:

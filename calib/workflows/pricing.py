@@ -165,13 +165,19 @@ def choose_run(session: Session, commodity: str, run_id: int | None) -> RunRecor
             raise SpreadRequestError(commodity, SPREAD_NO_APPROVED)
         return found
     require_commodity(session=session, code=commodity)
+    return fitted_run(session, commodity, run_id, partial(SpreadRequestError, commodity))
+
+
+def fitted_run(
+    session: Session, commodity: str, run_id: int, refuse: Callable[[str], Exception]
+) -> RunRecord:
+    """The run ``run_id`` if it is ``commodity``'s and has parameters; else ``refuse(reason)``
+    is raised."""
     run = require_run(session=session, run_id=run_id)
     if run.commodity != commodity:
-        raise SpreadRequestError(
-            commodity, SPREAD_RUN_OTHER.format(run_id=run_id, other=run.commodity)
-        )
+        raise refuse(SPREAD_RUN_OTHER.format(run_id=run_id, other=run.commodity))
     if run.params is None:
-        raise SpreadRequestError(commodity, SPREAD_RUN_FAILED.format(run_id=run_id))
+        raise refuse(SPREAD_RUN_FAILED.format(run_id=run_id))
     return run
 
 
