@@ -50,11 +50,11 @@ from calib.model.spread import ForwardVols, SpreadOption, spread_greeks, spread_
 from calib.model.twofactor import TwoFactorParams
 from calib.policy.settings import RunSettings
 from calib.record.codec import Encoded
-from calib.store.estimates import EstimateRecord, get_estimate, list_series, series_estimates
+from calib.store.estimates import EstimateRecord, list_series, series_estimates
 from calib.store.quotes import DAYS_PER_YEAR
-from calib.store.runs import RunRecord, run_quotes
+from calib.store.runs import RunRecord
 from calib.workflows.estimates import none_if_nan
-from calib.workflows.fit import attempt_fit, option_quotes
+from calib.workflows.fit import attempt_fit, fitted_inputs, option_quotes
 from calib.workflows.pricing import (
     SpreadPrice,
     discount_to,
@@ -305,9 +305,7 @@ def price_uncertainty(
         The run's estimate has no stored covariance, or ``series_id`` is not the commodity's.
     """
     with sessions.begin() as session:
-        estimate = get_estimate(session=session, estimate_id=run.estimate_id)
-        assert estimate is not None  # foreign key
-        day = run_quotes(session=session, run=run)
+        estimate, day = fitted_inputs(session, run)
         if series_id is None:
             found = list_series(session=session, commodity=run.commodity)
             series_id = found[0].series_id if found else None
