@@ -181,7 +181,38 @@ class DecayBound(Constraint):
         return max(rho, 0.0) * lim.kappa * lim.cap
 
 
-class YieldFloor(Constraint):
+class _VolBound(Constraint):
+    """A bound between one volatility and the day's limit, ``low <= high``, imposed on their
+    squares (the variance variable against the squared limit, a cvxpy parameter).
+
+    Subclasses say which side is which, in natural units (:meth:`sides`) and in the
+    sub-problem's variance units (:meth:`variance_sides`).
+    """
+
+    def sides(self, p: TwoFactorParams, lim: Limits) -> tuple[float, float]:
+        """``(low, high)`` in natural units."""
+        raise NotImplementedError
+
+    def variance_sides(self, v: Variables) -> tuple[Any, Any]:
+        """``(low, high)`` squared: a variance variable and the squared limit."""
+        raise NotImplementedError
+
+    def term(self, v: Variables) -> Any:
+        low, high = self.variance_sides(v)
+        return high - low >= 0.0
+
+    def slack(self, p: TwoFactorParams, lim: Limits) -> float:
+        low, high = self.sides(p, lim)
+        return high - low
+
+    def tolerance(self, p: TwoFactorParams, lim: Limits, var_tol: float) -> float:
+        # high - low = (high^2 - low^2) / (high + low): a variance error var_tol moves the
+        # slack by var_tol / (high + low), at most sqrt(var_tol) where both sides are near 0
+        low, high = self.sides(p, lim)
+        return var_tol / max(high + low, math.sqrt(var_tol))
+
+
+class YieldFloor(_VolBound):
     """``sigma_yield >= yield_floor x`` the historical ``sigma_yield``."""
 
     name = "yield_floor"
@@ -197,17 +228,14 @@ class YieldFloor(Constraint):
     def parameter_value(self, lim: Limits) -> float:
         return lim.floor * lim.floor
 
-    def term(self, v: Variables) -> Any:
-        return v.Q - v.parameters["floor"] >= 0.0
+    def sides(self, p: TwoFactorParams, lim: Limits) -> tuple[float, float]:
+        return lim.floor, p.sigma_yield
 
-    def slack(self, p: TwoFactorParams, lim: Limits) -> float:
-        return p.sigma_yield - lim.floor
-
-    def tolerance(self, p: TwoFactorParams, lim: Limits, var_tol: float) -> float:
-        return var_tol / max(p.sigma_yield + lim.floor, math.sqrt(var_tol))
+    def variance_sides(self, v: Variables) -> tuple[Any, Any]:
+        return v.parameters["floor"], v.Q
 
 
-class SpotCap(Constraint):
+class SpotCap(_VolBound):
     """``sigma_spot <= sigma_spot_cap``."""
 
     name = "sigma_spot_cap"
@@ -223,14 +251,11 @@ class SpotCap(Constraint):
     def parameter_value(self, lim: Limits) -> float:
         return lim.cap * lim.cap
 
-    def term(self, v: Variables) -> Any:
-        return v.parameters["cap"] - v.P >= 0.0
+    def sides(self, p: TwoFactorParams, lim: Limits) -> tuple[float, float]:
+        return p.sigma_spot, lim.cap
 
-    def slack(self, p: TwoFactorParams, lim: Limits) -> float:
-        return lim.cap - p.sigma_spot
-
-    def tolerance(self, p: TwoFactorParams, lim: Limits, var_tol: float) -> float:
-        return var_tol / max(lim.cap + p.sigma_spot, math.sqrt(var_tol))
+    def variance_sides(self, v: Variables) -> tuple[Any, Any]:
+        return v.P, v.parameters["cap"]
 
 
 class SpotLimit(SpotCap):

@@ -258,5 +258,4 @@ def evaluate_gates(
 
 
 def _label(report: ConstraintReport) -> str:
-    where = "" if report.bucket is None else f"@{report.bucket}"
-    return f"{report.name}{where} (slack {report.slack:.3g})"
+    return f"{report.label} (slack {report.slack:.3g})"

@@ -96,6 +96,11 @@ class ConstraintReport(Encoded):
         """Whether the constraint holds within its tolerance."""
         return self.slack is None or self.slack >= -self.tolerance
 
+    @property
+    def label(self) -> str:
+        """Its name, with ``@k`` for forward-mode bucket ``k``."""
+        return self.name if self.bucket is None else f"{self.name}@{self.bucket}"
+
 
 @dataclass(frozen=True, slots=True)
 class Gate(Encoded):
@@ -167,12 +172,8 @@ class FitRecord:
 
     @property
     def binding(self) -> tuple[str, ...]:
-        """Names of the binding constraints (with ``@k`` for forward-mode buckets)."""
-        return tuple(
-            c.name if c.bucket is None else f"{c.name}@{c.bucket}"
-            for c in self.constraints
-            if c.binds
-        )
+        """Labels of the binding constraints (:attr:`ConstraintReport.label`)."""
+        return tuple(c.label for c in self.constraints if c.binds)
 
     @property
     def all_gates_pass(self) -> bool:

@@ -139,7 +139,8 @@ def test_forward_buckets_and_clear_errors(store: Store, loaded: Loaded, cli: Cli
     fitted = fit_day(store.sessions, loaded.code, day, by="q", settings=forward)
     rid = str(fitted.run.run_id)
     base = ["price", "spread", loaded.code, "--run", rid, "--strike", "5"]
-    ok = [*base, "--near", str(near), "--far", str(far), "--expiry", str(expiry)]
+    legs = ["--near", str(near), "--far", str(far), "--expiry", str(expiry)]
+    ok = [*base, *legs]
     code, out, _ = cli(*ok, "--kind", "put", "--json")
     assert code == 0
     payload = json.loads(out)
@@ -174,19 +175,7 @@ def test_forward_buckets_and_clear_errors(store: Store, loaded: Loaded, cli: Cli
             "after",
         ),
         (["--near", str(far), "--far", str(near), "--expiry", str(expiry)], "must come before"),
-        (
-            [
-                "--near",
-                str(near),
-                "--far",
-                str(far),
-                "--expiry",
-                str(expiry),
-                "--date",
-                "2031-01-01",
-            ],
-            "no futures",
-        ),
+        ([*legs, "--date", "2031-01-01"], "no futures"),
     ]
     for extra, message in cases:
         code, _, err = cli(*base, *extra)
