@@ -44,7 +44,7 @@ class Limits:
     Attributes
     ----------
     kappa : the historical mean reversion (the decay bound's slope).
-    rho_held : the correlation held at history (held-correlation mode), else ``None``.
+    held_rho : the correlation held at history (held-correlation mode), else ``None``.
     floor : ``sigma_yield >= floor`` (``yield_floor x`` historical ``sigma_yield``; 0 = off).
     cap : ``sigma_spot <= cap``: the ``sigma_spot_cap`` setting, else the held-correlation
         scan's :data:`SPOT_VOL_LIMIT`, else infinite.
@@ -53,7 +53,7 @@ class Limits:
     """
 
     kappa: float
-    rho_held: float | None
+    held_rho: float | None
     floor: float
     cap: float
     ratio_max: float
@@ -67,7 +67,7 @@ class Limits:
             cap = SPOT_VOL_LIMIT if held else math.inf
         return cls(
             kappa=hist.kappa,
-            rho_held=hist.rho if held else None,
+            held_rho=hist.rho if held else None,
             floor=s.yield_floor * hist.sigma_yield,
             cap=cap,
             ratio_max=s.max_vol_ratio if held and not s.decay_bound else math.inf,
@@ -78,7 +78,7 @@ class Limits:
         """The held scan's upper end of ``r = sigma_yield / sigma_spot``."""
         if math.isfinite(self.ratio_max):
             return self.ratio_max
-        return max(self.kappa * (self.rho_held or 0.0), 0.0)
+        return max(self.kappa * (self.held_rho or 0.0), 0.0)
 
 
 @dataclass(frozen=True, slots=True)
@@ -177,7 +177,7 @@ class DecayBound(Constraint):
         return (1.0 + lim.kappa) * var_tol / s2 + lim.kappa * p.sigma_spot * psd
 
     def ceiling(self, lim: Limits) -> float:
-        rho = 1.0 if lim.rho_held is None else lim.rho_held
+        rho = 1.0 if lim.held_rho is None else lim.held_rho
         return max(rho, 0.0) * lim.kappa * lim.cap
 
 
@@ -357,10 +357,10 @@ def check_feasible(settings: CalibrationSettings, historical: TwoFactorParams) -
         else (f"scan limit sigma_spot <= {lim.cap:g}" if math.isfinite(lim.cap) else "no cap")
     )
     decay = any(isinstance(c, DecayBound) for c in cons)
-    if decay and lim.rho_held is not None and lim.rho_held <= 0.0 and lim.floor <= 0.0:
+    if decay and lim.held_rho is not None and lim.held_rho <= 0.0 and lim.floor <= 0.0:
         raise InfeasibleSettingsError(
             f"decay_bound sigma_yield <= rho kappa sigma_spot with rho held at "
-            f"{lim.rho_held:.6g} <= 0 admits only sigma_yield = 0 (a degenerate model): "
+            f"{lim.held_rho:.6g} <= 0 admits only sigma_yield = 0 (a degenerate model): "
             "switch the decay bound off or hold a positive correlation",
             0.0,
         )
@@ -371,7 +371,7 @@ def check_feasible(settings: CalibrationSettings, historical: TwoFactorParams) -
         if lim.floor <= top:
             continue
         if isinstance(c, DecayBound):
-            rho_text = f"rho held at {lim.rho_held:.6g}" if lim.rho_held is not None else "rho <= 1"
+            rho_text = f"rho held at {lim.held_rho:.6g}" if lim.held_rho is not None else "rho <= 1"
             conflict = (
                 f"yield_floor sigma_yield >= {lim.floor:.6g} (q {s.yield_floor:g} x historical "
                 f"{historical.sigma_yield:.6g}) vs decay_bound sigma_yield <= rho kappa "

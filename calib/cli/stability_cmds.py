@@ -108,7 +108,7 @@ def rolling_estimate(
                 last,
                 window,
                 every,
-                user=settings.user,
+                by=settings.user,
                 n_contracts=contracts,
                 min_days=min_days,
                 executor=executor,

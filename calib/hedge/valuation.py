@@ -182,7 +182,7 @@ def _spread(
         s_o=s_o,
         beta=beta,
         sc=math.sqrt(max(v_i - beta * beta, 0.0)),
-        sg=1.0 if option.call == near_out else -1.0,
+        sg=1.0 if option.is_call == near_out else -1.0,
         abs_strike=abs(option.strike),
         discount=discount,
         f_outer=np.ascontiguousarray(futures[:, o]),
@@ -228,11 +228,11 @@ def value_and_ratios(
         return _spread(option, var_near, var_far, cov, futures, discount, nodes, adaptive)
     F = futures[:, 0]
     std = math.sqrt(max(var_near, 0.0))
-    value = discount * undiscounted_price(F, option.strike, std, option.call)
+    value = discount * undiscounted_price(F, option.strike, std, option.is_call)
     if std > 0.0:
         d1 = np.log(F / option.strike) / std + 0.5 * std
         n1 = ndtr(d1)
     else:
         n1 = (option.strike < F).astype(np.float64)
-    delta = discount * (n1 if option.call else n1 - 1.0)
+    delta = discount * (n1 if option.is_call else n1 - 1.0)
     return np.asarray(value), np.asarray(delta)[:, None]

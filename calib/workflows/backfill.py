@@ -242,7 +242,7 @@ def calibrator_for(settings: CalibrationSettings, quotes: OptionQuotes) -> Calib
         cache = _CALIBRATORS.cache = {}
     n = 1
     if settings.mode == "forward":
-        n = max(bucket_edges(prepare(quotes, settings).expiry).size - 1, 1)
+        n = max(bucket_edges(prepare(quotes, settings).t_expiry).size - 1, 1)
     found = cache.get((settings, n))
     if found is None:
         found = cache[(settings, n)] = Calibrator(settings, n)

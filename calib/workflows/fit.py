@@ -98,7 +98,7 @@ def option_quotes(day: DayQuotes) -> OptionQuotes:
             "forward",
             f"missing: no futures settlement for delivery {o.delivery[j]} (row {o.row_id[j]})",
         )
-    expiry = year_fractions(day.trade_date, o.expiry)
+    t_expiry = year_fractions(day.trade_date, o.expiry)
     discount = day.rates.discount(o.expiry)
     premium = np.array(o.premium, dtype=np.float64)
     missing = np.isnan(premium)
@@ -108,15 +108,15 @@ def option_quotes(day: DayQuotes) -> OptionQuotes:
             premium[fill] = pricer(
                 forward[fill],
                 o.strike[fill],
-                expiry[fill],
-                -np.log(discount[fill]) / expiry[fill],
+                t_expiry[fill],
+                -np.log(discount[fill]) / t_expiry[fill],
                 o.implied_vol[fill],
                 o.is_call[fill],
             )
     quoted = ~(np.isnan(o.bid) | np.isnan(o.ask))
     return OptionQuotes(
-        expiry=expiry,
-        maturity=year_fractions(day.trade_date, o.delivery),
+        t_expiry=t_expiry,
+        t_delivery=year_fractions(day.trade_date, o.delivery),
         is_call=np.asarray(o.is_call),
         strike=np.asarray(o.strike),
         forward=forward,

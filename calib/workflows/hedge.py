@@ -314,7 +314,7 @@ def simulate(
         )
     settles = quoted_settlements(quotes, trade.legs, partial(HedgeRequestError, commodity))
     option = option_for(trade, day)
-    t = option.expiry
+    t = option.t_expiry
     discount = discount_to(quotes, trade.expiry)
     rate = -math.log(discount) / t
     vols: TwoFactorParams | ForwardVols = run_vols(run, day, t)
@@ -324,7 +324,7 @@ def simulate(
     steps = max(1, round(steps_per_year * t))
     times = np.linspace(0.0, t, steps + 1)
     futures = simulate_futures(
-        world_params, option.maturities, times, settles, state0, rate, paths, rng=seed
+        world_params, option.t_legs, times, settles, state0, rate, paths, rng=seed
     )
     result = hedge_paths(option, vols, times, futures, rate)
     return HedgeSimulation(
@@ -648,7 +648,7 @@ def value_days(
         if run is None or np.any(np.isnan(F[k])):
             continue
         option = option_for(trade, day)
-        vols = run_vols(run, day, option.expiry)
+        vols = run_vols(run, day, option.t_expiry)
         law = remaining_law(option, vols, np.zeros(1))
         value, ratio = value_and_ratios(
             option,

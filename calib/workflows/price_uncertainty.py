@@ -90,9 +90,9 @@ def _years(start: date, end: date) -> float:
 
 
 def _one(
-    near: float,
-    far: float,
-    expiry: float,
+    t_near: float,
+    t_far: float,
+    t_expiry: float,
     strike: float,
     kind: Kind,
     f1: float,
@@ -103,7 +103,7 @@ def _one(
         return np.array([x], dtype=np.float64)
 
     return SpreadOption(
-        near=a(near), far=a(far), expiry=a(expiry), strike=a(strike),
+        t_near=a(t_near), t_far=a(t_far), t_expiry=a(t_expiry), strike=a(strike),
         is_call=np.array([kind == "call"]), near_price=a(f1), far_price=a(f2), discount=a(d),
     )  # fmt: skip
 
@@ -289,7 +289,7 @@ def price_uncertainty(
     sessions: sessionmaker[Session],
     run: RunRecord,
     pricing_date: date,
-    expiry_years: float,
+    t_expiry: float,
     price: float,
     price_of: Callable[[Vols], float],
     *,
@@ -322,7 +322,7 @@ def price_uncertainty(
     quotes = option_quotes(day)
     n_buckets = 1
     if settings.mode == "forward":
-        n_buckets = max(bucket_edges(prepare(quotes, settings).expiry).size - 1, 1)
+        n_buckets = max(bucket_edges(prepare(quotes, settings).t_expiry).size - 1, 1)
     calibrator = Calibrator(settings, n_buckets)
 
     def g(params: TwoFactorParams) -> float:
@@ -332,7 +332,7 @@ def price_uncertainty(
         r = attempt.result
         assert run.fit is not None  # a fitted run was chosen
         refit = replace(run, fit=replace(run.fit, params=r.params, buckets=r.buckets))
-        return price_of(run_vols(refit, pricing_date, expiry_years))
+        return price_of(run_vols(refit, pricing_date, t_expiry))
 
     cov = np.array(
         [[math.nan if v is None else v for v in row[:7]] for row in estimate.covariance[:7]]

@@ -136,9 +136,7 @@ def _years(start: date, end: date) -> float:
     return (end - start).days / DAYS_PER_YEAR
 
 
-def run_vols(
-    run: RunRecord, pricing_date: date, expiry_years: float
-) -> TwoFactorParams | ForwardVols:
+def run_vols(run: RunRecord, pricing_date: date, t_expiry: float) -> TwoFactorParams | ForwardVols:
     """The run's volatilities as seen from ``pricing_date`` (see the module notes)."""
     assert run.params is not None
     if run.mode != "forward" or len(run.buckets) < 2:
@@ -148,7 +146,7 @@ def run_vols(
     if not kept:  # every bucket is over: the last one's volatilities hold from now on
         kept = [run.buckets[-1]]
     edges = [0.0] + [b.end - shift for b in kept]
-    edges[-1] = max(edges[-1], expiry_years)
+    edges[-1] = max(edges[-1], t_expiry)
     return ForwardVols(
         kappa=run.params.kappa,
         edges=np.array(edges),
@@ -257,9 +255,9 @@ def price_spread(
     t, T1, T2 = _years(day, expiry), _years(day, near), _years(day, far)
     vols = run_vols(run, day, t)
     option = SpreadOption(
-        near=np.array([T1]),
-        far=np.array([T2]),
-        expiry=np.array([t]),
+        t_near=np.array([T1]),
+        t_far=np.array([T2]),
+        t_expiry=np.array([t]),
         strike=np.array([strike]),
         is_call=np.array([kind == "call"]),
         near_price=settles[:1],

@@ -133,7 +133,7 @@ def _quote_fits(day: DayQuotes, residuals: pd.DataFrame) -> QuoteFits:
         delivery=tuple(_day(x) for x in o.delivery[pos]),
         kind=tuple(_kind(x) for x in o.is_call[pos]),
         strike=o.strike[pos],
-        time_to_expiry=year_fractions(day.trade_date, o.expiry[pos]),
+        t_expiry=year_fractions(day.trade_date, o.expiry[pos]),
         market_vol=residuals["market_vol"].to_numpy(),
         model_vol=residuals["model_vol"].to_numpy(),
         market_price=residuals["market_price"].to_numpy(),
@@ -280,7 +280,7 @@ def report_inputs(
         quotes=_quote_fits(day, residuals),
         curve=FuturesCurve(
             delivery=tuple(_day(x) for x in day.futures.delivery),
-            time_to_maturity=year_fractions(run.trade_date, day.futures.delivery),
+            t_delivery=year_fractions(run.trade_date, day.futures.delivery),
             settle=day.futures.settle,
         ),
         solve=_solve(fit),

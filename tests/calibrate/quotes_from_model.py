@@ -77,8 +77,8 @@ def make_quotes(
     a = np.array([r[:2] + r[3:] for r in rows], dtype=float)
     half = spread * a[:, 4]
     return OptionQuotes(
-        expiry=a[:, 0],
-        maturity=a[:, 1],
+        t_expiry=a[:, 0],
+        t_delivery=a[:, 1],
         is_call=np.array([r[2] for r in rows]),
         strike=a[:, 2],
         forward=np.full(len(rows), forward),

@@ -95,8 +95,8 @@ def _chain(style: str) -> OptionQuotes:
                         prem = ql.blackFormula(kind, K, FORWARD, math.sqrt(var), disc)
                     rows.append((t, T, call, K, disc, prem, is_am))
     return OptionQuotes(
-        expiry=np.array([r[0] for r in rows]),
-        maturity=np.array([r[1] for r in rows]),
+        t_expiry=np.array([r[0] for r in rows]),
+        t_delivery=np.array([r[1] for r in rows]),
         is_call=np.array([r[2] for r in rows]),
         strike=np.array([r[3] for r in rows]),
         forward=np.full(len(rows), FORWARD),

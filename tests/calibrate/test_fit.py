@@ -86,7 +86,7 @@ def _independent_objective(
     q: OptionQuotes, res_weight: np.ndarray, hist: TwoFactorParams, w: float
 ):  # type: ignore[no-untyped-def]
     """Objective in (s1, s2, rho) by scipy's normal CDF (Black 1976), not calib's pricer."""
-    a, b, c = variance_coefficients(q.expiry, q.maturity, hist.kappa)
+    a, b, c = variance_coefficients(q.t_expiry, q.t_delivery, hist.kappa)
     F, K, D = q.forward, q.strike, q.discount
     sign = np.where(q.is_call, 1.0, -1.0)
     scale = F.mean()

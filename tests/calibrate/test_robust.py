@@ -33,7 +33,7 @@ def clean() -> OptionQuotes:
         warnings.simplefilter("ignore")
         q = make_quotes(TRUE, maturity_gaps=(0.05, 0.5))
     assert q.premium is not None
-    vol = black76.implied_vol(q.premium, q.forward, q.strike, q.expiry, q.rate, q.is_call)
+    vol = black76.implied_vol(q.premium, q.forward, q.strike, q.t_expiry, q.rate, q.is_call)
     noisy = vol + 0.002 * np.random.default_rng(8).standard_normal(vol.size)
     return replace(q, premium=None, implied_vol=noisy)
 

@@ -31,7 +31,7 @@ def _quotes(**kw: object) -> OptionQuotes:
 
 def _noisy(q: OptionQuotes, noise: float, seed: int) -> OptionQuotes:
     assert q.premium is not None
-    vol = black76.implied_vol(q.premium, q.forward, q.strike, q.expiry, q.rate, q.is_call)
+    vol = black76.implied_vol(q.premium, q.forward, q.strike, q.t_expiry, q.rate, q.is_call)
     rng = np.random.default_rng(seed)
     return replace(q, premium=None, implied_vol=vol + noise * rng.standard_normal(vol.size))
 

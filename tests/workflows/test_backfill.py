@@ -178,7 +178,7 @@ def test_failures_are_summarised_with_reasons(store: Store, loaded: Loaded, tmp_
     )
     from calib.workflows.ingest import ingest_file
 
-    ingest_file(store.sessions, extra, "futures", user="tester")
+    ingest_file(store.sessions, extra, "futures", by="tester")
     # and every quote filtered out: each day a TooFewQuotesError, stored as a rejected run
     settings = RunSettings.from_dict({"calibration": {"min_days_to_expiry": 400.0}})
     end = saturday + dt.timedelta(days=2)
@@ -238,7 +238,7 @@ def test_two_worker_processes_give_the_same_parameters(
         store.sessions,
         loaded.code,
         write_estimate_file(tmp_path / "e2.json", loaded.scenario),
-        user="tester",
+        by="tester",
     )
     two = flow.backfill(
         store,

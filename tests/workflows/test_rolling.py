@@ -56,7 +56,7 @@ def test_rolling_series_is_stored_marked_resumable_and_equal_to_single_estimates
             LAST,
             LENGTH,
             STEP,
-            user="q",
+            by="q",
             min_days=MIN_DAYS,
             chunk=2,
             **kw,  # type: ignore[arg-type]
@@ -79,7 +79,7 @@ def test_rolling_series_is_stored_marked_resumable_and_equal_to_single_estimates
     assert [e.settings["end"] for e in stored] == [w.end.isoformat() for w in report.windows]
     # each window equals a fresh single estimate on its dates
     for w in (report.windows[0], report.windows[3]):
-        single = estimate(store.sessions, data.code, w.start, w.end, user="q", min_days=MIN_DAYS)
+        single = estimate(store.sessions, data.code, w.start, w.end, by="q", min_days=MIN_DAYS)
         with store.sessions() as s:
             kept = get_estimate(session=s, estimate_id=w.estimate_id or -1)
         assert kept is not None and single.series_id is None
@@ -124,7 +124,7 @@ def test_worker_processes_give_the_inline_result(store: Store, db_url: str, tmp_
 
     def estimates(min_days: int, executor: Executor) -> list[EstimateRecord]:
         report = estimate_rolling(
-            store.sessions, data.code, *ends, LENGTH, STEP, user="q", min_days=min_days,
+            store.sessions, data.code, *ends, LENGTH, STEP, by="q", min_days=min_days,
             chunk=1, executor=executor,
         )  # fmt: skip
         with store.sessions() as s:
@@ -140,7 +140,7 @@ def test_worker_processes_give_the_inline_result(store: Store, db_url: str, tmp_
 def test_rolling_and_stability_requests_that_cannot_be_served(store: Store, tmp_path: Path) -> None:
     data = load_scenario(store, tmp_path)
     with pytest.raises(RollingRequestError, match="no window end between"):
-        estimate_rolling(store.sessions, data.code, LAST, FIRST, LENGTH, STEP, user="q")
+        estimate_rolling(store.sessions, data.code, LAST, FIRST, LENGTH, STEP, by="q")
     with pytest.raises(RollingRequestError, match="no rolling series stored"):
         stability(store.sessions, data.code)
     early = estimate_rolling(
@@ -150,7 +150,7 @@ def test_rolling_and_stability_requests_that_cannot_be_served(store: Store, tmp_
         date(2031, 2, 1),
         LENGTH,
         STEP,
-        user="q",
+        by="q",
         min_days=MIN_DAYS,
     )
     (w,) = early.windows
