@@ -154,8 +154,9 @@ def hedge_paths(
     futures : ``(n_paths, N + 1, n_legs)`` the legs' prices (near, far for a spread).
     rate : continuously compounded rate: discounting of the option and cash accrual.
     nodes : Gauss-Hermite nodes of the spread price.
-    adaptive : let each date use fewer nodes where they agree with ``nodes`` on probe paths
-        (:mod:`calib.hedge.valuation`); ``False`` prices every date with ``nodes``.
+    adaptive : price each path at each date with two small rules where they agree, and with
+        ``nodes`` where they do not (:mod:`calib.hedge.valuation`); ``False`` prices every
+        date with ``nodes``.
     """
     t = check_grid(times, option.t_expiry)
     F = np.asarray(futures, dtype=np.float64)
