@@ -426,18 +426,11 @@ def raising_implied_vol(
     that a scalar call without one raises :class:`ImpliedVolError` naming the reason
     (``reasons(r)``: phrase per :class:`ImpliedVolCode` name). ``style`` opens its docstring."""
 
-    def implied_vol(
-        premium: ArrayLike,
-        F: ArrayLike,
-        K: ArrayLike,
-        T: ArrayLike,
-        r: ArrayLike,
-        kind: Kind | ArrayLike,
-    ) -> FloatArray:
-        vol, code = detail(premium, F, K, T, r, kind)
+    def implied_vol(*args: ArrayLike) -> FloatArray:  # (premium, F, K, T, r, kind)
+        vol, code = detail(*args)
         if vol.ndim == 0 and int(code) != ImpliedVolCode.OK:
-            reason = reasons(r)[ImpliedVolCode(int(code)).name]
-            raise ImpliedVolError(float(np.asarray(premium, dtype=np.float64)), reason)
+            reason = reasons(args[4])[ImpliedVolCode(int(code)).name]
+            raise ImpliedVolError(float(np.asarray(args[0], dtype=np.float64)), reason)
         return vol
 
     implied_vol.__doc__ = f"""{style} implied volatility of each premium (NaN where none exists).
