@@ -29,8 +29,8 @@ from dataclasses import dataclass
 import numpy as np
 
 from calib.errors import ParameterError
-from calib.hedge.instruments import HedgedOption, remaining_law
-from calib.hedge.valuation import value_and_ratios
+from calib.hedge.instruments import HedgedOption, RemainingLaw, remaining_law
+from calib.hedge.valuation import values_on_grid
 from calib.model.spread import DEFAULT_NODES, ForwardVols
 from calib.model.twofactor import TwoFactorParams
 from calib.types import ArrayLike, FloatArray, readonly
@@ -154,8 +154,9 @@ def hedge_paths(
     futures : ``(n_paths, N + 1, n_legs)`` the legs' prices (near, far for a spread).
     rate : continuously compounded rate: discounting of the option and cash accrual.
     nodes : Gauss-Hermite nodes of the spread price.
-    adaptive : let each date use fewer nodes where they agree with ``nodes`` on probe paths
-        (:mod:`calib.hedge.valuation`); ``False`` prices every date with ``nodes``.
+    adaptive : price each path at each date with two small rules where they agree, and with
+        ``nodes`` where they do not (:mod:`calib.hedge.valuation`); ``False`` prices every
+        date with ``nodes``.
     """
     t = check_grid(times, option.t_expiry)
     F = np.asarray(futures, dtype=np.float64)
@@ -166,20 +167,10 @@ def hedge_paths(
         )
     if not np.all(F > 0.0) or not np.all(np.isfinite(F)):
         raise ParameterError("futures", float(np.nanmin(F)), "futures prices must be > 0")
-    n_paths, n_steps = F.shape[0], t.size - 1
     law = remaining_law(option, vols, t)
-    values = np.empty((n_paths, n_steps))
-    positions = np.empty((n_paths, n_steps, n_legs))
-    for k in range(n_steps):
-        discount = math.exp(-rate * (option.t_expiry - t[k]))
-        values[:, k], positions[:, k] = value_and_ratios(
-            option,
-            float(law.var_near[k]),
-            float(law.var_far[k]),
-            float(law.cov[k]),
-            F[:, k],
-            discount,
-            nodes=nodes,
-            adaptive=adaptive,
-        )
+    before = RemainingLaw(law.var_near[:-1], law.var_far[:-1], law.cov[:-1])  # the dates t_k < T
+    discount = np.exp(-rate * (option.t_expiry - t[:-1]))
+    values, positions = values_on_grid(
+        option, before, F[:, :-1], discount, nodes=nodes, adaptive=adaptive
+    )
     return settle(t, F, values, positions, option.payoff(F[:, -1]), rate)
