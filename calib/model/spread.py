@@ -495,19 +495,6 @@ def price_exact(
     return spread_greeks(law, strike, kind, discount, nodes=nodes).price
 
 
-def hedge_ratios(
-    law: SpreadLaw,
-    strike: ArrayLike,
-    kind: Kind | ArrayLike,
-    discount: ArrayLike = 1.0,
-    *,
-    nodes: int = DEFAULT_NODES,
-) -> tuple[FloatArray, FloatArray]:
-    """``(dV/dF1, dV/dF2)``: futures to hold per option, near and far (variances fixed)."""
-    g = spread_greeks(law, strike, kind, discount, nodes=nodes)
-    return g.delta_near, g.delta_far
-
-
 # --- sensitivities to the calibrated volatilities ---------------------------------------------
 
 

@@ -24,7 +24,7 @@ from dataclasses import dataclass
 from typing import Any
 
 from calib.model.params import TwoFactorParams
-from calib.record.codec import decode, encode
+from calib.record.codec import Encoded, decode, encode
 
 SCHEMA_VERSION = 2
 """Version of the stored layout (1: before the record existed, no ``schema_version`` key)."""
@@ -56,7 +56,7 @@ class BucketVols:
 
 
 @dataclass(frozen=True, slots=True)
-class ConstraintReport:
+class ConstraintReport(Encoded):
     """One constraint at the solution.
 
     Attributes
@@ -101,12 +101,9 @@ class ConstraintReport:
         """Its name, with ``@k`` for forward-mode bucket ``k``."""
         return self.name if self.bucket is None else f"{self.name}@{self.bucket}"
 
-    def to_dict(self) -> dict[str, Any]:
-        return encode(self)  # type: ignore[no-any-return]
-
 
 @dataclass(frozen=True, slots=True)
-class Gate:
+class Gate(Encoded):
     """One gate's verdict: its value, its limit and whether it passed."""
 
     name: str
@@ -114,9 +111,6 @@ class Gate:
     limit: float | str | None
     passed: bool
     detail: str
-
-    def to_dict(self) -> dict[str, Any]:
-        return encode(self)  # type: ignore[no-any-return]
 
 
 @dataclass(frozen=True, slots=True)

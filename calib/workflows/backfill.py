@@ -66,6 +66,7 @@ from calib.compute.executor import AHEAD_PER_WORKER, Executor, InlineExecutor
 from calib.errors import BackfillRangeError
 from calib.model.twofactor import TwoFactorParams
 from calib.policy.settings import RunSettings, default_settings
+from calib.record.codec import Encoded
 from calib.store.engine import Store
 from calib.store.quotes import DayQuotes, load_days, trade_dates
 from calib.store.runs import run_keys
@@ -121,7 +122,7 @@ class DayFit:
 
 
 @dataclass(frozen=True, slots=True)
-class BackfillDay:
+class BackfillDay(Encoded):
     """One day of a backfill as stored."""
 
     commodity: str
@@ -131,16 +132,6 @@ class BackfillDay:
     run_id: int | None
     reason: str | None
     auto_approved: bool
-
-    def to_dict(self) -> dict[str, Any]:
-        return {
-            "commodity": self.commodity,
-            "trade_date": self.trade_date.isoformat(),
-            "outcome": self.outcome,
-            "run_id": self.run_id,
-            "reason": self.reason,
-            "auto_approved": self.auto_approved,
-        }
 
 
 @dataclass(frozen=True, slots=True)

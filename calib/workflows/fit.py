@@ -68,6 +68,7 @@ from calib.store.runs import (
     latest_approved,
     lock_commodity,
     require_run,
+    run_quotes,
     study_baseline,
 )
 from calib.types import FloatArray
@@ -256,6 +257,13 @@ def choose_estimate(session: Session, commodity: str, estimate_id: int | None) -
     if not named.converged:
         raise NotConvergedEstimateError(estimate_id, named.message)
     return named
+
+
+def fitted_inputs(session: Session, run: RunRecord) -> tuple[EstimateRecord, DayQuotes]:
+    """What ``run`` was fitted from: the estimate it held fixed and its quote rows (by id)."""
+    estimate = get_estimate(session=session, estimate_id=run.estimate_id)
+    assert estimate is not None  # foreign key
+    return estimate, run_quotes(session=session, run=run)
 
 
 # --- units of work -----------------------------------------------------------------------------

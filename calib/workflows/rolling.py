@@ -45,6 +45,7 @@ from calib.estimate.rolling import (
     window_ends,
     window_start,
 )
+from calib.record.codec import Encoded
 from calib.store.base import utc_now
 from calib.store.engine import begin_write
 from calib.store.estimates import add_series, find_series, series_estimates
@@ -66,7 +67,7 @@ def _nothing(_: RollingWindow) -> None:
 
 
 @dataclass(frozen=True, slots=True)
-class RollingWindow:
+class RollingWindow(Encoded):
     """One window end of a series and what became of it in this run.
 
     ``status``: ``stored`` (estimated now), ``held`` (stored by an earlier run), ``failed``
@@ -82,19 +83,6 @@ class RollingWindow:
     started: str | None = None
     local_optimum: str | None = None
     detail: str | None = None
-
-    def to_dict(self) -> dict[str, Any]:
-        return {
-            "index": self.index,
-            "start": self.start.isoformat(),
-            "end": self.end.isoformat(),
-            "status": self.status,
-            "estimate_id": self.estimate_id,
-            "converged": self.converged,
-            "started": self.started,
-            "local_optimum": self.local_optimum,
-            "detail": self.detail,
-        }
 
 
 @dataclass(frozen=True, slots=True)

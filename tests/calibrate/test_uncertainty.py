@@ -13,12 +13,8 @@ import pytest
 from calib.calibrate import CalibrationSettings, Calibrator, OptionQuotes, fit
 from calib.errors import CalibrationNotIdentifiedWarning
 from calib.model import black76
-from calib.model.twofactor import TwoFactorParams
-from tests.calibrate.quotes_from_model import make_quotes
+from tests.calibrate.quotes_from_model import TRUE, make_quotes
 
-TRUE = TwoFactorParams(
-    mu=0.05, kappa=1.5, alpha=0.02, lam=0.0, sigma_spot=0.35, sigma_yield=0.25, rho=0.7
-)
 N_BOOT = 200  # the bootstrap's own standard error of a spread is about 1/sqrt(2 N) = 5 %
 SE_TOL = 0.2  # standard errors against the bootstrap spread (issue 18's check)
 

@@ -15,7 +15,6 @@ from calib.model.spread import (
     ForwardVols,
     SpreadLaw,
     SpreadOption,
-    hedge_ratios,
     law_coefficients,
     price_exact,
     price_kirk,
@@ -265,7 +264,8 @@ def _fd(f, x: float, h: float) -> float:  # type: ignore[no-untyped-def]
 def test_hedge_ratios_match_finite_differences() -> None:
     opt = grid_option()
     law = spread_law(opt, DECAY)
-    dn, df = hedge_ratios(law, opt.strike, opt.is_call, opt.discount)
+    g = spread_greeks(law, opt.strike, opt.is_call, opt.discount)
+    dn, df = g.delta_near, g.delta_far
 
     def bumped(leg: str, h: float) -> np.ndarray:
         F1 = opt.near_price * (1 + h) if leg == "near" else opt.near_price

@@ -14,6 +14,7 @@ from calib.compute.executor import Executor, InlineExecutor, ProcessExecutor
 from calib.errors import RollingRequestError
 from calib.estimate.rolling import parse_period
 from calib.model.twofactor import PARAM_NAMES
+from calib.output.stability import write_csv, write_png
 from calib.store.engine import Store
 from calib.store.estimates import (
     EstimateRecord,
@@ -23,7 +24,7 @@ from calib.store.estimates import (
 )
 from calib.workflows.estimates import estimate
 from calib.workflows.rolling import RollingReport, RollingWindow, estimate_rolling
-from calib.workflows.stability import stability, write_csv, write_png
+from calib.workflows.stability import stability
 from tests.conftest import Cli
 from tests.workflows.small_day import load_scenario
 
@@ -110,9 +111,9 @@ def test_rolling_series_is_stored_marked_resumable_and_equal_to_single_estimates
     out = view.to_dict()
     assert {"windows", "in_use", "recommendation", "quiet_steps", "caution", "k"} <= set(out)
     json.dumps(out, allow_nan=False)
-    rows = list(csv.DictReader(write_csv(view, tmp_path / "s.csv").open()))
+    rows = list(csv.DictReader(write_csv(view.to_dict(), tmp_path / "s.csv").open()))
     assert len(rows) == 4 and float(rows[0]["kappa"]) == stored[0].params.kappa
-    assert write_png(view, tmp_path / "s.png").stat().st_size > 10_000
+    assert write_png(view.to_dict(), tmp_path / "s.png").stat().st_size > 10_000
 
 
 def test_worker_processes_give_the_inline_result(store: Store, db_url: str, tmp_path: Path) -> None:
