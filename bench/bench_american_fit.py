@@ -34,8 +34,8 @@ def _day(rng: np.random.Generator, style: str) -> OptionQuotes:
         return q
     r = q.rate
     assert q.premium is not None
-    vol = black76.implied_vol(q.premium, q.forward, q.strike, q.expiry, r, q.is_call)
-    premium = american.price(q.forward, q.strike, q.expiry, r, vol, q.is_call)
+    vol = black76.implied_vol(q.premium, q.forward, q.strike, q.t_expiry, r, q.is_call)
+    premium = american.price(q.forward, q.strike, q.t_expiry, r, vol, q.is_call)
     return replace(q, premium=premium, american=np.ones(len(q), dtype=bool))
 
 
@@ -61,7 +61,7 @@ def main() -> None:
             for style in ("european", "american"):
                 rng = np.random.default_rng(7)
                 days = [_day(rng, style) for _ in range(N_DAYS)]
-                n_buckets = bucket_edges(prepare(days[0], s).expiry).size - 1
+                n_buckets = bucket_edges(prepare(days[0], s).t_expiry).size - 1
                 out[style] = _median_fit(Calibrator(s, n_buckets), days)
                 if style == "american":
                     t0 = time.perf_counter()

@@ -91,12 +91,12 @@ def prepare_store(folder: Path, spec: ScenarioSpec, n_dates: int) -> Prepared:
     upgrade(store.engine)
     new = NewCommodity(unit="tonne", currency="USD", calendar_rule="monthly")
     for kind in ("futures", "rates", "options"):
-        ingest_file(store.sessions, paths[kind], kind, user="bench", create=new)
+        ingest_file(store.sessions, paths[kind], kind, by="bench", create=new)
     estimate_file = folder / "estimate.json"
     window = {"window_start": "2031-01-06", "window_end": "2031-12-31"}
     estimate_file.write_text(json.dumps({**scenario.params.to_dict(), **window}))
     code = scenario.commodity["code"]
-    estimate = import_estimate(store.sessions, code, estimate_file, user="bench")
+    estimate = import_estimate(store.sessions, code, estimate_file, by="bench")
     with store.sessions() as s:
         dates = trade_dates(session=s, commodity=code)[:n_dates]
     return Prepared(store, scenario, code, estimate, dates, estimate_file)

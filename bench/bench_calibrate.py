@@ -43,15 +43,15 @@ def _day(rng: np.random.Generator) -> OptionQuotes:
     disc = np.exp(-0.03 * t)
     premium = black76.price(F, K, t, 0.03, vol, call)
     return OptionQuotes(
-        expiry=t, maturity=T, is_call=call, strike=K, forward=F, discount=disc, premium=premium
+        t_expiry=t, t_delivery=T, is_call=call, strike=K, forward=F, discount=disc, premium=premium
     )
 
 
 def _slsqp(quotes: OptionQuotes, settings: CalibrationSettings, K: int) -> tuple[float, float]:
     """Best objective and wall time of SLSQP (analytic gradient) from 20 starts."""
     data = prepare(quotes, settings)
-    edges = bucket_edges(data.expiry) if K > 1 else np.array([0.0, data.expiry.max()])
-    a, b, c = bucket_coefficients(data.expiry, data.maturity, edges, HIST.kappa)
+    edges = bucket_edges(data.t_expiry) if K > 1 else np.array([0.0, data.t_expiry.max()])
+    a, b, c = bucket_coefficients(data.t_expiry, data.t_delivery, edges, HIST.kappa)
     w_a, s2h, kap = settings.anchor_weight, HIST.sigma_yield, HIST.kappa
     smooth = settings.smoothness if K > 1 else 0.0
 

@@ -31,7 +31,7 @@ RATE = 0.03
 SET = TwoFactorParams(
     mu=0.06, kappa=1.2, alpha=0.03, lam=0.01, sigma_spot=0.35, sigma_yield=0.3, rho=0.6
 )
-OPTION = CalendarSpread(near=1.05, far=1.3, expiry=1.0, strike=0.5)
+OPTION = CalendarSpread(t_near=1.05, t_far=1.3, t_expiry=1.0, strike=0.5)
 PRICES = np.array([50.0, 51.0])
 
 
@@ -39,8 +39,8 @@ def _study(times: np.ndarray, seed: int) -> tuple[float, float, float, float]:
     """Wall seconds of (simulate, hedge, statistics) and the CPU seconds of all three."""
     c0 = time.process_time()
     t0 = time.perf_counter()
-    state = initial_state(SET, OPTION.maturities, PRICES, RATE)
-    F = simulate_futures(SET, OPTION.maturities, times, PRICES, state, RATE, PATHS, rng=seed)
+    state = initial_state(SET, OPTION.t_legs, PRICES, RATE)
+    F = simulate_futures(SET, OPTION.t_legs, times, PRICES, state, RATE, PATHS, rng=seed)
     t1 = time.perf_counter()
     result = hedge_paths(OPTION, SET, times, F, RATE)
     t2 = time.perf_counter()
@@ -80,7 +80,7 @@ def _quantlib_kirk(F: np.ndarray, laws: list[tuple[float, float, float]], n: int
     for i in range(n):
         k = i % len(laws)
         v1, v2, c = laws[k]
-        life = OPTION.expiry * (1.0 - k / STEPS)
+        life = OPTION.t_expiry * (1.0 - k / STEPS)
         procs = []
         for f, v in ((F[i, k, 1], v2), (F[i, k, 0], v1)):
             vts = ql.BlackVolTermStructureHandle(
@@ -112,8 +112,8 @@ def _vectorised_per_date(F: np.ndarray, laws: list[tuple[float, float, float]]) 
 
 
 def main() -> None:
-    times = np.linspace(0.0, OPTION.expiry, STEPS + 1)
-    _study(times[:3] * OPTION.expiry / times[2], seed=1)  # compile the kernel (numba cache)
+    times = np.linspace(0.0, OPTION.t_expiry, STEPS + 1)
+    _study(times[:3] * OPTION.t_expiry / times[2], seed=1)  # compile the kernel (numba cache)
     runs = [_study(times, seed=2 + i) for i in range(REPEATS)]
     best = min(runs, key=lambda r: sum(r[:3]))
     total = sum(best[:3])
@@ -124,8 +124,8 @@ def main() -> None:
         f"on {os.cpu_count()} cores"
     )
     print(f"  simulate {best[0]:.2f} s, hedge {best[1]:.2f} s, statistics {best[2]:.2f} s")
-    state = initial_state(SET, OPTION.maturities, PRICES, RATE)
-    F = simulate_futures(SET, OPTION.maturities, times, PRICES, state, RATE, PATHS, rng=9)
+    state = initial_state(SET, OPTION.t_legs, PRICES, RATE)
+    F = simulate_futures(SET, OPTION.t_legs, times, PRICES, state, RATE, PATHS, rng=9)
     laws = _laws(times)
     evaluations = PATHS * STEPS
     per_ours = best[1] / evaluations

@@ -56,7 +56,7 @@ def _load(store: Store, folder: Path) -> tuple[str, list[dt.date]]:
     paths = write_csv(scenario, folder)
     new = NewCommodity(unit="tonne", currency="USD", calendar_rule="monthly")
     for kind in ("futures", "rates", "options"):
-        ingest_file(store.sessions, paths[kind], kind, user="bench", create=new)
+        ingest_file(store.sessions, paths[kind], kind, by="bench", create=new)
     code = str(scenario.commodity["code"])
     estimate = folder / "estimate.json"
     estimate.write_text(
@@ -65,7 +65,7 @@ def _load(store: Store, folder: Path) -> tuple[str, list[dt.date]]:
         ),
         encoding="utf-8",
     )
-    import_estimate(store.sessions, code, estimate, user="bench")
+    import_estimate(store.sessions, code, estimate, by="bench")
     with store.sessions.begin() as session:
         days = trade_dates(session=session, commodity=code)
     return code, days

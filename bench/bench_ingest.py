@@ -107,10 +107,10 @@ def write_year(
 def _calib(store: Store, futures: Path, rates: Path, options: Path) -> tuple[float, int]:
     upgrade(store.engine)
     new = NewCommodity()
-    ingest_file(store.sessions, futures, "futures", user="bench", create=new)
-    ingest_file(store.sessions, rates, "rates", user="bench")
+    ingest_file(store.sessions, futures, "futures", by="bench", create=new)
+    ingest_file(store.sessions, rates, "rates", by="bench")
     start = time.perf_counter()
-    report = ingest_file(store.sessions, options, "options", user="bench")
+    report = ingest_file(store.sessions, options, "options", by="bench")
     elapsed = time.perf_counter() - start
     assert report.rows_rejected == 0, report.problems[:3]
     return elapsed, report.rows_accepted
@@ -172,7 +172,7 @@ def _child(task: str, folder: Path) -> None:
     try:
         before = resource.getrusage(resource.RUSAGE_SELF)
         start = time.perf_counter()
-        report = ingest_file(store.sessions, options, "options", user="bench")
+        report = ingest_file(store.sessions, options, "options", by="bench")
         wall = time.perf_counter() - start
         after = resource.getrusage(resource.RUSAGE_SELF)
     finally:
@@ -201,8 +201,8 @@ def _memory() -> None:
         store = make_store(f"sqlite:///{folder / 'large.sqlite'}")
         try:
             upgrade(store.engine)
-            ingest_file(store.sessions, futures, "futures", user="bench", create=NewCommodity())
-            ingest_file(store.sessions, rates, "rates", user="bench")
+            ingest_file(store.sessions, futures, "futures", by="bench", create=NewCommodity())
+            ingest_file(store.sessions, rates, "rates", by="bench")
         finally:
             store.engine.dispose()
         count, wall, cpu, peak = _run_child("child", folder)

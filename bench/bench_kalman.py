@@ -21,10 +21,10 @@ import numpy as np
 from statsmodels.tsa.statespace.kalman_filter import KalmanFilter
 from statsmodels.tsa.statespace.mlemodel import MLEModel
 
-from calib.estimate import Curves, curves_from_quotes, default_starts, fit, kalman, log_likelihood
+from calib.estimate import Curves, default_starts, fit, kalman, log_likelihood
 from calib.estimate.mle import _Problem, _theta
 from calib.estimate.statespace import SystemMatrices, system_matrices
-from calib.model.simulate import futures_curves, simulate_states
+from calib.estimate.synthetic import business_days, simulated_curves
 from calib.model.twofactor import PARAM_NAMES, TwoFactorParams
 
 TRUTH = TwoFactorParams(
@@ -37,22 +37,8 @@ N_DAYS = 3000
 
 def make_curves(n_days: int = N_DAYS, seed: int = 7) -> Curves:
     """Simulated curves (exact states, rolling slots, slot noise)."""
-    rng = np.random.default_rng(seed)
-    start = np.datetime64("2031-01-02")
-    cal = np.arange(start, start + 2 * n_days, dtype="datetime64[D]")
-    days = cal[np.is_busday(cal)][:n_days]
-    years = (days - days[0]).astype(np.float64) / 365.0
-    paths = simulate_states(TRUTH, years, np.log(60.0), TRUTH.alpha, 1, rng=rng)
-    months = np.arange(days[0].astype("datetime64[M]"), days[-1].astype("datetime64[M]") + 24, 2)
-    deliveries = months.astype("datetime64[D]") + 19
-    tau = (deliveries[None, :] - days[:, None]).astype(np.float64) / 365.0
-    price = futures_curves(paths, np.maximum(tau, 0.0), TRUTH, RATE)[0]
-    keep = (tau > 0.0) & (tau < 1.5)
-    td = np.broadcast_to(days[:, None], tau.shape)[keep]
-    dl = np.broadcast_to(deliveries[None, :], tau.shape)[keep]
-    clean = curves_from_quotes(td, dl, price[keep], n_contracts=NOISE_SD.size)
-    y = clean.log_price + NOISE_SD * rng.standard_normal(clean.log_price.shape)
-    return Curves(clean.dates, clean.tau, y)
+    days = business_days(n_days, np.datetime64("2031-01-02"))
+    return simulated_curves(days, seed, params=TRUTH, noise_sd=NOISE_SD, rate=RATE)
 
 
 def _set(ssm: Any, sm: SystemMatrices) -> None:

@@ -27,9 +27,9 @@ def _options(rng: np.random.Generator) -> SpreadOption:
     far = near + rng.choice([1 / 12, 0.25, 0.5, 1.0], N_OPTIONS)
     near_price = rng.uniform(40.0, 60.0, N_OPTIONS)
     return SpreadOption(
-        near=near,
-        far=far,
-        expiry=expiry,
+        t_near=near,
+        t_far=far,
+        t_expiry=expiry,
         strike=rng.uniform(-3.0, 5.0, N_OPTIONS),
         is_call=rng.random(N_OPTIONS) < 0.5,
         near_price=near_price,
@@ -55,7 +55,7 @@ def _quantlib_per_option(opt: SpreadOption, law: SpreadLaw, n: int) -> float:
     curve = ql.YieldTermStructureHandle(ql.FlatForward(today, 0.03, dc))
     t0 = time.perf_counter()
     for i in range(n):
-        t = float(opt.expiry[i])
+        t = float(opt.t_expiry[i])
         v1 = math.sqrt(law.var_near[i] / t)
         v2 = math.sqrt(law.var_far[i] / t)
         rho = float(law.corr[i])

@@ -38,18 +38,16 @@ character; anything else is ``422`` with one line naming the field and the reaso
 from __future__ import annotations
 
 import hashlib
-import hmac
 import json
 from collections import OrderedDict
 from collections.abc import AsyncIterator, Mapping
 from contextlib import asynccontextmanager
-from datetime import date, datetime
+from datetime import datetime
 from typing import Annotated, Any
 
 from fastapi import Depends, FastAPI, HTTPException, Query, Request
 from fastapi.exceptions import RequestValidationError
 from fastapi.responses import Response
-from fastapi.security import HTTPAuthorizationCredentials, HTTPBearer
 from sqlalchemy.exc import OperationalError
 from starlette.exceptions import HTTPException as StarletteHTTPException
 
@@ -66,7 +64,7 @@ from calib.api.schemas import (
     RunId,
 )
 from calib.api.timeouts import DEFAULT_TIMEOUT, check_timeout, timeout_from_env
-from calib.api.tokens import check_token, token_from_env
+from calib.api.tokens import bearer_guard, check_token, token_from_env
 from calib.as_of import AS_OF_HELP, parse_as_of
 from calib.client import Client
 from calib.errors import (
@@ -79,6 +77,7 @@ from calib.errors import (
     UnknownCommodityError,
     UnknownRunError,
 )
+from calib.record.codec import encode
 from calib.settings import Settings, get_settings
 from calib.store.engine import Store, make_store
 from calib.workflows.approve import approve as approve_run
@@ -94,10 +93,6 @@ _NOT_FOUND: dict[int | str, dict[str, Any]] = {
 _CACHED: dict[int | str, dict[str, Any]] = {
     304: {"description": "Not modified: the `If-None-Match` ETag is current."}
 }
-Bearer = Annotated[
-    HTTPAuthorizationCredentials | None,
-    Depends(HTTPBearer(auto_error=False, description="The token configured on the server.")),
-]
 AS_OF_EXAMPLE = "2033-06-01T17:00:00Z"
 
 
@@ -122,15 +117,7 @@ AsOf = Annotated[datetime | None, Depends(as_of_query)]
 
 
 def _json(payload: Any) -> bytes:
-    return json.dumps(payload, separators=(",", ":"), allow_nan=False, default=_plain).encode()
-
-
-def _plain(value: object) -> Any:
-    if isinstance(value, date | datetime):
-        return value.isoformat()
-    if hasattr(value, "tolist"):
-        return value.tolist()
-    raise TypeError(f"not JSON serialisable: {type(value).__name__}")
+    return json.dumps(payload, separators=(",", ":"), allow_nan=False, default=encode).encode()
 
 
 def problem(status: int, detail: str, headers: Mapping[str, str] | None = None) -> Response:
@@ -286,20 +273,12 @@ def create_app(
 
 def _mount_approval(app: FastAPI, token: str) -> None:
     """Add ``POST /v1/runs/{run_id}/approve``, guarded by the bearer ``token``."""
-    expected = token.encode()
-
-    def authorised(credentials: Bearer) -> None:
-        given = b"" if credentials is None else credentials.credentials.encode()
-        if not hmac.compare_digest(given, expected):
-            raise HTTPException(
-                401, "approval needs a valid bearer token", headers={"WWW-Authenticate": "Bearer"}
-            )
 
     @app.post(
         "/v1/runs/{run_id}/approve",
         response_model=ApprovedBody,
         responses={401: {"model": ErrorBody}, 409: {"model": ErrorBody}, **_NOT_FOUND},
-        dependencies=[Depends(authorised)],
+        dependencies=[Depends(bearer_guard(token))],
         summary="Approve a candidate run (supersedes the commodity's approved set)",
     )
     def approve(request: Request, run_id: RunId, decision: ApproveRequest) -> Response:

@@ -29,7 +29,6 @@ in small in-memory caches: a stored run never changes, only its status, which is
 
 from __future__ import annotations
 
-import hmac
 import threading
 import warnings
 from collections import OrderedDict
@@ -37,15 +36,15 @@ from collections.abc import AsyncIterator, Callable, Hashable
 from contextlib import asynccontextmanager
 from datetime import UTC, datetime
 from importlib import resources
-from typing import Annotated, Any, Generic, TypeVar
+from typing import Any, Generic, TypeVar
 
 from fastapi import APIRouter, Depends, FastAPI, HTTPException
 from fastapi.responses import HTMLResponse, JSONResponse, Response
-from fastapi.security import HTTPAuthorizationCredentials, HTTPBearer
 from jinja2 import Environment, PackageLoader, StrictUndefined
 
 from calib import __version__
 from calib.api.schemas import ApproveRequest, ErrorBody, PageCode, RunBody, RunId
+from calib.api.tokens import bearer_guard
 from calib.as_of import parse_as_of
 from calib.client import ApprovedSet, Client
 from calib.errors import (
@@ -88,11 +87,6 @@ REPORT_CACHE = 8
 """Fit-report inputs kept (one per run page recently shown)."""
 FIGURE_CACHE = 64
 """Rendered figure PNGs kept."""
-
-Bearer = Annotated[
-    HTTPAuthorizationCredentials | None,
-    Depends(HTTPBearer(auto_error=False, description="The token configured on the server.")),
-]
 
 _K = TypeVar("_K", bound=Hashable)
 _V = TypeVar("_V")
@@ -172,20 +166,6 @@ def _environment() -> Environment:
 def _static() -> dict[str, bytes]:
     folder = resources.files("calib.api").joinpath("static")
     return {name: folder.joinpath(name).read_bytes() for name in STATIC}
-
-
-def _guard(token: str) -> Callable[..., None]:
-    """A dependency that refuses a request without ``Authorization: Bearer <token>``."""
-    expected = token.encode()
-
-    def authorised(credentials: Bearer) -> None:
-        given = b"" if credentials is None else credentials.credentials.encode()
-        if not hmac.compare_digest(given, expected):
-            raise HTTPException(
-                401, "approval needs a valid bearer token", headers={"WWW-Authenticate": "Bearer"}
-            )
-
-    return authorised
 
 
 def review_router(settings: Settings, token: str | None, timeout: float | None = None) -> APIRouter:
@@ -308,7 +288,7 @@ def review_router(settings: Settings, token: str | None, timeout: float | None =
             "/v1/runs/{run_id}/reject",
             response_model=RunBody,
             responses={401: {"model": ErrorBody}, 404: {"model": ErrorBody}},
-            dependencies=[Depends(_guard(token))],
+            dependencies=[Depends(bearer_guard(token))],
             include_in_schema=True,
             summary="Reject a candidate run",
         )

@@ -81,16 +81,16 @@ def _scale(J: float) -> float:
     return 1.0 / min(max(J, _MIN_OBJECTIVE), 1.0)
 
 
-def bucket_edges(expiry: FloatArray) -> FloatArray:
-    """Forward-mode calendar edges ``[0, t_1, ..., t_K]`` at the distinct expiries.
+def bucket_edges(t_expiry: FloatArray) -> FloatArray:
+    """Forward-mode calendar edges ``[0, t_1, ..., t_K]`` at the distinct ``t_expiry`` (years).
 
     Expiries equal to 12 decimals share an edge; the last edge is the latest expiry itself
     (not its rounded value), so every option ends inside the buckets.
     """
-    if expiry.size == 0:  # no usable quote: no bucket (the fit refuses the day)
+    if t_expiry.size == 0:  # no usable quote: no bucket (the fit refuses the day)
         return np.zeros(1)
-    edges = np.concatenate(([0.0], np.unique(np.round(expiry, 12))))
-    edges[-1] = max(edges[-1], float(np.max(expiry)))
+    edges = np.concatenate(([0.0], np.unique(np.round(t_expiry, 12))))
+    edges[-1] = max(edges[-1], float(np.max(t_expiry)))
     return edges
 
 
@@ -267,14 +267,15 @@ class Calibrator:
     ) -> CalibrationResult:
         K = self.n_buckets
         if s.mode == "forward":
-            edges = bucket_edges(data.expiry)
+            edges = bucket_edges(data.t_expiry)
             if edges.size - 1 != K:
                 raise CalibrationShapeError(f"{K} expiry buckets", f"{edges.size - 1}")
-            a, b, c = bucket_coefficients(data.expiry, data.maturity, edges, hist.kappa)
+            a, b, c = bucket_coefficients(data.t_expiry, data.t_delivery, edges, hist.kappa)
         else:
-            edges = np.array([0.0, float(data.expiry.max())])
+            edges = np.array([0.0, float(data.t_expiry.max())])
             a, b, c = (
-                z[:, None] for z in variance_coefficients(data.expiry, data.maturity, hist.kappa)
+                z[:, None]
+                for z in variance_coefficients(data.t_expiry, data.t_delivery, hist.kappa)
             )
         A = np.hstack([a, b, -2.0 * c])
         step = self._step_for(None)
@@ -303,7 +304,7 @@ class Calibrator:
         def total(x: FloatArray) -> float:
             return float(fit_term(data, A @ x, s.error_measure)) + step.penalties(x)
 
-        V_mkt = data.vol**2 * data.expiry
+        V_mkt = data.vol**2 * data.t_expiry
         _, g = errors(data, V_mkt, s.error_measure)
         x_hist = np.concatenate(
             [
@@ -447,7 +448,7 @@ class Calibrator:
         quotes: OptionQuotes,
         lim: Limits,
     ) -> CalibrationResult:
-        a, b, c = variance_coefficients(data.expiry, data.maturity, hist.kappa)
+        a, b, c = variance_coefficients(data.t_expiry, data.t_delivery, hist.kappa)
         A = np.stack([a, b, -2.0 * c], axis=1)
         anchor = Anchor(
             s.anchor_weight * anchor_scale(data, A, hist, s.error_measure), hist.sigma_yield, 1
@@ -495,7 +496,7 @@ class Calibrator:
             quotes,
             hist,
             s,
-            np.array([0.0, float(data.expiry.max())]),  # one bucket: the edges
+            np.array([0.0, float(data.t_expiry.max())]),  # one bucket: the edges
             params,
             best.P * (a + b * best.ratio**2 - 2.0 * c * hist.rho * best.ratio),  # V
             A,
@@ -532,7 +533,7 @@ def anchor_scale(data: FitData, A: FloatArray, hist: TwoFactorParams, measure: s
     theta = np.tile([hist.sigma_spot, hist.sigma_yield, hist.rho], (K, 1))
     AT = A @ theta_jacobian(theta)
     u = np.tile([0.0, 1.0, 0.0], K)
-    V_mkt = data.vol**2 * data.expiry
+    V_mkt = data.vol**2 * data.t_expiry
     curvature = {}
     for m in ("price", "vol"):
         _, g = errors(data, V_mkt, m)
@@ -596,18 +597,18 @@ def _result(
     model_price = data.discount * black76.undiscounted_price(
         data.forward, data.strike, std, data.is_call
     )
-    model_vol = std / np.sqrt(data.expiry)
+    model_vol = std / np.sqrt(data.t_expiry)
     fitted = quotes.take(data.index)
     early = np.zeros(data.n)
     am, prices = data.american, data.american_prices
     if am is not None and prices is not None:
         # the American pricer at the constant-volatility equivalent (as the objective priced)
-        model_price[am] = prices.price(equivalent_vol(V[am], data.expiry[am]))
+        model_price[am] = prices.price(equivalent_vol(V[am], data.t_expiry[am]))
         # the quote's early-exercise premium: its premium less Black-76's at its implied vol
         early[am] = data.price[am] - data.discount[am] * black76.undiscounted_price(
             data.forward[am],
             data.strike[am],
-            data.vol[am] * np.sqrt(data.expiry[am]),
+            data.vol[am] * np.sqrt(data.t_expiry[am]),
             data.is_call[am],
         )
     price_res = model_price - data.price
@@ -735,7 +736,7 @@ def _calibrator_for(quotes: OptionQuotes, s: CalibrationSettings) -> Calibrator:
     if s.mode == "forward":
         try:
             with np.errstate(over="ignore", under="ignore"):
-                n_buckets = bucket_edges(prepare(quotes, s).expiry).size - 1
+                n_buckets = bucket_edges(prepare(quotes, s).t_expiry).size - 1
         except _NUMERICAL as exc:
             raise CalibrationNumericalError(f"{type(exc).__name__}: {exc}") from exc
     return Calibrator(s, max(n_buckets, 1))

@@ -44,7 +44,7 @@ class Limits:
     Attributes
     ----------
     kappa : the historical mean reversion (the decay bound's slope).
-    rho_held : the correlation held at history (held-correlation mode), else ``None``.
+    held_rho : the correlation held at history (held-correlation mode), else ``None``.
     floor : ``sigma_yield >= floor`` (``yield_floor x`` historical ``sigma_yield``; 0 = off).
     cap : ``sigma_spot <= cap``: the ``sigma_spot_cap`` setting, else the held-correlation
         scan's :data:`SPOT_VOL_LIMIT`, else infinite.
@@ -53,7 +53,7 @@ class Limits:
     """
 
     kappa: float
-    rho_held: float | None
+    held_rho: float | None
     floor: float
     cap: float
     ratio_max: float
@@ -67,7 +67,7 @@ class Limits:
             cap = SPOT_VOL_LIMIT if held else math.inf
         return cls(
             kappa=hist.kappa,
-            rho_held=hist.rho if held else None,
+            held_rho=hist.rho if held else None,
             floor=s.yield_floor * hist.sigma_yield,
             cap=cap,
             ratio_max=s.max_vol_ratio if held and not s.decay_bound else math.inf,
@@ -78,7 +78,7 @@ class Limits:
         """The held scan's upper end of ``r = sigma_yield / sigma_spot``."""
         if math.isfinite(self.ratio_max):
             return self.ratio_max
-        return max(self.kappa * (self.rho_held or 0.0), 0.0)
+        return max(self.kappa * (self.held_rho or 0.0), 0.0)
 
 
 @dataclass(frozen=True, slots=True)
@@ -177,11 +177,42 @@ class DecayBound(Constraint):
         return (1.0 + lim.kappa) * var_tol / s2 + lim.kappa * p.sigma_spot * psd
 
     def ceiling(self, lim: Limits) -> float:
-        rho = 1.0 if lim.rho_held is None else lim.rho_held
+        rho = 1.0 if lim.held_rho is None else lim.held_rho
         return max(rho, 0.0) * lim.kappa * lim.cap
 
 
-class YieldFloor(Constraint):
+class _VolBound(Constraint):
+    """A bound between one volatility and the day's limit, ``low <= high``, imposed on their
+    squares (the variance variable against the squared limit, a cvxpy parameter).
+
+    Subclasses say which side is which, in natural units (:meth:`sides`) and in the
+    sub-problem's variance units (:meth:`variance_sides`).
+    """
+
+    def sides(self, p: TwoFactorParams, lim: Limits) -> tuple[float, float]:
+        """``(low, high)`` in natural units."""
+        raise NotImplementedError
+
+    def variance_sides(self, v: Variables) -> tuple[Any, Any]:
+        """``(low, high)`` squared: a variance variable and the squared limit."""
+        raise NotImplementedError
+
+    def term(self, v: Variables) -> Any:
+        low, high = self.variance_sides(v)
+        return high - low >= 0.0
+
+    def slack(self, p: TwoFactorParams, lim: Limits) -> float:
+        low, high = self.sides(p, lim)
+        return high - low
+
+    def tolerance(self, p: TwoFactorParams, lim: Limits, var_tol: float) -> float:
+        # high - low = (high^2 - low^2) / (high + low): a variance error var_tol moves the
+        # slack by var_tol / (high + low), at most sqrt(var_tol) where both sides are near 0
+        low, high = self.sides(p, lim)
+        return var_tol / max(high + low, math.sqrt(var_tol))
+
+
+class YieldFloor(_VolBound):
     """``sigma_yield >= yield_floor x`` the historical ``sigma_yield``."""
 
     name = "yield_floor"
@@ -197,17 +228,14 @@ class YieldFloor(Constraint):
     def parameter_value(self, lim: Limits) -> float:
         return lim.floor * lim.floor
 
-    def term(self, v: Variables) -> Any:
-        return v.Q - v.parameters["floor"] >= 0.0
+    def sides(self, p: TwoFactorParams, lim: Limits) -> tuple[float, float]:
+        return lim.floor, p.sigma_yield
 
-    def slack(self, p: TwoFactorParams, lim: Limits) -> float:
-        return p.sigma_yield - lim.floor
-
-    def tolerance(self, p: TwoFactorParams, lim: Limits, var_tol: float) -> float:
-        return var_tol / max(p.sigma_yield + lim.floor, math.sqrt(var_tol))
+    def variance_sides(self, v: Variables) -> tuple[Any, Any]:
+        return v.parameters["floor"], v.Q
 
 
-class SpotCap(Constraint):
+class SpotCap(_VolBound):
     """``sigma_spot <= sigma_spot_cap``."""
 
     name = "sigma_spot_cap"
@@ -223,14 +251,11 @@ class SpotCap(Constraint):
     def parameter_value(self, lim: Limits) -> float:
         return lim.cap * lim.cap
 
-    def term(self, v: Variables) -> Any:
-        return v.parameters["cap"] - v.P >= 0.0
+    def sides(self, p: TwoFactorParams, lim: Limits) -> tuple[float, float]:
+        return p.sigma_spot, lim.cap
 
-    def slack(self, p: TwoFactorParams, lim: Limits) -> float:
-        return lim.cap - p.sigma_spot
-
-    def tolerance(self, p: TwoFactorParams, lim: Limits, var_tol: float) -> float:
-        return var_tol / max(lim.cap + p.sigma_spot, math.sqrt(var_tol))
+    def variance_sides(self, v: Variables) -> tuple[Any, Any]:
+        return v.P, v.parameters["cap"]
 
 
 class SpotLimit(SpotCap):
@@ -332,10 +357,10 @@ def check_feasible(settings: CalibrationSettings, historical: TwoFactorParams) -
         else (f"scan limit sigma_spot <= {lim.cap:g}" if math.isfinite(lim.cap) else "no cap")
     )
     decay = any(isinstance(c, DecayBound) for c in cons)
-    if decay and lim.rho_held is not None and lim.rho_held <= 0.0 and lim.floor <= 0.0:
+    if decay and lim.held_rho is not None and lim.held_rho <= 0.0 and lim.floor <= 0.0:
         raise InfeasibleSettingsError(
             f"decay_bound sigma_yield <= rho kappa sigma_spot with rho held at "
-            f"{lim.rho_held:.6g} <= 0 admits only sigma_yield = 0 (a degenerate model): "
+            f"{lim.held_rho:.6g} <= 0 admits only sigma_yield = 0 (a degenerate model): "
             "switch the decay bound off or hold a positive correlation",
             0.0,
         )
@@ -346,7 +371,7 @@ def check_feasible(settings: CalibrationSettings, historical: TwoFactorParams) -
         if lim.floor <= top:
             continue
         if isinstance(c, DecayBound):
-            rho_text = f"rho held at {lim.rho_held:.6g}" if lim.rho_held is not None else "rho <= 1"
+            rho_text = f"rho held at {lim.held_rho:.6g}" if lim.held_rho is not None else "rho <= 1"
             conflict = (
                 f"yield_floor sigma_yield >= {lim.floor:.6g} (q {s.yield_floor:g} x historical "
                 f"{historical.sigma_yield:.6g}) vs decay_bound sigma_yield <= rho kappa "

@@ -83,7 +83,7 @@ class HeldProblem:
         feasible = P_lo <= self.P_max
         lo = np.where(feasible, P_lo, 0.0)
         # first step linearised at the market point, where the errors vanish: e ~ g (u P - V_mkt)
-        V_mkt = self.data.vol**2 * self.data.expiry
+        V_mkt = self.data.vol**2 * self.data.t_expiry
         _, g_mkt = errors(self.data, V_mkt, self.measure)
         w0 = np.broadcast_to(self.data.weight, u.shape)
         P = np.clip(self._step(u * g_mkt, V_mkt * g_mkt, r, w0), lo, self.P_max)

@@ -35,7 +35,7 @@ def errors(
     V = np.maximum(V, TINY_VARIANCE)
     std = np.sqrt(V)
     if measure == "vol":
-        root_t = np.sqrt(data.expiry)
+        root_t = np.sqrt(data.t_expiry)
         return std / root_t - data.vol, 0.5 / (std * root_t)
     F, K, D = data.forward, data.strike, data.discount
     model = D * black76.undiscounted_price(F, K, std, data.is_call)
@@ -44,7 +44,7 @@ def errors(
     am, prices = data.american, data.american_prices
     if am is not None and prices is not None:
         model, de = np.array(model, dtype=np.float64), np.array(de, dtype=np.float64)
-        T = data.expiry[am]
+        T = data.t_expiry[am]
         vol = equivalent_vol(V[..., am], T)
         if slope:
             model[..., am], vega = prices.price_vega(vol)

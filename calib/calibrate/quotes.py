@@ -34,7 +34,7 @@ from calib.types import EXERCISE_STYLES, ArrayLike, BoolArray, FloatArray, IntAr
 
 DAYS_PER_YEAR = 365.0  # ACT/365, as the inputs (DESIGN §7)
 
-CONTRACT_FIELDS = ("expiry", "maturity", "is_call", "strike", "forward", "discount")
+CONTRACT_FIELDS = ("t_expiry", "t_delivery", "is_call", "strike", "forward", "discount")
 """The arrays of :class:`OptionQuotes` that define each option (and of :class:`FitData`)."""
 
 
@@ -44,8 +44,8 @@ class OptionQuotes:
 
     Attributes
     ----------
-    expiry : option expiry, years from today (> 0).
-    maturity : maturity of the underlying future, years from today (>= expiry).
+    t_expiry : option expiry, years from today (> 0).
+    t_delivery : delivery of the underlying future, years from today (>= ``t_expiry``).
     is_call : ``True`` for a call.
     strike, forward : strike and futures price (> 0).
     discount : discount factor to the premium payment date, in (0, 1.5].
@@ -59,8 +59,8 @@ class OptionQuotes:
     Use :meth:`from_arrays` to build from a rate instead of a discount factor.
     """
 
-    expiry: FloatArray
-    maturity: FloatArray
+    t_expiry: FloatArray
+    t_delivery: FloatArray
     is_call: BoolArray
     strike: FloatArray
     forward: FloatArray
@@ -73,10 +73,10 @@ class OptionQuotes:
     american: BoolArray | None = None
 
     def __post_init__(self) -> None:
-        t = np.atleast_1d(np.asarray(self.expiry, dtype=np.float64))
+        t = np.atleast_1d(np.asarray(self.t_expiry, dtype=np.float64))
         n = t.shape[0]
         if t.ndim != 1 or n == 0:
-            raise QuoteError("expiry", "must be a non-empty 1-D array")
+            raise QuoteError("t_expiry", "must be a non-empty 1-D array")
 
         def arr(name: str, value: ArrayLike, dtype: type = np.float64) -> npt.NDArray[Any]:
             a: npt.NDArray[Any] = np.atleast_1d(np.asarray(value, dtype=dtype))
@@ -87,22 +87,22 @@ class OptionQuotes:
             return readonly(a)
 
         set_ = object.__setattr__
-        set_(self, "expiry", arr("expiry", t))
-        for name in ("maturity", "strike", "forward", "discount"):
+        set_(self, "t_expiry", arr("t_expiry", t))
+        for name in ("t_delivery", "strike", "forward", "discount"):
             set_(self, name, arr(name, getattr(self, name)))
         call = np.atleast_1d(np.asarray(self.is_call))
         if call.dtype != np.bool_:
             raise QuoteError("is_call", "must be booleans (True = call)")
         set_(self, "is_call", arr("is_call", call, np.bool_))
-        _positive("expiry", self.expiry)
+        _positive("t_expiry", self.t_expiry)
         _positive("strike", self.strike)
         _positive("forward", self.forward)
         _positive("discount", self.discount)
         if np.any(self.discount > 1.5):
             raise QuoteError("discount", "is a discount factor and must be <= 1.5")
-        if np.any(self.maturity < self.expiry):
-            i = int(np.argmax(self.maturity < self.expiry))
-            raise QuoteError("maturity", f"precedes the option expiry at index {i}")
+        if np.any(self.t_delivery < self.t_expiry):
+            i = int(np.argmax(self.t_delivery < self.t_expiry))
+            raise QuoteError("t_delivery", f"precedes the option expiry at index {i}")
         if (self.premium is None) == (self.implied_vol is None):
             raise QuoteError("premium", "give exactly one of premium and implied_vol")
         if self.premium is not None:
@@ -135,8 +135,8 @@ class OptionQuotes:
     def from_arrays(
         cls,
         *,
-        expiry: ArrayLike,
-        maturity: ArrayLike,
+        t_expiry: ArrayLike,
+        t_delivery: ArrayLike,
         is_call: ArrayLike,
         strike: ArrayLike,
         forward: ArrayLike,
@@ -156,15 +156,15 @@ class OptionQuotes:
         """
         if (discount is None) == (rate is None):
             raise QuoteError("discount", "give exactly one of discount and rate")
-        t = np.asarray(expiry, dtype=np.float64)
+        t = np.asarray(t_expiry, dtype=np.float64)
         disc = np.exp(-np.asarray(rate, dtype=np.float64) * t) if discount is None else discount
 
         def opt(x: ArrayLike | None) -> FloatArray | None:
             return None if x is None else np.asarray(x, dtype=np.float64)
 
         return cls(
-            expiry=t,
-            maturity=np.asarray(maturity, dtype=np.float64),
+            t_expiry=t,
+            t_delivery=np.asarray(t_delivery, dtype=np.float64),
             is_call=black76.is_call(is_call),
             strike=np.asarray(strike, dtype=np.float64),
             forward=np.asarray(forward, dtype=np.float64),
@@ -178,7 +178,7 @@ class OptionQuotes:
         )
 
     def __len__(self) -> int:
-        return int(self.expiry.shape[0])
+        return int(self.t_expiry.shape[0])
 
     def take(self, index: ArrayLike) -> OptionQuotes:
         """The quotes at positions ``index`` (in that order, repeats allowed), as a new day."""
@@ -204,7 +204,7 @@ class OptionQuotes:
     @property
     def rate(self) -> FloatArray:
         """Continuously compounded rate implied by the discount factor, ``-ln D / T``."""
-        return np.asarray(-np.log(self.discount) / self.expiry)
+        return np.asarray(-np.log(self.discount) / self.t_expiry)
 
     def label(self, i: int) -> str:
         """The quote's label, or its index as text."""
@@ -259,7 +259,7 @@ class AmericanPrices:
         self, F: FloatArray, K: FloatArray, T: FloatArray, r: FloatArray, call: BoolArray
     ) -> None:
         self.args = (F, K, T, r)
-        self.call = call
+        self.is_call = call
         self._memo: dict[tuple[tuple[int, ...], bytes], tuple[FloatArray, FloatArray | None]] = {}
 
     def _key(self, vol: FloatArray) -> tuple[tuple[int, ...], bytes]:
@@ -282,7 +282,7 @@ class AmericanPrices:
         hit = self._memo.get(key)
         if hit is not None:
             return hit[0]
-        value = american.price(*self.args, vol, self.call)
+        value = american.price(*self.args, vol, self.is_call)
         self._keep(key, (value, None))
         return value
 
@@ -293,7 +293,7 @@ class AmericanPrices:
         if hit is not None and hit[1] is not None:
             return hit[0], hit[1]
         known = None if hit is None else hit[0]
-        g = american.greeks(*self.args, vol, self.call, delta=False, value=known)
+        g = american.greeks(*self.args, vol, self.is_call, delta=False, value=known)
         value, vega = g["price"], g["vega"]
         self._keep(key, (value, vega))
         return value, vega
@@ -315,8 +315,8 @@ class FitData:
     index: IntArray
     strike: FloatArray
     is_call: BoolArray
-    expiry: FloatArray
-    maturity: FloatArray
+    t_expiry: FloatArray
+    t_delivery: FloatArray
     forward: FloatArray
     discount: FloatArray
     price: FloatArray
@@ -336,7 +336,7 @@ class FitData:
     @property
     def rate(self) -> FloatArray:
         """Continuously compounded rate implied by the discount factor, ``-ln D / T``."""
-        return np.asarray(-np.log(self.discount) / self.expiry)
+        return np.asarray(-np.log(self.discount) / self.t_expiry)
 
     @property
     def n(self) -> int:
@@ -376,12 +376,12 @@ def _prepare(quotes: OptionQuotes, settings: CalibrationSettings) -> FitData:
     with np.errstate(all="ignore"):
         if q.implied_vol is not None:
             vol = np.asarray(q.implied_vol, dtype=np.float64)
-            premium = black76.price(q.forward, q.strike, q.expiry, r, vol, q.is_call)
+            premium = black76.price(q.forward, q.strike, q.t_expiry, r, vol, q.is_call)
             reasons = np.full(len(q), "", dtype=object)
         else:
             premium = np.asarray(q.premium, dtype=np.float64)
             vol, codes = black76.implied_vol_detail(
-                premium, q.forward, q.strike, q.expiry, r, q.is_call
+                premium, q.forward, q.strike, q.t_expiry, r, q.is_call
             )
             ok_vol = codes == black76.ImpliedVolCode.OK
             reasons = np.array(
@@ -394,7 +394,7 @@ def _prepare(quotes: OptionQuotes, settings: CalibrationSettings) -> FitData:
                 ],
                 dtype=object,
             )
-        g = black76.greeks(q.forward, q.strike, q.expiry, r, np.nan_to_num(vol), q.is_call)
+        g = black76.greeks(q.forward, q.strike, q.t_expiry, r, np.nan_to_num(vol), q.is_call)
         vega = g["vega"]
         am = np.flatnonzero(q.is_american)
         seed = None
@@ -402,7 +402,7 @@ def _prepare(quotes: OptionQuotes, settings: CalibrationSettings) -> FitData:
             premium, vol, vega, seed = _american_quotes(q, am, premium, vol, reasons, vega)
         vega_f = vega / q.forward
         m = q.strike / q.forward
-    days = q.expiry * DAYS_PER_YEAR
+    days = q.t_expiry * DAYS_PER_YEAR
     lo, hi = settings.moneyness_band
     representable = np.isfinite(premium) & np.isfinite(vega_f) & np.isfinite(vega) & np.isfinite(m)
     checks: list[tuple[BoolArray, str]] = [
@@ -424,7 +424,7 @@ def _prepare(quotes: OptionQuotes, settings: CalibrationSettings) -> FitData:
         reasons = np.where((reasons == "") & bad, why, reasons)
     if settings.screen_vol_points > 0.0:
         kept = np.flatnonzero(reasons == "")
-        far = screen(vol[kept], q.strike[kept] / q.forward[kept], q.expiry[kept])
+        far = screen(vol[kept], q.strike[kept] / q.forward[kept], q.t_expiry[kept])
         limit = settings.screen_vol_points / 100.0
         for j in np.flatnonzero(far[0] > limit):
             i = kept[j]
@@ -484,7 +484,7 @@ def _seeded(
     ``q`` (NaN for the European ones)."""
     kept = idx[q.is_american[idx]]
     prices = AmericanPrices(
-        q.forward[kept], q.strike[kept], q.expiry[kept], q.rate[kept], q.is_call[kept]
+        q.forward[kept], q.strike[kept], q.t_expiry[kept], q.rate[kept], q.is_call[kept]
     )
     prices.remember(key[kept], price[kept], vega[kept])
     return prices
@@ -503,7 +503,7 @@ def _american_quotes(
     the fit will first price them at (:func:`equivalent_vol` of the market variance) with
     their premiums and vegas there, per quote (NaN for the European ones)."""
     premium, vol, vega = (np.array(x, dtype=np.float64) for x in (premium, vol, vega))
-    F, K, T, r, call = q.forward[am], q.strike[am], q.expiry[am], q.rate[am], q.is_call[am]
+    F, K, T, r, call = q.forward[am], q.strike[am], q.t_expiry[am], q.rate[am], q.is_call[am]
     if q.implied_vol is not None:
         premium[am] = american.price(F, K, T, r, vol[am], call)
         reasons[am] = ""
@@ -533,7 +533,7 @@ _OTHER_EXPIRY = 1.0  # distance added for a neighbour at another expiry (moneyne
 
 
 def screen(
-    vol: FloatArray, moneyness: FloatArray, expiry: FloatArray
+    vol: FloatArray, moneyness: FloatArray, t_expiry: FloatArray
 ) -> tuple[FloatArray, FloatArray]:
     """Distance of each implied vol from the day's own smile, and the smile's value there.
 
@@ -549,9 +549,9 @@ def screen(
     n = vol.size
     if n < 2:
         return np.zeros(n), np.asarray(vol, dtype=np.float64)
-    k = np.log(moneyness) / np.sqrt(expiry)
-    lt = np.log(expiry)
-    same = np.abs(expiry[:, None] - expiry[None, :]) <= 1e-12
+    k = np.log(moneyness) / np.sqrt(t_expiry)
+    lt = np.log(t_expiry)
+    same = np.abs(t_expiry[:, None] - t_expiry[None, :]) <= 1e-12
     dist = np.abs(k[:, None] - k[None, :]) + np.where(
         same, 0.0, _OTHER_EXPIRY + np.abs(lt[:, None] - lt[None, :])
     )

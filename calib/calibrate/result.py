@@ -109,12 +109,8 @@ class CalibrationResult:
 
     @property
     def binding(self) -> tuple[str, ...]:
-        """Names of the binding constraints (with ``@k`` for forward-mode buckets)."""
-        return tuple(
-            c.name if c.bucket is None else f"{c.name}@{c.bucket}"
-            for c in self.constraints
-            if c.binds
-        )
+        """Labels of the binding constraints (:attr:`ConstraintReport.label`)."""
+        return tuple(c.label for c in self.constraints if c.binds)
 
     def to_dict(self) -> dict[str, Any]:
         """Plain values (lists, floats, strings) for JSON; a standard error that is not finite

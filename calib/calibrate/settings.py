@@ -7,6 +7,7 @@ lists) that TOML and JSON store as they are.
 from __future__ import annotations
 
 import math
+from collections.abc import Mapping
 from dataclasses import asdict, dataclass, fields
 from typing import Any, Literal, get_args
 
@@ -131,14 +132,19 @@ class CalibrationSettings:
     @classmethod
     def from_dict(cls, data: dict[str, Any]) -> CalibrationSettings:
         """Build from a mapping; missing keys take their defaults, unknown keys are an error."""
-        known = {f.name for f in fields(cls)}
-        unknown = sorted(set(data) - known)
-        if unknown:
-            raise SettingError("settings", unknown, f"unknown key(s); known: {sorted(known)}")
+        refuse_unknown_keys("settings", cls, data)
         values = dict(data)
         if "moneyness_band" in values:
             values["moneyness_band"] = tuple(values["moneyness_band"])
         return cls(**values)
+
+
+def refuse_unknown_keys(section: str, cls: type[Any], data: Mapping[str, Any]) -> None:
+    """A :class:`SettingError` naming the keys of ``data`` that are no field of ``cls``."""
+    known = {f.name for f in fields(cls)}
+    unknown = sorted(set(data) - known)
+    if unknown:
+        raise SettingError(section, unknown, f"unknown key(s); known: {sorted(known)}")
 
 
 def _choice(name: str, value: object, allowed: tuple[str, ...]) -> None:

@@ -10,7 +10,7 @@ from __future__ import annotations
 import json
 from collections.abc import Iterator
 from contextlib import contextmanager
-from datetime import date, datetime
+from datetime import datetime
 from pathlib import Path
 from typing import TYPE_CHECKING, Annotated, Any
 
@@ -18,6 +18,7 @@ import typer
 
 from calib.as_of import AS_OF_HELP, parse_as_of
 from calib.errors import AsOfError, StoreUnavailableError
+from calib.record.codec import encode
 from calib.settings import Settings, get_settings
 
 if TYPE_CHECKING:
@@ -53,6 +54,11 @@ AsOfOption = Annotated[
     ),
 ]
 """``--as-of TIME``: parsed by :func:`calib.as_of.parse_as_of` to a UTC datetime."""
+
+
+def output_file(flag: str, help: str) -> Any:
+    """An optional ``Path`` option naming a file a command writes (no default shown)."""
+    return typer.Option(flag, help=help, show_default=False)
 
 
 SettingsOption = Annotated[
@@ -161,14 +167,6 @@ def open_store(
             raise StoreUnavailableError(store.url, detail) from None
 
 
-def _default(value: object) -> Any:
-    if isinstance(value, date | datetime):
-        return value.isoformat()
-    if hasattr(value, "tolist"):
-        return value.tolist()
-    raise TypeError(f"not JSON serialisable: {type(value).__name__}")
-
-
 def echo_json(payload: object) -> None:
     """Print ``payload`` as indented JSON (dates in ISO form, numpy values as numbers)."""
-    typer.echo(json.dumps(payload, indent=2, default=_default, allow_nan=False))
+    typer.echo(json.dumps(payload, indent=2, default=encode, allow_nan=False))

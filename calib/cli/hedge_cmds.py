@@ -11,7 +11,7 @@ from collections.abc import Callable
 from contextlib import closing
 from datetime import date, datetime
 from pathlib import Path
-from typing import TYPE_CHECKING, Annotated, Any, Literal, TypeVar
+from typing import TYPE_CHECKING, Annotated, Any, Literal
 
 import typer
 
@@ -26,6 +26,7 @@ from calib.cli.common import (
     chosen_commodities,
     echo_json,
     open_store,
+    output_file,
 )
 
 if TYPE_CHECKING:
@@ -38,9 +39,6 @@ hedge_app = typer.Typer(
 )
 
 _DAY = ["%Y-%m-%d"]
-
-R = TypeVar("R")
-
 
 Commodity = Annotated[str, typer.Argument(help="Commodity code.")]
 Expiry = Annotated[datetime, typer.Option("--expiry", formats=_DAY, help="Option expiry.")]
@@ -55,14 +53,9 @@ Far = Annotated[datetime | None, typer.Option("--far", formats=_DAY, help="Sprea
 KindOpt = Annotated[Literal["call", "put"], typer.Option("--kind", help="call or put.")]
 
 
-def _file(flag: str, help: str) -> Any:
-    """An optional output path option (no default shown)."""
-    return typer.Option(flag, help=help, show_default=False)
-
-
-def _files(result: R, outputs: list[tuple[Path | None, Callable[[R, Path], Path]]]) -> list[str]:
-    """Write ``result`` with each writer whose path was given; the paths written."""
-    return [str(write(result, path)) for path, write in outputs if path is not None]
+def _files(outputs: list[tuple[Path | None, Callable[[Path], Path]]]) -> list[str]:
+    """Call each writer whose path was given with its path; the paths written."""
+    return [str(write(path)) for path, write in outputs if path is not None]
 
 
 def _finish(as_json: bool, data: Any, summary: str, written: list[str]) -> None:
@@ -135,15 +128,16 @@ def sim_cmd(
     ] = 252,
     paths: Annotated[int, typer.Option("--paths", min=2, help="Simulated paths.")] = 10_000,
     seed: Annotated[int, typer.Option("--seed", help="Random seed.")] = 20261202,
-    png: Annotated[Path | None, _file("--png", "Write the P&L histogram here.")] = None,
+    png: Annotated[Path | None, output_file("--png", "Write the P&L histogram here.")] = None,
     csv_path: Annotated[
-        Path | None, _file("--csv", "Write one row a path (P&L, payoff, hedge error).")
+        Path | None, output_file("--csv", "Write one row a path (P&L, payoff, hedge error).")
     ] = None,
     db: DbOption = None,
     as_json: JsonOption = False,
 ) -> None:
     """Simulate the P&L of a sold option hedged in its futures with a stored parameter set, in
     the model's own world (or one moved by other parameters: --world)."""
+    from calib.output import hedge as show
     from calib.workflows import hedge as flow
 
     trade = _trade(expiry, strike, kind, future, near, far)
@@ -160,8 +154,14 @@ def sim_cmd(
             paths=paths,
             seed=seed,
         )
-    written = _files(result, [(png, flow.plot_histogram), (csv_path, flow.write_paths_csv)])
-    _finish(as_json, result.to_dict(), result.summary(), written)
+    data = result.to_dict()
+    written = _files(
+        [
+            (png, lambda p: show.plot_histogram(data, result.result.pnl_pct, trade.describe(), p)),
+            (csv_path, lambda p: show.write_paths_csv(result.result, p)),
+        ]
+    )
+    _finish(as_json, data, result.summary(), written)
 
 
 @hedge_app.command("replay")
@@ -187,13 +187,14 @@ def replay_cmd(
     morning: Annotated[
         str, typer.Option("--morning", metavar="HH:MM", help="The morning's time (UTC).")
     ] = "07:00",
-    png: Annotated[Path | None, _file("--png", "Write the P&L path here.")] = None,
-    csv_path: Annotated[Path | None, _file("--csv", "Write one row a day.")] = None,
+    png: Annotated[Path | None, output_file("--png", "Write the P&L path here.")] = None,
+    csv_path: Annotated[Path | None, output_file("--csv", "Write one row a day.")] = None,
     db: DbOption = None,
     as_json: JsonOption = False,
 ) -> None:
     """Replay a sold option hedged in its futures on the stored history: each day's set and
     settlements, gaps carried and reported, settled at expiry on the stored settlements."""
+    from calib.output import hedge as show
     from calib.workflows import hedge as flow
 
     trade = _trade(expiry, strike, kind, future, near, far)
@@ -207,8 +208,14 @@ def replay_cmd(
         result = flow.replay(
             store.sessions, commodity, trade, start=start.date(), sets=sets, morning=at
         )
-    written = _files(result, [(png, flow.plot_replay), (csv_path, flow.write_replay_csv)])
-    _finish(as_json, result.to_dict(), result.summary(), written)
+    data = result.to_dict()
+    written = _files(
+        [
+            (png, lambda p: show.plot_replay(data, trade.describe(), p)),
+            (csv_path, lambda p: show.write_replay_csv(data, p)),
+        ]
+    )
+    _finish(as_json, data, result.summary(), written)
 
 
 @hedge_app.command("policies")
@@ -238,10 +245,12 @@ def policies_cmd(
     ] = 5,
     workers: WorkersOption = None,
     cluster: ClusterOption = None,
-    png: Annotated[Path | None, _file("--png", "Write the P&L figure by policy here.")] = None,
-    csv_path: Annotated[Path | None, _file("--csv", "Write one row per policy here.")] = None,
+    png: Annotated[
+        Path | None, output_file("--png", "Write the P&L figure by policy here.")
+    ] = None,
+    csv_path: Annotated[Path | None, output_file("--csv", "Write one row per policy here.")] = None,
     html_dir: Annotated[
-        Path | None, _file("--html", "Write the page (index.html and its figure) here.")
+        Path | None, output_file("--html", "Write the page (index.html and its figure) here.")
     ] = None,
     db: DbOption = None,
     as_json: JsonOption = False,
@@ -274,11 +283,11 @@ def policies_cmd(
     title = (
         f"{trade.describe()}; sold every {every} trading days, {start:%Y-%m-%d} to {end:%Y-%m-%d}"
     )
-    written = []
-    if png is not None:
-        written.append(str(show.plot_policies(rows, title, png)))
-    if csv_path is not None:
-        written.append(str(show.write_policy_csv(rows, csv_path)))
-    if html_dir is not None:
-        written.append(str(show.render_policy_page(rows, title, html_dir)[0]))
+    written = _files(
+        [
+            (png, lambda p: show.plot_policies(rows, title, p)),
+            (csv_path, lambda p: show.write_policy_csv(rows, p)),
+            (html_dir, lambda p: show.render_policy_page(rows, title, p)[0]),
+        ]
+    )
     _finish(as_json, rows, "\n".join([title, *show.policy_lines(rows)]), written)

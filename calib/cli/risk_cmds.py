@@ -15,7 +15,7 @@ from typing import TYPE_CHECKING, Annotated
 
 import typer
 
-from calib.cli.common import DbOption, JsonOption, echo_json, open_store
+from calib.cli.common import DbOption, JsonOption, echo_json, open_store, output_file
 from calib.cli.run_cmds import _progress
 from calib.errors import BandOptionError
 from calib.output import text
@@ -113,13 +113,8 @@ def compare_cmd(
         str | None,
         typer.Option("--band-rho", metavar="LO,HI", help="Band of rho cal - hist [-0.2,0.2]."),
     ] = None,
-    csv_file: Annotated[
-        Path | None, typer.Option("--csv", help="Also write the table as CSV.", show_default=False)
-    ] = None,
-    plot_file: Annotated[
-        Path | None,
-        typer.Option("--plot", help="Also draw the series (PNG).", show_default=False),
-    ] = None,
+    csv_file: Annotated[Path | None, output_file("--csv", "Also write the table as CSV.")] = None,
+    plot_file: Annotated[Path | None, output_file("--plot", "Also draw the series (PNG).")] = None,
     fail_on_flag: Annotated[
         bool,
         typer.Option(

@@ -161,7 +161,7 @@ def estimate_cmd(
             commodity,
             start.date(),
             end.date(),
-            user=settings.user,
+            by=settings.user,
             n_contracts=contracts,
             min_days=min_days,
             progress=_progress(time.monotonic()),
@@ -198,7 +198,7 @@ def estimates_cmd(
             raise typer.BadParameter("usage: calib estimates import COMMODITY FILE.json")
         with open_store(db) as (store, settings):
             record = estimate_flow.import_estimate(
-                store.sessions, commodity, file, user=settings.user
+                store.sessions, commodity, file, by=settings.user
             )
         if as_json:
             echo_json(record.to_dict())

@@ -14,7 +14,7 @@ from typing import TYPE_CHECKING, Annotated, Any, Literal
 
 import typer
 
-from calib.cli.common import DbOption, JsonOption, echo_json, open_store
+from calib.cli.common import DbOption, JsonOption, echo_json, open_store, output_file
 
 if TYPE_CHECKING:
     from sqlalchemy.orm import Session, sessionmaker
@@ -108,7 +108,7 @@ def rolling_estimate(
                 last,
                 window,
                 every,
-                user=settings.user,
+                by=settings.user,
                 n_contracts=contracts,
                 min_days=min_days,
                 executor=executor,
@@ -158,30 +158,27 @@ def stability_cmd(
     k: Annotated[
         float, typer.Option("--k", min=0.0, help="Flag a window beyond this many s.e.")
     ] = 3.0,
-    png: Annotated[
-        Path | None, typer.Option("--png", help="Write the chart here.", show_default=False)
-    ] = None,
-    csv_path: Annotated[
-        Path | None,
-        typer.Option("--csv", help="Write one row per window here.", show_default=False),
-    ] = None,
+    png: Annotated[Path | None, output_file("--png", "Write the chart here.")] = None,
+    csv_path: Annotated[Path | None, output_file("--csv", "Write one row per window here.")] = None,
     db: DbOption = None,
     as_json: JsonOption = False,
 ) -> None:
     """Each parameter of a rolling series over time with its ±2 s.e. band, against the
     estimate in use: flags (beyond --k s.e., decay bound failing) and how often to re-estimate."""
+    from calib.output import stability as show
     from calib.workflows import stability as flow
 
     with open_store(db) as (store, _):
         report = flow.stability(
             store.sessions, commodity, series_id=series_id, estimate_id=estimate_id, k=k
         )
+    data = report.to_dict()
     if png is not None:
-        flow.write_png(report, png)
+        show.write_png(data, png)
     if csv_path is not None:
-        flow.write_csv(report, csv_path)
+        show.write_csv(data, csv_path)
     if as_json:
-        echo_json(report.to_dict())
+        echo_json(data)
         return
     s, use = report.series, report.in_use
     typer.echo(

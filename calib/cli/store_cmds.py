@@ -162,7 +162,7 @@ def ingest_cmd(
                     store.sessions,
                     path,
                     kind.value,
-                    user=settings.user,
+                    by=settings.user,
                     strict=strict,
                     create=new,
                     bands=bands,

@@ -7,6 +7,7 @@ Pure numerics (numpy, scipy, numba): curves in, a frozen :class:`Estimate` out.
 * :func:`log_likelihood`, :func:`filter_states`: the exact Gaussian likelihood and the
   filtered / smoothed states at given parameters.
 * :func:`fit`: the maximum-likelihood estimate with standard errors and a convergence flag.
+* :mod:`calib.estimate.synthetic`: simulated curves of known parameters (checks, benchmarks).
 """
 
 from calib.estimate.curves import Curves, curves_from_quotes

@@ -270,6 +270,19 @@ def loglik(theta: FloatArray, panel: Panel) -> float:
     return _loglik_b(theta, panel, basis(theta[1], panel[3]))
 
 
+_LOG_SCALED = np.array([1, 4, 5])
+"""``kappa, sigma_spot, sigma_yield``: positive, so their coordinates are logs (as every ``xi``)."""
+
+_RHO = 6
+"""``rho``: in ``(-1, 1)``, so its coordinate is ``atanh(rho)``; ``mu, alpha, lam`` are free."""
+
+
+@njit(cache=True, inline="always")
+def _positive(n: int) -> IntArray:
+    """Positions of the positive parameters in a vector of ``n``: the model's and every ``xi``."""
+    return np.concatenate((_LOG_SCALED, np.arange(N_MODEL, n)))
+
+
 @njit(cache=True)
 def to_natural(u: FloatArray) -> FloatArray:
     """Natural parameters from unconstrained ones.
@@ -278,12 +291,9 @@ def to_natural(u: FloatArray) -> FloatArray:
     unchanged.
     """
     theta = u.copy()
-    theta[1] = math.exp(u[1])
-    theta[4] = math.exp(u[4])
-    theta[5] = math.exp(u[5])
-    theta[6] = math.tanh(u[6])
-    for i in range(N_MODEL, u.shape[0]):
-        theta[i] = math.exp(u[i])
+    pos = _positive(u.shape[0])
+    theta[pos] = np.exp(u[pos])
+    theta[_RHO] = math.tanh(u[_RHO])
     return theta
 
 
@@ -291,12 +301,9 @@ def to_natural(u: FloatArray) -> FloatArray:
 def to_unconstrained(theta: FloatArray) -> FloatArray:
     """Inverse of :func:`to_natural`."""
     u = theta.copy()
-    u[1] = math.log(theta[1])
-    u[4] = math.log(theta[4])
-    u[5] = math.log(theta[5])
-    u[6] = math.atanh(theta[6])
-    for i in range(N_MODEL, theta.shape[0]):
-        u[i] = math.log(theta[i])
+    pos = _positive(theta.shape[0])
+    u[pos] = np.log(theta[pos])
+    u[_RHO] = math.atanh(theta[_RHO])
     return u
 
 
@@ -304,12 +311,9 @@ def to_unconstrained(theta: FloatArray) -> FloatArray:
 def jacobian_diag(u: FloatArray) -> FloatArray:
     """``d theta_i / d u_i`` (the transform is elementwise)."""
     d = np.ones(u.shape[0])
-    d[1] = math.exp(u[1])
-    d[4] = math.exp(u[4])
-    d[5] = math.exp(u[5])
-    d[6] = 1.0 - math.tanh(u[6]) ** 2
-    for i in range(N_MODEL, u.shape[0]):
-        d[i] = math.exp(u[i])
+    pos = _positive(u.shape[0])
+    d[pos] = np.exp(u[pos])
+    d[_RHO] = 1.0 - math.tanh(u[_RHO]) ** 2
     return d
 
 

@@ -12,11 +12,15 @@ searched in the unconstrained ``u``: ``kappa, sigma_spot, sigma_yield, xi_j = e^
 
 1. *Global stage.* A few starts that differ where the likelihood has separate basins (the
    mean-reversion speed ``kappa`` and the sign of ``rho``), each run briefly by L-BFGS-B on
-   ``-loglik / n_obs`` with the compiled central-difference gradient.
+   ``-loglik / n_obs`` with the compiled central-difference gradient. A single start (a
+   warm start from a nearby optimum) skips this stage: there is nothing to choose, and a
+   restart would discard the curvature L-BFGS-B has learnt.
 2. *Local stage.* The best start is run to convergence, then polished by Newton steps on the
    finite-difference Hessian in ``u``. Converged means the Newton decrement
    ``g' (-H)^{-1} g / 2`` (the log-likelihood still to gain, to second order) is below
-   ``loglik_tol`` with ``-H`` positive definite.
+   ``loglik_tol`` with ``-H`` positive definite. Given ``start_covariance`` (a nearby
+   optimum's, with a start there), L-BFGS-B searches in coordinates where that optimum's
+   curvature is the identity (:func:`_whitening`): a few iterations instead of dozens.
 3. *Standard errors.* ``Cov(theta) = J (-H_u)^{-1} J`` with ``J = d theta / d u`` (diagonal);
    at a stationary point this equals the inverse of the observed information in ``theta``.
 """
@@ -213,7 +217,8 @@ class Estimate:
     converged : whether the optimum is certified (see :mod:`calib.estimate.mle`).
     message : the optimiser's and the certificate's account.
     iterations : optimiser iterations over all stages.
-    n_starts : starting points tried; ``start_logliks`` what each reached in the global stage.
+    n_starts : starting points tried; ``start_logliks`` what each reached in the global stage
+        (a single start: in the local stage, which it goes to directly).
     states : filtered and smoothed states at the estimate.
     """
 
@@ -283,6 +288,7 @@ def fit(
     rate: float = 0.0,
     *,
     starts: Sequence[tuple[TwoFactorParams, ArrayLike]] | None = None,
+    start_covariance: ArrayLike | None = None,
     min_days: int = 250,
     min_contracts: int = 3,
     max_gap_days: float = 14.0,
@@ -297,10 +303,15 @@ def fit(
     curves : the data (see :class:`~calib.estimate.curves.Curves`).
     rate : constant interest rate in the futures' ``A`` (continuously compounded).
     starts : starting points ``(params, noise_sd)``; default :func:`default_starts`.
+    start_covariance : the :attr:`Estimate.covariance` of a nearby optimum (the previous
+        window's, for a start there): the search then runs in coordinates where that
+        optimum's curvature is the identity (see :func:`_whitening`); ignored where not
+        finite or not positive definite.
     min_days, min_contracts : the least data accepted (a year of business days, three
         maturities: common practice for a two-factor fit).
     max_gap_days : longest calendar gap between consecutive days the filter may bridge.
-    global_iterations : L-BFGS-B iterations per start in the global stage.
+    global_iterations : L-BFGS-B iterations per start in the global stage (not run for a
+        single start).
     max_iterations : iterations of the local stage.
     loglik_tol : convergence certificate: the Newton decrement must fall below this (nats).
 
@@ -324,6 +335,13 @@ def fit(
     if not start_list:
         raise EstimationError("no starting point given")
     bounds = list(_U_BOUNDS) + [_XI_BOUNDS] * curves.n_contracts
+    lo, hi = np.array(bounds).T
+    u_starts = []
+    for params, xi in start_list:
+        theta0 = _theta(params, xi)
+        _check_noise(theta0, curves.n_contracts)
+        u_starts.append(np.clip(kalman.to_unconstrained(theta0), lo, hi))
+    whiten = _whitening(start_covariance, u_starts[0])
 
     def objective(u: FloatArray) -> tuple[float, FloatArray]:
         f, g = problem.grad_u(u)
@@ -331,34 +349,52 @@ def fit(
             return 1e10, np.zeros_like(u)
         return -f * scale, -g * scale
 
+    def whitened(v: FloatArray, u0: FloatArray, w: FloatArray) -> tuple[float, FloatArray]:
+        u = u0 + w @ v
+        if np.any(u < lo) or np.any(u > hi):  # the box, as a wall the line search backs from
+            return 1e10, np.zeros_like(v)
+        f, g = objective(u)
+        return f, w.T @ g
+
     def run(u0: FloatArray, maxiter: int, ftol: float) -> Any:
+        options = {"maxiter": maxiter, "ftol": ftol, "gtol": 1e-9, "maxls": 40}
         # L-BFGS-B's 12-dimensional BLAS calls only lose to thread start-up: one thread
         with threadpool_limits(limits=1, user_api="blas"):
-            return minimize(
-                objective,
-                u0,
+            if whiten is None:
+                return minimize(
+                    objective, u0, jac=True, method="L-BFGS-B", bounds=bounds, options=options
+                )
+            res = minimize(
+                whitened,
+                np.zeros_like(u0),
+                args=(u0, whiten),
                 jac=True,
                 method="L-BFGS-B",
-                bounds=bounds,
-                options={"maxiter": maxiter, "ftol": ftol, "gtol": 1e-9, "maxls": 40},
+                options=options,
             )
+            res.x = np.clip(u0 + whiten @ res.x, lo, hi)
+            return res
 
-    iterations = 0
-    reached: list[tuple[float, FloatArray]] = []
-    for params, xi in start_list:
-        theta0 = _theta(params, xi)
-        _check_noise(theta0, curves.n_contracts)
-        u0 = np.clip(kalman.to_unconstrained(theta0), *np.array(bounds).T)
-        res = run(u0, global_iterations, 1e-12)
-        iterations += int(res.nit)
+    def reached(res: Any) -> float:
         ll = -float(res.fun) / scale
-        reached.append((ll if math.isfinite(ll) and res.fun < 1e10 else -math.inf, res.x))
-    best = max(range(len(reached)), key=lambda i: reached[i][0])
-    if not math.isfinite(reached[best][0]):
+        return ll if math.isfinite(ll) and res.fun < 1e10 else -math.inf
+
+    if len(u_starts) == 1:
+        # nothing to choose between: straight to the local stage, which keeps the curvature
+        # L-BFGS-B learns instead of restarting without it after ``global_iterations``
+        res = run(u_starts[0], max_iterations, LOCAL_FTOL)
+        iterations = int(res.nit)
+        start_logliks: tuple[float, ...] = (reached(res),)
+    else:
+        stage = [run(u0, global_iterations, 1e-12) for u0 in u_starts]
+        iterations = sum(int(r.nit) for r in stage)
+        start_logliks = tuple(reached(r) for r in stage)
+        best = int(np.argmax(start_logliks))
+        # to the Newton basin; the polish below converges quadratically from there
+        res = run(stage[best].x, max_iterations, LOCAL_FTOL)
+        iterations += int(res.nit)
+    if not math.isfinite(max(start_logliks)):
         raise EstimationError("the likelihood is not finite at any starting point")
-    # to the Newton basin; the polish below converges quadratically from there
-    res = run(reached[best][1], max_iterations, LOCAL_FTOL)
-    iterations += int(res.nit)
     u, ll, _, hess, decrement, newton_steps = _newton_polish(problem, res.x, bounds)
     iterations += newton_steps
     info = -hess
@@ -400,9 +436,41 @@ def fit(
         message=message,
         iterations=iterations,
         n_starts=len(start_list),
-        start_logliks=tuple(r[0] for r in reached),
+        start_logliks=start_logliks,
         states=states,
     )
+
+
+def _whitening(covariance: ArrayLike | None, u: FloatArray) -> FloatArray | None:
+    """``W`` (lower triangular) with ``W W' = Cov(u)``, from a nearby optimum's ``Cov(theta)``.
+
+    ``Cov(u)_ij = Cov(theta)_ij / (J_i J_j)`` with ``J = d theta / d u`` at ``u`` (the start:
+    that optimum). In ``v`` with ``u = u_0 + W v`` the likelihood's curvature at that optimum
+    is the identity (``Cov(u) = (-H_u)^{-1}``) and a unit step is one standard error in every
+    direction. L-BFGS-B starts from a scaled identity for its Hessian and takes a unit first
+    step, so near that optimum it needs a few iterations where in ``u``, whose curvatures span
+    orders of magnitude, it needs dozens. ``None`` where the covariance is not finite and
+    positive definite (the search then runs in ``u``).
+
+    Raises
+    ------
+    ParameterError
+        ``covariance`` is not ``(p, p)`` for the ``p`` estimated quantities.
+    """
+    if covariance is None:
+        return None
+    from calib.errors import ParameterError
+
+    cov = np.asarray(covariance, dtype=np.float64)
+    if cov.shape != (u.size, u.size):
+        raise ParameterError("start_covariance", cov.shape, f"need ({u.size}, {u.size})")
+    if not np.all(np.isfinite(cov)):
+        return None
+    jac = kalman.jacobian_diag(u)
+    try:
+        return np.asarray(np.linalg.cholesky(cov / np.outer(jac, jac)), dtype=np.float64)
+    except np.linalg.LinAlgError:
+        return None
 
 
 def _newton_polish(

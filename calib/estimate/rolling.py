@@ -15,6 +15,12 @@ unless the caller hands it a start (:func:`estimate_windows` hands every chunk t
 of the series' first window, so only that one starts cold). A warm fit that does not converge
 is redone cold.
 
+The previous optimum's covariance goes with it (``warm_cov``): the search runs in coordinates
+where the likelihood's curvature there is the identity (``start_covariance`` of
+:func:`calib.estimate.fit`). Consecutive windows' curvatures differ little, so a warm fit takes
+a handful of L-BFGS-B steps where it took dozens in the raw parameters (whose curvatures span
+orders of magnitude), and costs little more than the Newton polish and certificate.
+
 **Cold check.** On the windows marked ``check_cold`` the estimate is also made from the
 default starts. When the two log-likelihoods differ by more than :data:`LOCAL_OPTIMUM_TOL`
 the better one is kept and the window is reported: one of the two stopped at a local optimum.
@@ -134,11 +140,13 @@ class WindowTask:
 
 @dataclass(frozen=True, slots=True, eq=False)
 class ChunkTask:
-    """Consecutive windows for one worker; ``warm`` optionally starts the first one."""
+    """Consecutive windows for one worker; ``warm`` optionally starts the first one
+    (``warm_cov``: the covariance of that optimum, see the module notes)."""
 
     windows: tuple[WindowTask, ...]
     settings: FitSettings
     warm: tuple[TwoFactorParams, FloatArray] | None = None
+    warm_cov: FloatArray | None = None
 
 
 @dataclass(frozen=True, slots=True, eq=False)
@@ -172,13 +180,16 @@ class WindowFit:
     smoothed: FloatArray | None = None
 
 
-def _fit(curves: Curves, rate: float, s: FitSettings, starts: Any = None) -> Estimate:
+def _fit(
+    curves: Curves, rate: float, s: FitSettings, starts: Any = None, cov: FloatArray | None = None
+) -> Estimate:
     with warnings.catch_warnings():
         warnings.simplefilter("ignore", EstimationWarning)  # the flag is on the result
         return fit(
             curves,
             rate,
             starts=starts,
+            start_covariance=cov,
             min_days=s.min_days,
             min_contracts=s.min_contracts,
             max_gap_days=s.max_gap_days,
@@ -209,9 +220,13 @@ def _result(index: int, e: Estimate, start: str, cold: float | None, note: str |
 
 
 def fit_window(
-    task: WindowTask, settings: FitSettings, warm: tuple[TwoFactorParams, FloatArray] | None
+    task: WindowTask,
+    settings: FitSettings,
+    warm: tuple[TwoFactorParams, FloatArray] | None,
+    warm_cov: FloatArray | None = None,
 ) -> WindowFit:
-    """Estimate one window (warm-started when ``warm`` is given; see the module notes).
+    """Estimate one window (warm-started when ``warm`` is given, in the coordinates of
+    ``warm_cov`` when that is given too; see the module notes).
 
     Raises
     ------
@@ -221,7 +236,7 @@ def fit_window(
     curves = Curves(task.dates, task.tau, task.log_price)
     if warm is None:
         return _result(task.index, _fit(curves, task.rate, settings), "cold", None, None)
-    hot = _fit(curves, task.rate, settings, starts=[warm])
+    hot = _fit(curves, task.rate, settings, starts=[warm], cov=warm_cov)
     if not hot.converged:
         cold = _fit(curves, task.rate, settings)
         keep = cold if cold.loglik >= hot.loglik or cold.converged else hot
@@ -245,15 +260,15 @@ def fit_window(
 def fit_chunk(task: ChunkTask) -> list[WindowFit]:
     """Estimate a chunk's windows in order, each warm-started from the previous optimum."""
     out: list[WindowFit] = []
-    warm = task.warm
+    warm, warm_cov = task.warm, task.warm_cov
     for window in task.windows:
         try:
-            result = fit_window(window, task.settings, warm)
+            result = fit_window(window, task.settings, warm, warm_cov)
         except (EstimationDataError, EstimationError) as exc:
             result = WindowFit(index=window.index, error=f"{type(exc).__name__}: {exc}")
         out.append(result)
         if result.params is not None and result.noise_sd is not None and result.converged:
-            warm = (result.params, result.noise_sd)
+            warm, warm_cov = (result.params, result.noise_sd), result.covariance
     return out
 
 
@@ -264,13 +279,15 @@ def estimate_windows(
     *,
     chunk: int,
     warm: tuple[TwoFactorParams, FloatArray] | None = None,
+    warm_cov: FloatArray | None = None,
 ) -> Iterator[list[WindowFit]]:
     """Estimate consecutive windows; yields each chunk's results in window order.
 
     Without ``warm``, the first window is estimated cold in this process and its optimum
     starts the first window of every chunk (parameters move slowly along a series, so even a
     distant window's optimum is a better start than the default ones; a warm fit that does
-    not converge is redone cold). The chunks then run on ``executor``.
+    not converge is redone cold), with its covariance (``warm_cov`` otherwise: the covariance
+    at ``warm``, if known). The chunks then run on ``executor``.
     """
     rest = list(windows)
     if warm is None and rest:
@@ -278,9 +295,10 @@ def estimate_windows(
         yield first
         (seed,) = first
         if seed.params is not None and seed.noise_sd is not None and seed.converged:
-            warm = (seed.params, seed.noise_sd)
+            warm, warm_cov = (seed.params, seed.noise_sd), seed.covariance
     size = max(1, chunk)
     tasks = [
-        ChunkTask(tuple(rest[i : i + size]), settings, warm) for i in range(0, len(rest), size)
+        ChunkTask(tuple(rest[i : i + size]), settings, warm, warm_cov)
+        for i in range(0, len(rest), size)
     ]
     yield from executor.map(fit_chunk, tasks)

@@ -29,8 +29,8 @@ from dataclasses import dataclass
 import numpy as np
 
 from calib.errors import ParameterError
-from calib.hedge.instruments import HedgedOption, remaining_law
-from calib.hedge.valuation import value_and_ratios
+from calib.hedge.instruments import HedgedOption, RemainingLaw, remaining_law
+from calib.hedge.valuation import values_on_grid
 from calib.model.spread import DEFAULT_NODES, ForwardVols
 from calib.model.twofactor import TwoFactorParams
 from calib.types import ArrayLike, FloatArray, readonly
@@ -75,15 +75,15 @@ class HedgeResult:
         return int(self.times.shape[0] - 1)
 
 
-def check_grid(times: ArrayLike, expiry: float) -> FloatArray:
-    """Validate rebalancing dates: ``0 = t_0 < ... < t_N = expiry``, ``N >= 1``."""
+def check_grid(times: ArrayLike, t_expiry: float) -> FloatArray:
+    """Validate rebalancing dates: ``0 = t_0 < ... < t_N = t_expiry``, ``N >= 1``."""
     t = np.asarray(times, dtype=np.float64)
     if t.ndim != 1 or t.size < 2 or not np.all(np.isfinite(t)):
         raise ParameterError("times", t.shape, "need at least two finite dates")
     if t[0] != 0.0 or np.any(np.diff(t) <= 0.0):
         raise ParameterError("times", t[:3].tolist(), "must start at 0 and strictly increase")
-    if not math.isclose(float(t[-1]), expiry, rel_tol=1e-12, abs_tol=1e-14):
-        raise ParameterError("times", float(t[-1]), f"the last date must be the expiry {expiry}")
+    if not math.isclose(float(t[-1]), t_expiry, rel_tol=1e-12, abs_tol=1e-14):
+        raise ParameterError("times", float(t[-1]), f"the last date must be the expiry {t_expiry}")
     return t
 
 
@@ -150,36 +150,27 @@ def hedge_paths(
     option : the option (times in years from ``t_0``).
     vols : the pricing set (constant or forward volatilities; forward bucket edges in years
         from ``t_0``, the last reaching the expiry).
-    times : ``(N + 1,)`` rebalancing dates, ``0 = t_0 < ... < t_N = option.expiry``.
+    times : ``(N + 1,)`` rebalancing dates, ``0 = t_0 < ... < t_N = option.t_expiry``.
     futures : ``(n_paths, N + 1, n_legs)`` the legs' prices (near, far for a spread).
     rate : continuously compounded rate: discounting of the option and cash accrual.
     nodes : Gauss-Hermite nodes of the spread price.
-    adaptive : let each date use fewer nodes where they agree with ``nodes`` on probe paths
-        (:mod:`calib.hedge.valuation`); ``False`` prices every date with ``nodes``.
+    adaptive : price each path at each date with two small rules where they agree, and with
+        ``nodes`` where they do not (:mod:`calib.hedge.valuation`); ``False`` prices every
+        date with ``nodes``.
     """
-    t = check_grid(times, option.expiry)
+    t = check_grid(times, option.t_expiry)
     F = np.asarray(futures, dtype=np.float64)
-    n_legs = len(option.maturities)
+    n_legs = len(option.t_legs)
     if F.ndim != 3 or F.shape[1:] != (t.size, n_legs):
         raise ParameterError(
             "futures", F.shape, f"need (n_paths, {t.size} dates, {n_legs} legs) prices"
         )
     if not np.all(F > 0.0) or not np.all(np.isfinite(F)):
         raise ParameterError("futures", float(np.nanmin(F)), "futures prices must be > 0")
-    n_paths, n_steps = F.shape[0], t.size - 1
     law = remaining_law(option, vols, t)
-    values = np.empty((n_paths, n_steps))
-    positions = np.empty((n_paths, n_steps, n_legs))
-    for k in range(n_steps):
-        discount = math.exp(-rate * (option.expiry - t[k]))
-        values[:, k], positions[:, k] = value_and_ratios(
-            option,
-            float(law.var_near[k]),
-            float(law.var_far[k]),
-            float(law.cov[k]),
-            F[:, k],
-            discount,
-            nodes=nodes,
-            adaptive=adaptive,
-        )
+    before = RemainingLaw(law.var_near[:-1], law.var_far[:-1], law.cov[:-1])  # the dates t_k < T
+    discount = np.exp(-rate * (option.t_expiry - t[:-1]))
+    values, positions = values_on_grid(
+        option, before, F[:, :-1], discount, nodes=nodes, adaptive=adaptive
+    )
     return settle(t, F, values, positions, option.payoff(F[:, -1]), rate)

@@ -18,9 +18,9 @@ from calib.model.twofactor import TwoFactorParams
 from calib.types import FloatArray
 
 
-def _check_common(expiry: float, strike: float) -> None:
-    if not (math.isfinite(expiry) and expiry > 0.0):
-        raise ParameterError("expiry", expiry, "the option must expire after the start (> 0)")
+def _check_common(t_expiry: float, strike: float) -> None:
+    if not (math.isfinite(t_expiry) and t_expiry > 0.0):
+        raise ParameterError("t_expiry", t_expiry, "the option must expire after the start (> 0)")
     if not math.isfinite(strike):
         raise ParameterError("strike", strike, "must be finite")
 
@@ -31,34 +31,34 @@ class VanillaOption:
 
     Attributes
     ----------
-    maturity : the future's maturity in years (``>= expiry``).
-    expiry : the option's expiry in years (> 0).
+    t_delivery : the future's delivery in years (``>= t_expiry``).
+    t_expiry : the option's expiry in years (> 0).
     strike : strike (> 0).
-    call : ``True`` pays ``max(F - K, 0)``, ``False`` ``max(K - F, 0)``.
+    is_call : ``True`` pays ``max(F - K, 0)``, ``False`` ``max(K - F, 0)``.
     """
 
-    maturity: float
-    expiry: float
+    t_delivery: float
+    t_expiry: float
     strike: float
-    call: bool = True
+    is_call: bool = True
 
     def __post_init__(self) -> None:
-        _check_common(self.expiry, self.strike)
+        _check_common(self.t_expiry, self.strike)
         if not self.strike > 0.0:
             raise ParameterError("strike", self.strike, "a vanilla strike must be > 0")
-        if not self.maturity >= self.expiry:
+        if not self.t_delivery >= self.t_expiry:
             raise ParameterError(
-                "maturity", self.maturity, "the future must not mature before the expiry"
+                "t_delivery", self.t_delivery, "the future must not mature before the expiry"
             )
 
     @property
-    def maturities(self) -> tuple[float, ...]:
-        """Maturities of the hedge legs (one)."""
-        return (self.maturity,)
+    def t_legs(self) -> tuple[float, ...]:
+        """Deliveries of the hedge legs in years (one)."""
+        return (self.t_delivery,)
 
     def payoff(self, legs: FloatArray) -> FloatArray:
         """Payoff from the legs' prices at expiry, ``legs`` of shape ``(n, 1)``."""
-        sign = 1.0 if self.call else -1.0
+        sign = 1.0 if self.is_call else -1.0
         return np.asarray(np.maximum(sign * (legs[:, 0] - self.strike), 0.0))
 
 
@@ -68,33 +68,35 @@ class CalendarSpread:
 
     Attributes
     ----------
-    near, far : maturities of the two futures in years (``expiry <= near < far``).
-    expiry : the option's expiry in years (> 0).
+    t_near, t_far : deliveries of the two futures in years (``t_expiry <= t_near < t_far``).
+    t_expiry : the option's expiry in years (> 0).
     strike : strike of far minus near.
-    call : ``True`` pays ``max(S - K, 0)``, ``False`` ``max(K - S, 0)``.
+    is_call : ``True`` pays ``max(S - K, 0)``, ``False`` ``max(K - S, 0)``.
     """
 
-    near: float
-    far: float
-    expiry: float
+    t_near: float
+    t_far: float
+    t_expiry: float
     strike: float
-    call: bool = True
+    is_call: bool = True
 
     def __post_init__(self) -> None:
-        _check_common(self.expiry, self.strike)
-        if not self.near >= self.expiry:
-            raise ParameterError("near", self.near, "the near future must not mature before expiry")
-        if not self.far > self.near:
-            raise ParameterError("far", self.far, "the far future must mature after the near")
+        _check_common(self.t_expiry, self.strike)
+        if not self.t_near >= self.t_expiry:
+            raise ParameterError(
+                "t_near", self.t_near, "the near future must not mature before expiry"
+            )
+        if not self.t_far > self.t_near:
+            raise ParameterError("t_far", self.t_far, "the far future must mature after the near")
 
     @property
-    def maturities(self) -> tuple[float, ...]:
-        """Maturities of the hedge legs: near, then far."""
-        return (self.near, self.far)
+    def t_legs(self) -> tuple[float, ...]:
+        """Deliveries of the hedge legs in years: near, then far."""
+        return (self.t_near, self.t_far)
 
     def payoff(self, legs: FloatArray) -> FloatArray:
         """Payoff from the legs' prices at expiry, ``legs`` of shape ``(n, 2)`` (near, far)."""
-        sign = 1.0 if self.call else -1.0
+        sign = 1.0 if self.is_call else -1.0
         return np.asarray(np.maximum(sign * (legs[:, 1] - legs[:, 0] - self.strike), 0.0))
 
 
@@ -126,9 +128,9 @@ def remaining_law(
     (DESIGN section 3), evaluated at every grid date in one vectorised call.
     """
     t = np.asarray(times, dtype=np.float64)
-    legs = option.maturities
+    legs = option.t_legs
     near, far = legs[0], legs[-1]
-    points = np.concatenate([t, [option.expiry]])
+    points = np.concatenate([t, [option.t_expiry]])
     positive = points > 0.0
     accrued = np.zeros((3, points.size))
     if positive.any():
@@ -136,9 +138,9 @@ def remaining_law(
         ones = np.ones_like(dates)
         law = spread_law(
             SpreadOption(
-                near=near * ones,
-                far=far * ones,
-                expiry=dates,
+                t_near=near * ones,
+                t_far=far * ones,
+                t_expiry=dates,
                 strike=0.0 * ones,
                 is_call=ones > 0.0,
                 near_price=ones,
@@ -150,5 +152,5 @@ def remaining_law(
         accrued[:, positive] = np.stack([law.var_near, law.var_far, law.cov])
     rest = accrued[:, -1:] - accrued[:, :-1]
     rest[:2] = np.maximum(rest[:2], 0.0)  # variances: rounding must not make them negative
-    rest[:, t >= option.expiry] = 0.0
+    rest[:, t >= option.t_expiry] = 0.0
     return RemainingLaw(var_near=rest[0], var_far=rest[1], cov=rest[2])

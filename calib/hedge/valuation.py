@@ -1,9 +1,11 @@
-"""Value and hedge ratios of one option along many futures paths at one date.
+"""Value and hedge ratios of one option along many futures paths at every rebalancing date.
 
-The pricing set's law over the remaining life is the same on every path (it depends on the
-dates only), so one date's work is a function of the paths' futures prices alone: Black-76 for a
-vanilla, and for a calendar spread the exact Gauss-Hermite price of :mod:`calib.model.spread`
-written as one fused numba loop over paths and nodes.
+The pricing set's law over the remaining life is the same on every path at a date (it depends on
+the dates only), so a date's work is a function of the paths' futures prices alone: Black-76 for
+a vanilla, and for a calendar spread the exact Gauss-Hermite price of :mod:`calib.model.spread`
+written as one fused numba loop over paths, dates and nodes. Everything common to the paths at a
+date (the node factors, the conditional deviation, the discount) is tabulated once before the
+loop, so the loop reads each path's futures once and writes its values and ratios in place.
 
 Notes
 -----
@@ -20,10 +22,11 @@ bounds its node's share of the price and of ``F dV/dF`` relative to the futures 
 result moves by less than about ``1e-16`` of the futures price (64 nodes keep about 42).
 
 **Adaptive node count.** A smooth integrand (most calendar spreads) is exact to rounding with
-far fewer nodes than a sharp one needs. In adaptive mode every path is priced by two small
-rules (``PAIR``); where they agree within ``NODE_TOL`` the larger one stands (the difference of
-two rules estimates the smaller one's error, and Gauss-Hermite errors fall geometrically for an
-entire integrand), and the paths where they disagree are priced again with the full count.
+far fewer nodes than a sharp one needs. In adaptive mode every path at every date is priced by
+two small rules (``PAIR``); where they agree within ``NODE_TOL`` the larger one stands (the
+difference of two rules estimates the smaller one's error, and Gauss-Hermite errors fall
+geometrically for an entire integrand), and where they disagree the path is priced again at
+that date with the full count.
 """
 
 from __future__ import annotations
@@ -31,13 +34,13 @@ from __future__ import annotations
 import math
 import types
 from collections.abc import Callable
-from dataclasses import dataclass
+from typing import TypedDict, Unpack
 
 import numba
 import numpy as np
 from scipy.special import ndtr
 
-from calib.hedge.instruments import CalendarSpread, HedgedOption
+from calib.hedge.instruments import CalendarSpread, HedgedOption, RemainingLaw, VanillaOption
 from calib.model.black76 import undiscounted_price
 from calib.model.spread import DEFAULT_NODES, hermite_nodes
 from calib.types import FloatArray, IntArray
@@ -54,43 +57,90 @@ path's futures level; hedge ratios, futures per option, absolute) for the larger
 
 _SQRT_HALF = math.sqrt(0.5)
 
+_BLOCK = 128
+"""Paths the kernel takes date by date together: a date's node tables are read from cache by
+all of them (one path through every date would sweep all the dates' tables each time)."""
 
-def _spread_body(
-    f_outer: FloatArray,
-    f_inner: FloatArray,
+
+@numba.njit(cache=True)
+def _rule(
+    fo: float,
+    fi: float,
     a: FloatArray,
     b: FloatArray,
     w: FloatArray,
+    m: IntArray,
+    r: int,
+    k: int,
     abs_strike: float,
     sc: float,
     sg: float,
     disc: float,
+) -> tuple[float, float, float]:  # pragma: no cover - compiled; checked in the tests
+    """``(V, dV/dF_o, dV/dF_i)`` of one path at date ``k`` by rule ``r`` of the tables."""
+    s_price = 0.0
+    s_inner = 0.0
+    s_outer = 0.0
+    inv_sc = 1.0 / sc if sc > 0.0 else 0.0  # a product in the loop, not a division
+    scale = -sg * _SQRT_HALF  # N(sg x) = erfc(scale x) / 2
+    for j in range(m[r, k]):
+        k_j = fo * a[r, k, j] + abs_strike
+        fc = fi * b[r, k, j]
+        if sc > 0.0:
+            d1 = math.log(fc / k_j) * inv_sc + 0.5 * sc
+            n1 = 0.5 * math.erfc(scale * d1)
+            n2 = 0.5 * math.erfc(scale * (d1 - sc))
+        else:  # the inner leg is a point given the outer one
+            n1 = 1.0 if sg * (fc - k_j) > 0.0 else 0.0
+            n2 = n1
+        s_price += w[r, k, j] * (fc * n1 - k_j * n2)
+        s_inner += w[r, k, j] * b[r, k, j] * n1
+        s_outer += w[r, k, j] * a[r, k, j] * n2
+    return disc * sg * s_price, -disc * sg * s_outer, disc * sg * s_inner
+
+
+def _spread_body(
+    futures: FloatArray,
+    outer: int,
+    inner: int,
+    a: FloatArray,
+    b: FloatArray,
+    w: FloatArray,
+    m: IntArray,
+    sc: FloatArray,
+    disc: FloatArray,
+    abs_strike: float,
+    sg: float,
+    tol: float,
     value: FloatArray,
-    d_outer: FloatArray,
-    d_inner: FloatArray,
+    ratios: FloatArray,
 ) -> None:  # pragma: no cover - compiled; checked against calib.model.spread in the tests
-    for p in numba.prange(f_outer.shape[0]):
-        fo = f_outer[p]
-        fi = f_inner[p]
-        s_price = 0.0
-        s_inner = 0.0
-        s_outer = 0.0
-        for j in range(a.shape[0]):
-            k = fo * a[j] + abs_strike
-            fc = fi * b[j]
-            if sc > 0.0:
-                d1 = math.log(fc / k) / sc + 0.5 * sc
-                n1 = 0.5 * math.erfc(-sg * d1 * _SQRT_HALF)
-                n2 = 0.5 * math.erfc(-sg * (d1 - sc) * _SQRT_HALF)
-            else:  # the inner leg is a point given the outer one
-                n1 = 1.0 if sg * (fc - k) > 0.0 else 0.0
-                n2 = n1
-            s_price += w[j] * (fc * n1 - k * n2)
-            s_inner += w[j] * b[j] * n1
-            s_outer += w[j] * a[j] * n2
-        value[p] = disc * sg * s_price
-        d_inner[p] = disc * sg * s_inner
-        d_outer[p] = -disc * sg * s_outer
+    """Fill ``value[p, k]`` and ``ratios[p, k]`` from ``futures[p, k]`` with the rules of the
+    tables ``a, b, w`` (``(rules, dates, nodes)``, the first ``m[r, k]`` nodes in use): rule 0
+    alone, or (adaptive) rule 0 where it agrees with rule 1 within ``tol`` and rule 2 (if any)
+    where it does not."""
+    rules = a.shape[0]
+    n_paths = futures.shape[0]
+    for block in numba.prange((n_paths + _BLOCK - 1) // _BLOCK):
+        for k in range(value.shape[1]):  # one date's tables stay in cache for the block
+            sc_k = sc[k]
+            disc_k = disc[k]
+            for p in range(block * _BLOCK, min((block + 1) * _BLOCK, n_paths)):
+                fo = futures[p, k, outer]
+                fi = futures[p, k, inner]
+                v, d_o, d_i = _rule(fo, fi, a, b, w, m, 0, k, abs_strike, sc_k, sg, disc_k)
+                if rules > 1:
+                    cv, cd_o, cd_i = _rule(fo, fi, a, b, w, m, 1, k, abs_strike, sc_k, sg, disc_k)
+                    agree = (
+                        abs(v - cv) / max(fo, fi) <= tol
+                        and abs(d_o - cd_o) <= tol
+                        and abs(d_i - cd_i) <= tol
+                    )
+                    if rules > 2 and not agree:  # NaN disagrees too
+                        v, d_o, d_i = _rule(fo, fi, a, b, w, m, 2, k, abs_strike, sc_k, sg, disc_k)
+                value[p, k] = v
+                ratios[p, k, outer] = d_o
+                ratios[p, k, inner] = d_i
 
 
 def _named(fn: Callable[..., None], name: str) -> Callable[..., None]:
@@ -112,87 +162,131 @@ _spread_kernel_serial = numba.njit(cache=True)(_named(_spread_body, "_spread_bod
 parallel kernel's start-up per call would cost more than the work."""
 
 SERIAL_BELOW = 256
-"""Paths below which the serial kernel runs."""
+"""(path, date) pairs below which the serial kernel runs."""
 
 
-@dataclass(frozen=True, slots=True)
-class _SpreadStep:
-    """One date's spread integrand: conditioning on the outer leg (module Notes)."""
-
-    s_o: float
-    beta: float
-    sc: float
-    sg: float
-    abs_strike: float
-    discount: float
-    f_outer: FloatArray
-    f_inner: FloatArray
-
-    def run(self, nodes: int, rows: IntArray | None = None) -> tuple[FloatArray, ...]:
-        """``(value, dV/dF_outer, dV/dF_inner)`` with ``nodes`` nodes, on ``rows`` or all."""
-        z, w = hermite_nodes(nodes)
-        keep = w * np.exp(max(self.s_o, abs(self.beta)) * np.abs(z)) > PRUNE
-        z, w = z[keep], w[keep]
-        a = np.exp(self.s_o * z - 0.5 * self.s_o * self.s_o)
-        b = np.exp(self.beta * z - 0.5 * self.beta * self.beta)
-        fo = self.f_outer if rows is None else self.f_outer[rows]
-        fi = self.f_inner if rows is None else self.f_inner[rows]
-        out = (np.empty(fo.size), np.empty(fo.size), np.empty(fo.size))
-        kernel = _spread_kernel_serial if fo.size < SERIAL_BELOW else _spread_kernel
-        kernel(fo, fi, a, b, w, self.abs_strike, self.sc, self.sg, self.discount, *out)
-        return out
-
-
-def _embedded(step: _SpreadStep, nodes: int) -> tuple[FloatArray, ...]:
-    """Each path from the larger of ``PAIR``'s two rules where the two agree within
-    ``NODE_TOL`` (value relative to the path's futures level, ratios absolute), and from
-    ``nodes`` nodes on the paths where they do not."""
+def _rules(nodes: int, adaptive: bool) -> tuple[int, ...]:
+    """Node counts of the kernel's rules 0, 1, 2 (see ``_spread_body``)."""
+    if not adaptive:
+        return (nodes,)
     small, large = (min(n, nodes) for n in PAIR)
-    coarse = step.run(small)
-    fine = step.run(large)
-    level = np.maximum(step.f_outer, step.f_inner)
-    gap = np.maximum(
-        np.abs(fine[0] - coarse[0]) / level,
-        np.maximum(np.abs(fine[1] - coarse[1]), np.abs(fine[2] - coarse[2])),
-    )
-    redo = np.flatnonzero(~(gap <= NODE_TOL))
-    if large < nodes and redo.size:
-        full = step.run(nodes, redo)
-        for mine, exact in zip(fine, full, strict=True):
-            mine[redo] = exact
-    return fine
+    return (large,) + ((small,) if small < large else ()) + ((nodes,) if large < nodes else ())
+
+
+def _node_tables(
+    s_o: FloatArray, beta: FloatArray, counts: tuple[int, ...]
+) -> tuple[FloatArray, FloatArray, FloatArray, IntArray]:
+    """``a, b, w`` of shape ``(rules, dates, nodes)`` and the nodes kept ``m`` (module Notes):
+    each date's kept nodes first, in the rule's order."""
+    shape = (len(counts), s_o.size, max(counts))
+    a, b, w = np.zeros(shape), np.zeros(shape), np.zeros(shape)
+    m = np.zeros(shape[:2], dtype=np.int64)
+    reach = np.maximum(s_o, np.abs(beta))[:, None]
+    for r, n in enumerate(counts):
+        z, weights = hermite_nodes(n)
+        keep = weights * np.exp(reach * np.abs(z)) > PRUNE
+        order = np.argsort(~keep, axis=1, kind="stable")
+        zk = z[order]
+        m[r] = keep.sum(axis=1)
+        a[r, :, :n] = np.exp(s_o[:, None] * zk - (0.5 * s_o * s_o)[:, None])
+        b[r, :, :n] = np.exp(beta[:, None] * zk - (0.5 * beta * beta)[:, None])
+        w[r, :, :n] = weights[order]
+    return a, b, w, m
 
 
 def _spread(
     option: CalendarSpread,
-    var_near: float,
-    var_far: float,
-    cov: float,
+    law: RemainingLaw,
     futures: FloatArray,
-    discount: float,
+    discount: FloatArray,
     nodes: int,
     adaptive: bool,
 ) -> tuple[FloatArray, FloatArray]:
     near_out = option.strike >= 0.0
-    v_o, v_i = (var_near, var_far) if near_out else (var_far, var_near)
-    s_o = math.sqrt(v_o)
-    beta = cov / s_o if s_o > 0.0 else 0.0
-    o, i = (0, 1) if near_out else (1, 0)
-    step = _SpreadStep(
-        s_o=s_o,
-        beta=beta,
-        sc=math.sqrt(max(v_i - beta * beta, 0.0)),
-        sg=1.0 if option.call == near_out else -1.0,
-        abs_strike=abs(option.strike),
-        discount=discount,
-        f_outer=np.ascontiguousarray(futures[:, o]),
-        f_inner=np.ascontiguousarray(futures[:, i]),
+    v_o, v_i = (law.var_near, law.var_far) if near_out else (law.var_far, law.var_near)
+    s_o = np.sqrt(v_o)
+    beta = np.divide(law.cov, s_o, out=np.zeros_like(s_o), where=s_o > 0.0)
+    sc = np.sqrt(np.maximum(v_i - beta * beta, 0.0))
+    a, b, w, m = _node_tables(s_o, beta, _rules(nodes, adaptive))
+    n_paths, n_dates = futures.shape[:2]
+    value = np.empty((n_paths, n_dates))
+    ratios = np.empty((n_paths, n_dates, 2))
+    serial = n_paths * n_dates < SERIAL_BELOW
+    kernel = _spread_kernel_serial if serial else _spread_kernel
+    outer, inner = (0, 1) if near_out else (1, 0)
+    sg = 1.0 if option.is_call == near_out else -1.0
+    kernel(
+        futures,
+        outer,
+        inner,
+        a,
+        b,
+        w,
+        m,
+        sc,
+        discount,
+        abs(option.strike),
+        sg,
+        NODE_TOL,
+        value,
+        ratios,
     )
-    value, d_outer, d_inner = _embedded(step, nodes) if adaptive else step.run(nodes)
-    ratios = np.empty((value.size, 2))
-    ratios[:, o] = d_outer
-    ratios[:, i] = d_inner
     return value, ratios
+
+
+def _vanilla(
+    option: VanillaOption, var: FloatArray, futures: FloatArray, discount: FloatArray
+) -> tuple[FloatArray, FloatArray]:
+    F = futures[:, :, 0]
+    std = np.sqrt(np.maximum(var, 0.0))
+    live = std > 0.0
+    value = discount * undiscounted_price(F, option.strike, std, option.is_call)
+    with np.errstate(divide="ignore", invalid="ignore"):  # dates at expiry: not used
+        d1 = np.log(F / option.strike) / std + 0.5 * std
+    n1 = np.where(live, ndtr(d1), (option.strike < F).astype(np.float64))
+    delta = discount * (n1 if option.is_call else n1 - 1.0)
+    return np.asarray(value), np.asarray(delta)[:, :, None]
+
+
+class Rules(TypedDict, total=False):
+    """Keyword options of :func:`values_on_grid` (quadrature of a spread)."""
+
+    nodes: int
+    adaptive: bool
+
+
+def values_on_grid(
+    option: HedgedOption,
+    law: RemainingLaw,
+    futures: FloatArray,
+    discount: FloatArray,
+    *,
+    nodes: int = DEFAULT_NODES,
+    adaptive: bool = False,
+) -> tuple[FloatArray, FloatArray]:
+    """The option's value and hedge ratios ``dV/dF_i`` on every path at every date.
+
+    Parameters
+    ----------
+    option : the option.
+    law : ``(n_dates,)`` the pricing set's law of the legs' log prices over the remaining life
+        from each date (a vanilla uses ``var_near``).
+    futures : ``(n_paths, n_dates, n_legs)`` the legs' prices at the dates.
+    discount : ``(n_dates,)`` discount factors from expiry to each date.
+    nodes : Gauss-Hermite nodes of the spread price (before pruning).
+    adaptive : price each path at each date with the larger of ``PAIR``'s rules where the two
+        agree within ``NODE_TOL`` and with ``nodes`` where they do not (module Notes);
+        ``False`` uses ``nodes`` everywhere.
+
+    Returns
+    -------
+    ``(values, ratios)`` of shapes ``(n_paths, n_dates)`` and ``(n_paths, n_dates, n_legs)``;
+    the ratios are futures to hold per option (discount included).
+    """
+    D = np.asarray(discount, dtype=np.float64)
+    if isinstance(option, CalendarSpread):
+        return _spread(option, law, futures, D, nodes, adaptive)
+    return _vanilla(option, law.var_near, futures, D)
 
 
 def value_and_ratios(
@@ -202,37 +296,12 @@ def value_and_ratios(
     cov: float,
     futures: FloatArray,
     discount: float,
-    *,
-    nodes: int = DEFAULT_NODES,
-    adaptive: bool = False,
+    **rules: Unpack[Rules],
 ) -> tuple[FloatArray, FloatArray]:
-    """The option's value and hedge ratios ``dV/dF_i`` on every path at one date.
-
-    Parameters
-    ----------
-    option : the option.
-    var_near, var_far, cov : the pricing set's law of the legs' log prices over the remaining
-        life (a vanilla uses ``var_near``).
-    futures : ``(n_paths, n_legs)`` the legs' prices at the date.
-    discount : discount factor from expiry to the date.
-    nodes : Gauss-Hermite nodes of the spread price (before pruning).
-    adaptive : use the fewest of ``FEWER_NODES`` that agree with ``nodes`` on probe paths
-        within ``NODE_TOL`` (module Notes); ``False`` uses ``nodes`` everywhere.
-
-    Returns
-    -------
-    ``(value, ratios)`` of shapes ``(n_paths,)`` and ``(n_paths, n_legs)``; the ratios are
-    futures to hold per option (discount included).
-    """
-    if isinstance(option, CalendarSpread):
-        return _spread(option, var_near, var_far, cov, futures, discount, nodes, adaptive)
-    F = futures[:, 0]
-    std = math.sqrt(max(var_near, 0.0))
-    value = discount * undiscounted_price(F, option.strike, std, option.call)
-    if std > 0.0:
-        d1 = np.log(F / option.strike) / std + 0.5 * std
-        n1 = ndtr(d1)
-    else:
-        n1 = (option.strike < F).astype(np.float64)
-    delta = discount * (n1 if option.call else n1 - 1.0)
-    return np.asarray(value), np.asarray(delta)[:, None]
+    """:func:`values_on_grid` at one date: the law ``var_near, var_far, cov`` and ``discount``
+    as numbers, ``futures`` of shape ``(n_paths, n_legs)``. Returns the value ``(n_paths,)``
+    and the ratios ``(n_paths, n_legs)``."""
+    law = RemainingLaw(*(np.array([x], dtype=np.float64) for x in (var_near, var_far, cov)))
+    F = np.asarray(futures, dtype=np.float64)[:, None, :]
+    value, ratios = values_on_grid(option, law, F, np.array([discount]), **rules)
+    return value[:, 0], ratios[:, 0]

@@ -42,7 +42,7 @@ def initial_state(
 
 def simulate_futures(
     world: TwoFactorParams,
-    maturities: ArrayLike,
+    t_legs: ArrayLike,
     times: ArrayLike,
     prices0: ArrayLike,
     state0: tuple[float, float],
@@ -51,23 +51,23 @@ def simulate_futures(
     *,
     rng: np.random.Generator | int,
 ) -> FloatArray:
-    """``(n_paths, n_dates, n_legs)`` prices of futures maturing at ``maturities``.
+    """``(n_paths, n_dates, n_legs)`` prices of futures delivering at ``t_legs``.
 
     Parameters
     ----------
     world : the parameter set that moves the world (real-world drifts ``mu``, ``alpha``).
-    maturities : the legs' maturities in years from ``times[0] = 0``.
+    t_legs : the legs' deliveries in years from ``times[0] = 0``.
     times : dates in years (non-decreasing, starting at 0).
     prices0 : the legs' prices at ``t = 0`` (every path starts there).
     state0 : ``(X, d)`` at ``t = 0`` (e.g. from :func:`initial_state`).
     rate : the rate in the closed form's ``A``.
     n_paths : number of paths; ``rng`` a generator or a seed.
     """
-    T = np.asarray(maturities, dtype=np.float64)
+    T = np.asarray(t_legs, dtype=np.float64)
     t = np.asarray(times, dtype=np.float64)
     F0 = np.asarray(prices0, dtype=np.float64)
     if np.any(T[None, :] < t[:, None]):
-        raise ParameterError("maturities", T.tolist(), "a leg matures before the last date")
+        raise ParameterError("t_legs", T.tolist(), "a leg matures before the last date")
     paths = simulate_states(world, t, state0[0], state0[1], n_paths, rng=rng, measure="real")
     curves = futures_curves(paths, T[None, :] - t[:, None], world, rate)
     model0 = curves[0, 0].copy()  # the same on every path at t = 0

@@ -45,6 +45,10 @@ fine) updates every node from the previous boundary (Jacobi). A fixed discretisa
 sweep count make the premium a smooth function of its inputs, which the finite-difference vega
 and the implied-volatility solver rely on.
 
+The boundary in units of the strike depends on ``T, r, vol`` alone, so consecutive options
+sharing them (a chain's strikes, calls and puts at one volatility) solve it once; the normal
+probabilities come from the densities at hand times Mills' ratio (see :func:`_ncdf_e`).
+
 Two guards keep the bounds exact where the few sweeps leave the boundary off: at rates near
 zero the start lies far above the boundary, so in the exercise region the premium is the
 larger of intrinsic and European; and a premium a discretisation error below intrinsic just
@@ -58,10 +62,17 @@ from collections.abc import Callable
 
 import numba
 import numpy as np
+from scipy.special import erfcx
 
 from calib.errors import AMERICAN_IMPLIED_VOL_REASONS, IMPLIED_VOL_REASONS
 from calib.model import black76
-from calib.model.black76 import ImpliedVolCode, Kind, is_call
+from calib.model.black76 import (
+    ImpliedVolCode,
+    Kind,
+    flat_arrays,
+    is_call,
+    raising_implied_vol,
+)
 from calib.types import ArrayLike, BoolArray, FloatArray, IntArray
 
 __all__ = [
@@ -168,21 +179,67 @@ def _tables(n: int, n_quad: int, p: int, n_coarse: int) -> Tables:
     return c, half, w, interp_b, halfp, wp, interp_p, half_c, w_c, interp_c
 
 
+_SQRT_HALF = math.sqrt(0.5)
+_INV_SQRT_2PI = 1.0 / math.sqrt(2.0 * math.pi)
 _TABLES = _tables(N_INTERVALS, N_BOUNDARY_QUAD, N_PRICE_QUAD, N_COARSE_QUAD)
 
-_SQRT_HALF = math.sqrt(0.5)
 _NEGLIGIBLE_RT = 1e-12  # at or below this r T the early-exercise premium (< r T K) is negligible
-_INV_SQRT_2PI = 1.0 / math.sqrt(2.0 * math.pi)
 
 
-def _ncdf(z: float) -> float:
-    return 0.5 * math.erfc(-z * _SQRT_HALF)
+# --- the normal distribution from its density --------------------------------------------------
+# Each normal probability here comes with its density already at hand (the same exponential
+# serves both, or a ratio of the option's terms gives it), so it is the density times Mills'
+# ratio R(y) = Phi(-y) / phi(y) (y >= 0), a smooth function held as polynomials on intervals of
+# width 1/2 up to y = 38 (beyond it the probability is below the smallest double): about a
+# third of the time of an erfc, which was half the pricer's time.
+
+_MILLS_DEGREE = 11
+_MILLS_WIDTH = 0.5
+_MILLS_END = 38.0
+
+
+def _mills_table() -> FloatArray:
+    """Row ``j``: coefficients (ascending) of ``R`` on ``[j w, (j + 1) w]`` in the local
+    variable ``s = 2 (y - j w) / w - 1``, the Chebyshev interpolant at ``degree + 1`` points
+    converted to powers of ``s`` (largest relative error 1e-15 against scipy's ``erfcx``, of
+    which ``R(y) = sqrt(pi / 2) erfcx(y / sqrt 2)``)."""
+    m = _MILLS_DEGREE + 1
+    s = np.cos(np.pi * (np.arange(m) + 0.5) / m)
+    left = np.arange(0.0, _MILLS_END, _MILLS_WIDTH)
+    y = left[:, None] + 0.5 * _MILLS_WIDTH * (s[None, :] + 1.0)
+    values = math.sqrt(0.5 * math.pi) * erfcx(y * _SQRT_HALF)
+    cheb = np.polynomial.chebyshev.chebfit(s, values.T, _MILLS_DEGREE)
+    to_powers = np.zeros((m, m))
+    for k in range(m):  # column k: T_k in powers of s
+        to_powers[: k + 1, k] = np.polynomial.chebyshev.cheb2poly(np.eye(m)[k])
+    return np.ascontiguousarray((to_powers @ cheb).T)
+
+
+_MILLS = _mills_table()
+
+
+def _ncdf_e(x: float, e: float) -> float:
+    """``Phi(x)`` given ``e = exp(-x^2 / 2)``."""
+    y = abs(x)
+    if y >= _MILLS_END:
+        return 0.0 if x < 0.0 else 1.0
+    j = int(y * (1.0 / _MILLS_WIDTH))
+    s = (2.0 / _MILLS_WIDTH) * y - (2 * j + 1)
+    c = _MILLS[j]
+    s2 = s * s
+    s4 = s2 * s2  # Estrin's scheme: a shorter chain of dependent multiplications than Horner's
+    low = (c[0] + c[1] * s) + s2 * (c[2] + c[3] * s)
+    mid = (c[4] + c[5] * s) + s2 * (c[6] + c[7] * s)
+    high = (c[8] + c[9] * s) + s2 * (c[10] + c[11] * s)
+    tail = float(_INV_SQRT_2PI * e * (low + s4 * (mid + s4 * high)))
+    return tail if x < 0.0 else 1.0 - tail
 
 
 def _european_put(S: float, K: float, T: float, r: float, vol: float) -> float:
     s = vol * math.sqrt(T)
     d1 = math.log(S / K) / s + 0.5 * s
-    return math.exp(-r * T) * (K * _ncdf(s - d1) - S * _ncdf(-d1))
+    e1 = math.exp(-0.5 * d1 * d1)  # and exp(-d2^2 / 2) = e1 S / K
+    return math.exp(-r * T) * (K * _ncdf_e(s - d1, e1 * S / K) - S * _ncdf_e(-d1, e1))
 
 
 def _baw_critical(K: float, tau: float, r: float, vol: float) -> float:
@@ -200,15 +257,11 @@ def _baw_critical(K: float, tau: float, r: float, vol: float) -> float:
     disc = math.exp(-r * tau)
     for _ in range(N_START_NEWTON):
         d1 = math.log(s / K) / st + 0.5 * st
-        nd = _ncdf(-d1)
-        euro = disc * (K * _ncdf(st - d1) - s * nd)  # the European put at s
+        e1 = math.exp(-0.5 * d1 * d1)
+        nd = _ncdf_e(-d1, e1)
+        euro = disc * (K * _ncdf_e(st - d1, e1 * s / K) - s * nd)  # the European put at s
         g = K - s - euro + (1.0 - disc * nd) * s / q1
-        dg = (
-            -1.0
-            + disc * nd
-            + (1.0 - disc * nd) / q1
-            + disc * _INV_SQRT_2PI * math.exp(-0.5 * d1 * d1) / (st * q1)
-        )
+        dg = -1.0 + disc * nd + (1.0 - disc * nd) / q1 + disc * _INV_SQRT_2PI * e1 / (st * q1)
         s_new = s - g / dg
         if not 0.0 < s_new < K:
             break
@@ -249,17 +302,20 @@ def _sweep(
         st = vol * sqrt_t * c[i]
         dm = math.log(b / K) / st - 0.5 * st
         root_hi = math.sqrt(h[i])
-        pdf = _INV_SQRT_2PI * math.exp(-0.5 * dm * dm) / st
+        e = math.exp(-0.5 * dm * dm)  # exp(-d_-^2 / 2); exp(-d_+^2 / 2) = e K / b
+        pdf = _INV_SQRT_2PI * e / st
         num = pdf
-        den = pdf * K / b + _ncdf(dm + st)
+        den = pdf * K / b + _ncdf_e(dm + st, e * K / b)
         for k in range(nl):
             a = (i - 1) * nl + k
             s_k = st * half[k]
             lr = root_h[a] - root_hi  # ln(B(tau) / B(u))
             dm = lr / s_k - 0.5 * s_k
-            pdf = _INV_SQRT_2PI * math.exp(-0.5 * dm * dm) / s_k
+            e = math.exp(-0.5 * dm * dm)
+            ratio = math.exp(-lr)  # exp(-d_+^2 / 2) = e ratio
+            pdf = _INV_SQRT_2PI * e / s_k
             num += ert[a] * pdf
-            den += ert[a] * (pdf * math.exp(-lr) + _ncdf(dm + s_k))
+            den += ert[a] * (pdf * ratio + _ncdf_e(dm + s_k, e * ratio))
         bnd[i] = K * num / den
 
 
@@ -315,10 +371,25 @@ def _put_boundary(
 
 
 def _work_size(tab: Tables) -> int:
-    """Scratch for :func:`_put_value`: the nodes twice, the fine quadrature's points twice
-    and the premium's points."""
+    """Scratch for :func:`_put_value`: the nodes, four numbers per premium point, then the
+    boundary's scratch (the nodes and the fine quadrature's points twice)."""
     n = tab[0].size - 1
-    return 2 * (n + 1) + 2 * n * tab[1].size + tab[4].size
+    return 2 * (n + 1) + 2 * n * tab[1].size + 4 * tab[4].size
+
+
+def _premium_points(T: float, r: float, vol: float, tab: Tables, work: FloatArray) -> None:
+    """Fill the scratch with what the premium integral needs of the boundary ``h`` in
+    ``work[:n + 1]``: per point ``ln(K / B(u))``, ``B(u) / K``, the weight and ``1 / s``."""
+    halfp, wp, interp_p = tab[4], tab[5], tab[6]
+    n, p = tab[0].size - 1, halfp.size
+    roots = work[n + 1 : n + 1 + p]
+    _interpolate_root(interp_p, work[: n + 1], roots)
+    st = vol * math.sqrt(T)
+    rt = r * T
+    for k in range(p):
+        work[n + 1 + p + k] = math.exp(-roots[k])
+        work[n + 1 + 2 * p + k] = wp[k] * halfp[k] * rt * math.exp(-rt * halfp[k] * halfp[k])
+        work[n + 1 + 3 * p + k] = 1.0 / (st * halfp[k])
 
 
 def _put_value(
@@ -330,13 +401,16 @@ def _put_value(
     tab: Tables,
     want_delta: bool,
     work: FloatArray,
+    known: bool,
 ) -> tuple[float, float]:
     """American put premium and its delta in ``S`` for finite ``S, K, T > 0``.
 
     Without ``want_delta`` the delta returned is NaN wherever the boundary is solved (the
     premium alone skips a third of the premium integral's transcendental functions).
+    ``known``: ``work`` already holds the boundary of this ``T, r, vol`` (it is the same for
+    every strike in units of the strike), from the previous call.
     """
-    c, halfp, wp, interp_p = tab[0], tab[4], tab[5], tab[6]
+    c, halfp = tab[0], tab[4]
     intrinsic = max(K - S, 0.0)
     if T <= 0.0:
         return intrinsic, -1.0 if S < K else 0.0
@@ -348,14 +422,18 @@ def _put_value(
     st = vol * math.sqrt(T)
     d1 = math.log(S / K) / st + 0.5 * st
     disc = math.exp(-r * T)
-    euro = disc * (K * _ncdf(st - d1) - S * _ncdf(-d1))
-    euro_delta = -disc * _ncdf(-d1)
+    e1 = math.exp(-0.5 * d1 * d1)
+    nd = _ncdf_e(-d1, e1)
+    euro = disc * (K * _ncdf_e(st - d1, e1 * S / K) - S * nd)
+    euro_delta = -disc * nd
     if r * T <= _NEGLIGIBLE_RT:
         return euro, euro_delta
-    n = c.size - 1
-    h = work[: n + 1]
-    _put_boundary(K, T, r, vol, h, tab, work[n + 1 :])
-    boundary = K * math.exp(-math.sqrt(h[n]))
+    n, p = c.size - 1, halfp.size
+    if not known:
+        # in units of the strike, so that every strike gets the very same boundary
+        _put_boundary(1.0, T, r, vol, work[: n + 1], tab, work[n + 1 + 4 * p :])
+        _premium_points(T, r, vol, tab, work)
+    boundary = K * math.exp(-math.sqrt(work[n]))
     if boundary >= S:
         # exercise now; at rates near zero the few sweeps leave the boundary too high (the
         # start is far from it), and the European premium is then the better lower bound
@@ -365,26 +443,27 @@ def _put_value(
     eep = 0.0
     eep_delta = 0.0 if want_delta else np.nan
     log_sk = math.log(S / K)
-    rt = r * T
-    roots = work[work.size - halfp.size :]  # ln(K / B(u)) at the premium's points
-    _interpolate_root(interp_p, h, roots)
-    for k in range(halfp.size):
-        root = roots[k]
+    k_over_s = K / S
+    for k in range(p):
+        root = work[n + 1 + k]  # ln(K / B(u))
+        bk = work[n + 1 + p + k]  # B(u) / K
+        weight = work[n + 1 + 2 * p + k]
+        inv_s = work[n + 1 + 3 * p + k]
         s_k = st * halfp[k]
-        weight = wp[k] * halfp[k] * rt * math.exp(-rt * halfp[k] * halfp[k])
-        dm = (log_sk + root) / s_k - 0.5 * s_k
-        n_plus = _ncdf(-dm - s_k)
-        eep += weight * (K * _ncdf(-dm) - S * n_plus)
+        dm = (log_sk + root) * inv_s - 0.5 * s_k
+        e = math.exp(-0.5 * dm * dm)  # and exp(-d_+^2 / 2) = e B(u) / S
+        n_plus = _ncdf_e(-dm - s_k, e * bk * k_over_s)
+        eep += weight * (K * _ncdf_e(-dm, e) - S * n_plus)
         if want_delta:
-            pdf = _INV_SQRT_2PI * math.exp(-0.5 * dm * dm)
-            eep_delta += weight * (pdf * K * math.expm1(-root) / (S * s_k) - n_plus)
+            pdf = _INV_SQRT_2PI * e
+            eep_delta += weight * (pdf * K * math.expm1(-root) * inv_s / S - n_plus)
     value = euro + eep
     if value < intrinsic:  # within the discretisation error of the boundary, just above it
         return intrinsic, -1.0
     return value, euro_delta + eep_delta
 
 
-_ncdf = numba.njit(cache=True, error_model="numpy")(_ncdf)
+_ncdf_e = numba.njit(cache=True, error_model="numpy")(_ncdf_e)
 _european_put = numba.njit(cache=True, error_model="numpy")(_european_put)
 _baw_critical = numba.njit(cache=True, error_model="numpy")(_baw_critical)
 # reassociating the sums lets them vectorise; the boundary changes by rounding only
@@ -395,15 +474,12 @@ _sweep = numba.njit(cache=True, error_model="numpy")(_sweep)
 _weights = numba.njit(cache=True, error_model="numpy")(_weights)
 _work_size = numba.njit(cache=True, error_model="numpy")(_work_size)
 _put_boundary = numba.njit(cache=True, error_model="numpy")(_put_boundary)
+_premium_points = numba.njit(cache=True, error_model="numpy")(_premium_points)
 _put_value = numba.njit(cache=True, error_model="numpy")(_put_value)
 
 
 def _value_loop(
-    F: FloatArray,
-    K: FloatArray,
-    T: FloatArray,
-    r: FloatArray,
-    vol: FloatArray,
+    options: FloatArray,
     call: BoolArray,
     valid: BoolArray,
     value: FloatArray,
@@ -411,35 +487,31 @@ def _value_loop(
     tab: Tables,
     want_delta: bool,
 ) -> None:
+    """Premiums and deltas of ``options`` (rows ``F, K, T, r, vol``)."""
     work = np.empty(_work_size(tab))
-    for i in range(F.size):
-        f, k, t, rr, v = F[i], K[i], T[i], r[i], vol[i]
+    last_t = last_r = last_v = np.nan  # the boundary in `work` (NaN: none)
+    for i in range(call.size):
+        f, k, t, rr, v = options[0, i], options[1, i], options[2, i], options[3, i], options[4, i]
         if not valid[i]:
             value[i] = np.nan
             delta[i] = np.nan
             continue
+        known = t == last_t and rr == last_r and v == last_v
         if call[i]:  # C(F, K) = P(K, F); dC/dF = (P - K dP/dS) / F by homogeneity
-            p, dp = _put_value(k, f, t, rr, v, tab, want_delta, work)
+            p, dp = _put_value(k, f, t, rr, v, tab, want_delta, work, known)
             value[i] = p
             delta[i] = (p - k * dp) / f
         else:
-            p, dp = _put_value(f, k, t, rr, v, tab, want_delta, work)
+            p, dp = _put_value(f, k, t, rr, v, tab, want_delta, work, known)
             value[i] = p
             delta[i] = dp
+        if t > 0.0 and v > 0.0 and rr * t > _NEGLIGIBLE_RT:  # the boundary was needed
+            last_t, last_r, last_v = t, rr, v
 
 
 _VALUE_KERNEL: Callable[..., None] = numba.njit(cache=True, nogil=True, error_model="numpy")(
     _value_loop
 )
-
-
-def _flat(
-    kind: Kind | ArrayLike, *values: ArrayLike
-) -> tuple[tuple[int, ...], BoolArray, list[FloatArray]]:
-    """Broadcast shape, flat call flags and flat float64 copies of ``values``."""
-    arrays = np.broadcast_arrays(is_call(kind), *(np.asarray(a, dtype=np.float64) for a in values))
-    flat = [np.ascontiguousarray(a).reshape(-1) for a in arrays]
-    return arrays[0].shape, flat[0], flat[1:]
 
 
 def _values(
@@ -452,14 +524,14 @@ def _values(
     want_delta: bool = True,
 ) -> tuple[FloatArray, FloatArray]:
     """Premiums and (with ``want_delta``, else NaN where the boundary is solved) deltas."""
-    shape, call, flat = _flat(kind, F, K, T, r, vol)
+    shape, call, flat = flat_arrays(kind, F, K, T, r, vol)
     F_, K_, T_, r_, vol_ = flat
     with np.errstate(invalid="ignore"):
         valid = np.isfinite(flat).all(axis=0) & (F_ > 0.0) & (K_ > 0.0) & (T_ >= 0.0)
         valid &= vol_ >= 0.0
     value = np.empty(flat[0].size)
     delta = np.empty(flat[0].size)
-    _VALUE_KERNEL(*flat, call, valid, value, delta, _TABLES, want_delta)
+    _VALUE_KERNEL(np.stack(flat), call, valid, value, delta, _TABLES, want_delta)
     euro = valid & (r_ * T_ <= _NEGLIGIBLE_RT) & (vol_ > 0.0) & (T_ > 0.0)
     if euro.any():  # Black-76's own figures where no early exercise is worth anything
         g = black76.greeks(F_[euro], K_[euro], T_[euro], r_[euro], vol_[euro], call[euro])
@@ -603,8 +675,9 @@ def _european_solve(
     for _ in range(_MAX_ITER):
         st = x * root_t
         d1 = log_sk / st + 0.5 * st
-        value = disc * (K * _ncdf(st - d1) - S * _ncdf(-d1))
-        slope = disc * S * root_t * _INV_SQRT_2PI * math.exp(-0.5 * d1 * d1) + s
+        e1 = math.exp(-0.5 * d1 * d1)
+        value = disc * (K * _ncdf_e(st - d1, e1 * S / K) - S * _ncdf_e(-d1, e1))
+        slope = disc * S * root_t * _INV_SQRT_2PI * e1 + s
         if not slope > 0.0:
             return np.nan
         step = (value + s * x - target) / slope
@@ -636,12 +709,12 @@ def _put_vol(
     hi = 1.0
     if tv < min(S, K):
         hi = black76._solve_normalised(tv / math.sqrt(S * K), x) / root_t
-    g_hi = _put_value(S, K, T, r, hi, tab, False, work)[0] - p
+    g_hi = _put_value(S, K, T, r, hi, tab, False, work, False)[0] - p
     while g_hi < 0.0:
         if hi > _MAX_VOL:
             return np.nan
         hi *= 2.0
-        g_hi = _put_value(S, K, T, r, hi, tab, False, work)[0] - p
+        g_hi = _put_value(S, K, T, r, hi, tab, False, work, False)[0] - p
     if g_hi == 0.0:
         return hi
     lo = 0.0
@@ -659,7 +732,7 @@ def _put_vol(
     e0 = g_hi + p - _european_put(S, K, T, r, hi)
     x_prev = s_prev = np.nan  # the point before x0 and the slope of e through it and x0
     for _ in range(_MAX_ITER):
-        g1 = _put_value(S, K, T, r, x1, tab, False, work)[0] - p
+        g1 = _put_value(S, K, T, r, x1, tab, False, work, False)[0] - p
         if g1 == 0.0:
             return x1
         if g1 < 0.0:
@@ -695,22 +768,15 @@ _put_vol = numba.njit(cache=True, error_model="numpy")(_put_vol)
 
 
 def _implied_vol_loop(
-    premium: FloatArray,
-    F: FloatArray,
-    K: FloatArray,
-    T: FloatArray,
-    r: FloatArray,
-    call: BoolArray,
-    vol: FloatArray,
-    code: IntArray,
-    tab: Tables,
+    quotes: FloatArray, call: BoolArray, vol: FloatArray, code: IntArray, tab: Tables
 ) -> None:
+    """Implied vols of ``quotes`` (rows: premium, ``F, K, T, r``) where ``code`` is OK."""
     work = np.empty(_work_size(tab))
-    for i in range(premium.size):
+    for i in range(call.size):
         vol[i] = np.nan
         if code[i] != _OK:  # screened before the loop
             continue
-        p, f, k, t, rr = premium[i], F[i], K[i], T[i], r[i]
+        p, f, k, t, rr = quotes[0, i], quotes[1, i], quotes[2, i], quotes[3, i], quotes[4, i]
         s, x = (k, f) if call[i] else (f, k)  # a call is the put with F and K swapped
         intrinsic = max(x - s, 0.0)
         if p < intrinsic:
@@ -762,7 +828,7 @@ def implied_vol_detail(
     that of :func:`price` itself, so a round trip recovers the volatility to about
     ``eps * premium / vega`` (at most 8e-13 measured).
     """
-    shape, call, flat = _flat(kind, premium, F, K, T, r)
+    shape, call, flat = flat_arrays(kind, premium, F, K, T, r)
     _, F_, K_, T_, r_ = flat
     code = np.full(call.size, _OK, dtype=np.int64)
     with np.errstate(invalid="ignore"):
@@ -771,30 +837,19 @@ def implied_vol_detail(
     euro = (code == _OK) & (r_ <= 0.0)
     code[euro] = _EUROPEAN
     vol = np.empty(call.size)
-    _IV_KERNEL(*flat, call, vol, code, _TABLES)
+    _IV_KERNEL(np.stack(flat), call, vol, code, _TABLES)
     if euro.any():  # the premium is a Black-76 one
         p_, F_, K_, T_, r_ = (a[euro] for a in flat)
         vol[euro], code[euro] = black76.implied_vol_detail(p_, F_, K_, T_, r_, call[euro])
     return vol.reshape(shape), code.reshape(shape)
 
 
-def implied_vol(
-    premium: ArrayLike,
-    F: ArrayLike,
-    K: ArrayLike,
-    T: ArrayLike,
-    r: ArrayLike,
-    kind: Kind | ArrayLike,
-) -> FloatArray:
-    """American implied volatility of each premium (NaN where none exists).
-
-    For arrays, an element without an implied volatility is NaN (see
-    :func:`implied_vol_detail` for the reason codes). A scalar call (every argument a scalar)
-    raises :class:`calib.errors.ImpliedVolError` naming the reason instead.
-    """
-    vol, code = implied_vol_detail(premium, F, K, T, r, kind)
-    if vol.ndim != 0:
-        return vol
-    european = float(np.asarray(r, dtype=np.float64)) <= 0.0
-    reasons = IMPLIED_VOL_REASONS if european else AMERICAN_IMPLIED_VOL_REASONS
-    return black76.scalar_checked(vol, code, premium, reasons)
+implied_vol = raising_implied_vol(
+    implied_vol_detail,
+    lambda r: (
+        IMPLIED_VOL_REASONS
+        if float(np.asarray(r, dtype=np.float64)) <= 0.0  # a Black-76 premium
+        else AMERICAN_IMPLIED_VOL_REASONS
+    ),
+    "American",
+)

@@ -51,6 +51,16 @@ def is_call(kind: Kind | ArrayLike) -> BoolArray:
     return arr
 
 
+def flat_arrays(
+    kind: Kind | ArrayLike, *values: ArrayLike
+) -> tuple[tuple[int, ...], BoolArray, list[FloatArray]]:
+    """Broadcast shape, flat call flags and flat float64 copies of ``values`` (for the
+    element-by-element kernels)."""
+    arrays = np.broadcast_arrays(is_call(kind), *(np.asarray(a, dtype=np.float64) for a in values))
+    flat = [np.ascontiguousarray(a).reshape(-1) for a in arrays]
+    return arrays[0].shape, flat[0], flat[1:]
+
+
 def _npdf(x: FloatArray) -> FloatArray:
     return np.asarray(_INV_SQRT_2PI * np.exp(-0.5 * x * x))
 
@@ -399,46 +409,37 @@ def implied_vol_detail(
     premium's own conditioning, about ``eps * premium / vega`` (a deep in-the-money premium
     or one close to its upper bound only determines the volatility to that precision).
     """
-    arrays = np.broadcast_arrays(
-        np.asarray(premium, dtype=np.float64),
-        np.asarray(F, dtype=np.float64),
-        np.asarray(K, dtype=np.float64),
-        np.asarray(T, dtype=np.float64),
-        np.asarray(r, dtype=np.float64),
-        is_call(kind),
-    )
-    shape = arrays[0].shape
-    flat = [np.ascontiguousarray(a).reshape(-1) for a in arrays]
-    vol = np.empty(flat[0].size, dtype=np.float64)
-    code = np.empty(flat[0].size, dtype=np.int64)
-    _KERNEL(*flat, vol, code)
+    shape, call, flat = flat_arrays(kind, premium, F, K, T, r)
+    vol = np.empty(call.size, dtype=np.float64)
+    code = np.empty(call.size, dtype=np.int64)
+    _KERNEL(*flat, call, vol, code)
     return vol.reshape(shape), code.reshape(shape)
 
 
-def implied_vol(
-    premium: ArrayLike,
-    F: ArrayLike,
-    K: ArrayLike,
-    T: ArrayLike,
-    r: ArrayLike,
-    kind: Kind | ArrayLike,
-) -> FloatArray:
-    """Black-76 implied volatility of each premium (NaN where none exists).
+def raising_implied_vol(
+    detail: Callable[..., tuple[FloatArray, IntArray]],
+    reasons: Callable[[ArrayLike], Mapping[str, str]],
+    style: str,
+) -> Callable[..., FloatArray]:
+    """The ``implied_vol(premium, F, K, T, r, kind)`` of a pricer from its
+    ``implied_vol_detail`` (same arguments): the volatilities, NaN where none exists, except
+    that a scalar call without one raises :class:`ImpliedVolError` naming the reason
+    (``reasons(r)``: phrase per :class:`ImpliedVolCode` name). ``style`` opens its docstring."""
+
+    def implied_vol(*args: ArrayLike) -> FloatArray:  # (premium, F, K, T, r, kind)
+        vol, code = detail(*args)
+        if vol.ndim == 0 and int(code) != ImpliedVolCode.OK:
+            reason = reasons(args[4])[ImpliedVolCode(int(code)).name]
+            raise ImpliedVolError(float(np.asarray(args[0], dtype=np.float64)), reason)
+        return vol
+
+    implied_vol.__doc__ = f"""{style} implied volatility of each premium (NaN where none exists).
 
     For arrays, an element without an implied volatility is NaN (see
     :func:`implied_vol_detail` for the reason codes). A scalar call (every argument a scalar)
     raises :class:`calib.errors.ImpliedVolError` naming the reason instead.
     """
-    vol, code = implied_vol_detail(premium, F, K, T, r, kind)
-    return scalar_checked(vol, code, premium, IMPLIED_VOL_REASONS)
+    return implied_vol
 
 
-def scalar_checked(
-    vol: FloatArray, code: IntArray, premium: ArrayLike, reasons: Mapping[str, str]
-) -> FloatArray:
-    """``vol``, or for a scalar without an implied volatility :class:`ImpliedVolError` naming
-    the reason (``reasons``: phrase per :class:`ImpliedVolCode` name)."""
-    if vol.ndim == 0 and int(code) != ImpliedVolCode.OK:
-        reason = reasons[ImpliedVolCode(int(code)).name]
-        raise ImpliedVolError(float(np.asarray(premium, dtype=np.float64)), reason)
-    return vol
+implied_vol = raising_implied_vol(implied_vol_detail, lambda r: IMPLIED_VOL_REASONS, "Black-76")

@@ -96,17 +96,18 @@ class SpreadOption:
 
     Attributes
     ----------
-    near, far : maturities of the near and far futures in years from today (``near <= far``).
-    expiry : option expiry in years (``0 < expiry <= near``).
+    t_near, t_far : deliveries of the near and far futures, years from today
+        (``t_near <= t_far``).
+    t_expiry : option expiry, years from today (``0 < t_expiry <= t_near``).
     strike : strike of the spread (any sign).
     is_call : ``True`` for a call; ``"call"``/``"put"`` strings are accepted on input.
     near_price, far_price : today's futures prices ``F1``, ``F2`` (> 0).
     discount : discount factor from the premium's payment date to today (> 0).
     """
 
-    near: FloatArray
-    far: FloatArray
-    expiry: FloatArray
+    t_near: FloatArray
+    t_far: FloatArray
+    t_expiry: FloatArray
     strike: FloatArray
     is_call: BoolArray
     near_price: FloatArray
@@ -116,9 +117,9 @@ class SpreadOption:
     def __post_init__(self) -> None:
         call = is_call(self.is_call)
         values = np.broadcast_arrays(
-            np.atleast_1d(_f(self.near)),
-            np.atleast_1d(_f(self.far)),
-            np.atleast_1d(_f(self.expiry)),
+            np.atleast_1d(_f(self.t_near)),
+            np.atleast_1d(_f(self.t_far)),
+            np.atleast_1d(_f(self.t_expiry)),
             np.atleast_1d(_f(self.strike)),
             np.atleast_1d(call),
             np.atleast_1d(_f(self.near_price)),
@@ -128,9 +129,9 @@ class SpreadOption:
         if values[0].ndim != 1:
             raise ParameterError("option", values[0].shape, "inputs must broadcast to 1-D")
         names = (
-            "near",
-            "far",
-            "expiry",
+            "t_near",
+            "t_far",
+            "t_expiry",
             "strike",
             "is_call",
             "near_price",
@@ -142,9 +143,13 @@ class SpreadOption:
                 raise ParameterError(name, value[~np.isfinite(value)][0], "must be finite")
             object.__setattr__(self, name, readonly(value))
         checks = (
-            ("expiry", self.expiry > 0.0, "must be > 0"),
-            ("near", self.near >= self.expiry, "the near future must not mature before expiry"),
-            ("far", self.far >= self.near, "the far future must not mature before the near"),
+            ("t_expiry", self.t_expiry > 0.0, "must be > 0"),
+            (
+                "t_near",
+                self.t_near >= self.t_expiry,
+                "the near future must not mature before expiry",
+            ),
+            ("t_far", self.t_far >= self.t_near, "the far future must not mature before the near"),
             ("near_price", self.near_price > 0.0, "a futures price must be > 0"),
             ("far_price", self.far_price > 0.0, "a futures price must be > 0"),
             ("discount", self.discount > 0.0, "a discount factor must be > 0"),
@@ -308,7 +313,7 @@ def law_coefficients(
     Each quantity is ``a P + b Q - 2 c C``. For :class:`TwoFactorParams` the arrays have shape
     ``(n,)``; for :class:`ForwardVols` shape ``(n, n_buckets)``, one column a bucket.
     """
-    t, T1, T2 = option.expiry, option.near, option.far
+    t, T1, T2 = option.t_expiry, option.t_near, option.t_far
     if isinstance(vols, TwoFactorParams):
         k = vols.kappa
         return (
@@ -488,19 +493,6 @@ def price_exact(
 ) -> FloatArray:
     """Exact premium of the spread options by Gauss-Hermite quadrature (module Notes)."""
     return spread_greeks(law, strike, kind, discount, nodes=nodes).price
-
-
-def hedge_ratios(
-    law: SpreadLaw,
-    strike: ArrayLike,
-    kind: Kind | ArrayLike,
-    discount: ArrayLike = 1.0,
-    *,
-    nodes: int = DEFAULT_NODES,
-) -> tuple[FloatArray, FloatArray]:
-    """``(dV/dF1, dV/dF2)``: futures to hold per option, near and far (variances fixed)."""
-    g = spread_greeks(law, strike, kind, discount, nodes=nodes)
-    return g.delta_near, g.delta_far
 
 
 # --- sensitivities to the calibrated volatilities ---------------------------------------------

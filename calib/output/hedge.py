@@ -1,7 +1,9 @@
-"""What the policy comparison of ``calib hedge policies`` shows: the table, CSV, figure, page.
+"""What the hedge studies show: the files of ``calib hedge sim`` and ``calib hedge replay``
+(CSV, figure), and the policy comparison of ``calib hedge policies`` (table, CSV, figure, page).
 
-Plain values in: the rows are the JSON objects of the comparison (one per commodity and
-policy, the stable keys of ``--json``), each with its ``trade_list`` of sales.
+Plain values in: a study's JSON object (the stable keys of ``--json``) and, for the simulation,
+its per-path :class:`~calib.hedge.engine.HedgeResult`; the policy rows are the JSON objects of
+the comparison (one per commodity and policy), each with its ``trade_list`` of sales.
 """
 
 from __future__ import annotations
@@ -11,11 +13,169 @@ import html
 import math
 from collections.abc import Mapping, Sequence
 from pathlib import Path
-from typing import Any
+from typing import TYPE_CHECKING, Any
 
 import numpy as np
 
 from calib.output.text import g, table
+from calib.types import FloatArray
+
+if TYPE_CHECKING:
+    from matplotlib.axes import Axes
+    from matplotlib.figure import Figure
+
+    from calib.hedge.engine import HedgeResult
+
+
+def _figure(width: float, height: float) -> Figure:
+    """A figure (inches) drawn by Agg: no display, no pyplot state."""
+    from matplotlib.backends.backend_agg import FigureCanvasAgg
+    from matplotlib.figure import Figure
+
+    fig = Figure(figsize=(width, height), layout="constrained")
+    FigureCanvasAgg(fig)
+    return fig
+
+
+def _save(fig: Figure, path: Path) -> Path:
+    """Write ``fig`` as PNG to ``path`` (its folder made if need be)."""
+    path = Path(path)
+    path.parent.mkdir(parents=True, exist_ok=True)
+    fig.savefig(path, dpi=110)
+    return path
+
+
+def _titled(ax: Axes, title: str) -> None:
+    ax.set_title(title, fontsize=9)
+    ax.legend(fontsize=8)
+
+
+def _cell(x: Any) -> str:
+    if x is None:
+        return ""
+    if isinstance(x, float):
+        return "" if math.isnan(x) else f"{x:.10g}"
+    return str(x)
+
+
+# --- calib hedge sim ---------------------------------------------------------------------------
+
+
+def write_paths_csv(result: HedgeResult, path: Path) -> Path:
+    """One row a path: P&L in currency and % of premium, payoff, RMS step hedge error."""
+    path = Path(path)
+    path.parent.mkdir(parents=True, exist_ok=True)
+    rms = np.sqrt(np.mean(result.hedge_error**2, axis=1))
+    columns = (result.pnl, result.pnl_pct, result.payoff, rms)
+    with path.open("w", newline="", encoding="utf-8") as fh:
+        out = csv.writer(fh)
+        out.writerow(["path", "pnl", "pnl_pct", "payoff", "hedge_error_rms"])
+        for i in range(result.n_paths):
+            out.writerow([i, *(f"{c[i]:.10g}" for c in columns)])
+    return path
+
+
+def plot_histogram(sim: Mapping[str, Any], pnl_pct: FloatArray, trade: str, path: Path) -> Path:
+    """PNG histogram of the P&L in % of premium (central 99 % of paths drawn, the rest counted),
+    with the mean and the 5 % quantile marked.
+
+    ``sim`` is the simulation's JSON object, ``pnl_pct`` its P&L per path, ``trade`` the
+    option described in words."""
+    fig = _figure(8.0, 4.5)
+    ax = fig.subplots()
+    lo, hi = np.quantile(pnl_pct, [0.005, 0.995])
+    pad = 0.05 * max(hi - lo, 1e-12)
+    shown = (pnl_pct >= lo - pad) & (pnl_pct <= hi + pad)
+    outside = int(pnl_pct.size - shown.sum())
+    ax.hist(
+        pnl_pct[shown],
+        bins=80,
+        color="#6baed6",
+        edgecolor="#2171b5",
+        lw=0.4,
+        label=f"{outside} paths beyond the 0.5-99.5 % range not drawn" if outside else None,
+    )
+    mean, q5 = sim["mean_pct"], sim["quantiles_pct"]["5"]
+    ax.axvline(mean, color="#08306b", lw=1.5, label=f"mean {mean:+.2f} %")
+    ax.axvline(q5, color="#cb181d", lw=1.2, ls="--", label=f"5 % quantile {q5:+.2f} %")
+    ax.set_xlabel("P&L at expiry, % of premium (seller, hedged)")
+    ax.set_ylabel("paths")
+    _titled(
+        ax,
+        f"{sim['commodity']} {trade}\nrun {sim['run_id']}, world: {sim['world']}; "
+        f"{sim['paths']} paths x {sim['steps']} rebalancings",
+    )
+    return _save(fig, path)
+
+
+# --- calib hedge replay ------------------------------------------------------------------------
+
+
+def write_replay_csv(replay: Mapping[str, Any], path: Path) -> Path:
+    """One row a day of the replay's JSON object: set, settlements, value, positions, margin,
+    cash, P&L, error, notes."""
+    path = Path(path)
+    path.parent.mkdir(parents=True, exist_ok=True)
+    days: Sequence[Mapping[str, Any]] = replay["days"]
+    n_legs = len(days[0]["futures"]) if days else 0
+    with path.open("w", newline="", encoding="utf-8") as fh:
+        out = csv.writer(fh)
+        out.writerow(
+            ["day", "run_id"]
+            + [f"future_{i + 1}" for i in range(n_legs)]
+            + ["value"]
+            + [f"position_{i + 1}" for i in range(n_legs)]
+            + ["carried", "margin", "cash", "pnl_marked", "hedge_error", "notes"]
+        )
+        for d in days:
+            out.writerow(
+                [d["day"], _cell(d["run_id"])]
+                + [_cell(f) for f in d["futures"]]
+                + [_cell(d["value"])]
+                + [_cell(p) for p in d["positions"]]
+                + [int(d["carried"])]
+                + [_cell(d[k]) for k in ("margin", "cash", "pnl_marked", "hedge_error")]
+                + ["; ".join(d["notes"])]
+            )
+    return path
+
+
+def plot_replay(replay: Mapping[str, Any], trade: str, path: Path) -> Path:
+    """PNG of the marked P&L (cash less the option's model value) day by day, carried days
+    marked, and the final P&L (``replay``: the replay's JSON object; ``trade``: the option in
+    words)."""
+    fig = _figure(9.0, 4.5)
+    ax = fig.subplots()
+    days = np.array([d["day"] for d in replay["days"]], dtype="datetime64[D]")
+    marked = np.array(
+        [np.nan if d["pnl_marked"] is None else d["pnl_marked"] for d in replay["days"]]
+    )
+    ax.plot(days, marked, color="#08519c", marker=".", ms=4, lw=1.2, label="P&L marked to model")
+    carried = np.array([d["carried"] for d in replay["days"]], dtype=bool)
+    known = ~np.isnan(marked)
+    if carried.any():  # drawn on the line between the neighbouring marked days
+        x = days.astype(np.float64)
+        on_line = np.interp(x[carried], x[known], marked[known])
+        ax.plot(
+            days[carried],
+            on_line,
+            ls="none",
+            marker="x",
+            color="#cb181d",
+            label="hedge carried (no set or no price)",
+        )
+    ax.axhline(0.0, color="#777777", lw=0.8)
+    ax.tick_params(axis="x", labelrotation=30)
+    ax.set_ylabel(f"{replay['commodity']} per option")
+    _titled(
+        ax,
+        f"{replay['commodity']} {trade}\nsold {replay['start']}, sets {replay['sets']}; "
+        f"final P&L {replay['pnl']:+.4f} ({replay['pnl_pct']:+.2f} % of premium)",
+    )
+    return _save(fig, path)
+
+
+# --- calib hedge policies ----------------------------------------------------------------------
 
 COLUMNS: tuple[tuple[str, str, str], ...] = (
     ("trades", "trades", "d"),
@@ -111,27 +271,11 @@ def write_policy_csv(rows: Sequence[Mapping[str, Any]], path: Path) -> Path:
     return path
 
 
-def _cell(x: Any) -> str:
-    if x is None:
-        return ""
-    if isinstance(x, float):
-        return "" if math.isnan(x) else f"{x:.10g}"
-    return str(x)
-
-
 def plot_policies(rows: Sequence[Mapping[str, Any]], title: str, path: Path) -> Path:
     """PNG: the final P&L (% of premium) of every sale, one box and its points per policy,
     side by side; one panel per commodity."""
-    from matplotlib.backends.backend_agg import FigureCanvasAgg
-    from matplotlib.figure import Figure
-
-    path = Path(path)
-    path.parent.mkdir(parents=True, exist_ok=True)
     commodities = list(dict.fromkeys(str(r["commodity"]) for r in rows))
-    fig = Figure(
-        figsize=(max(6.0, 2.2 * len(rows) / len(commodities) + 3.0), 4.8), layout="constrained"
-    )
-    FigureCanvasAgg(fig)
+    fig = _figure(max(6.0, 2.2 * len(rows) / len(commodities) + 3.0), 4.8)
     axes = fig.subplots(1, len(commodities), squeeze=False)[0]
     rng = np.random.default_rng(0)  # horizontal jitter of the points only
     for ax, code in zip(axes, commodities, strict=True):
@@ -151,8 +295,7 @@ def plot_policies(rows: Sequence[Mapping[str, Any]], title: str, path: Path) -> 
         ax.set_title(f"{code}: final P&L by policy (diamond: mean)", fontsize=9)
         ax.set_ylabel("P&L at expiry, % of premium (seller, hedged)")
     fig.suptitle(title, fontsize=9)
-    fig.savefig(path, dpi=110)
-    return path
+    return _save(fig, path)
 
 
 def render_policy_page(

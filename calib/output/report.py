@@ -73,7 +73,7 @@ class QuoteFits:
     expiry, delivery : option expiry and the delivery date of its future.
     kind : ``"call"`` or ``"put"``.
     strike : in currency per unit.
-    time_to_expiry : ACT/365 years from the trade date.
+    t_expiry : ACT/365 years from the trade date to the expiry.
     market_vol, model_vol : implied volatilities, decimal (Black-76, or American for an
         American quote).
     market_price, model_price : premiums, currency per unit.
@@ -89,7 +89,7 @@ class QuoteFits:
     delivery: tuple[dt.date, ...]
     kind: tuple[str, ...]
     strike: FloatArray
-    time_to_expiry: FloatArray
+    t_expiry: FloatArray
     market_vol: FloatArray
     model_vol: FloatArray
     market_price: FloatArray
@@ -113,7 +113,7 @@ class QuoteFits:
         object.__setattr__(self, "label", tuple(str(x) for x in self.label))
         for name in (
             "strike",
-            "time_to_expiry",
+            "t_expiry",
             "market_vol",
             "model_vol",
             "market_price",
@@ -141,10 +141,14 @@ class QuoteFits:
 
 @dataclass(frozen=True, slots=True, eq=False)
 class FuturesCurve:
-    """The settled futures curve of the trade date, one entry a contract."""
+    """The settled futures curve of the trade date, one entry a contract.
+
+    ``delivery`` the contracts' delivery dates, ``t_delivery`` the same in ACT/365 years from
+    the trade date, ``settle`` their settlements.
+    """
 
     delivery: tuple[dt.date, ...]
-    time_to_maturity: FloatArray
+    t_delivery: FloatArray
     settle: FloatArray
 
     def __post_init__(self) -> None:
@@ -152,7 +156,7 @@ class FuturesCurve:
         n = len(self.delivery)
         if n == 0:
             raise ReportInputError("report", "the futures curve has no contracts")
-        for name in ("time_to_maturity", "settle"):
+        for name in ("t_delivery", "settle"):
             a = _array(f"curve.{name}", getattr(self, name))
             if a.size != n:
                 raise ReportInputError("report", f"curve.{name} has {a.size} entries, not {n}")
@@ -411,7 +415,7 @@ def _fig_smiles(inp: ReportInputs) -> Figure:
                 "top", functions=(lambda x, f=forward: x / f, lambda m, f=forward: m * f)
             )
             top.tick_params(labelsize=6)
-        ax.set_title(f"{expiry.isoformat()}  ({q.time_to_expiry[idx[0]]:.2f} y)", fontsize=9)
+        ax.set_title(f"{expiry.isoformat()}  ({q.t_expiry[idx[0]]:.2f} y)", fontsize=9)
         ax.tick_params(labelsize=7)
         ax.grid(True, color="#e0e0e0", lw=0.5)
     for ax in axes[len(groups) :]:
@@ -499,7 +503,7 @@ def _fig_curve(inp: ReportInputs) -> Figure:
 
 
 def _fig_term_structure(inp: ReportInputs) -> Figure:
-    horizon = max(float(inp.curve.time_to_maturity.max()), 0.25)
+    horizon = max(float(inp.curve.t_delivery.max()), 0.25)
     tau = np.linspace(0.0, horizon, 241)
     fig = _figure(8.0, 3.8)
     ax = fig.subplots()
@@ -526,8 +530,8 @@ def _fig_term_structure(inp: ReportInputs) -> Figure:
         label="historical",
     )
     ax.plot(
-        inp.curve.time_to_maturity,
-        np.zeros_like(inp.curve.time_to_maturity),
+        inp.curve.t_delivery,
+        np.zeros_like(inp.curve.t_delivery),
         "|",
         ms=10,
         color="#333333",

@@ -28,6 +28,7 @@ from typing import TYPE_CHECKING, Any
 import numpy as np
 import numpy.typing as npt
 
+from calib.calibrate.settings import refuse_unknown_keys
 from calib.errors import SettingError
 from calib.model.twofactor import TwoFactorParams
 from calib.record.fit import ConstraintReport, Gate
@@ -80,10 +81,7 @@ class GateLimits:
 
     @classmethod
     def from_dict(cls, data: Mapping[str, Any]) -> GateLimits:
-        known = {f.name for f in fields(cls)}
-        unknown = sorted(set(data) - known)
-        if unknown:
-            raise SettingError("gates", unknown, f"unknown key(s); known: {sorted(known)}")
+        refuse_unknown_keys("gates", cls, data)
         return cls(**dict(data))
 
 
@@ -260,5 +258,4 @@ def evaluate_gates(
 
 
 def _label(report: ConstraintReport) -> str:
-    where = "" if report.bucket is None else f"@{report.bucket}"
-    return f"{report.name}{where} (slack {report.slack:.3g})"
+    return f"{report.label} (slack {report.slack:.3g})"

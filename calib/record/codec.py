@@ -50,6 +50,17 @@ def encode(value: Any) -> Any:
     raise TypeError(f"cannot encode {type(value).__name__}")
 
 
+class Encoded:
+    """Mixed into a dataclass whose JSON object is :func:`encode` of it: its ``to_dict``."""
+
+    __slots__ = ()
+
+    def to_dict(self) -> dict[str, Any]:
+        """Plain values for JSON (dates in ISO form, a NaN as ``null``)."""
+        out: dict[str, Any] = encode(self)
+        return out
+
+
 def copy_fields(cls: type[T], source: object, **given: Any) -> T:
     """An instance of the dataclass ``cls``: each field ``given``, else ``source``'s attribute of
     the same name (a record built from a row or from another record)."""

@@ -24,7 +24,7 @@ from dataclasses import dataclass
 from typing import Any
 
 from calib.model.params import TwoFactorParams
-from calib.record.codec import decode, encode
+from calib.record.codec import Encoded, decode, encode
 
 SCHEMA_VERSION = 2
 """Version of the stored layout (1: before the record existed, no ``schema_version`` key)."""
@@ -56,7 +56,7 @@ class BucketVols:
 
 
 @dataclass(frozen=True, slots=True)
-class ConstraintReport:
+class ConstraintReport(Encoded):
     """One constraint at the solution.
 
     Attributes
@@ -96,12 +96,14 @@ class ConstraintReport:
         """Whether the constraint holds within its tolerance."""
         return self.slack is None or self.slack >= -self.tolerance
 
-    def to_dict(self) -> dict[str, Any]:
-        return encode(self)  # type: ignore[no-any-return]
+    @property
+    def label(self) -> str:
+        """Its name, with ``@k`` for forward-mode bucket ``k``."""
+        return self.name if self.bucket is None else f"{self.name}@{self.bucket}"
 
 
 @dataclass(frozen=True, slots=True)
-class Gate:
+class Gate(Encoded):
     """One gate's verdict: its value, its limit and whether it passed."""
 
     name: str
@@ -109,9 +111,6 @@ class Gate:
     limit: float | str | None
     passed: bool
     detail: str
-
-    def to_dict(self) -> dict[str, Any]:
-        return encode(self)  # type: ignore[no-any-return]
 
 
 @dataclass(frozen=True, slots=True)
@@ -173,12 +172,8 @@ class FitRecord:
 
     @property
     def binding(self) -> tuple[str, ...]:
-        """Names of the binding constraints (with ``@k`` for forward-mode buckets)."""
-        return tuple(
-            c.name if c.bucket is None else f"{c.name}@{c.bucket}"
-            for c in self.constraints
-            if c.binds
-        )
+        """Labels of the binding constraints (:attr:`ConstraintReport.label`)."""
+        return tuple(c.label for c in self.constraints if c.binds)
 
     @property
     def all_gates_pass(self) -> bool:

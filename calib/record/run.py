@@ -14,12 +14,12 @@ from types import MappingProxyType
 from typing import Any
 
 from calib.model.params import PARAM_NAMES, TwoFactorParams
-from calib.record.codec import encode
+from calib.record.codec import Encoded, encode
 from calib.record.fit import BucketVols, FitRecord, fit_from_columns
 
 
 @dataclass(frozen=True, slots=True)
-class EventRecord:
+class EventRecord(Encoded):
     """One status change of a run: to what, when, by whom and why."""
 
     event_id: int
@@ -28,9 +28,6 @@ class EventRecord:
     at: datetime
     by: str
     note: str
-
-    def to_dict(self) -> dict[str, Any]:
-        return encode(self)  # type: ignore[no-any-return]
 
 
 @dataclass(frozen=True, slots=True)
@@ -136,7 +133,7 @@ class ApprovalRecord:
 
     def to_dict(self) -> dict[str, Any]:
         """Plain values for JSON: the seven parameter names at the top level."""
-        return _flat_params(encode(self))
+        return flat_params(encode(self))
 
 
 @dataclass(frozen=True, slots=True)
@@ -168,10 +165,10 @@ class ApprovedSet:
 
     def to_dict(self) -> dict[str, Any]:
         """Plain values for JSON: the seven parameter names at the top level."""
-        return _flat_params(encode(self))
+        return flat_params(encode(self))
 
 
-def _flat_params(data: dict[str, Any]) -> dict[str, Any]:
+def flat_params(data: dict[str, Any]) -> dict[str, Any]:
     """``data`` with its ``params`` object spread into the top level (the stable keys)."""
     out: dict[str, Any] = {}
     for key, value in data.items():

@@ -20,6 +20,8 @@ from sqlalchemy import Table, select
 from sqlalchemy.orm import Session
 
 from calib.model.twofactor import PARAM_NAMES, TwoFactorParams
+from calib.record.codec import Encoded, copy_fields, encode
+from calib.record.run import flat_params
 from calib.store.models import Commodity
 from calib.store.quotes import DateArray, insert_columns, require_commodity
 from calib.store.run_models import EstimateState, HistoricalEstimate, RollingSeries
@@ -60,55 +62,19 @@ class EstimateRecord:
 
     def to_dict(self) -> dict[str, Any]:
         """Plain values for JSON, the seven parameter names at the top level."""
-        return {
-            "estimate_id": self.estimate_id,
-            "commodity": self.commodity,
-            "source": self.source,
-            **self.params.to_dict(),
-            "std_errors": dict(self.std_errors),
-            "noise_sd": list(self.noise_sd),
-            "window_start": self.window_start.isoformat(),
-            "window_end": self.window_end.isoformat(),
-            "n_contracts": self.n_contracts,
-            "n_days": self.n_days,
-            "n_obs": self.n_obs,
-            "loglik": self.loglik,
-            "rate": self.rate,
-            "converged": self.converged,
-            "message": self.message,
-            "inputs_sha256": self.inputs_sha256,
-            "settings": dict(self.settings),
-            "created_at": self.created_at.isoformat(),
-            "created_by": self.created_by,
-            "code_version": self.code_version,
-            "series_id": self.series_id,
-            "covariance": None if self.covariance is None else [list(r) for r in self.covariance],
-        }
+        return flat_params(encode(self))
 
 
 def _record(row: HistoricalEstimate, code: str) -> EstimateRecord:
-    return EstimateRecord(
+    return copy_fields(
+        EstimateRecord,
+        row,
         estimate_id=row.id,
         commodity=code,
-        created_at=row.created_at,
-        created_by=row.created_by,
-        source=row.source,
-        window_start=row.window_start,
-        window_end=row.window_end,
-        n_contracts=row.n_contracts,
-        n_days=row.n_days,
-        n_obs=row.n_obs,
-        loglik=row.loglik,
-        rate=row.rate,
-        converged=row.converged,
-        message=row.message,
         params=TwoFactorParams(**{n: getattr(row, n) for n in PARAM_NAMES}),
         std_errors=MappingProxyType(dict(row.std_errors)),
         noise_sd=tuple(row.noise_sd),
-        inputs_sha256=row.inputs_sha256,
         settings=MappingProxyType(dict(row.settings)),
-        code_version=row.code_version,
-        series_id=row.series_id,
         covariance=None
         if row.covariance is None
         else tuple(tuple(None if v is None else float(v) for v in r) for r in row.covariance),
@@ -269,7 +235,7 @@ def estimate_states(*, session: Session, estimate_id: int) -> pd.DataFrame:
 
 
 @dataclass(frozen=True, slots=True)
-class SeriesRecord:
+class SeriesRecord(Encoded):
     """A stored rolling series (read-only)."""
 
     series_id: int
@@ -283,32 +249,14 @@ class SeriesRecord:
     settings: Mapping[str, Any]
     settings_sha256: str
 
-    def to_dict(self) -> dict[str, Any]:
-        return {
-            "series_id": self.series_id,
-            "commodity": self.commodity,
-            "window_length": self.window_length,
-            "step": self.step,
-            "first_end": self.first_end.isoformat(),
-            "last_end": self.last_end.isoformat(),
-            "settings": dict(self.settings),
-            "created_at": self.created_at.isoformat(),
-            "created_by": self.created_by,
-        }
-
 
 def _series(row: RollingSeries, code: str) -> SeriesRecord:
-    return SeriesRecord(
+    return copy_fields(
+        SeriesRecord,
+        row,
         series_id=row.id,
         commodity=code,
-        created_at=row.created_at,
-        created_by=row.created_by,
-        window_length=row.window_length,
-        step=row.step,
-        first_end=row.first_end,
-        last_end=row.last_end,
         settings=MappingProxyType(dict(row.settings)),
-        settings_sha256=row.settings_sha256,
     )
 
 

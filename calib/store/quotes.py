@@ -706,6 +706,29 @@ def trade_dates(
     return list(session.scalars(stmt))
 
 
+def previous_trade_date(
+    *, session: Session, commodity_id: int, before: date, as_of: datetime | None = None
+) -> date | None:
+    """The last trading day strictly before ``before`` with a futures settlement known at
+    ``as_of`` (the last of :func:`trade_dates` up to the day before), or ``None``.
+
+    One indexed look-up, however long the history.
+    """
+    stmt = (
+        select(_futures.c.trade_date)
+        .join(_batches, _batches.c.id == _futures.c.batch_id)
+        .where(
+            _futures.c.commodity_id == commodity_id,
+            _futures.c.trade_date < before,
+            _batches.c.received_at <= (as_of or utc_now()),
+        )
+        .order_by(_futures.c.trade_date.desc())
+        .limit(1)
+    )
+    found: date | None = session.scalars(stmt).first()
+    return found
+
+
 def load_futures_history(
     *,
     session: Session,

@@ -237,6 +237,26 @@ def append_event(
     return _event(row)
 
 
+def add_first_event(
+    *, session: Session, run_id: int, commodity_id: int, outcome: str, by: str, note: str
+) -> None:
+    """The first event of the run just inserted by :func:`add_run` in this transaction: its
+    status is :data:`FIRST_STATUS` of ``outcome`` (the caller passed the run's fit, or none).
+
+    :func:`append_event` for the writer that knows the run has no event yet: nothing is read
+    back (a backfill writes thousands of runs). Flushed with the transaction's next statement.
+    """
+    row = RunEvent(
+        run_id=run_id,
+        commodity_id=commodity_id,
+        to_status=FIRST_STATUS[outcome],
+        at=utc_now(),
+        by=by,
+        note=note,
+    )
+    session.add(row)
+
+
 def latest_approved(
     *, session: Session, commodity: str, as_of: datetime | None = None
 ) -> RunRecord | None:

@@ -66,6 +66,7 @@ from calib.compute.executor import AHEAD_PER_WORKER, Executor, InlineExecutor
 from calib.errors import BackfillRangeError
 from calib.model.twofactor import TwoFactorParams
 from calib.policy.settings import RunSettings, default_settings
+from calib.record.codec import Encoded
 from calib.store.engine import Store
 from calib.store.quotes import DayQuotes, load_days, trade_dates
 from calib.store.runs import run_keys
@@ -121,7 +122,7 @@ class DayFit:
 
 
 @dataclass(frozen=True, slots=True)
-class BackfillDay:
+class BackfillDay(Encoded):
     """One day of a backfill as stored."""
 
     commodity: str
@@ -131,16 +132,6 @@ class BackfillDay:
     run_id: int | None
     reason: str | None
     auto_approved: bool
-
-    def to_dict(self) -> dict[str, Any]:
-        return {
-            "commodity": self.commodity,
-            "trade_date": self.trade_date.isoformat(),
-            "outcome": self.outcome,
-            "run_id": self.run_id,
-            "reason": self.reason,
-            "auto_approved": self.auto_approved,
-        }
 
 
 @dataclass(frozen=True, slots=True)
@@ -251,7 +242,7 @@ def calibrator_for(settings: CalibrationSettings, quotes: OptionQuotes) -> Calib
         cache = _CALIBRATORS.cache = {}
     n = 1
     if settings.mode == "forward":
-        n = max(bucket_edges(prepare(quotes, settings).expiry).size - 1, 1)
+        n = max(bucket_edges(prepare(quotes, settings).t_expiry).size - 1, 1)
     found = cache.get((settings, n))
     if found is None:
         found = cache[(settings, n)] = Calibrator(settings, n)
@@ -297,12 +288,18 @@ class _Plan:
     write_seconds: float = 0.0
     seconds: float = 0.0
 
-    def stored_days(self, session: Session) -> set[date]:
-        """Days of the plan that have a run with its estimate and its settings."""
+    def stored_days(
+        self, session: Session, start: date | None = None, end: date | None = None
+    ) -> set[date]:
+        """Days of the plan (within ``start..end`` when given) that have a run with its
+        estimate and its settings."""
         if not self.dates:
             return set()
         keys = run_keys(
-            session=session, commodity=self.commodity, start=self.dates[0], end=self.dates[-1]
+            session=session,
+            commodity=self.commodity,
+            start=start or self.dates[0],
+            end=end or self.dates[-1],
         )
         return {
             k.trade_date
@@ -442,7 +439,10 @@ def backfill_many(
                 plan.settings,
                 by=by,
                 auto_approve=auto_approve and plan.study is None,
-                skip_stored=plan.stored_days,
+                # only the batch's days: the check costs the same on the last batch as on the first
+                skip_stored=lambda session: plan.stored_days(
+                    session, batch[0][0].trade_date, batch[-1][0].trade_date
+                ),
                 study=plan.study,
             )
         )

@@ -141,7 +141,7 @@ def store_window(
     session: Session,
     *,
     commodity_id: int,
-    user: str,
+    by: str,
     window: WindowInputs,
     result: WindowFit,
     series_id: int | None = None,
@@ -157,7 +157,7 @@ def store_window(
         session=session,
         commodity_id=commodity_id,
         created_at=utc_now(),
-        created_by=user,
+        created_by=by,
         source="kalman",
         window_start=_day(dates[0]),
         window_end=_day(dates[-1]),
@@ -193,7 +193,7 @@ def estimate(
     start: date,
     end: date,
     *,
-    user: str,
+    by: str,
     n_contracts: int = 5,
     min_days: int = MIN_DAYS,
     progress: Progress = _quiet,
@@ -229,9 +229,7 @@ def estimate(
     progress(f"storing the estimate ({result.message})")
     with sessions.begin() as session:
         begin_write(session)
-        estimate_id = store_window(
-            session, commodity_id=cid, user=user, window=window, result=result
-        )
+        estimate_id = store_window(session, commodity_id=cid, by=by, window=window, result=result)
         record = get_estimate(session=session, estimate_id=estimate_id)
     assert record is not None
     return record
@@ -286,7 +284,7 @@ def read_estimate_file(path: Path) -> dict[str, Any]:
 
 
 def import_estimate(
-    sessions: sessionmaker[Session], commodity: str, path: Path, *, user: str
+    sessions: sessionmaker[Session], commodity: str, path: Path, *, by: str
 ) -> EstimateRecord:
     """Register an estimate made elsewhere, marked ``imported``.
 
@@ -310,7 +308,7 @@ def import_estimate(
             session=session,
             commodity_id=cid,
             created_at=utc_now(),
-            created_by=user,
+            created_by=by,
             source="imported",
             window_start=data["window_start"],
             window_end=data["window_end"],

@@ -13,9 +13,10 @@ stores is :class:`calib.record.fit.FitRecord`.
 from __future__ import annotations
 
 import warnings
+from bisect import bisect_left
 from collections.abc import Callable, Collection, Sequence
 from dataclasses import dataclass
-from datetime import date, timedelta
+from datetime import date, datetime, timedelta
 from typing import Any
 
 import numpy as np
@@ -50,16 +51,24 @@ from calib.store.estimates import (
     latest_estimate,
     unconverged_estimate_ids,
 )
-from calib.store.quotes import DayQuotes, current_quotes, load_day, trade_dates, year_fractions
+from calib.store.quotes import (
+    DayQuotes,
+    current_quotes,
+    load_day,
+    previous_trade_date,
+    trade_dates,
+    year_fractions,
+)
 from calib.store.runs import (
     RunRecord,
+    add_first_event,
     add_residuals,
     add_run,
-    append_event,
     approvals_held,
     latest_approved,
     lock_commodity,
     require_run,
+    run_quotes,
     study_baseline,
 )
 from calib.types import FloatArray
@@ -97,7 +106,7 @@ def option_quotes(day: DayQuotes) -> OptionQuotes:
             "forward",
             f"missing: no futures settlement for delivery {o.delivery[j]} (row {o.row_id[j]})",
         )
-    expiry = year_fractions(day.trade_date, o.expiry)
+    t_expiry = year_fractions(day.trade_date, o.expiry)
     discount = day.rates.discount(o.expiry)
     premium = np.array(o.premium, dtype=np.float64)
     missing = np.isnan(premium)
@@ -107,15 +116,15 @@ def option_quotes(day: DayQuotes) -> OptionQuotes:
             premium[fill] = pricer(
                 forward[fill],
                 o.strike[fill],
-                expiry[fill],
-                -np.log(discount[fill]) / expiry[fill],
+                t_expiry[fill],
+                -np.log(discount[fill]) / t_expiry[fill],
                 o.implied_vol[fill],
                 o.is_call[fill],
             )
     quoted = ~(np.isnan(o.bid) | np.isnan(o.ask))
     return OptionQuotes(
-        expiry=expiry,
-        maturity=year_fractions(day.trade_date, o.delivery),
+        t_expiry=t_expiry,
+        t_delivery=year_fractions(day.trade_date, o.delivery),
         is_call=np.asarray(o.is_call),
         strike=np.asarray(o.strike),
         forward=forward,
@@ -250,6 +259,13 @@ def choose_estimate(session: Session, commodity: str, estimate_id: int | None) -
     return named
 
 
+def fitted_inputs(session: Session, run: RunRecord) -> tuple[EstimateRecord, DayQuotes]:
+    """What ``run`` was fitted from: the estimate it held fixed and its quote rows (by id)."""
+    estimate = get_estimate(session=session, estimate_id=run.estimate_id)
+    assert estimate is not None  # foreign key
+    return estimate, run_quotes(session=session, run=run)
+
+
 # --- units of work -----------------------------------------------------------------------------
 
 
@@ -358,6 +374,7 @@ def store_attempts(
         # under the lock only these writes can change the approved set in force
         taken = set() if skip_stored is None else set(skip_stored(session))
         previous = latest_approved(session=session, commodity=fits[0][0].commodity)
+        moves = curve_moves(session, [day for day, attempt in fits if attempt.result is not None])
         for day, attempt in fits:
             if day.trade_date in taken:
                 out.append(StoredAttempt(None, previous, False))
@@ -369,6 +386,7 @@ def store_attempts(
             stored = _store_in(
                 session,
                 day,
+                moves.get(day.trade_date),
                 estimate_id,
                 settings,
                 run_settings,
@@ -388,6 +406,7 @@ def store_attempts(
 def _store_in(
     session: Session,
     day: DayQuotes,
+    move: CurveMove | None,
     estimate_id: int,
     settings: RunSettings,
     run_settings: dict[str, Any],
@@ -400,7 +419,8 @@ def _store_in(
     study: str | None = None,
 ) -> StoredAttempt:
     """Write one day's run inside the caller's write transaction (which holds the lock),
-    gated against ``previous``, the approved run in force."""
+    gated against ``previous``, the approved run in force, and ``move``, the day's curve
+    move (:func:`curve_moves`)."""
     inputs = _inputs(day)
     result = attempt.result
     gates: tuple[Gate, ...] = ()
@@ -410,7 +430,7 @@ def _store_in(
             result,
             settings.gates,
             None if previous is None else previous.params,
-            _curve_move(session, day),
+            move,
         )
         record = fit_record(result, gates, attempt.warnings)
     run_id = add_run(
@@ -444,15 +464,14 @@ def _store_in(
                 "weight": result.weight,
             },
         )
-        append_event(session=session, run_id=run_id, to_status="candidate", by=by, note="fitted")
-    else:
-        append_event(
-            session=session,
-            run_id=run_id,
-            to_status="rejected",
-            by=by,
-            note=f"fit failed: {attempt.failure}",
-        )
+    add_first_event(
+        session=session,
+        run_id=run_id,
+        commodity_id=day.commodity_id,
+        outcome="failed" if record is None else "fitted",
+        by=by,
+        note="fitted" if record is not None else f"fit failed: {attempt.failure}",
+    )
     approved = auto_approve and record is not None and record.all_gates_pass
     if approved:
         note = "auto-approved: every gate passed"
@@ -460,28 +479,58 @@ def _store_in(
     return StoredAttempt(run_id, previous, approved)
 
 
-def _curve_move(session: Session, day: DayQuotes) -> CurveMove | None:
-    """``day``'s futures curve against the previous stored trading day's, as known at the
-    day's ``as_of`` (``None``: no earlier day)."""
-    end = day.trade_date - timedelta(days=1)
-    before = trade_dates(session=session, commodity=day.commodity, end=end, as_of=day.as_of)
-    if not before:
-        return None
-    rows = current_quotes(
-        session=session,
-        kind="futures",
-        commodity_ids=[day.commodity_id],
-        start=before[-1],
-        end=before[-1],
-        as_of=day.as_of,
-    )
-    return curve_move(
-        day.futures.delivery,
-        day.futures.settle,
-        rows["delivery"].to_numpy().astype("datetime64[D]"),
-        rows["settle"].to_numpy(dtype=np.float64, na_value=np.nan),
-        before[-1],
-    )
+def curve_moves(session: Session, days: Sequence[DayQuotes]) -> dict[date, CurveMove | None]:
+    """Per day of ``days`` (one commodity), its futures curve against the previous stored
+    trading day's, as known at the day's ``as_of`` (``None``: no earlier day).
+
+    A few queries for all of ``days`` (per ``as_of`` they were read at: the previous trading
+    day of the first, the trading days up to the last, their futures), whatever the length
+    of the stored history.
+    """
+    out: dict[date, CurveMove | None] = {}
+    by_as_of: dict[datetime, list[DayQuotes]] = {}
+    for day in days:
+        by_as_of.setdefault(day.as_of, []).append(day)
+    for as_of, group in by_as_of.items():
+        first = min(day.trade_date for day in group)
+        earliest = previous_trade_date(
+            session=session, commodity_id=group[0].commodity_id, before=first, as_of=as_of
+        )
+        known = trade_dates(
+            session=session,
+            commodity=group[0].commodity,
+            start=earliest or first,
+            end=max(day.trade_date for day in group) - timedelta(days=1),
+            as_of=as_of,
+        )
+        before = {
+            day.trade_date: known[k - 1] if (k := bisect_left(known, day.trade_date)) else None
+            for day in group
+        }
+        out.update((d, None) for d, prior in before.items() if prior is None)
+        wanted = sorted({prior for prior in before.values() if prior is not None})
+        if not wanted:
+            continue
+        rows = current_quotes(
+            session=session,
+            kind="futures",
+            commodity_ids=[group[0].commodity_id],
+            start=wanted[0],
+            end=wanted[-1],
+            as_of=as_of,
+        )
+        on = rows["trade_date"].to_numpy()
+        delivery = rows["delivery"].to_numpy().astype("datetime64[D]")
+        settle = rows["settle"].to_numpy(dtype=np.float64, na_value=np.nan)
+        for day in group:
+            prior = before[day.trade_date]
+            if prior is None:
+                continue
+            mine = on == prior
+            out[day.trade_date] = curve_move(
+                day.futures.delivery, day.futures.settle, delivery[mine], settle[mine], prior
+            )
+    return out
 
 
 def study_settings(settings: RunSettings, study: str | None) -> dict[str, Any]:

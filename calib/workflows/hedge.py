@@ -16,11 +16,11 @@ settlement. Rebalancing dates are ``N = round(steps_per_year * t)`` (at least 1)
 
 from __future__ import annotations
 
-import csv
 import json
 import math
 from dataclasses import dataclass
 from datetime import UTC, date, datetime, time, timedelta
+from functools import partial
 from pathlib import Path
 from typing import Any
 
@@ -37,9 +37,7 @@ from calib.errors import (
     HEDGE_WORLD_FILE,
     HEDGE_WORLD_RUN,
     SPREAD_EXPIRY,
-    SPREAD_NOT_QUOTED,
     SPREAD_ORDER,
-    SPREAD_RUN_FAILED,
     SPREAD_RUN_OTHER,
     HedgeRequestError,
     ParameterError,
@@ -53,6 +51,7 @@ from calib.hedge.world import initial_state, simulate_futures
 from calib.model.black76 import Kind
 from calib.model.spread import ForwardVols
 from calib.model.twofactor import TwoFactorParams
+from calib.record.codec import Encoded
 from calib.store.quotes import (
     DAYS_PER_YEAR,
     ZeroCurve,
@@ -65,7 +64,7 @@ from calib.store.quotes import (
 )
 from calib.store.runs import RunRecord, approved_history, latest_approved, require_run
 from calib.types import FloatArray
-from calib.workflows.pricing import run_vols
+from calib.workflows.pricing import discount_to, fitted_run, quoted_settlements, run_vols
 
 STEPS_PER_YEAR = 252
 """Default rebalancings per year (daily)."""
@@ -228,14 +227,7 @@ def _run_in_force(
             when = "now" if as_of is None else f"as of {as_of.isoformat()}"
             raise HedgeRequestError(commodity, HEDGE_NO_SET.format(when=when))
         return found
-    run = require_run(session=session, run_id=run_id)
-    if run.commodity != commodity:
-        raise HedgeRequestError(
-            commodity, SPREAD_RUN_OTHER.format(run_id=run_id, other=run.commodity)
-        )
-    if run.params is None:
-        raise HedgeRequestError(commodity, SPREAD_RUN_FAILED.format(run_id=run_id))
-    return run
+    return fitted_run(session, commodity, run_id, partial(HedgeRequestError, commodity))
 
 
 def _world_from_file(commodity: str, path: Path) -> TwoFactorParams:
@@ -320,14 +312,10 @@ def simulate(
         raise HedgeRequestError(
             commodity, SPREAD_EXPIRY.format(expiry=trade.expiry, day=day, near=first)
         )
-    legs = np.array(trade.legs, dtype="datetime64[D]")
-    settles = quotes.futures.settle_for(legs)
-    for delivery, value in zip(trade.legs, settles, strict=True):
-        if np.isnan(value):
-            raise HedgeRequestError(commodity, SPREAD_NOT_QUOTED.format(delivery=delivery, day=day))
+    settles = quoted_settlements(quotes, trade.legs, partial(HedgeRequestError, commodity))
     option = option_for(trade, day)
-    t = option.expiry
-    discount = float(quotes.rates.discount(np.array([trade.expiry], dtype="datetime64[D]"))[0])
+    t = option.t_expiry
+    discount = discount_to(quotes, trade.expiry)
     rate = -math.log(discount) / t
     vols: TwoFactorParams | ForwardVols = run_vols(run, day, t)
     curve_taus = year_fractions(day, quotes.futures.delivery)
@@ -336,7 +324,7 @@ def simulate(
     steps = max(1, round(steps_per_year * t))
     times = np.linspace(0.0, t, steps + 1)
     futures = simulate_futures(
-        world_params, option.maturities, times, settles, state0, rate, paths, rng=seed
+        world_params, option.t_legs, times, settles, state0, rate, paths, rng=seed
     )
     result = hedge_paths(option, vols, times, futures, rate)
     return HedgeSimulation(
@@ -352,69 +340,6 @@ def simulate(
         result=result,
         stats=pnl_stats(result.pnl_pct, seed=seed + 1),
     )
-
-
-def write_paths_csv(sim: HedgeSimulation, path: Path) -> Path:
-    """One row a path: P&L in currency and % of premium, payoff, RMS step hedge error."""
-    path = Path(path)
-    path.parent.mkdir(parents=True, exist_ok=True)
-    r = sim.result
-    rms = np.sqrt(np.mean(r.hedge_error**2, axis=1))
-    with path.open("w", newline="", encoding="utf-8") as fh:
-        out = csv.writer(fh)
-        out.writerow(["path", "pnl", "pnl_pct", "payoff", "hedge_error_rms"])
-        for i in range(r.n_paths):
-            out.writerow(
-                [
-                    i,
-                    f"{r.pnl[i]:.10g}",
-                    f"{r.pnl_pct[i]:.10g}",
-                    f"{r.payoff[i]:.10g}",
-                    f"{rms[i]:.10g}",
-                ]
-            )
-    return path
-
-
-def plot_histogram(sim: HedgeSimulation, path: Path) -> Path:
-    """PNG histogram of the P&L in % of premium (central 99 % of paths drawn, the rest counted),
-    with the mean and the 5 % quantile marked."""
-    from matplotlib.backends.backend_agg import FigureCanvasAgg
-    from matplotlib.figure import Figure
-
-    path = Path(path)
-    path.parent.mkdir(parents=True, exist_ok=True)
-    fig = Figure(figsize=(8.0, 4.5), layout="constrained")
-    FigureCanvasAgg(fig)
-    ax = fig.subplots()
-    pct = sim.result.pnl_pct
-    lo, hi = np.quantile(pct, [0.005, 0.995])
-    pad = 0.05 * max(hi - lo, 1e-12)
-    shown = (pct >= lo - pad) & (pct <= hi + pad)
-    outside = int(pct.size - shown.sum())
-    ax.hist(
-        pct[shown],
-        bins=80,
-        color="#6baed6",
-        edgecolor="#2171b5",
-        lw=0.4,
-        label=f"{outside} paths beyond the 0.5-99.5 % range not drawn" if outside else None,
-    )
-    s = sim.stats
-    ax.axvline(s.mean.value, color="#08306b", lw=1.5, label=f"mean {s.mean.value:+.2f} %")
-    q5 = s.quantiles["5"].value
-    ax.axvline(q5, color="#cb181d", lw=1.2, ls="--", label=f"5 % quantile {q5:+.2f} %")
-    ax.set_xlabel("P&L at expiry, % of premium (seller, hedged)")
-    ax.set_ylabel("paths")
-    ax.set_title(
-        f"{sim.commodity} {sim.trade.describe()}\n"
-        f"run {sim.run.run_id}, world: {sim.world_source}; "
-        f"{sim.result.n_paths} paths x {sim.result.steps} rebalancings",
-        fontsize=9,
-    )
-    ax.legend(fontsize=8)
-    fig.savefig(path, dpi=110)
-    return path
 
 
 # --- replay on stored history ------------------------------------------------------------------
@@ -441,7 +366,7 @@ OLD_CURVE = "zero curve of {day} used"
 
 
 @dataclass(frozen=True, slots=True)
-class ReplayDay:
+class ReplayDay(Encoded):
     """One day of a replay: what was used, and the account after it."""
 
     day: date
@@ -452,27 +377,10 @@ class ReplayDay:
     carried: bool
     margin: float
     cash: float
-    marked: float
+    pnl_marked: float
+    """Cash less the option's model value."""
     hedge_error: float
     notes: tuple[str, ...]
-
-    def to_dict(self) -> dict[str, Any]:
-        def num(x: float) -> float | None:
-            return None if math.isnan(x) else x
-
-        return {
-            "day": self.day.isoformat(),
-            "run_id": self.run_id,
-            "futures": [num(f) for f in self.futures],
-            "value": num(self.value),
-            "positions": list(self.positions),
-            "carried": self.carried,
-            "margin": self.margin,
-            "cash": self.cash,
-            "pnl_marked": num(self.marked),
-            "hedge_error": num(self.hedge_error),
-            "notes": list(self.notes),
-        }
 
 
 @dataclass(frozen=True, slots=True)
@@ -538,7 +446,7 @@ class HedgeReplay:
             run = "-" if d.run_id is None else str(d.run_id)
             row = f"{d.day.isoformat():<10} {run:>5} " + " ".join(f"{f:>10.4f}" for f in d.futures)
             row += f" {d.value:>10.4f} " + " ".join(f"{p:>+8.4f}" for p in d.positions)
-            row += f" {d.margin:>+10.4f} {d.marked:>+10.4f}  " + "; ".join(d.notes)
+            row += f" {d.margin:>+10.4f} {d.pnl_marked:>+10.4f}  " + "; ".join(d.notes)
             lines.append(row.replace("nan", "  -"))
         c = self.counts()
         lines.append(
@@ -740,7 +648,7 @@ def value_days(
         if run is None or np.any(np.isnan(F[k])):
             continue
         option = option_for(trade, day)
-        vols = run_vols(run, day, option.expiry)
+        vols = run_vols(run, day, option.t_expiry)
         law = remaining_law(option, vols, np.zeros(1))
         value, ratio = value_and_ratios(
             option,
@@ -800,7 +708,7 @@ def _replay_days(commodity: str, sets: str, morning: time, valued: ValuedDays) -
             carried=bool(book.carried[k]),
             margin=float(book.margin[k]),
             cash=float(book.cash[k]),
-            marked=float(book.marked[k]),
+            pnl_marked=float(book.marked[k]),
             hedge_error=float(book.hedge_error[k]),
             notes=valued.notes[k],
         )
@@ -816,79 +724,3 @@ def _replay_days(commodity: str, sets: str, morning: time, valued: ValuedDays) -
         payoff=payoff,
         pnl=book.pnl,
     )
-
-
-def write_replay_csv(result: HedgeReplay, path: Path) -> Path:
-    """One row a day: set, settlements, value, positions, margin, cash, P&L, error, notes."""
-    path = Path(path)
-    path.parent.mkdir(parents=True, exist_ok=True)
-    n_legs = len(result.trade.legs)
-    with path.open("w", newline="", encoding="utf-8") as fh:
-        out = csv.writer(fh)
-        out.writerow(
-            ["day", "run_id"]
-            + [f"future_{i + 1}" for i in range(n_legs)]
-            + ["value"]
-            + [f"position_{i + 1}" for i in range(n_legs)]
-            + ["carried", "margin", "cash", "pnl_marked", "hedge_error", "notes"]
-        )
-        for d in result.days:
-            out.writerow(
-                [d.day.isoformat(), "" if d.run_id is None else d.run_id]
-                + [_cell(f) for f in d.futures]
-                + [_cell(d.value)]
-                + [_cell(p) for p in d.positions]
-                + [
-                    int(d.carried),
-                    _cell(d.margin),
-                    _cell(d.cash),
-                    _cell(d.marked),
-                    _cell(d.hedge_error),
-                    "; ".join(d.notes),
-                ]
-            )
-    return path
-
-
-def _cell(x: float) -> str:
-    return "" if math.isnan(x) else f"{x:.10g}"
-
-
-def plot_replay(result: HedgeReplay, path: Path) -> Path:
-    """PNG of the marked P&L (cash less the option's model value) day by day, carried days
-    marked, and the final P&L."""
-    from matplotlib.backends.backend_agg import FigureCanvasAgg
-    from matplotlib.figure import Figure
-
-    path = Path(path)
-    path.parent.mkdir(parents=True, exist_ok=True)
-    fig = Figure(figsize=(9.0, 4.5), layout="constrained")
-    FigureCanvasAgg(fig)
-    ax = fig.subplots()
-    days = np.array([d.day for d in result.days], dtype="datetime64[D]")
-    marked = np.array([d.marked for d in result.days])
-    ax.plot(days, marked, color="#08519c", marker=".", ms=4, lw=1.2, label="P&L marked to model")
-    carried = np.array([d.carried for d in result.days])
-    known = ~np.isnan(marked)
-    if carried.any():  # drawn on the line between the neighbouring marked days
-        x = days.astype(np.float64)
-        on_line = np.interp(x[carried], x[known], marked[known])
-        ax.plot(
-            days[carried],
-            on_line,
-            ls="none",
-            marker="x",
-            color="#cb181d",
-            label="hedge carried (no set or no price)",
-        )
-    ax.axhline(0.0, color="#777777", lw=0.8)
-    ax.tick_params(axis="x", labelrotation=30)
-    ax.set_ylabel(f"{result.commodity} per option")
-    ax.set_title(
-        f"{result.commodity} {result.trade.describe()}\nsold {result.days[0].day}, sets "
-        f"{result.sets}; final P&L {result.pnl:+.4f} ({result.pnl_pct:+.2f} % of premium)",
-        fontsize=9,
-    )
-    ax.legend(fontsize=8)
-    fig.savefig(path, dpi=110)
-    return path

@@ -432,7 +432,7 @@ def ingest_file(
     path: Path,
     kind: FileKind,
     *,
-    user: str,
+    by: str,
     strict: bool = False,
     create: NewCommodity | None = None,
     received_at: datetime | None = None,
@@ -445,7 +445,7 @@ def ingest_file(
     sessions : session factory of the store (the transaction is opened here).
     path : a ``.csv`` or ``.parquet`` file with the columns of ``kind`` (DESIGN §7).
     kind : ``futures``, ``options`` or ``rates``.
-    user : recorded as the batch's ``received_by`` (at most
+    by : recorded as the batch's ``received_by`` (at most
         :data:`~calib.store.base.USER_CHARS` characters).
     strict : refuse the whole file if any row is bad.
     create : register unknown commodity codes of a futures file with these details (default:
@@ -465,9 +465,9 @@ def ingest_file(
         commodity in a futures file without ``create``, or brings options for a day without a
         stored zero curve; nothing is stored.
     TextTooLongError
-        ``user`` is longer than the store keeps.
+        ``by`` is longer than the store keeps.
     """
-    check_text("the user name", user, USER_CHARS)
+    check_text("the user name", by, USER_CHARS)
     digest = file_sha256(path)
     source = QuoteFile(path, kind)
     with sessions.begin() as session:
@@ -498,7 +498,7 @@ def ingest_file(
             rows_accepted=0,
             rows_rejected=0,
             received_at=received_at or utc_now(),
-            received_by=user,
+            received_by=by,
         )
         run = _Run(session, source, batch_id, create, bands or Bands())
         for table in source.chunks():

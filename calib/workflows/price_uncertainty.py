@@ -28,6 +28,7 @@ import math
 from collections.abc import Callable
 from dataclasses import dataclass, replace
 from datetime import date, timedelta
+from functools import partial
 from typing import Any
 
 import numpy as np
@@ -37,7 +38,6 @@ from calib.calibrate import Calibrator
 from calib.calibrate.calibrator import bucket_edges
 from calib.calibrate.quotes import prepare
 from calib.errors import (
-    SPREAD_NOT_QUOTED,
     UNCERTAINTY_NO_COVARIANCE,
     VANILLA_EXPIRY,
     VANILLA_STRIKE,
@@ -49,12 +49,19 @@ from calib.model.black76 import Kind, undiscounted_price
 from calib.model.spread import ForwardVols, SpreadOption, spread_greeks, spread_law
 from calib.model.twofactor import TwoFactorParams
 from calib.policy.settings import RunSettings
-from calib.store.estimates import EstimateRecord, get_estimate, list_series, series_estimates
-from calib.store.quotes import DAYS_PER_YEAR, load_day
-from calib.store.runs import RunRecord, run_quotes
+from calib.record.codec import Encoded
+from calib.store.estimates import EstimateRecord, list_series, series_estimates
+from calib.store.quotes import DAYS_PER_YEAR
+from calib.store.runs import RunRecord
 from calib.workflows.estimates import none_if_nan
-from calib.workflows.fit import attempt_fit, option_quotes
-from calib.workflows.pricing import SpreadPrice, choose_run, run_vols
+from calib.workflows.fit import attempt_fit, fitted_inputs, option_quotes
+from calib.workflows.pricing import (
+    SpreadPrice,
+    discount_to,
+    pricing_day,
+    quoted_settlements,
+    run_vols,
+)
 
 DRAWS = 200
 """Default draws from the estimate's asymptotic law (the sampling check)."""
@@ -83,9 +90,9 @@ def _years(start: date, end: date) -> float:
 
 
 def _one(
-    near: float,
-    far: float,
-    expiry: float,
+    t_near: float,
+    t_far: float,
+    t_expiry: float,
     strike: float,
     kind: Kind,
     f1: float,
@@ -96,7 +103,7 @@ def _one(
         return np.array([x], dtype=np.float64)
 
     return SpreadOption(
-        near=a(near), far=a(far), expiry=a(expiry), strike=a(strike),
+        t_near=a(t_near), t_far=a(t_far), t_expiry=a(t_expiry), strike=a(strike),
         is_call=np.array([kind == "call"]), near_price=a(f1), far_price=a(f2), discount=a(d),
     )  # fmt: skip
 
@@ -173,20 +180,18 @@ def price_vanilla(
         No approved set, a failed or foreign run, the future not quoted that day, an expiry
         outside ``(day, future]``, a strike that is not positive.
     """
-    with sessions.begin() as session:
-        run = choose_run(session, commodity, run_id)
-        day = on or run.trade_date
-        quotes = load_day(session=session, commodity=commodity, trade_date=day)
+    run, quotes = pricing_day(sessions, commodity, run_id, on)
+    day = quotes.trade_date
     if not (math.isfinite(strike) and strike > 0.0):
         raise VanillaRequestError(commodity, VANILLA_STRIKE.format(strike=strike))
     if not day < expiry <= future:
         raise VanillaRequestError(
             commodity, VANILLA_EXPIRY.format(expiry=expiry, day=day, future=future)
         )
-    settle = float(quotes.futures.settle_for(np.array([future], dtype="datetime64[D]"))[0])
-    if math.isnan(settle):
-        raise VanillaRequestError(commodity, SPREAD_NOT_QUOTED.format(delivery=future, day=day))
-    discount = float(quotes.rates.discount(np.array([expiry], dtype="datetime64[D]"))[0])
+    settle = float(
+        quoted_settlements(quotes, (future,), partial(VanillaRequestError, commodity))[0]
+    )
+    discount = discount_to(quotes, expiry)
     t, T = _years(day, expiry), _years(day, future)
     vols = run_vols(run, day, t)
     premium, variance = vanilla_value(vols, settle, strike, t, T, discount, kind)
@@ -210,19 +215,12 @@ def price_vanilla(
 
 
 @dataclass(frozen=True, slots=True)
-class WindowPrice:
+class WindowPrice(Encoded):
     """The price with one rolling window's estimate held fixed (``None``: the refit failed)."""
 
     estimate_id: int
     window_end: date
     price: float | None
-
-    def to_dict(self) -> dict[str, Any]:
-        return {
-            "estimate_id": self.estimate_id,
-            "window_end": self.window_end.isoformat(),
-            "price": self.price,
-        }
 
 
 @dataclass(frozen=True, slots=True, eq=False)
@@ -291,7 +289,7 @@ def price_uncertainty(
     sessions: sessionmaker[Session],
     run: RunRecord,
     pricing_date: date,
-    expiry_years: float,
+    t_expiry: float,
     price: float,
     price_of: Callable[[Vols], float],
     *,
@@ -307,9 +305,7 @@ def price_uncertainty(
         The run's estimate has no stored covariance, or ``series_id`` is not the commodity's.
     """
     with sessions.begin() as session:
-        estimate = get_estimate(session=session, estimate_id=run.estimate_id)
-        assert estimate is not None  # foreign key
-        day = run_quotes(session=session, run=run)
+        estimate, day = fitted_inputs(session, run)
         if series_id is None:
             found = list_series(session=session, commodity=run.commodity)
             series_id = found[0].series_id if found else None
@@ -326,7 +322,7 @@ def price_uncertainty(
     quotes = option_quotes(day)
     n_buckets = 1
     if settings.mode == "forward":
-        n_buckets = max(bucket_edges(prepare(quotes, settings).expiry).size - 1, 1)
+        n_buckets = max(bucket_edges(prepare(quotes, settings).t_expiry).size - 1, 1)
     calibrator = Calibrator(settings, n_buckets)
 
     def g(params: TwoFactorParams) -> float:
@@ -336,7 +332,7 @@ def price_uncertainty(
         r = attempt.result
         assert run.fit is not None  # a fitted run was chosen
         refit = replace(run, fit=replace(run.fit, params=r.params, buckets=r.buckets))
-        return price_of(run_vols(refit, pricing_date, expiry_years))
+        return price_of(run_vols(refit, pricing_date, t_expiry))
 
     cov = np.array(
         [[math.nan if v is None else v for v in row[:7]] for row in estimate.covariance[:7]]

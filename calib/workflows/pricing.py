@@ -19,8 +19,10 @@ Carlo estimate with its standard error are cross-checks, not prices.
 
 from __future__ import annotations
 
+from collections.abc import Callable, Sequence
 from dataclasses import dataclass
 from datetime import date
+from functools import partial
 from typing import Any
 
 import numpy as np
@@ -48,8 +50,9 @@ from calib.model.spread import (
     vol_sensitivities,
 )
 from calib.model.twofactor import TwoFactorParams
-from calib.store.quotes import DAYS_PER_YEAR, load_day, require_commodity
+from calib.store.quotes import DAYS_PER_YEAR, DayQuotes, load_day, require_commodity
 from calib.store.runs import RunRecord, latest_approved, require_run
+from calib.types import FloatArray
 
 MC_PATHS = 200_000
 """Monte Carlo paths of the cross-check (antithetic pairs, control variate)."""
@@ -133,9 +136,7 @@ def _years(start: date, end: date) -> float:
     return (end - start).days / DAYS_PER_YEAR
 
 
-def run_vols(
-    run: RunRecord, pricing_date: date, expiry_years: float
-) -> TwoFactorParams | ForwardVols:
+def run_vols(run: RunRecord, pricing_date: date, t_expiry: float) -> TwoFactorParams | ForwardVols:
     """The run's volatilities as seen from ``pricing_date`` (see the module notes)."""
     assert run.params is not None
     if run.mode != "forward" or len(run.buckets) < 2:
@@ -145,7 +146,7 @@ def run_vols(
     if not kept:  # every bucket is over: the last one's volatilities hold from now on
         kept = [run.buckets[-1]]
     edges = [0.0] + [b.end - shift for b in kept]
-    edges[-1] = max(edges[-1], expiry_years)
+    edges[-1] = max(edges[-1], t_expiry)
     return ForwardVols(
         kappa=run.params.kappa,
         edges=np.array(edges),
@@ -162,14 +163,48 @@ def choose_run(session: Session, commodity: str, run_id: int | None) -> RunRecor
             raise SpreadRequestError(commodity, SPREAD_NO_APPROVED)
         return found
     require_commodity(session=session, code=commodity)
+    return fitted_run(session, commodity, run_id, partial(SpreadRequestError, commodity))
+
+
+def fitted_run(
+    session: Session, commodity: str, run_id: int, refuse: Callable[[str], Exception]
+) -> RunRecord:
+    """The run ``run_id`` if it is ``commodity``'s and has parameters; else ``refuse(reason)``
+    is raised."""
     run = require_run(session=session, run_id=run_id)
     if run.commodity != commodity:
-        raise SpreadRequestError(
-            commodity, SPREAD_RUN_OTHER.format(run_id=run_id, other=run.commodity)
-        )
+        raise refuse(SPREAD_RUN_OTHER.format(run_id=run_id, other=run.commodity))
     if run.params is None:
-        raise SpreadRequestError(commodity, SPREAD_RUN_FAILED.format(run_id=run_id))
+        raise refuse(SPREAD_RUN_FAILED.format(run_id=run_id))
     return run
+
+
+def pricing_day(
+    sessions: sessionmaker[Session], commodity: str, run_id: int | None, on: date | None
+) -> tuple[RunRecord, DayQuotes]:
+    """The set to price with (:func:`choose_run`) and the quotes of the pricing day (``on``,
+    else the run's trade date), read in one transaction."""
+    with sessions.begin() as session:
+        run = choose_run(session, commodity, run_id)
+        day = on or run.trade_date
+        return run, load_day(session=session, commodity=commodity, trade_date=day)
+
+
+def quoted_settlements(
+    quotes: DayQuotes, deliveries: Sequence[date], refuse: Callable[[str], Exception]
+) -> FloatArray:
+    """The day's settlement of each of ``deliveries``; ``refuse(reason)`` is raised for the
+    first one not quoted that day."""
+    settles = quotes.futures.settle_for(np.array(deliveries, dtype="datetime64[D]"))
+    for delivery, value in zip(deliveries, settles, strict=True):
+        if np.isnan(value):
+            raise refuse(SPREAD_NOT_QUOTED.format(delivery=delivery, day=quotes.trade_date))
+    return settles
+
+
+def discount_to(quotes: DayQuotes, when: date) -> float:
+    """The day's discount factor to ``when`` (its zero curve)."""
+    return float(quotes.rates.discount(np.array([when], dtype="datetime64[D]"))[0])
 
 
 def price_spread(
@@ -209,27 +244,20 @@ def price_spread(
         out of order, or an expiry outside ``(day, near]``.
     UnknownCommodityError, UnknownRunError
     """
-    with sessions.begin() as session:
-        run = choose_run(session, commodity, run_id)
-        day = on or run.trade_date
-        quotes = load_day(session=session, commodity=commodity, trade_date=day)
+    run, quotes = pricing_day(sessions, commodity, run_id, on)
+    day = quotes.trade_date
     if not near < far:
         raise SpreadRequestError(commodity, SPREAD_ORDER.format(near=near, far=far))
     if not day < expiry <= near:
         raise SpreadRequestError(commodity, SPREAD_EXPIRY.format(expiry=expiry, day=day, near=near))
-    settles = quotes.futures.settle_for(np.array([near, far], dtype="datetime64[D]"))
-    for delivery, value in zip((near, far), settles, strict=True):
-        if np.isnan(value):
-            raise SpreadRequestError(
-                commodity, SPREAD_NOT_QUOTED.format(delivery=delivery, day=day)
-            )
-    discount = float(quotes.rates.discount(np.array([expiry], dtype="datetime64[D]"))[0])
+    settles = quoted_settlements(quotes, (near, far), partial(SpreadRequestError, commodity))
+    discount = discount_to(quotes, expiry)
     t, T1, T2 = _years(day, expiry), _years(day, near), _years(day, far)
     vols = run_vols(run, day, t)
     option = SpreadOption(
-        near=np.array([T1]),
-        far=np.array([T2]),
-        expiry=np.array([t]),
+        t_near=np.array([T1]),
+        t_far=np.array([T2]),
+        t_expiry=np.array([t]),
         strike=np.array([strike]),
         is_call=np.array([kind == "call"]),
         near_price=settles[:1],

@@ -56,7 +56,6 @@ from calib.record.fit import FitRecord, Gate
 from calib.store.estimates import (
     EstimateRecord,
     SeriesRecord,
-    get_estimate,
     list_series,
     series_estimates,
 )
@@ -65,10 +64,9 @@ from calib.store.runs import (
     RunRecord,
     approved_set,
     require_run,
-    run_quotes,
     run_residuals,
 )
-from calib.workflows.fit import early_exercise, option_quotes
+from calib.workflows.fit import early_exercise, fitted_inputs, option_quotes
 from calib.workflows.stability import DEFAULT_K, assemble
 
 ANCHOR_FACTORS: tuple[float, ...] = (0.0, 0.1, 1.0, 10.0, 100.0, 1000.0)
@@ -135,7 +133,7 @@ def _quote_fits(day: DayQuotes, residuals: pd.DataFrame) -> QuoteFits:
         delivery=tuple(_day(x) for x in o.delivery[pos]),
         kind=tuple(_kind(x) for x in o.is_call[pos]),
         strike=o.strike[pos],
-        time_to_expiry=year_fractions(day.trade_date, o.expiry[pos]),
+        t_expiry=year_fractions(day.trade_date, o.expiry[pos]),
         market_vol=residuals["market_vol"].to_numpy(),
         model_vol=residuals["model_vol"].to_numpy(),
         market_price=residuals["market_price"].to_numpy(),
@@ -258,10 +256,8 @@ def report_inputs(
         if fit is None:
             raise RunNotFittedError(run_id, run.failure_reason or "no reason stored")
         commodity = require_commodity(session=session, code=run.commodity)
-        estimate = get_estimate(session=session, estimate_id=run.estimate_id)
-        assert estimate is not None  # foreign key
+        estimate, day = fitted_inputs(session, run)
         residuals = run_residuals(session=session, run_id=run_id)
-        day = run_quotes(session=session, run=run)
         before = approved_set(session=session, commodity=run.commodity, as_of=run.created_at)
         series, windows = _known_windows(session, run)
     settings = RunSettings.from_dict(run.settings).calibration
@@ -284,7 +280,7 @@ def report_inputs(
         quotes=_quote_fits(day, residuals),
         curve=FuturesCurve(
             delivery=tuple(_day(x) for x in day.futures.delivery),
-            time_to_maturity=year_fractions(run.trade_date, day.futures.delivery),
+            t_delivery=year_fractions(run.trade_date, day.futures.delivery),
             settle=day.futures.settle,
         ),
         solve=_solve(fit),

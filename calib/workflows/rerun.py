@@ -10,9 +10,8 @@ from sqlalchemy.orm import Session, sessionmaker
 from calib.errors import InputsChangedError
 from calib.model.twofactor import PARAM_NAMES, TwoFactorParams
 from calib.policy.settings import RunSettings
-from calib.store.estimates import get_estimate
-from calib.store.runs import RunRecord, require_run, run_quotes
-from calib.workflows.fit import attempt_fit
+from calib.store.runs import RunRecord, require_run
+from calib.workflows.fit import attempt_fit, fitted_inputs
 from calib.workflows.provenance import code_version, inputs_sha256
 
 
@@ -55,8 +54,7 @@ def rerun(sessions: sessionmaker[Session], run_id: int) -> Rerun:
         if inputs_sha256(dict(run.inputs)) != run.inputs_sha256:
             raise InputsChangedError(run_id, "the stored ids do not match their stored hash")
         ids = run.inputs
-        day = run_quotes(session=session, run=run)
-        estimate = get_estimate(session=session, estimate_id=run.estimate_id)
+        estimate, day = fitted_inputs(session, run)
     for what, key in (
         ("futures", "futures_rows"),
         ("options", "option_rows"),
@@ -65,7 +63,6 @@ def rerun(sessions: sessionmaker[Session], run_id: int) -> Rerun:
         found = len(getattr(day, what))
         if found != len(ids[key]):
             raise InputsChangedError(run_id, f"{len(ids[key]) - found} {what} row(s) are missing")
-    assert estimate is not None  # foreign key
     settings = RunSettings.from_dict(run.settings)
     attempt = attempt_fit(day, estimate.params, settings.calibration)
     new = None if attempt.result is None else attempt.result.params

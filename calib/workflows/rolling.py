@@ -45,6 +45,7 @@ from calib.estimate.rolling import (
     window_ends,
     window_start,
 )
+from calib.record.codec import Encoded
 from calib.store.base import utc_now
 from calib.store.engine import begin_write
 from calib.store.estimates import add_series, find_series, series_estimates
@@ -66,7 +67,7 @@ def _nothing(_: RollingWindow) -> None:
 
 
 @dataclass(frozen=True, slots=True)
-class RollingWindow:
+class RollingWindow(Encoded):
     """One window end of a series and what became of it in this run.
 
     ``status``: ``stored`` (estimated now), ``held`` (stored by an earlier run), ``failed``
@@ -82,19 +83,6 @@ class RollingWindow:
     started: str | None = None
     local_optimum: str | None = None
     detail: str | None = None
-
-    def to_dict(self) -> dict[str, Any]:
-        return {
-            "index": self.index,
-            "start": self.start.isoformat(),
-            "end": self.end.isoformat(),
-            "status": self.status,
-            "estimate_id": self.estimate_id,
-            "converged": self.converged,
-            "started": self.started,
-            "local_optimum": self.local_optimum,
-            "detail": self.detail,
-        }
 
 
 @dataclass(frozen=True, slots=True)
@@ -168,7 +156,7 @@ def estimate_rolling(
     length: Period,
     step: Period,
     *,
-    user: str,
+    by: str,
     n_contracts: int = 5,
     min_days: int = MIN_DAYS,
     executor: Executor | None = None,
@@ -185,7 +173,7 @@ def estimate_rolling(
     commodity : commodity code.
     first, last : first and last window end (inclusive).
     length, step : window length and the step between window ends.
-    user : recorded on the series and its estimates.
+    by : recorded on the series and its estimates.
     n_contracts, min_days : as :func:`calib.workflows.estimates.estimate`.
     executor : where the windows are estimated (default: in this process).
     chunk : consecutive windows per work unit.
@@ -217,7 +205,7 @@ def estimate_rolling(
                 session=session,
                 commodity_id=cid,
                 created_at=utc_now(),
-                created_by=user,
+                created_by=by,
                 window_length=str(length),
                 step=str(step),
                 first_end=first,
@@ -274,18 +262,20 @@ def estimate_rolling(
             runs.append([i])
     for part in runs:
         prev = held.get(ends[part[0] - 1].isoformat()) if part[0] > 0 else None
-        warm = None
+        warm, warm_cov = None, None
         if prev is not None and prev.converged:
             warm = (prev.params, np.asarray(prev.noise_sd, dtype=np.float64))
+            if prev.covariance is not None:  # None entries (not stored) become NaN: unused
+                warm_cov = np.array(prev.covariance, dtype=np.float64)
         tasks = [
             windows[i].task(i, check_cold=cold_every > 0 and i % cold_every == cold_every // 2)
             for i in part
         ]
         for fits in estimate_windows(
-            tasks, FitSettings(min_days=min_days), run, chunk=chunk, warm=warm
+            tasks, FitSettings(min_days=min_days), run, chunk=chunk, warm=warm, warm_cov=warm_cov
         ):
             cold_checked += sum(1 for f in fits if f.cold_loglik is not None)
-            stored_now = _store_chunk(sessions, cid, user, series_id, length, step, windows, fits)
+            stored_now = _store_chunk(sessions, cid, by, series_id, length, step, windows, fits)
             for f, estimate_id in zip(fits, stored_now, strict=True):
                 i = f.index
                 if f.error is not None:
@@ -312,7 +302,7 @@ def estimate_rolling(
 def _store_chunk(
     sessions: sessionmaker[Session],
     commodity_id: int,
-    user: str,
+    by: str,
     series_id: int,
     length: Period,
     step: Period,
@@ -341,7 +331,7 @@ def _store_chunk(
                 store_window(
                     session,
                     commodity_id=commodity_id,
-                    user=user,
+                    by=by,
                     window=windows[f.index],
                     result=f,
                     series_id=series_id,

@@ -3,7 +3,7 @@ estimate in use, drift and decay-bound flags, and how often to re-estimate.
 
 One read transaction gathers the series' estimates and the estimate in use (named, else the
 one the latest approved run held fixed, else the morning fit's default); the numbers come from
-:mod:`calib.estimate.stability`. :func:`write_csv` and :func:`write_png` render a report.
+:mod:`calib.estimate.stability`; :mod:`calib.output.stability` draws a report's CSV and chart.
 
 Cautions: an estimate is a statistic with an error; the ``+-2 s.e.`` band is the asymptotic
 normal approximation (it can be too narrow on short windows and for poorly identified
@@ -12,11 +12,9 @@ drifts), and a quiet history does not promise a quiet future.
 
 from __future__ import annotations
 
-import csv
 from collections.abc import Sequence
 from dataclasses import dataclass
 from datetime import date
-from pathlib import Path
 from typing import Any
 
 import numpy as np
@@ -32,6 +30,8 @@ from calib.errors import (
 from calib.estimate.rolling import parse_period
 from calib.estimate.stability import decay_slack, drift_z, longest_quiet_interval
 from calib.model.twofactor import PARAM_NAMES
+from calib.record.codec import encode
+from calib.record.run import flat_params
 from calib.store.estimates import (
     EstimateRecord,
     SeriesRecord,
@@ -43,7 +43,6 @@ from calib.store.estimates import (
 )
 from calib.store.quotes import require_commodity
 from calib.store.runs import latest_approved
-from calib.workflows.estimates import none_if_nan
 
 DEFAULT_K = 3.0
 """Standard errors of the difference beyond which a window is flagged (``--k``)."""
@@ -79,18 +78,8 @@ class StabilityWindow:
     in_use: bool
 
     def to_dict(self) -> dict[str, Any]:
-        return {
-            "estimate_id": self.estimate_id,
-            "window_start": self.window_start.isoformat(),
-            "window_end": self.window_end.isoformat(),
-            "converged": self.converged,
-            **self.params,
-            "std_errors": {n: none_if_nan(v) for n, v in self.std_errors.items()},
-            "z": {n: none_if_nan(v) for n, v in self.z.items()},
-            "flags": list(self.flags),
-            "decay_slack": none_if_nan(self.decay_slack),
-            "in_use": self.in_use,
-        }
+        """Plain values for JSON (a NaN as ``null``), the parameters at the top level."""
+        return flat_params(encode(self))
 
 
 @dataclass(frozen=True, slots=True)
@@ -269,83 +258,3 @@ def stability(
             raise RollingRequestError(commodity, STABILITY_EMPTY.format(series_id=series.series_id))
         in_use, how = _in_use(session, commodity, estimate_id)
     return assemble(series, records, in_use, how, k)
-
-
-CSV_COLUMNS = (
-    "estimate_id",
-    "window_start",
-    "window_end",
-    "converged",
-    "in_use",
-    *PARAM_NAMES,
-    *(f"se_{n}" for n in PARAM_NAMES),
-    *(f"z_{n}" for n in PARAM_NAMES),
-    "decay_slack",
-    "flags",
-)
-
-
-def write_csv(report: StabilityReport, path: Path) -> Path:
-    """One row per window (:data:`CSV_COLUMNS`); flags joined by ``;``."""
-    with path.open("w", newline="", encoding="utf-8") as fh:
-        out = csv.writer(fh)
-        out.writerow(CSV_COLUMNS)
-        for w in report.windows:
-            out.writerow(
-                [
-                    w.estimate_id,
-                    w.window_start.isoformat(),
-                    w.window_end.isoformat(),
-                    w.converged,
-                    w.in_use,
-                    *(repr(w.params[n]) for n in PARAM_NAMES),
-                    *(repr(w.std_errors[n]) for n in PARAM_NAMES),
-                    *(repr(w.z[n]) for n in PARAM_NAMES),
-                    repr(w.decay_slack),
-                    ";".join(w.flags),
-                ]
-            )
-    return path
-
-
-def write_png(report: StabilityReport, path: Path) -> Path:
-    """One panel per parameter: the window estimates over their ends with the +-2 s.e. band,
-    the estimate in use as a horizontal line with its own band, flagged windows marked."""
-    import matplotlib
-
-    matplotlib.use("Agg")
-    import matplotlib.pyplot as plt
-
-    ends = np.array([w.window_end for w in report.windows], dtype="datetime64[D]")
-    flagged = np.array([bool(w.flags) for w in report.windows])
-    use = report.in_use
-    fig, axes = plt.subplots(len(PARAM_NAMES), 1, figsize=(9, 2.0 * len(PARAM_NAMES)), sharex=True)
-    for ax, name in zip(axes, PARAM_NAMES, strict=True):
-        v = np.array([w.params[name] for w in report.windows])
-        s = np.array([w.std_errors[name] for w in report.windows])
-        ax.fill_between(ends, v - 2 * s, v + 2 * s, color="#9ecae1", alpha=0.6, label="±2 s.e.")
-        ax.plot(ends, v, color="#08519c", lw=1.2, label="window estimate")
-        ref = getattr(use.params, name)
-        ref_se = use.std_errors.get(name)
-        ax.axhline(ref, color="#a63603", lw=1.0, label=f"in use (estimate {use.estimate_id})")
-        if ref_se is not None:
-            ax.axhspan(ref - 2 * ref_se, ref + 2 * ref_se, color="#fdae6b", alpha=0.2)
-        mine = np.array([name in w.flags for w in report.windows])
-        ax.plot(ends[mine], v[mine], "v", color="#cb181d", ms=5, label=f"> {report.k:g} s.e.")
-        ax.set_ylabel(name)
-        ax.grid(alpha=0.3)
-    if flagged.any():
-        for ax in axes:
-            for d in ends[flagged & np.array(["decay_bound" in w.flags for w in report.windows])]:
-                ax.axvline(d, color="#756bb1", lw=0.6, ls=":")
-    axes[0].legend(loc="upper left", fontsize=7, ncol=4)
-    axes[0].set_title(
-        f"{report.series.commodity}: rolling {report.series.window_length} windows every "
-        f"{report.series.step} (series {report.series.series_id}); dotted: decay bound fails"
-    )
-    axes[-1].set_xlabel("window end")
-    fig.text(0.01, 0.005, report.recommendation, fontsize=7)
-    fig.tight_layout(rect=(0, 0.02, 1, 1))
-    fig.savefig(path, dpi=110)
-    plt.close(fig)
-    return path

@@ -43,9 +43,8 @@ def _pages(rs: ReviewStore) -> list[str]:
 
 
 def test_every_page_is_a_read_with_security_headers_and_no_inline_script(
-    review_store: ReviewStore, tmp_path: Path
+    review_store: ReviewStore, url: str
 ) -> None:
-    url = review_store.copy_to(tmp_path)
     with serving(create_app(Settings(db_url=url), token=TOKEN)) as http:
         for path in _pages(review_store):
             got = http.get(path)
@@ -70,9 +69,8 @@ def test_every_page_is_a_read_with_security_headers_and_no_inline_script(
 
 
 def test_reject_needs_the_token_and_exists_only_with_one(
-    review_store: ReviewStore, tmp_path: Path
+    review_store: ReviewStore, url: str
 ) -> None:
-    url = review_store.copy_to(tmp_path)
     body = {"by": "quant.c", "note": "no"}
     path = f"/v1/runs/{review_store.candidate}/reject"
     with serving(create_app(Settings(db_url=url))) as http:
@@ -92,10 +90,7 @@ def test_reject_needs_the_token_and_exists_only_with_one(
         assert client.run(review_store.candidate).status == "rejected"
 
 
-def test_stored_text_is_escaped_and_errors_are_pages(
-    review_store: ReviewStore, tmp_path: Path
-) -> None:
-    url = review_store.copy_to(tmp_path)
+def test_stored_text_is_escaped_and_errors_are_pages(review_store: ReviewStore, url: str) -> None:
     with store_for(url) as store, store.sessions.begin() as session:
         add_commodity(
             session=session,

@@ -8,7 +8,6 @@ from __future__ import annotations
 
 from collections.abc import Iterator
 from contextlib import contextmanager
-from pathlib import Path
 from typing import TYPE_CHECKING
 
 import pytest
@@ -75,9 +74,8 @@ def _hold_token(page: Page, by: str, token: str) -> None:
 
 
 def test_overview_lists_the_candidate_read_only_without_a_token(
-    review_store: ReviewStore, page: Page, tmp_path: Path
+    review_store: ReviewStore, page: Page, url: str
 ) -> None:
-    url = review_store.copy_to(tmp_path)
     with served(url, None) as base:
         response = page.goto(base + "/")
         assert response is not None and response.ok
@@ -105,9 +103,8 @@ def test_overview_lists_the_candidate_read_only_without_a_token(
 
 
 def test_approving_with_the_token_changes_the_set_in_force(
-    review_store: ReviewStore, page: Page, tmp_path: Path
+    review_store: ReviewStore, page: Page, url: str
 ) -> None:
-    url = review_store.copy_to(tmp_path)
     run = review_store.candidate
     with served(url, TOKEN) as base:
         page.goto(base + "/")
@@ -146,9 +143,8 @@ def test_approving_with_the_token_changes_the_set_in_force(
 
 
 def test_a_wrong_token_is_refused_with_a_message_then_the_right_one_rejects(
-    review_store: ReviewStore, page: Page, tmp_path: Path
+    review_store: ReviewStore, page: Page, url: str
 ) -> None:
-    url = review_store.copy_to(tmp_path)
     run = review_store.candidate
     with served(url, TOKEN) as base:
         page.goto(f"{base}/runs/{run}")
@@ -173,9 +169,8 @@ def test_a_wrong_token_is_refused_with_a_message_then_the_right_one_rejects(
 
 
 def test_run_page_shows_gates_constraints_residuals_and_every_figure(
-    review_store: ReviewStore, page: Page, tmp_path: Path
+    review_store: ReviewStore, page: Page, url: str
 ) -> None:
-    url = review_store.copy_to(tmp_path)
     run = review_store.candidate
     with served(url, None) as base:
         problems: list[str] = []
@@ -195,9 +190,8 @@ def test_run_page_shows_gates_constraints_residuals_and_every_figure(
 
 
 def test_history_page_shows_what_a_pricer_got_at_a_past_moment(
-    review_store: ReviewStore, page: Page, tmp_path: Path
+    review_store: ReviewStore, page: Page, url: str
 ) -> None:
-    url = review_store.copy_to(tmp_path)
     first = review_store.approved[0]
     with served(url, None) as base:
         page.goto(f"{base}/commodities/{review_store.code}")

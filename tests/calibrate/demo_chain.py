@@ -46,8 +46,8 @@ def demo_day(trade_date: str = FIRST_DAY) -> OptionQuotes:
     r_years = (r.maturity - day).dt.days.to_numpy() / 365.0
     zero = np.interp(t, r_years, r.zero_rate.to_numpy())
     return OptionQuotes(
-        expiry=t,
-        maturity=T,
+        t_expiry=t,
+        t_delivery=T,
         is_call=(o.kind == "call").to_numpy(),
         strike=o.strike.to_numpy(dtype=float),
         forward=f.loc[o.delivery].to_numpy(dtype=float),

@@ -21,6 +21,15 @@ FORWARD = 50.0  # fictional commodity "Northgate crude", currency units per barr
 RATE = 0.03
 EXPIRIES = (0.15, 0.3, 0.5, 0.75, 1.0, 1.5)
 MONEYNESS = (0.8, 0.9, 0.95, 1.0, 1.05, 1.1, 1.25)
+TRUE = TwoFactorParams(
+    mu=0.05, kappa=1.5, alpha=0.02, lam=0.0, sigma_spot=0.35, sigma_yield=0.25, rho=0.7
+)
+"""The invented set the calibration tests quote from and expect to recover."""
+
+
+def vols_of(p: TwoFactorParams) -> np.ndarray:
+    """``(sigma_spot, sigma_yield, rho)``, the triple a fit calibrates."""
+    return np.array([p.sigma_spot, p.sigma_yield, p.rho])
 
 
 def quad_variance(
@@ -77,8 +86,8 @@ def make_quotes(
     a = np.array([r[:2] + r[3:] for r in rows], dtype=float)
     half = spread * a[:, 4]
     return OptionQuotes(
-        expiry=a[:, 0],
-        maturity=a[:, 1],
+        t_expiry=a[:, 0],
+        t_delivery=a[:, 1],
         is_call=np.array([r[2] for r in rows]),
         strike=a[:, 2],
         forward=np.full(len(rows), forward),

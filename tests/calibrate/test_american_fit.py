@@ -25,11 +25,8 @@ import QuantLib as ql  # noqa: N813 - QuantLib's own documented alias
 from calib.calibrate import CalibrationSettings, OptionQuotes, fit
 from calib.model import american
 from calib.model.twofactor import TwoFactorParams, total_variance
-from tests.calibrate.quotes_from_model import quad_variance
+from tests.calibrate.quotes_from_model import TRUE, quad_variance, vols_of
 
-TRUE = TwoFactorParams(
-    mu=0.05, kappa=1.5, alpha=0.02, lam=0.0, sigma_spot=0.35, sigma_yield=0.25, rho=0.7
-)
 FORWARD = 50.0  # fictional commodity, currency units per unit
 RATE = 0.06  # high enough that early exercise is worth something
 EXPIRY_DAYS = (55, 110, 183, 274, 365, 548)
@@ -95,8 +92,8 @@ def _chain(style: str) -> OptionQuotes:
                         prem = ql.blackFormula(kind, K, FORWARD, math.sqrt(var), disc)
                     rows.append((t, T, call, K, disc, prem, is_am))
     return OptionQuotes(
-        expiry=np.array([r[0] for r in rows]),
-        maturity=np.array([r[1] for r in rows]),
+        t_expiry=np.array([r[0] for r in rows]),
+        t_delivery=np.array([r[1] for r in rows]),
         is_call=np.array([r[2] for r in rows]),
         strike=np.array([r[3] for r in rows]),
         forward=np.full(len(rows), FORWARD),
@@ -104,10 +101,6 @@ def _chain(style: str) -> OptionQuotes:
         premium=np.array([r[5] for r in rows]),
         american=np.array([r[6] for r in rows]),
     )
-
-
-def _vols(p: TwoFactorParams) -> np.ndarray:
-    return np.array([p.sigma_spot, p.sigma_yield, p.rho])
 
 
 @pytest.fixture(scope="module")
@@ -121,7 +114,7 @@ def test_an_american_chain_is_fitted_back_to_its_vols(
 ) -> None:
     hist = TRUE.with_vols(0.3, 0.3, TRUE.rho)
     res = fit(american_chain, hist, replace(EXACT, error_measure=measure))
-    np.testing.assert_allclose(_vols(res.params), _vols(TRUE), atol=VOL_TOL)
+    np.testing.assert_allclose(vols_of(res.params), vols_of(TRUE), atol=VOL_TOL)
     assert res.converged and res.flags == ()
     assert res.american is not None and res.american.all()
     assert res.early_exercise is not None and np.all(res.early_exercise > 0.0)
@@ -145,7 +138,7 @@ def test_fitting_american_premiums_as_european_biases_the_vols(
 def test_a_mixed_chain_is_fitted_back_to_its_vols() -> None:
     quotes = _chain("mixed")
     res = fit(quotes, TRUE.with_vols(0.3, 0.3, TRUE.rho), EXACT)
-    np.testing.assert_allclose(_vols(res.params), _vols(TRUE), atol=VOL_TOL)
+    np.testing.assert_allclose(vols_of(res.params), vols_of(TRUE), atol=VOL_TOL)
     assert res.american is not None
     np.testing.assert_array_equal(res.american, quotes.is_american[res.quote_index])
     assert res.early_exercise is not None
@@ -164,7 +157,7 @@ def test_an_all_european_chain_fits_bit_identically_whatever_the_style_field() -
 def test_held_rho_mode_fits_american_quotes_in_vol(american_chain: OptionQuotes) -> None:
     s = replace(EXACT, mode="held_rho", error_measure="vol")
     res = fit(american_chain, TRUE.with_vols(0.3, 0.3, TRUE.rho), s)
-    np.testing.assert_allclose(_vols(res.params), _vols(TRUE), atol=VOL_TOL)
+    np.testing.assert_allclose(vols_of(res.params), vols_of(TRUE), atol=VOL_TOL)
 
 
 # --- the constant-volatility equivalent against the model's time-dependent volatility ---------

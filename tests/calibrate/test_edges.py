@@ -21,11 +21,7 @@ from calib.errors import (
 )
 from calib.model.twofactor import TwoFactorParams
 from calib.workflows.fit import CALIBRATION_FAILURES
-from tests.calibrate.quotes_from_model import make_quotes
-
-TRUE = TwoFactorParams(
-    mu=0.05, kappa=1.5, alpha=0.02, lam=0.0, sigma_spot=0.35, sigma_yield=0.25, rho=0.7
-)
+from tests.calibrate.quotes_from_model import TRUE, make_quotes
 
 
 @pytest.fixture(scope="module")

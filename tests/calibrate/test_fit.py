@@ -25,11 +25,8 @@ from calib.errors import (
     TooFewQuotesError,
 )
 from calib.model.twofactor import TwoFactorParams, variance_coefficients
-from tests.calibrate.quotes_from_model import EXPIRIES, make_quotes
+from tests.calibrate.quotes_from_model import EXPIRIES, TRUE, make_quotes, vols_of
 
-TRUE = TwoFactorParams(
-    mu=0.05, kappa=1.5, alpha=0.02, lam=0.0, sigma_spot=0.35, sigma_yield=0.25, rho=0.7
-)
 # vols and correlation from noise-free quotes, absolute: what remains is where the solver stops
 # (gap and step 1e-10), under 1e-8 measured; a wrong optimum shows in the second decimal
 VOL_TOL = 1e-6
@@ -46,10 +43,6 @@ def quotes() -> OptionQuotes:
         return make_quotes(TRUE)
 
 
-def _vols(p: TwoFactorParams) -> np.ndarray:
-    return np.array([p.sigma_spot, p.sigma_yield, p.rho])
-
-
 # --- recovery of noise-free quotes ------------------------------------------------------
 
 
@@ -57,7 +50,7 @@ def _vols(p: TwoFactorParams) -> np.ndarray:
 def test_every_constant_mode_recovers_the_generating_vols(quotes: OptionQuotes, mode: str) -> None:
     hist = TRUE.with_vols(0.3, 0.3, TRUE.rho)
     res = fit(quotes, hist, replace(EXACT, mode=mode))
-    np.testing.assert_allclose(_vols(res.params), _vols(TRUE), atol=VOL_TOL)
+    np.testing.assert_allclose(vols_of(res.params), vols_of(TRUE), atol=VOL_TOL)
     assert res.converged and res.flags == ()
     assert res.max_error < 1e-9 * 50.0  # premium per unit price, noise free
     assert res.params.kappa == hist.kappa and res.params.mu == hist.mu
@@ -78,7 +71,7 @@ def test_forward_mode_recovers_a_term_structure() -> None:
         q = make_quotes(TRUE, bucket_vols=bucket_vols, maturity_gaps=(0.05, 0.5, 1.5))
     res = fit(q, TRUE, replace(EXACT, mode="forward"))
     assert len(res.buckets) == len(EXPIRIES)
-    got = np.array([_vols(b.params) for b in res.buckets])
+    got = np.array([vols_of(b.params) for b in res.buckets])
     np.testing.assert_allclose(got, np.array(bucket_vols), atol=VOL_TOL)
     np.testing.assert_allclose([b.end for b in res.buckets], EXPIRIES)
 
@@ -90,7 +83,7 @@ def _independent_objective(
     q: OptionQuotes, res_weight: np.ndarray, hist: TwoFactorParams, w: float
 ):  # type: ignore[no-untyped-def]
     """Objective in (s1, s2, rho) by scipy's normal CDF (Black 1976), not calib's pricer."""
-    a, b, c = variance_coefficients(q.expiry, q.maturity, hist.kappa)
+    a, b, c = variance_coefficients(q.t_expiry, q.t_delivery, hist.kappa)
     F, K, D = q.forward, q.strike, q.discount
     sign = np.where(q.is_call, 1.0, -1.0)
     scale = F.mean()
@@ -132,7 +125,7 @@ def test_binding_decay_bound_is_optimal_against_slsqp_and_a_grid(quotes: OptionQ
     assert by_name["decay_bound"].refit_cost is not None and by_name["decay_bound"].refit_cost > 0
 
     J = _independent_objective(quotes, res.weight, hist, settings.anchor_weight)
-    theta = _vols(res.params)
+    theta = vols_of(res.params)
     assert J(theta) == pytest.approx(res.objective, rel=1e-10)
     # SLSQP in (s1, s2, rho) from many starts (scipy.optimize.minimize, method="SLSQP")
     rng = np.random.default_rng(7)
@@ -174,7 +167,7 @@ def test_held_rho_with_binding_floor_beats_a_brute_force_grid(quotes: OptionQuot
     assert res.params.sigma_yield == pytest.approx(0.45, abs=BIND_TOL)
     assert {c.name: c.refit_cost for c in res.constraints}["held_rho"] > 0.0
     J = _independent_objective(quotes, res.weight, hist, 0.0)
-    assert J(_vols(res.params)) == pytest.approx(res.objective, rel=1e-10)
+    assert J(vols_of(res.params)) == pytest.approx(res.objective, rel=1e-10)
     # brute force over (s1, s2 >= floor) at the held rho
     s1s = np.linspace(0.05, 1.0, 96)
     s2s = np.linspace(0.45, 1.0, 56)
@@ -200,7 +193,7 @@ def test_held_rho_with_binding_floor_beats_a_brute_force_grid(quotes: OptionQuot
 
 def _fit_vols(q: OptionQuotes, settings: CalibrationSettings = EXACT) -> np.ndarray:
     hist = TRUE.with_vols(0.3, 0.6, 0.7)
-    return _vols(fit(q, hist, replace(settings, anchor_weight=1e-4)).params)
+    return vols_of(fit(q, hist, replace(settings, anchor_weight=1e-4)).params)
 
 
 # vols of a binding fit re-solved from permuted/rescaled data: at an optimum J is flat to second
@@ -252,7 +245,7 @@ def test_a_calibrator_re_solves_days_like_fresh_fits(quotes: OptionQuotes) -> No
         day2 = make_quotes(other)
     for q, h in zip((quotes, day2), hists, strict=True):
         np.testing.assert_allclose(
-            _vols(cal.fit(q, h).params), _vols(fit(q, h, EXACT).params), atol=INVARIANCE_TOL
+            vols_of(cal.fit(q, h).params), vols_of(fit(q, h, EXACT).params), atol=INVARIANCE_TOL
         )
     with pytest.raises(
         CalibrationShapeError, match="built for 2 expiry buckets, these quotes need 6"
@@ -323,7 +316,7 @@ def test_filters_drop_quotes_with_reasons(quotes: OptionQuotes) -> None:
     assert reasons == {"under 60 days to expiry", "strike/forward outside [0.85, 1.2]"}
     assert len(res.dropped) + len(res.quote_index) == len(quotes)
     assert res.dropped[0].label == "q0"
-    np.testing.assert_allclose(_vols(res.params), _vols(TRUE), atol=VOL_TOL)
+    np.testing.assert_allclose(vols_of(res.params), vols_of(TRUE), atol=VOL_TOL)
 
 
 def test_premium_below_intrinsic_is_dropped_with_the_reason(quotes: OptionQuotes) -> None:
@@ -348,7 +341,7 @@ def test_spread_weighting_uses_inverse_squared_spreads() -> None:
     assert spread is not None
     w = 1.0 / spread**2
     np.testing.assert_allclose(res.weight, w / w.sum(), rtol=1e-12)
-    np.testing.assert_allclose(_vols(res.params), _vols(TRUE), atol=VOL_TOL)
+    np.testing.assert_allclose(vols_of(res.params), vols_of(TRUE), atol=VOL_TOL)
 
 
 # --- failure paths -------------------------------------------------------------------------

@@ -10,13 +10,9 @@ import pytest
 
 from calib.calibrate import CalibrationSettings, Calibrator, OptionQuotes, fit
 from calib.model import black76
-from calib.model.twofactor import TwoFactorParams
 from tests.calibrate.demo_chain import demo_day, demo_params
-from tests.calibrate.quotes_from_model import make_quotes
+from tests.calibrate.quotes_from_model import TRUE, make_quotes, vols_of
 
-TRUE = TwoFactorParams(
-    mu=0.05, kappa=1.5, alpha=0.02, lam=0.0, sigma_spot=0.35, sigma_yield=0.25, rho=0.7
-)
 # robust vs squared loss on clean data: every residual lies inside the Huber threshold, where
 # the two losses are one function, so the fits differ only by where the solver stops (gap
 # 1e-10); vols absolute, objective relative
@@ -28,10 +24,6 @@ ROBUST = CalibrationSettings(loss="huber", screen_vol_points=10.0)
 VOL_MOVE = 0.01
 
 
-def _vols(p: TwoFactorParams) -> np.ndarray:
-    return np.array([p.sigma_spot, p.sigma_yield, p.rho])
-
-
 @pytest.fixture(scope="module")
 def clean() -> OptionQuotes:
     # model quotes with 0.2 vol points of seeded noise: every residual far inside 2 vol points
@@ -39,7 +31,7 @@ def clean() -> OptionQuotes:
         warnings.simplefilter("ignore")
         q = make_quotes(TRUE, maturity_gaps=(0.05, 0.5))
     assert q.premium is not None
-    vol = black76.implied_vol(q.premium, q.forward, q.strike, q.expiry, q.rate, q.is_call)
+    vol = black76.implied_vol(q.premium, q.forward, q.strike, q.t_expiry, q.rate, q.is_call)
     noisy = vol + 0.002 * np.random.default_rng(8).standard_normal(vol.size)
     return replace(q, premium=None, implied_vol=noisy)
 
@@ -53,7 +45,7 @@ def test_huber_equals_squares_on_clean_data(clean: OptionQuotes, mode: str, meas
     huber = fit(clean, hist, replace(s, loss="huber"))
     assert np.max(np.abs(squares.vol_residual)) < 0.01  # all inside the 2 vol point threshold
     for a, b in zip(squares.buckets, huber.buckets, strict=True):
-        np.testing.assert_allclose(_vols(b.params), _vols(a.params), atol=SAME_TOL)
+        np.testing.assert_allclose(vols_of(b.params), vols_of(a.params), atol=SAME_TOL)
     assert huber.objective == pytest.approx(squares.objective, rel=SAME_TOL)
     assert huber.flags == () and huber.constraints_met
 
@@ -99,16 +91,16 @@ def test_one_planted_x10_premium_moves_the_robust_fit_as_little_as_deleting_it(
         premium[i] *= 10.0
         planted = replace(demo, premium=premium)
         res = cal.fit(planted, hist)
-        move = np.abs(_vols(res.params)[:2] / _vols(base.params)[:2] - 1.0)
+        move = np.abs(vols_of(res.params)[:2] / vols_of(base.params)[:2] - 1.0)
         assert move.max() < VOL_MOVE, i
         # the same as removing the quote: its premium no longer matters
         keep = np.arange(len(demo)) != i
         without = cal.fit(demo.take(np.flatnonzero(keep)), hist)
-        np.testing.assert_allclose(_vols(res.params), _vols(without.params), atol=1e-9)
+        np.testing.assert_allclose(vols_of(res.params), vols_of(without.params), atol=1e-9)
         plain = squares.fit(planted, hist)
         worst_squares = max(
             worst_squares,
-            float(np.max(np.abs(_vols(plain.params)[:2] / _vols(base.params)[:2] - 1.0))),
+            float(np.max(np.abs(vols_of(plain.params)[:2] / vols_of(base.params)[:2] - 1.0))),
         )
     assert worst_squares > 0.1  # the same planted quotes do move a squared-loss fit
 

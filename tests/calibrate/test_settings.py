@@ -54,8 +54,8 @@ def test_unknown_setting_keys_are_refused() -> None:
 
 def _quotes(**over: object) -> OptionQuotes:
     base: dict[str, object] = dict(
-        expiry=[0.5, 1.0],
-        maturity=[0.6, 1.1],
+        t_expiry=[0.5, 1.0],
+        t_delivery=[0.6, 1.1],
         is_call=["call", "put"],
         strike=[50.0, 45.0],
         forward=[50.0, 50.0],
@@ -69,7 +69,10 @@ def _quotes(**over: object) -> OptionQuotes:
 @pytest.mark.parametrize(
     ("over", "message"),
     [
-        ({"maturity": [0.4, 1.1]}, "option quotes: maturity precedes the option expiry at index 0"),
+        (
+            {"t_delivery": [0.4, 1.1]},
+            "option quotes: t_delivery precedes the option expiry at index 0",
+        ),
         ({"strike": [50.0, -1.0]}, r"option quotes: strike must be > 0 \(index 1\)"),
         ({"premium": [3.0]}, r"option quotes: premium has shape \(1,\), expected \(2,\)"),
         ({"implied_vol": [0.3, 0.3]}, "give exactly one of premium and implied_vol"),

@@ -94,8 +94,8 @@ def _day(rng: np.random.Generator) -> Day:
         half = 0.01 * premium + 1e-4 * F
         bid, ask = np.maximum(premium - half, 0.0), premium + half
     quotes = OptionQuotes(
-        expiry=t,
-        maturity=T,
+        t_expiry=t,
+        t_delivery=T,
         is_call=call,
         strike=K,
         forward=forward,
@@ -126,7 +126,7 @@ def _independent_objective(q: OptionQuotes, res: CalibrationResult) -> Any:
     """The constant-mode objective in ``(s1, s2, rho)`` with scipy's normal distribution."""
     s, hist = res.settings, res.historical
     i = np.asarray(res.quote_index)
-    t, T, F, K, D = q.expiry[i], q.maturity[i], q.forward[i], q.strike[i], q.discount[i]
+    t, T, F, K, D = q.t_expiry[i], q.t_delivery[i], q.forward[i], q.strike[i], q.discount[i]
     sign = np.where(q.is_call[i], 1.0, -1.0)
     a, b, c = variance_coefficients(t, T, hist.kappa)
     w = np.asarray(res.weight)
@@ -207,7 +207,7 @@ def test_adversarial_days_fit_or_are_refused_with_a_reason() -> None:
                 warnings.simplefilter("ignore", CalibWarning)  # counted as flags on the result
                 K = 1
                 if s.mode == "forward":
-                    K = max(bucket_edges(prepare(day.quotes, s).expiry).size - 1, 1)
+                    K = max(bucket_edges(prepare(day.quotes, s).t_expiry).size - 1, 1)
                 cal = calibrators.get((s, K))
                 if cal is None:
                     cal = calibrators[(s, K)] = Calibrator(s, K)

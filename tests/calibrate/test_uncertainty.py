@@ -13,12 +13,8 @@ import pytest
 from calib.calibrate import CalibrationSettings, Calibrator, OptionQuotes, fit
 from calib.errors import CalibrationNotIdentifiedWarning
 from calib.model import black76
-from calib.model.twofactor import TwoFactorParams
-from tests.calibrate.quotes_from_model import make_quotes
+from tests.calibrate.quotes_from_model import TRUE, make_quotes
 
-TRUE = TwoFactorParams(
-    mu=0.05, kappa=1.5, alpha=0.02, lam=0.0, sigma_spot=0.35, sigma_yield=0.25, rho=0.7
-)
 N_BOOT = 200  # the bootstrap's own standard error of a spread is about 1/sqrt(2 N) = 5 %
 # standard errors against the bootstrap spread, relative: four times the spread's own error
 # (5 %, above), the rest left to the linearisation behind the standard errors
@@ -33,7 +29,7 @@ def _quotes(**kw: object) -> OptionQuotes:
 
 def _noisy(q: OptionQuotes, noise: float, seed: int) -> OptionQuotes:
     assert q.premium is not None
-    vol = black76.implied_vol(q.premium, q.forward, q.strike, q.expiry, q.rate, q.is_call)
+    vol = black76.implied_vol(q.premium, q.forward, q.strike, q.t_expiry, q.rate, q.is_call)
     rng = np.random.default_rng(seed)
     return replace(q, premium=None, implied_vol=vol + noise * rng.standard_normal(vol.size))
 

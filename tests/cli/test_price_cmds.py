@@ -96,9 +96,9 @@ def test_price_spread_end_to_end(store: Store, loaded: Loaded, cli: Cli) -> None
     discount = float(np.exp(-np.interp(t, nodes, curve["zero_rate"].to_numpy()) * t))
     assert payload["discount"] == pytest.approx(discount, rel=1e-15)
     option = SpreadOption(
-        near=np.array([_years(day, near)]),
-        far=np.array([_years(day, far)]),
-        expiry=np.array([t]),
+        t_near=np.array([_years(day, near)]),
+        t_far=np.array([_years(day, far)]),
+        t_expiry=np.array([t]),
         strike=np.array([10.0]),
         is_call=np.array([True]),
         near_price=np.array([futures[near]]),
@@ -139,7 +139,8 @@ def test_forward_buckets_and_clear_errors(store: Store, loaded: Loaded, cli: Cli
     fitted = fit_day(store.sessions, loaded.code, day, by="q", settings=forward)
     rid = str(fitted.run.run_id)
     base = ["price", "spread", loaded.code, "--run", rid, "--strike", "5"]
-    ok = [*base, "--near", str(near), "--far", str(far), "--expiry", str(expiry)]
+    legs = ["--near", str(near), "--far", str(far), "--expiry", str(expiry)]
+    ok = [*base, *legs]
     code, out, _ = cli(*ok, "--kind", "put", "--json")
     assert code == 0
     payload = json.loads(out)
@@ -154,9 +155,9 @@ def test_forward_buckets_and_clear_errors(store: Store, loaded: Loaded, cli: Cli
         rho=np.array([b.params.rho for b in buckets]),
     )
     option = SpreadOption(
-        near=np.array([payload["t_near"]]),
-        far=np.array([payload["t_far"]]),
-        expiry=np.array([payload["t_expiry"]]),
+        t_near=np.array([payload["t_near"]]),
+        t_far=np.array([payload["t_far"]]),
+        t_expiry=np.array([payload["t_expiry"]]),
         strike=np.array([5.0]),
         is_call=np.array([False]),
         near_price=np.array([futures[near]]),
@@ -174,19 +175,7 @@ def test_forward_buckets_and_clear_errors(store: Store, loaded: Loaded, cli: Cli
             "after",
         ),
         (["--near", str(far), "--far", str(near), "--expiry", str(expiry)], "must come before"),
-        (
-            [
-                "--near",
-                str(near),
-                "--far",
-                str(far),
-                "--expiry",
-                str(expiry),
-                "--date",
-                "2031-01-01",
-            ],
-            "no futures",
-        ),
+        ([*legs, "--date", "2031-01-01"], "no futures"),
     ]
     for extra, message in cases:
         code, _, err = cli(*base, *extra)

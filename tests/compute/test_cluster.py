@@ -69,7 +69,7 @@ def loaded(sqlite_store: Store, tmp_path: Path) -> Loaded:
 def _second_estimate(store: Store, loaded: Loaded, path: Path) -> int:
     """The same parameters imported again: a new estimate id, so every day is fitted again."""
     file = write_estimate_file(path, loaded.scenario)
-    return import_estimate(store.sessions, loaded.code, file, user="tester").estimate_id
+    return import_estimate(store.sessions, loaded.code, file, by="tester").estimate_id
 
 
 def _runs(store: Store, report: flow.BackfillReport) -> list[tuple[Any, ...]]:
@@ -153,9 +153,9 @@ def _second_commodity(store: Store, loaded: Loaded, code: str) -> None:
         source = loaded.folder / f"{kind}.csv"
         copy = loaded.folder / f"{code}-{kind}.csv"
         copy.write_text(source.read_text().replace(f",{loaded.code},", f",{code},"))
-        ingest_file(store.sessions, copy, kind, user="tester", create=new)  # type: ignore[arg-type]
+        ingest_file(store.sessions, copy, kind, by="tester", create=new)  # type: ignore[arg-type]
     file = write_estimate_file(loaded.folder / f"{code}.json", loaded.scenario)
-    import_estimate(store.sessions, code, file, user="tester")
+    import_estimate(store.sessions, code, file, by="tester")
 
 
 def test_several_commodities_in_one_run_match_one_at_a_time(

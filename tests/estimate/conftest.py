@@ -1,5 +1,5 @@
-"""Simulated futures panels for the estimation tests (invented market: deliveries every two
-months on the 20th, business days Monday to Friday).
+"""Simulated futures panels for the estimation tests (:mod:`calib.estimate.synthetic`: an
+invented market, deliveries every two months on the 20th, business days Monday to Friday).
 
 The states come from :mod:`calib.model.simulate` (exact transition), an independent path from
 the filter under test.
@@ -9,8 +9,7 @@ from __future__ import annotations
 
 import numpy as np
 
-from calib.estimate import Curves, curves_from_quotes
-from calib.model.simulate import futures_curves, simulate_states
+from calib.estimate import Curves, synthetic
 from calib.model.twofactor import TwoFactorParams
 
 # Schwartz (1997), J. Finance 52(3), Table IV, crude oil, model 2 (from memory); mu is our choice.
@@ -23,8 +22,7 @@ START = np.datetime64("2031-01-02")
 
 
 def business_days(n_days: int, start: np.datetime64 = START) -> np.ndarray:
-    cal = np.arange(start, start + 2 * n_days + 10, dtype="datetime64[D]")
-    return cal[np.is_busday(cal)][:n_days]
+    return synthetic.business_days(n_days, start)
 
 
 def simulate_panel(
@@ -37,21 +35,6 @@ def simulate_panel(
     missing: float = 0.0,
 ) -> Curves:
     """Five-slot curves on ``days``: exact states, rolling contracts, slot noise, gaps."""
-    rng = np.random.default_rng(seed)
-    years = (days - days[0]).astype(np.float64) / 365.0
-    paths = simulate_states(params, years, np.log(60.0), params.alpha, 1, rng=rng)
-    first = days[0].astype("datetime64[M]")
-    months = np.arange(first, days[-1].astype("datetime64[M]") + 24, 2)
-    deliveries = months.astype("datetime64[D]") + 19
-    tau = (deliveries[None, :] - days[:, None]).astype(np.float64) / 365.0
-    price = futures_curves(paths, np.maximum(tau, 0.0), params, rate)[0]
-    keep = (tau > 0.0) & (tau < 1.5)
-    td = np.broadcast_to(days[:, None], tau.shape)[keep]
-    dl = np.broadcast_to(deliveries[None, :], tau.shape)[keep]
-    clean = curves_from_quotes(td, dl, price[keep], n_contracts=noise_sd.size)
-    y = clean.log_price + noise_sd * rng.standard_normal(clean.log_price.shape)
-    if missing:
-        drop = rng.random(y.shape) < missing
-        drop[0] = False
-        y[drop] = np.nan
-    return Curves(clean.dates, clean.tau, y, delivery=clean.delivery)
+    return synthetic.simulated_curves(
+        days, seed, params=params, noise_sd=noise_sd, rate=rate, missing=missing
+    )

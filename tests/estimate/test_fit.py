@@ -5,7 +5,7 @@ from __future__ import annotations
 import numpy as np
 import pytest
 
-from calib.errors import EstimationWarning
+from calib.errors import EstimationWarning, ParameterError
 from calib.estimate import Curves, Estimate, default_starts, fit, log_likelihood
 from calib.model.twofactor import PARAM_NAMES
 from tests.estimate.conftest import NOISE_SD, RATE, TRUTH, business_days, simulate_panel
@@ -97,3 +97,31 @@ def test_non_convergence_is_flagged_and_warned(panel: Curves) -> None:
         )
     assert not e.converged
     assert "not converged" in e.message
+
+
+def test_a_start_searched_in_a_neighbours_coordinates_reaches_the_cold_optimum(
+    panel: Curves,
+) -> None:
+    """A window warm-started from the window a month before, searched in the coordinates of
+    that optimum's covariance, reaches the optimum the default starts reach."""
+
+    def days(a: int, b: int) -> Curves:
+        return Curves(panel.dates[a:b], panel.tau[a:b], panel.log_price[a:b])
+
+    before, now = days(0, 520), days(21, 541)
+    near = fit(before, RATE)
+    cold = fit(now, RATE)
+    start = [(near.params, near.noise_sd)]
+    warm = fit(now, RATE, starts=start, start_covariance=near.covariance)
+    assert warm.converged, warm.message
+    assert warm.n_starts == 1 == len(warm.start_logliks)
+    assert warm.loglik == pytest.approx(cold.loglik, abs=LOGLIK_ATOL)
+    for name in PARAM_NAMES:  # the same optimum: within a thousandth of a standard error
+        a, b = getattr(warm.params, name), getattr(cold.params, name)
+        assert abs(a - b) <= 1e-3 * cold.std_errors[name], name
+    # a covariance that is not finite (no standard errors) is not used: the plain search
+    unusable = np.full(near.covariance.shape, np.nan)
+    plain = fit(now, RATE, starts=start)
+    assert fit(now, RATE, starts=start, start_covariance=unusable).params == plain.params
+    with pytest.raises(ParameterError, match="start_covariance"):
+        fit(now, RATE, starts=start, start_covariance=np.eye(3))

@@ -25,7 +25,7 @@ def _spread_price(params: TwoFactorParams) -> float:
     # a calendar-spread call at the money, half a year out, under the parameters themselves
     one = np.array([1.0])
     option = SpreadOption(
-        near=0.55 * one, far=0.8 * one, expiry=0.5 * one, strike=0.0 * one,
+        t_near=0.55 * one, t_far=0.8 * one, t_expiry=0.5 * one, strike=0.0 * one,
         is_call=np.array([True]), near_price=60.0 * one, far_price=61.0 * one, discount=one,
     )  # fmt: skip
     law = spread_law(option, params)

@@ -21,7 +21,7 @@ SET = TwoFactorParams(
     mu=0.06, kappa=1.2, alpha=0.03, lam=0.01, sigma_spot=0.35, sigma_yield=0.3, rho=0.6
 )
 RATE = 0.03
-SPREAD = CalendarSpread(near=0.55, far=0.8, expiry=0.5, strike=0.5)
+SPREAD = CalendarSpread(t_near=0.55, t_far=0.8, t_expiry=0.5, strike=0.5)
 PRICES = np.array([50.0, 51.0])
 
 
@@ -34,9 +34,9 @@ def _run(
     seed: int,
     rate: float = RATE,
 ) -> tuple[HedgeResult, np.ndarray]:
-    T = np.array(option.maturities)
+    T = np.array(option.t_legs)
     F0 = PRICES[: T.size]
-    times = np.linspace(0.0, option.expiry, steps + 1)
+    times = np.linspace(0.0, option.t_expiry, steps + 1)
     state = initial_state(world, T, F0, rate)
     F = simulate_futures(world, T, times, F0, state, rate, paths, rng=seed)
     return hedge_paths(option, pricing, times, F, rate), F
@@ -78,7 +78,7 @@ def test_vanilla_discrete_hedging_sd_against_derman_kamal() -> None:
     # deviation of about sqrt(pi/4) vega sigma / sqrt(N). sigma_yield = 0 makes the futures
     # volatility flat at sigma_spot; mu = r and lam = 0 make the futures driftless.
     flat = replace(SET, sigma_yield=0.0, mu=0.0, lam=0.0)
-    option = VanillaOption(maturity=1.0, expiry=1.0, strike=50.0)
+    option = VanillaOption(t_delivery=1.0, t_expiry=1.0, strike=50.0)
     steps = 252
     result, _ = _run(option, flat, flat, steps, 10_000, seed=4, rate=0.0)
     vega = float(black76.greeks(50.0, 50.0, 1.0, 0.0, flat.sigma_spot, "call")["vega"])
@@ -127,7 +127,7 @@ def test_bad_grid_and_futures_are_refused() -> None:
     with pytest.raises(ParameterError, match="need"):
         hedge_paths(SPREAD, SET, [0.0, 0.5], F, RATE)
     with pytest.raises(ParameterError, match="far future must mature after"):
-        CalendarSpread(near=0.5, far=0.5, expiry=0.4, strike=0.0)
+        CalendarSpread(t_near=0.5, t_far=0.5, t_expiry=0.4, strike=0.0)
 
 
 def test_stats_of_a_normal_sample() -> None:

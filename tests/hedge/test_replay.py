@@ -72,11 +72,9 @@ def _history(store: Store, folder: Path, monkeypatch: pytest.MonkeyPatch) -> His
     paths = write_csv(scenario, folder)
     new = NewCommodity(unit="tonne", currency="USD", calendar_rule="monthly")
     for kind in ("futures", "rates", "options"):
-        ingest_file(store.sessions, paths[kind], kind, user="t", create=new)  # type: ignore[arg-type]
+        ingest_file(store.sessions, paths[kind], kind, by="t", create=new)  # type: ignore[arg-type]
     code = scenario.commodity["code"]
-    import_estimate(
-        store.sessions, code, write_estimate_file(folder / "e.json", scenario), user="t"
-    )
+    import_estimate(store.sessions, code, write_estimate_file(folder / "e.json", scenario), by="t")
 
     def fit_and_approve(fit_day: dt.date, when: dt.datetime) -> None:
         run = fit_one_day(store.sessions, code, fit_day, by="q", settings=FAST).run
@@ -136,9 +134,9 @@ def _slow_loop(store: Store, h: History) -> tuple[list[dict[str, float]], float,
             t = (h.expiry - day).days / 365.0
             disc = _discount(curve, day, h.expiry)
             option = SpreadOption(
-                near=np.array([(h.near - day).days / 365.0]),
-                far=np.array([(h.far - day).days / 365.0]),
-                expiry=np.array([t]),
+                t_near=np.array([(h.near - day).days / 365.0]),
+                t_far=np.array([(h.far - day).days / 365.0]),
+                t_expiry=np.array([t]),
                 strike=np.array([5.0]),
                 is_call=np.array([True]),
                 near_price=F[:1],

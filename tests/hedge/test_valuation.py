@@ -23,7 +23,7 @@ FD_REL = 1e-6  # central differences of a smooth function, step 1e-5 relative
 
 def _spreads() -> list[CalendarSpread]:
     return [
-        CalendarSpread(near=0.55, far=0.8, expiry=0.5, strike=k, call=c)
+        CalendarSpread(t_near=0.55, t_far=0.8, t_expiry=0.5, strike=k, is_call=c)
         for k in (-2.0, 0.0, 0.7, 3.0)
         for c in (True, False)
     ]
@@ -33,14 +33,14 @@ def _spec(option: CalendarSpread, F: np.ndarray, t: float = 0.0) -> SpreadOption
     """calib.model.spread's description of the option seen from ``t``, one per row of F."""
     n = F.shape[0]
     return SpreadOption(
-        near=option.near - t,
-        far=option.far - t,
-        expiry=option.expiry - t,
+        t_near=option.t_near - t,
+        t_far=option.t_far - t,
+        t_expiry=option.t_expiry - t,
         strike=np.full(n, option.strike),
-        is_call=option.call,
+        is_call=option.is_call,
         near_price=F[:, 0],
         far_price=F[:, 1],
-        discount=np.exp(-RATE * (option.expiry - t)),
+        discount=np.exp(-RATE * (option.t_expiry - t)),
     )
 
 
@@ -62,19 +62,19 @@ def _spread_pricer(
 def test_remaining_law_equals_the_closed_form_from_t(t: float) -> None:
     # DESIGN section 3: the model is time-homogeneous, so the law over [t, expiry] is the
     # closed-form covariance over a life of expiry - t with maturities shifted by t.
-    option = CalendarSpread(near=0.55, far=0.8, expiry=0.5, strike=0.0)
+    option = CalendarSpread(t_near=0.55, t_far=0.8, t_expiry=0.5, strike=0.0)
     law = remaining_law(option, SET, np.array([t]))
-    life = option.expiry - t
+    life = option.t_expiry - t
     want = (
-        total_variance(life, option.near - t, SET),
-        total_variance(life, option.far - t, SET),
-        covariance(life, option.near - t, option.far - t, SET),
+        total_variance(life, option.t_near - t, SET),
+        total_variance(life, option.t_far - t, SET),
+        covariance(life, option.t_near - t, option.t_far - t, SET),
     )
     got = (law.var_near[0], law.var_far[0], law.cov[0])
     np.testing.assert_allclose(got, np.array(want, dtype=float).ravel(), rtol=1e-12)
 
 
-@pytest.mark.parametrize("option", _spreads(), ids=lambda o: f"K{o.strike}-{o.call}")
+@pytest.mark.parametrize("option", _spreads(), ids=lambda o: f"K{o.strike}-{o.is_call}")
 def test_spread_values_and_ratios_equal_the_pricer(
     option: CalendarSpread, rng: np.random.Generator
 ) -> None:
@@ -88,7 +88,7 @@ def test_spread_values_and_ratios_equal_the_pricer(
         float(law.var_far[0]),
         float(law.cov[0]),
         F,
-        float(np.exp(-RATE * (option.expiry - t))),
+        float(np.exp(-RATE * (option.t_expiry - t))),
     )
     price, d_near, d_far = _spread_pricer(option, F, t)
     scale = F.max()
@@ -97,7 +97,7 @@ def test_spread_values_and_ratios_equal_the_pricer(
     np.testing.assert_allclose(ratios[:, 1], d_far, atol=VALUE_REL * 10)
 
 
-@pytest.mark.parametrize("option", _spreads()[::3], ids=lambda o: f"K{o.strike}-{o.call}")
+@pytest.mark.parametrize("option", _spreads()[::3], ids=lambda o: f"K{o.strike}-{o.is_call}")
 def test_spread_ratios_equal_finite_differences_of_the_pricer(option: CalendarSpread) -> None:
     # Central differences of calib.model.spread.price_exact in each future (STYLE 10).
     F = np.array([[48.0, 50.5]])
@@ -108,7 +108,7 @@ def test_spread_ratios_equal_finite_differences_of_the_pricer(option: CalendarSp
         float(law.var_far[0]),
         float(law.cov[0]),
         F,
-        float(np.exp(-RATE * option.expiry)),
+        float(np.exp(-RATE * option.t_expiry)),
     )
     for leg in (0, 1):
         h = 1e-5 * F[0, leg]
@@ -124,15 +124,15 @@ def test_spread_ratios_equal_finite_differences_of_the_pricer(option: CalendarSp
 @pytest.mark.parametrize("call", [True, False])
 def test_vanilla_values_and_ratios_equal_black76(call: bool, rng: np.random.Generator) -> None:
     # calib.model.black76.greeks with the model's Black volatility over the remaining life.
-    option = VanillaOption(maturity=0.6, expiry=0.5, strike=50.0, call=call)
+    option = VanillaOption(t_delivery=0.6, t_expiry=0.5, strike=50.0, is_call=call)
     t = 0.1
     F = 50.0 * np.exp(0.2 * rng.standard_normal((300, 1)))
     law = remaining_law(option, SET, np.array([t]))
     var = float(law.var_near[0])
     value, ratios = value_and_ratios(
-        option, var, var, var, F, float(np.exp(-RATE * (option.expiry - t)))
+        option, var, var, var, F, float(np.exp(-RATE * (option.t_expiry - t)))
     )
-    life = option.expiry - t
+    life = option.t_expiry - t
     g = black76.greeks(F[:, 0], 50.0, life, RATE, np.sqrt(var / life), "call" if call else "put")
     np.testing.assert_allclose(value, g["price"], rtol=1e-13, atol=1e-13)
     np.testing.assert_allclose(ratios[:, 0], g["delta"], rtol=1e-13, atol=1e-13)
@@ -150,7 +150,7 @@ def test_vanilla_values_and_ratios_equal_black76(call: bool, rng: np.random.Gene
 def test_value_at_time_zero_equals_the_pricers() -> None:
     # The premium the engine sells for is calib.model.spread's exact price (64 nodes), with
     # constant and with forward volatilities.
-    option = CalendarSpread(near=0.55, far=0.8, expiry=0.5, strike=0.7)
+    option = CalendarSpread(t_near=0.55, t_far=0.8, t_expiry=0.5, strike=0.7)
     forward = ForwardVols(
         kappa=SET.kappa,
         edges=np.array([0.0, 0.2, 0.5]),
@@ -158,7 +158,7 @@ def test_value_at_time_zero_equals_the_pricers() -> None:
         sigma_yield=np.array([0.25, 0.35]),
         rho=np.array([0.5, 0.7]),
     )
-    times = np.linspace(0.0, option.expiry, 5)
+    times = np.linspace(0.0, option.t_expiry, 5)
     F = np.tile(np.array([50.0, 51.0]), (3, times.size, 1))
     for vols in (SET, forward):
         result = hedge_paths(option, vols, times, F, RATE)
@@ -170,15 +170,15 @@ def test_value_at_time_zero_equals_the_pricers() -> None:
 # near one with unequal leg volatilities, a large strike against the spread's deviation, and
 # a short remaining life; plus a smooth one.
 SHARP_CASES = [
-    (SET, CalendarSpread(near=0.55, far=0.8, expiry=0.5, strike=0.5)),
-    (SET, CalendarSpread(near=0.51, far=0.52, expiry=0.5, strike=0.05, call=False)),
+    (SET, CalendarSpread(t_near=0.55, t_far=0.8, t_expiry=0.5, strike=0.5)),
+    (SET, CalendarSpread(t_near=0.51, t_far=0.52, t_expiry=0.5, strike=0.05, is_call=False)),
     (
         TwoFactorParams(
             mu=0.0, kappa=3.0, alpha=0.0, lam=0.0, sigma_spot=0.6, sigma_yield=1.2, rho=0.95
         ),
-        CalendarSpread(near=0.3, far=1.5, expiry=0.25, strike=-6.0),
+        CalendarSpread(t_near=0.3, t_far=1.5, t_expiry=0.25, strike=-6.0),
     ),
-    (SET, CalendarSpread(near=0.55, far=0.8, expiry=0.5, strike=8.0)),
+    (SET, CalendarSpread(t_near=0.55, t_far=0.8, t_expiry=0.5, strike=8.0)),
 ]
 
 

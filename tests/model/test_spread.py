@@ -15,7 +15,6 @@ from calib.model.spread import (
     ForwardVols,
     SpreadLaw,
     SpreadOption,
-    hedge_ratios,
     law_coefficients,
     price_exact,
     price_kirk,
@@ -53,9 +52,9 @@ def grid_option(params_far: float = 52.0) -> SpreadOption:
         )
     )
     return SpreadOption(
-        near=t + T1 + 0.01,
-        far=t + T1 + 0.01 + T2,
-        expiry=t,
+        t_near=t + T1 + 0.01,
+        t_far=t + T1 + 0.01 + T2,
+        t_expiry=t,
         strike=K,
         is_call=np.arange(t.size) % 2 == 0,
         near_price=50.0,
@@ -187,9 +186,9 @@ def test_exact_close_to_kirk_for_small_strikes() -> None:
 @pytest.mark.parametrize("far_price", [56.0, 44.0], ids=["contango", "backwardation"])
 def test_exact_within_three_standard_errors_of_monte_carlo(far_price: float) -> None:
     opt = SpreadOption(
-        near=[0.5, 0.5, 1.0, 1.0],
-        far=[0.75, 1.5, 1.25, 2.0],
-        expiry=[0.45, 0.4, 0.9, 0.95],
+        t_near=[0.5, 0.5, 1.0, 1.0],
+        t_far=[0.75, 1.5, 1.25, 2.0],
+        t_expiry=[0.45, 0.4, 0.9, 0.95],
         strike=[2.0, -1.0, 0.0, 6.0],
         is_call=[True, False, True, False],
         near_price=50.0,
@@ -212,9 +211,9 @@ def test_law_matches_the_state_transition() -> None:
     r = 0.03
     t, T1, T2, F1, F2 = 0.4, 0.5, 1.25, 50.0, 53.0
     opt = SpreadOption(
-        near=T1,
-        far=T2,
-        expiry=t,
+        t_near=T1,
+        t_far=T2,
+        t_expiry=t,
         strike=1.0,
         is_call="call",
         near_price=F1,
@@ -250,7 +249,7 @@ def test_forward_mode_constant_buckets_equal_constant_mode() -> None:
     # Diagonal bucket coefficients agree with twofactor.bucket_coefficients.
     near, _, _ = law_coefficients(opt, ForwardVols.constant(LOOSE, edges))
     for ours, theirs in zip(
-        near, bucket_coefficients(opt.expiry, opt.near, edges, LOOSE.kappa), strict=True
+        near, bucket_coefficients(opt.t_expiry, opt.t_near, edges, LOOSE.kappa), strict=True
     ):
         np.testing.assert_allclose(ours, theirs, rtol=1e-14, atol=1e-16)
 
@@ -265,7 +264,8 @@ def _fd(f, x: float, h: float) -> float:  # type: ignore[no-untyped-def]
 def test_hedge_ratios_match_finite_differences() -> None:
     opt = grid_option()
     law = spread_law(opt, DECAY)
-    dn, df = hedge_ratios(law, opt.strike, opt.is_call, opt.discount)
+    g = spread_greeks(law, opt.strike, opt.is_call, opt.discount)
+    dn, df = g.delta_near, g.delta_far
 
     def bumped(leg: str, h: float) -> np.ndarray:
         F1 = opt.near_price * (1 + h) if leg == "near" else opt.near_price
@@ -353,9 +353,9 @@ def test_price_is_homogeneous_in_prices_and_strike() -> None:
 
 def test_bad_inputs_are_rejected() -> None:
     kw = dict(
-        near=0.5,
-        far=1.0,
-        expiry=0.4,
+        t_near=0.5,
+        t_far=1.0,
+        t_expiry=0.4,
         strike=1.0,
         is_call="call",
         near_price=50.0,
@@ -363,9 +363,9 @@ def test_bad_inputs_are_rejected() -> None:
         discount=1.0,
     )
     with pytest.raises(ParameterError, match=r"far = .* must not mature before the near"):
-        SpreadOption(**{**kw, "far": 0.3})
+        SpreadOption(**{**kw, "t_far": 0.3})
     with pytest.raises(ParameterError, match=r"near = .* must not mature before expiry"):
-        SpreadOption(**{**kw, "expiry": 0.6})
+        SpreadOption(**{**kw, "t_expiry": 0.6})
     with pytest.raises(ParameterError, match=r"near_price .* must be > 0"):
         SpreadOption(**{**kw, "near_price": -1.0})
     with pytest.raises(ParameterError, match="kind"):

@@ -56,7 +56,7 @@ def _inputs(rng: np.random.Generator, **over: object) -> rp.ReportInputs:
         delivery=tuple(deliveries[i] for i in j),
         kind=kinds,
         strike=K,
-        time_to_expiry=t,
+        t_expiry=t,
         market_vol=market_vol,
         model_vol=model_vol,
         market_price=black76.price(F, K, t, 0.03, market_vol, calls),

@@ -41,7 +41,7 @@ def test_a_curve_that_jumped_is_held_for_review(
     assert gate.passed and isinstance(gate.value, float) and 0.0 < gate.value < 0.2, gate
     assert before.isoformat() in gate.detail
 
-    ingest_file(store.sessions, fixed, "futures", user="t", bands=Bands(settle_move=20.0))
+    ingest_file(store.sessions, fixed, "futures", by="t", bands=Bands(settle_move=20.0))
     jumped = fit_day(store.sessions, loaded.code, last, by="q", settings=HELD, auto_approve=True)
     gates = {g.name: g for g in jumped.gates}
     expected = abs(math.log(typo / settle[(before.isoformat(), delivery)]))

@@ -37,7 +37,7 @@ def _put(store: Store, path: Path, body: str, kind: str, when: datetime) -> int:
         store.sessions,
         path,
         kind,
-        user="t",
+        by="t",
         create=NewCommodity(),
         received_at=when,  # type: ignore[arg-type]
     )

@@ -30,7 +30,7 @@ def write_csv(path: Path, header: list[str], rows: list[list[object]]) -> Path:
 
 
 def ingest(store: Store, path: Path, kind: str, **kw: object):  # type: ignore[no-untyped-def]
-    return ingest_file(store.sessions, path, kind, user="tester", **kw)  # type: ignore[arg-type]
+    return ingest_file(store.sessions, path, kind, by="tester", **kw)  # type: ignore[arg-type]
 
 
 def store_day(store: Store, tmp_path: Path) -> Store:

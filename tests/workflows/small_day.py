@@ -31,7 +31,7 @@ def load_scenario(store: Store, folder: Path, spec: ScenarioSpec = SPEC) -> Load
     paths = write_csv(scenario, folder)
     new = NewCommodity(unit="tonne", currency="USD", calendar_rule="monthly")
     for kind in ("futures", "rates", "options"):
-        ingest_file(store.sessions, paths[kind], kind, user="tester", create=new)  # type: ignore[arg-type]
+        ingest_file(store.sessions, paths[kind], kind, by="tester", create=new)  # type: ignore[arg-type]
     days = [dt.date.fromisoformat(str(d)) for d in scenario.trade_dates.astype("datetime64[D]")]
     return Loaded(scenario, folder, days, scenario.commodity["code"])
 
@@ -54,5 +54,5 @@ def load_with_estimate(store: Store, folder: Path, spec: ScenarioSpec = SPEC) ->
 
     data = load_scenario(store, folder, spec)
     path = write_estimate_file(folder / "estimate.json", data.scenario)
-    import_estimate(store.sessions, data.code, path, user="tester")
+    import_estimate(store.sessions, data.code, path, by="tester")
     return data

@@ -39,7 +39,7 @@ def test_an_american_day_fits_reports_and_reruns_bit_identically(
     data = load_scenario(store, tmp_path)
     import_estimate(
         store.sessions, data.code, write_estimate_file(tmp_path / "e.json", data.scenario),
-        user="tester",
+        by="tester",
     )  # fmt: skip
     day_date = data.days[-1]
     with store.sessions() as s:
@@ -60,7 +60,7 @@ def test_an_american_day_fits_reports_and_reruns_bit_identically(
                  "call" if o.is_call[j] else "put", repr(float(o.strike[j])),
                  repr(float(premium[j])), "american"]
             )  # fmt: skip
-    report = ingest_file(store.sessions, path, "options", user="tester")
+    report = ingest_file(store.sessions, path, "options", by="tester")
     assert report.rows_accepted == len(o), report.problems
 
     outcome = fit_day(store.sessions, data.code, day_date, by="quant")

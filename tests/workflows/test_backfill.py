@@ -23,6 +23,7 @@ from calib.store.runs import (
 )
 from calib.workflows import backfill as flow
 from calib.workflows.estimates import import_estimate
+from calib.workflows.fit import fit_day
 from calib.workflows.rerun import rerun
 from tests.hooks import inside_each_write
 from tests.workflows.small_day import Loaded, load_with_estimate, write_estimate_file
@@ -178,7 +179,7 @@ def test_failures_are_summarised_with_reasons(store: Store, loaded: Loaded, tmp_
     )
     from calib.workflows.ingest import ingest_file
 
-    ingest_file(store.sessions, extra, "futures", user="tester")
+    ingest_file(store.sessions, extra, "futures", by="tester")
     # and every quote filtered out: each day a TooFewQuotesError, stored as a rejected run
     settings = RunSettings.from_dict({"calibration": {"min_days_to_expiry": 400.0}})
     end = saturday + dt.timedelta(days=2)
@@ -225,6 +226,26 @@ def test_auto_approve_supersedes_in_date_order(store: Store, loaded: Loaded) -> 
     assert current is not None and current.trade_date == passed[-1].trade_date
 
 
+def test_each_day_is_gated_on_its_curve_move_as_a_morning_run_is(
+    store: Store, loaded: Loaded, monkeypatch: pytest.MonkeyPatch
+) -> None:
+    # a write batch spans two reads (two as-of times) and starts after the range's first day
+    monkeypatch.setattr(flow, "DAYS_PER_TASK", 3)
+    monkeypatch.setattr(flow, "DAYS_PER_WRITE", 4)
+    days = loaded.days[20 : 20 + N_DAYS]  # the first day's previous trading day is outside
+    report = flow.backfill(store, loaded.code, days[0], days[-1], by="q", settings=FAST)
+    with store.sessions() as s:
+        runs = [require_run(session=s, run_id=d.run_id) for d in report.days]  # type: ignore[arg-type]
+    for run in runs:
+        alone = fit_day(store.sessions, loaded.code, run.trade_date, by="q", settings=FAST)
+        assert run.fit is not None
+        (mine,) = [g for g in run.fit.gates if g.name == "curve_move"]
+        (theirs,) = [g for g in alone.gates if g.name == "curve_move"]
+        assert mine == theirs and isinstance(mine.value, float)  # the same day compared
+    first = {g.name: g for g in runs[0].fit.gates}["curve_move"]  # type: ignore[union-attr]
+    assert loaded.days[19].isoformat() in first.detail
+
+
 @pytest.mark.slow
 def test_two_worker_processes_give_the_same_parameters(
     store: Store, loaded: Loaded, tmp_path: Path, monkeypatch: pytest.MonkeyPatch
@@ -238,7 +259,7 @@ def test_two_worker_processes_give_the_same_parameters(
         store.sessions,
         loaded.code,
         write_estimate_file(tmp_path / "e2.json", loaded.scenario),
-        user="tester",
+        by="tester",
     )
     two = flow.backfill(
         store,

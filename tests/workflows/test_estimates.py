@@ -23,7 +23,7 @@ def test_estimate_from_stored_futures_stores_states_and_inputs(
     data = load_scenario(store, tmp_path)
     lines: list[str] = []
     record = estimate(
-        store.sessions, data.code, data.days[0], data.days[-1], user="q", progress=lines.append
+        store.sessions, data.code, data.days[0], data.days[-1], by="q", progress=lines.append
     )
     assert record.source == "kalman" and record.converged and record.n_days == len(data.days)
     assert len(lines) == 3 and "257 days x 5 contracts" in lines[1]
@@ -53,7 +53,7 @@ def test_estimate_of_an_empty_window_is_a_clear_error(store: Store, tmp_path: Pa
             data.code,
             data.days[0].replace(year=1990),
             data.days[0].replace(year=1990, month=12),
-            user="q",
+            by="q",
         )
 
 
@@ -85,7 +85,7 @@ def test_bad_estimate_files_are_refused(
     }
     path.write_text(json.dumps(special[content]) if content in special else content)
     with pytest.raises(EstimateFileError, match=match):
-        import_estimate(store.sessions, "QLM", path, user="q")
+        import_estimate(store.sessions, "QLM", path, by="q")
     with store.sessions() as s:
         assert s.scalar(select(func.count()).select_from(HistoricalEstimate)) == 0
 
@@ -96,7 +96,7 @@ def test_imported_estimate_is_marked_imported(store: Store, tmp_path: Path) -> N
         store.sessions,
         data.code,
         write_estimate_file(tmp_path / "e.json", data.scenario),
-        user="q",
+        by="q",
     )
     assert record.source == "imported" and record.params == data.scenario.params
     assert record.converged and record.n_days is None

@@ -163,9 +163,9 @@ def _slow_sale(
             assert curve is not None and chosen.params is not None
             disc = _discount(curve, day, trade.expiry)
             option = SpreadOption(
-                near=np.array([(trade.near - day).days / 365.0]),
-                far=np.array([(trade.far - day).days / 365.0]),
-                expiry=np.array([(trade.expiry - day).days / 365.0]),
+                t_near=np.array([(trade.near - day).days / 365.0]),
+                t_far=np.array([(trade.far - day).days / 365.0]),
+                t_expiry=np.array([(trade.expiry - day).days / 365.0]),
                 strike=np.array([trade.strike]),
                 is_call=np.array([True]),
                 near_price=F[:1],

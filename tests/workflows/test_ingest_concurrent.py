@@ -29,7 +29,7 @@ def _worker(url: str, paths: list[str], barrier: Barrier, results: Queue[tuple[s
     try:
         for path in paths:
             barrier.wait(timeout=120)
-            report = ingest_file(store.sessions, Path(path), "rates", user="racer")
+            report = ingest_file(store.sessions, Path(path), "rates", by="racer")
             results.put((path, report.status))
     finally:
         store.engine.dispose()

@@ -116,10 +116,10 @@ def seeded(tmp_path_factory: pytest.TempPathFactory) -> Iterator[tuple[Store, Pa
     upgrade(store.engine)
     fut = folder / "seed.csv"
     fut.write_text("trade_date,commodity,delivery,settle\n2031-03-03,QRX,2031-05-01,50\n")
-    ingest_file(store.sessions, fut, "futures", user="t", create=NewCommodity())
+    ingest_file(store.sessions, fut, "futures", by="t", create=NewCommodity())
     rates = folder / "rates.csv"
     rates.write_text("trade_date,maturity,zero_rate\n2031-03-03,2032-03-03,0.03\n")
-    ingest_file(store.sessions, rates, "rates", user="t")
+    ingest_file(store.sessions, rates, "rates", by="t")
     yield store, folder
     store.engine.dispose()
 
@@ -160,7 +160,7 @@ def test_hostile_files_are_handled_whole(
     path.write_bytes(data)
     before = _counts(store)
     try:
-        report = ingest_file(store.sessions, path, kind, user="t", strict=strict)  # type: ignore[arg-type]
+        report = ingest_file(store.sessions, path, kind, by="t", strict=strict)  # type: ignore[arg-type]
     except IngestFileError as exc:
         assert str(exc).startswith(str(path))
         assert _counts(store) == before  # nothing stored

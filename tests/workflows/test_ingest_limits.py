@@ -295,7 +295,7 @@ def test_long_unit_and_user_are_refused_at_the_boundary(store: Store, tmp_path: 
         NewCommodity(unit="u" * 200)
     path = write_csv(tmp_path / "f.csv", FUT, [[TD, "QRX", "2031-07-01", 50.0]])
     with pytest.raises(TextTooLongError, match=f"at most {USER_CHARS} are stored"):
-        ingest_file(store.sessions, path, "futures", user="x" * 200, create=NewCommodity())
+        ingest_file(store.sessions, path, "futures", by="x" * 200, create=NewCommodity())
     assert _batches(store) == 0
 
 

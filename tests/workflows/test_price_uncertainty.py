@@ -46,7 +46,7 @@ def _deliveries(store: Store, code: str, day: date) -> list[date]:
 def test_vanilla_price_and_its_uncertainty(store: Store, tmp_path: Path, cli: Cli) -> None:
     data = load_scenario(store, tmp_path)
     day = data.days[-1]
-    single = estimate(store.sessions, data.code, data.days[0], day, user="q", min_days=100)
+    single = estimate(store.sessions, data.code, data.days[0], day, by="q", min_days=100)
     assert single.covariance is not None and len(single.covariance) == 7 + 5
     with pytest.raises(SpreadRequestError, match="no approved parameter set"):
         price_vanilla(store.sessions, data.code, future=day, expiry=day, strike=1.0)
@@ -74,7 +74,7 @@ def test_vanilla_price_and_its_uncertainty(store: Store, tmp_path: Path, cli: Cl
     # a rolling series: its windows of the last year are priced
     series = estimate_rolling(
         store.sessions, data.code, date(2031, 11, 1), date(2031, 12, 1),
-        parse_period("l", "6m"), parse_period("s", "1m"), user="q", min_days=100,
+        parse_period("l", "6m"), parse_period("s", "1m"), by="q", min_days=100,
     )  # fmt: skip
     u = vanilla_uncertainty(store.sessions, got, draws=30)
     assert u.estimate.estimate_id == single.estimate_id

@@ -55,7 +55,7 @@ def test_the_report_sets_the_held_estimate_against_the_windows_known_that_mornin
 ) -> None:
     data = load_scenario(store, tmp_path)
     held = write_estimate_file(tmp_path / "e.json", data.scenario, std_errors=STD_ERRORS)
-    import_estimate(store.sessions, data.code, held, user="q")
+    import_estimate(store.sessions, data.code, held, by="q")
     run = fit_day(store.sessions, data.code, DAY, by="q").run
 
     # no series: the section shows the estimate and says how to get its stability

@@ -14,6 +14,7 @@ from calib.compute.executor import Executor, InlineExecutor, ProcessExecutor
 from calib.errors import RollingRequestError
 from calib.estimate.rolling import parse_period
 from calib.model.twofactor import PARAM_NAMES
+from calib.output.stability import write_csv, write_png
 from calib.store.engine import Store
 from calib.store.estimates import (
     EstimateRecord,
@@ -23,7 +24,7 @@ from calib.store.estimates import (
 )
 from calib.workflows.estimates import estimate
 from calib.workflows.rolling import RollingReport, RollingWindow, estimate_rolling
-from calib.workflows.stability import stability, write_csv, write_png
+from calib.workflows.stability import stability
 from tests.conftest import Cli
 from tests.workflows.small_day import load_scenario
 
@@ -55,7 +56,7 @@ def test_rolling_series_is_stored_marked_resumable_and_equal_to_single_estimates
             LAST,
             LENGTH,
             STEP,
-            user="q",
+            by="q",
             min_days=MIN_DAYS,
             chunk=2,
             **kw,  # type: ignore[arg-type]
@@ -78,7 +79,7 @@ def test_rolling_series_is_stored_marked_resumable_and_equal_to_single_estimates
     assert [e.settings["end"] for e in stored] == [w.end.isoformat() for w in report.windows]
     # each window equals a fresh single estimate on its dates
     for w in (report.windows[0], report.windows[3]):
-        single = estimate(store.sessions, data.code, w.start, w.end, user="q", min_days=MIN_DAYS)
+        single = estimate(store.sessions, data.code, w.start, w.end, by="q", min_days=MIN_DAYS)
         with store.sessions() as s:
             kept = get_estimate(session=s, estimate_id=w.estimate_id or -1)
         assert kept is not None and single.series_id is None
@@ -110,9 +111,9 @@ def test_rolling_series_is_stored_marked_resumable_and_equal_to_single_estimates
     out = view.to_dict()
     assert {"windows", "in_use", "recommendation", "quiet_steps", "caution", "k"} <= set(out)
     json.dumps(out, allow_nan=False)
-    rows = list(csv.DictReader(write_csv(view, tmp_path / "s.csv").open()))
+    rows = list(csv.DictReader(write_csv(view.to_dict(), tmp_path / "s.csv").open()))
     assert len(rows) == 4 and float(rows[0]["kappa"]) == stored[0].params.kappa
-    assert write_png(view, tmp_path / "s.png").stat().st_size > 10_000
+    assert write_png(view.to_dict(), tmp_path / "s.png").stat().st_size > 10_000
 
 
 def test_worker_processes_give_the_inline_result(store: Store, db_url: str, tmp_path: Path) -> None:
@@ -123,7 +124,7 @@ def test_worker_processes_give_the_inline_result(store: Store, db_url: str, tmp_
 
     def estimates(min_days: int, executor: Executor) -> list[EstimateRecord]:
         report = estimate_rolling(
-            store.sessions, data.code, *ends, LENGTH, STEP, user="q", min_days=min_days,
+            store.sessions, data.code, *ends, LENGTH, STEP, by="q", min_days=min_days,
             chunk=1, executor=executor,
         )  # fmt: skip
         with store.sessions() as s:
@@ -139,7 +140,7 @@ def test_worker_processes_give_the_inline_result(store: Store, db_url: str, tmp_
 def test_rolling_and_stability_requests_that_cannot_be_served(store: Store, tmp_path: Path) -> None:
     data = load_scenario(store, tmp_path)
     with pytest.raises(RollingRequestError, match="no window end between"):
-        estimate_rolling(store.sessions, data.code, LAST, FIRST, LENGTH, STEP, user="q")
+        estimate_rolling(store.sessions, data.code, LAST, FIRST, LENGTH, STEP, by="q")
     with pytest.raises(RollingRequestError, match="no rolling series stored"):
         stability(store.sessions, data.code)
     early = estimate_rolling(
@@ -149,7 +150,7 @@ def test_rolling_and_stability_requests_that_cannot_be_served(store: Store, tmp_
         date(2031, 2, 1),
         LENGTH,
         STEP,
-        user="q",
+        by="q",
         min_days=MIN_DAYS,
     )
     (w,) = early.windows

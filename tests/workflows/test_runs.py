@@ -129,7 +129,7 @@ def test_estimate_choice_never_uses_an_unconverged_one(
         store.sessions,
         loaded.code,
         write_estimate_file(tmp_path / "bad.json", loaded.scenario, converged=False),
-        user="t",
+        by="t",
     )
     outcome = fit_day(store.sessions, loaded.code, loaded.days[-1], by="q")
     assert outcome.run.estimate_id == bad.estimate_id - 1  # the converged import

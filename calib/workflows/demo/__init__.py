@@ -333,7 +333,7 @@ def run_demo(
         _register(store, scenario)
         order: tuple[FileKind, ...] = ("futures", "rates", "options")  # options check both others
         for kind in order:
-            report = ingest_file(store.sessions, paths[kind], kind, user=USER)
+            report = ingest_file(store.sessions, paths[kind], kind, by=USER)
             progress(
                 f"ingested {kind}: {report.rows_accepted:,} rows accepted, "
                 f"{report.rows_rejected} rejected"
@@ -353,7 +353,7 @@ def run_demo(
             code,
             est_days[0],
             est_days[-1],
-            user=USER,
+            by=USER,
             min_days=plan.min_days,
             progress=progress,
         )
