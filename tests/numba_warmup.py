@@ -81,7 +81,7 @@ def hedge() -> None:
     from calib.hedge.instruments import CalendarSpread
     from calib.hedge.valuation import SERIAL_BELOW, value_and_ratios
 
-    option = CalendarSpread(0.5, 0.75, 0.4, 1.0, True)  # near, far, expiry (years), strike, call
+    option = CalendarSpread(t_near=0.5, t_far=0.75, t_expiry=0.4, strike=1.0, is_call=True)
     for paths in (1, SERIAL_BELOW):
         futures = np.full((paths, 2), [50.0, 51.0])
         value_and_ratios(option, 0.02, 0.025, 0.018, futures, 0.99)
