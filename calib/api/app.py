@@ -52,6 +52,7 @@ from sqlalchemy.exc import OperationalError
 from starlette.exceptions import HTTPException as StarletteHTTPException
 
 from calib import __version__
+from calib.api.guard import bearer_guard
 from calib.api.review import include_review
 from calib.api.schemas import (
     ApprovalBody,
@@ -64,7 +65,7 @@ from calib.api.schemas import (
     RunId,
 )
 from calib.api.timeouts import DEFAULT_TIMEOUT, check_timeout, timeout_from_env
-from calib.api.tokens import bearer_guard, check_token, token_from_env
+from calib.api.tokens import check_token, token_from_env
 from calib.as_of import AS_OF_HELP, parse_as_of
 from calib.client import Client
 from calib.errors import (

@@ -43,8 +43,8 @@ from fastapi.responses import HTMLResponse, JSONResponse, Response
 from jinja2 import Environment, PackageLoader, StrictUndefined
 
 from calib import __version__
+from calib.api.guard import bearer_guard
 from calib.api.schemas import ApproveRequest, ErrorBody, PageCode, RunBody, RunId
-from calib.api.tokens import bearer_guard
 from calib.as_of import parse_as_of
 from calib.client import ApprovedSet, Client
 from calib.errors import (

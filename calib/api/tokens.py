@@ -2,20 +2,14 @@
 
 The server takes it from ``CALIB_API_TOKEN``, else from the file named by
 ``CALIB_API_TOKEN_FILE`` (what ``calib serve --token-file`` sets for its workers). Without
-either, the approval route is not mounted. :func:`bearer_guard` is the dependency every route
-that changes the store (the approval route, the review page's decision) is guarded by.
+either, the approval route is not mounted. Without the web framework, so that the CLI can
+read a token without importing it; the guard on the routes is :mod:`calib.api.guard`.
 """
 
 from __future__ import annotations
 
-import hmac
 import os
-from collections.abc import Callable
 from pathlib import Path
-from typing import Annotated
-
-from fastapi import Depends, HTTPException
-from fastapi.security import HTTPAuthorizationCredentials, HTTPBearer
 
 from calib.errors import ApiTokenError
 
@@ -52,24 +46,3 @@ def token_from_env() -> str | None:
     if os.environ.get(TOKEN_FILE_ENV):
         return read_token(Path(os.environ[TOKEN_FILE_ENV]))
     return None
-
-
-Bearer = Annotated[
-    HTTPAuthorizationCredentials | None,
-    Depends(HTTPBearer(auto_error=False, description="The token configured on the server.")),
-]
-
-
-def bearer_guard(token: str) -> Callable[..., None]:
-    """A dependency that refuses a request without ``Authorization: Bearer <token>`` (401; the
-    token compared in constant time)."""
-    expected = token.encode()
-
-    def authorised(credentials: Bearer) -> None:
-        given = b"" if credentials is None else credentials.credentials.encode()
-        if not hmac.compare_digest(given, expected):
-            raise HTTPException(
-                401, "approval needs a valid bearer token", headers={"WWW-Authenticate": "Bearer"}
-            )
-
-    return authorised
