@@ -64,6 +64,11 @@ def _dates(values: Sequence[date]) -> DateArray:
     return np.asarray(readonly(list(values), "datetime64[D]"))
 
 
+def year_fraction(start: date, end: date) -> float:
+    """ACT/365 years from ``start`` to ``end``."""
+    return (end - start).days / DAYS_PER_YEAR
+
+
 def year_fractions(start: date, end: DateArray) -> FloatArray:
     """ACT/365 year fractions from ``start`` to each date of ``end``."""
     origin = np.datetime64(start, "D")

@@ -53,12 +53,12 @@ from calib.model.spread import ForwardVols
 from calib.model.twofactor import TwoFactorParams
 from calib.record.codec import Encoded
 from calib.store.quotes import (
-    DAYS_PER_YEAR,
     ZeroCurve,
     load_day,
     load_futures_history,
     require_commodity,
     trade_dates,
+    year_fraction,
     year_fractions,
     zero_curves,
 )
@@ -132,19 +132,15 @@ def check_trade(commodity: str, trade: Trade) -> None:
         raise HedgeRequestError(commodity, SPREAD_ORDER.format(near=trade.near, far=trade.far))
 
 
-def _years(start: date, end: date) -> float:
-    return (end - start).days / DAYS_PER_YEAR
-
-
 def option_for(trade: Trade, start: date) -> HedgedOption:
     """The numeric option of ``trade`` seen from ``start`` (times in years)."""
     call = trade.kind == "call"
-    t = _years(start, trade.expiry)
+    t = year_fraction(start, trade.expiry)
     if trade.future is not None:
-        return VanillaOption(_years(start, trade.future), t, trade.strike, call)
+        return VanillaOption(year_fraction(start, trade.future), t, trade.strike, call)
     assert trade.near is not None and trade.far is not None
     return CalendarSpread(
-        _years(start, trade.near), _years(start, trade.far), t, trade.strike, call
+        year_fraction(start, trade.near), year_fraction(start, trade.far), t, trade.strike, call
     )
 
 
@@ -614,7 +610,7 @@ def value_days(
     notes: list[list[str]] = [[] for _ in days]
     if expiry_note is not None:
         notes[-1].append(expiry_note)
-    t = np.array([_years(days[0], d) for d in days])
+    t = np.array([year_fraction(days[0], d) for d in days])
     n = len(days) - 1
     values = np.full(n, np.nan)
     ratios = np.full((n, len(legs)), np.nan)
@@ -687,7 +683,7 @@ def book_from(commodity: str, valued: ValuedDays, first: int = 0) -> tuple[Histo
     F = valued.futures[first:]
     option0 = option_for(trade, days[0])
     payoff = float(option0.payoff(F[-1][None, :])[0])
-    t = np.array([_years(days[0], d) for d in days])
+    t = np.array([year_fraction(days[0], d) for d in days])
     book = book_history(
         t, F, valued.values[first:], valued.ratios[first:], payoff, valued.rates[first:]
     )

@@ -51,7 +51,7 @@ from calib.model.twofactor import TwoFactorParams
 from calib.policy.settings import RunSettings
 from calib.record.codec import Encoded
 from calib.store.estimates import EstimateRecord, list_series, series_estimates
-from calib.store.quotes import DAYS_PER_YEAR
+from calib.store.quotes import year_fraction
 from calib.store.runs import RunRecord
 from calib.workflows.estimates import none_if_nan
 from calib.workflows.fit import attempt_fit, fitted_inputs, option_quotes
@@ -83,10 +83,6 @@ CAUTION = (
 )
 
 Vols = TwoFactorParams | ForwardVols
-
-
-def _years(start: date, end: date) -> float:
-    return (end - start).days / DAYS_PER_YEAR
 
 
 def _one(
@@ -192,7 +188,7 @@ def price_vanilla(
         quoted_settlements(quotes, (future,), partial(VanillaRequestError, commodity))[0]
     )
     discount = discount_to(quotes, expiry)
-    t, T = _years(day, expiry), _years(day, future)
+    t, T = year_fraction(day, expiry), year_fraction(day, future)
     vols = run_vols(run, day, t)
     premium, variance = vanilla_value(vols, settle, strike, t, T, discount, kind)
     return VanillaPrice(

@@ -50,7 +50,7 @@ from calib.model.spread import (
     vol_sensitivities,
 )
 from calib.model.twofactor import TwoFactorParams
-from calib.store.quotes import DAYS_PER_YEAR, DayQuotes, load_day, require_commodity
+from calib.store.quotes import DayQuotes, load_day, require_commodity, year_fraction
 from calib.store.runs import RunRecord, latest_approved, require_run
 from calib.types import FloatArray
 
@@ -132,16 +132,12 @@ class SpreadPrice:
         }
 
 
-def _years(start: date, end: date) -> float:
-    return (end - start).days / DAYS_PER_YEAR
-
-
 def run_vols(run: RunRecord, pricing_date: date, t_expiry: float) -> TwoFactorParams | ForwardVols:
     """The run's volatilities as seen from ``pricing_date`` (see the module notes)."""
     assert run.params is not None
     if run.mode != "forward" or len(run.buckets) < 2:
         return run.params
-    shift = _years(run.trade_date, pricing_date)
+    shift = year_fraction(run.trade_date, pricing_date)
     kept = [b for b in run.buckets if b.end - shift > 0.0]
     if not kept:  # every bucket is over: the last one's volatilities hold from now on
         kept = [run.buckets[-1]]
@@ -252,7 +248,7 @@ def price_spread(
         raise SpreadRequestError(commodity, SPREAD_EXPIRY.format(expiry=expiry, day=day, near=near))
     settles = quoted_settlements(quotes, (near, far), partial(SpreadRequestError, commodity))
     discount = discount_to(quotes, expiry)
-    t, T1, T2 = _years(day, expiry), _years(day, near), _years(day, far)
+    t, T1, T2 = year_fraction(day, expiry), year_fraction(day, near), year_fraction(day, far)
     vols = run_vols(run, day, t)
     option = SpreadOption(
         t_near=np.array([T1]),
